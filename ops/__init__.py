@@ -1,0 +1,1 @@
+"""Seawall's control plane: command line, config, metrics, schedules, registry, waves."""

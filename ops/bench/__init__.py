@@ -1,0 +1,39 @@
+"""Benchmarks behind ``seawall bench``; shared timing and reporting helpers."""
+from __future__ import annotations
+
+import json
+import resource
+import statistics
+import sys
+import time
+from collections.abc import Callable
+
+
+def median_seconds(fn: Callable[[], object], *, repeats: int = 5, warmup: int = 1) -> float:
+    """Median wall time of ``fn()`` over ``repeats`` runs after ``warmup`` runs."""
+    for _ in range(warmup):
+        fn()
+    times = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t0)
+    return statistics.median(times)
+
+
+def peak_rss_mb() -> float:
+    """Peak resident set size of this process so far, in MiB (Linux reports KiB)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+def report(title: str, rows: dict, *, as_json: bool) -> None:
+    """Print a benchmark's figures as aligned text, or as one JSON object."""
+    if as_json:
+        json.dump(rows, sys.stdout, indent=2, sort_keys=True)
+        sys.stdout.write("\n")
+        return
+    print(title)
+    width = max(len(k) for k in rows)
+    for k, v in rows.items():
+        shown = f"{v:,.3f}" if isinstance(v, float) else str(v)
+        print(f"  {k:<{width}}  {shown}")

@@ -1,0 +1,60 @@
+"""The ``seawall`` command.
+
+Each subcommand lives in its own module under ``ops/commands`` and exposes
+``register(subparsers)``, which adds its parser and sets ``func``; ``func``
+takes the parsed arguments and returns the exit code.  User errors
+(:class:`model.errors.SeawallError`, :class:`ops.config.ConfigError`) are
+printed on one line with no traceback.
+"""
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+from model.errors import SeawallError
+from ops.config import ConfigError
+
+COMMANDS = (
+    "train",
+    "evaluate",
+    "score",
+    "serve",
+    "feedback",
+    "labels",
+    "retrain",
+    "models",
+    "watch",
+    "demo",
+    "bench",
+)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="seawall",
+        description="Streaming comment moderation that adapts: score, route, learn from moderators.",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    for name in COMMANDS:
+        importlib.import_module(f"ops.commands.{name}").register(sub)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        code = args.func(args)
+    except (SeawallError, ConfigError) as exc:
+        print(f"seawall {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        return 130
+    except BrokenPipeError:
+        return 0
+    return int(code or 0)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,1 @@
+"""One module per ``seawall`` subcommand; each exposes ``register(subparsers)``."""

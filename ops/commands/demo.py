@@ -1,0 +1,7 @@
+"""`seawall demo` (being built; see its issue)."""
+from __future__ import annotations
+
+
+def register(sub) -> None:
+    parser = sub.add_parser("demo", help="(being built)")
+    parser.set_defaults(func=lambda args: print("seawall demo: not built yet") or 1)

@@ -1,0 +1,7 @@
+"""`seawall feedback` (being built; see its issue)."""
+from __future__ import annotations
+
+
+def register(sub) -> None:
+    parser = sub.add_parser("feedback", help="(being built)")
+    parser.set_defaults(func=lambda args: print("seawall feedback: not built yet") or 1)

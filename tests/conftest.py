@@ -1,0 +1,49 @@
+"""Shared fixtures: fakeredis for unit tests, a real redis-server per test for
+integration tests, and the public mail corpus for checks against the outside world."""
+from __future__ import annotations
+
+import shutil
+
+import pytest
+
+from servers import RedisServer, require
+
+
+@pytest.fixture
+def fake_redis():
+    """A fresh in-process fakeredis per test (unit tests only)."""
+    import fakeredis
+
+    server = fakeredis.FakeServer()
+    client = fakeredis.FakeRedis(server=server)
+    yield client
+    client.close()
+
+
+@pytest.fixture
+def redis_factory(tmp_path):
+    """Start real redis-servers with custom options; all are stopped afterwards."""
+    require(shutil.which("redis-server") is not None, "redis-server binary not on PATH")
+    started: list[RedisServer] = []
+
+    def make(name: str = "redis", **kwargs) -> RedisServer:
+        server = RedisServer(tmp_path / name, **kwargs).start()
+        started.append(server)
+        return server
+
+    yield make
+    for server in started:
+        server.stop()
+
+
+@pytest.fixture
+def redis_server(redis_factory) -> RedisServer:
+    """A real redis-server on a free loopback port, stopped after the test."""
+    return redis_factory()
+
+
+@pytest.fixture
+def redis_client(redis_server):
+    client = redis_server.client()
+    yield client
+    client.close()

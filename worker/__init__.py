@@ -1,0 +1,1 @@
+"""Seawall's data plane: Redis Streams in, verdicts out."""
