@@ -15,6 +15,35 @@ class RetrainSettings:
     """How the scheduled retrain builds, gates and promotes a candidate."""
 
     cron: str = setting("0 3 * * *", "cron string (UTC) of the nightly retrain on RQ's cron scheduler")
+    queue: str = setting("seawall", "RQ queue the retrain and hold-queue re-score jobs go to")
+    job_timeout_s: int = setting(3600, "RQ job timeout of one retrain, in seconds")
+    lock_ttl_s: int = setting(3600, "retrain lock TTL: a crashed retrain frees the lock after this many seconds")
+    feedback_group: str = setting("labellers", "consumer group that turns the feedback stream into labels")
+    feedback_batch: int = setting(256, "feedback entries read per XREADGROUP call")
+    feedback_block_ms: int = setting(1000, "how long one feedback read blocks, in milliseconds")
+    feedback_claim_idle_ms: int = setting(60000, "feedback pending this long on a dead consumer is claimed by a retrain's drain")
+    feedback_text_max_bytes: int = setting(262144, "largest comment text (UTF-8 bytes) a label may carry")
+    backoff_initial_s: float = setting(0.1, "first reconnect delay of the feedback consumer, in seconds")
+    backoff_factor: float = setting(2.0, "reconnect delay growth factor")
+    backoff_cap_s: float = setting(10.0, "longest reconnect delay, in seconds")
+    labels_max: int = setting(200000, "labelled store bound: the oldest labels are trimmed beyond this many")
+    min_new_labels: int = setting(20, "a retrain with fewer new labels than this does nothing")
+    holdout_share: float = setting(0.2, "share of new labels (chosen by id hash) never trained on, used by the gate")
+    min_holdout: int = setting(40, "the gate refuses to promote on a holdout smaller than this")
+    replay_labels: int = setting(5000, "replay sample of older labels trained with each retrain")
+    replay_original: int = setting(5000, "replay sample of the original training data kept in the registry")
+    canary_size: int = setting(500, "canary rows carved from `models push --replay` data when no --canary file is given")
+    max_moderator_share: float = setting(0.5, "no single moderator supplies more than this share of one retrain's new labels")
+    epochs: int = setting(0, "training epochs of the warm-start update; 0 means the model's own default")
+    seed: int = setting(0, "seed of the retrain's samples")
+    gate_fpr: float = setting(0.01, "false-positive rate at which the gate compares recall")
+    auc_tolerance: float = setting(0.005, "promote only if candidate ROC-AUC >= active ROC-AUC - this")
+    recall_tolerance: float = setting(0.02, "promote only if candidate recall at gate_fpr >= active's - this")
+    reject_fpr: float = setting(0.001, "target false-positive rate of the recalibrated reject threshold")
+    hold_fpr: float = setting(0.02, "target false-positive rate of the recalibrated hold threshold")
+    reports_kept: int = setting(50, "retrain reports kept in Redis")
+    rescore_batch: int = setting(500, "held comments re-scored per model call after a promotion")
+    registry_poll_s: float = setting(2.0, "workers check the active model this often when pub/sub is silent, in seconds")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -23,6 +52,11 @@ class MetricsSettings:
 
     port: int = setting(9310, "metrics port (/metrics, /healthz, /readyz); 0 turns the endpoint off")
     host: str = setting("127.0.0.1", "metrics bind address; loopback unless you mean to expose it")
+    sites: tuple[str, ...] = setting(
+        (), "site names allowed as metric labels and wave sites; any other site is counted as `other`"
+    )
+    flagged_window_s: float = setting(300.0, "sliding window of the per-site flagged-ratio gauge, in seconds")
+    poll_s: float = setting(5.0, "how often the ops loop runs the wave detector and refreshes shared gauges (waves, campaigns, retrains) from Redis")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -30,3 +64,18 @@ class WaveSettings:
     """Flagged-rate wave detection and near-duplicate campaign detection."""
 
     enabled: bool = setting(True, "run the wave and campaign detectors")
+    cusum_k: float = setting(0.5, "CUSUM reference value k, in standard deviations (0.5 is tuned to a 1-sigma shift)")
+    cusum_h: float = setting(5.0, "CUSUM decision interval h, in standard deviations (5: one false alarm per ~930 quiet minutes per site)")
+    baseline_alpha: float = setting(0.05, "EWMA weight that tracks a site's normal flagged rate outside waves (0.05: ~20-minute memory)")
+    baseline_minutes: int = setting(30, "minutes of history that seed a site's normal flagged rate before it can alarm")
+    min_rate: float = setting(0.01, "floor of the normal flagged rate, so a clean site's variance is never zero")
+    min_comments: int = setting(20, "minutes with fewer comments than this for a site are skipped by the detector")
+    end_quiet_minutes: int = setting(5, "consecutive in-control minutes that end a wave")
+    campaign_shingle: int = setting(3, "words per shingle of the near-duplicate MinHash")
+    campaign_perm: int = setting(128, "MinHash permutations (signature length)")
+    campaign_bands: int = setting(16, "LSH bands; permutations / bands rows each (16 x 8: pairs above Jaccard ~0.7 collide)")
+    campaign_min_size: int = setting(10, "near-duplicates within the window that make a campaign (N)")
+    campaign_min_authors: int = setting(3, "distinct authors among them (M); a comment with no author counts as its own")
+    campaign_window_s: int = setting(600, "window T in seconds; LSH buckets expire after it")
+    campaign_min_words: int = setting(6, "comments with fewer words are not checked for campaigns")
+    campaign_hold: bool = setting(True, "hold members of an active campaign even when the model would publish them")
