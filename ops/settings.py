@@ -45,6 +45,44 @@ class RetrainSettings:
     rescore_batch: int = setting(500, "held comments re-scored per model call after a promotion")
     registry_poll_s: float = setting(2.0, "workers check the active model this often when pub/sub is silent, in seconds")
 
+    def __post_init__(self):
+        for name, low, high in _RETRAIN_BOUNDS:
+            value = getattr(self, name)
+            if not low <= value <= high:
+                raise ValueError(f"RetrainSettings: {name} must be in [{low}, {high}], got {value!r}")
+
+
+# (field, lowest, highest) of every numeric retrain setting; checked once at start-up.
+_RETRAIN_BOUNDS = (
+    ("job_timeout_s", 1, 7 * 86400),
+    ("lock_ttl_s", 1, 7 * 86400),
+    ("feedback_batch", 1, 100000),
+    ("feedback_block_ms", 1, 600000),
+    ("feedback_claim_idle_ms", 0, 86400000),
+    ("feedback_text_max_bytes", 1, 64 * 2**20),
+    ("backoff_initial_s", 0.001, 60.0),
+    ("backoff_factor", 1.0, 10.0),
+    ("backoff_cap_s", 0.001, 3600.0),
+    ("labels_max", 1, 10**8),
+    ("min_new_labels", 1, 10**8),
+    ("holdout_share", 0.01, 0.9),
+    ("min_holdout", 1, 10**8),
+    ("replay_labels", 0, 10**7),
+    ("replay_original", 0, 10**7),
+    ("canary_size", 0, 10**7),
+    ("max_moderator_share", 0.01, 1.0),
+    ("epochs", 0, 1000),
+    ("seed", 0, 2**32 - 1),
+    ("gate_fpr", 0.0001, 0.5),
+    ("auc_tolerance", 0.0, 1.0),
+    ("recall_tolerance", 0.0, 1.0),
+    ("reject_fpr", 0.00001, 0.5),
+    ("hold_fpr", 0.00001, 0.5),
+    ("reports_kept", 1, 10000),
+    ("rescore_batch", 1, 100000),
+    ("registry_poll_s", 0.05, 3600.0),
+)
+
 
 @dataclass(frozen=True, kw_only=True)
 class MetricsSettings:
