@@ -7,7 +7,9 @@ its metadata, which ``seawall serve --help`` and the example config print.
 """
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
+from types import MappingProxyType
 
 
 def setting(default, help: str, **extra):
@@ -56,6 +58,22 @@ class Keys:
     def group(self) -> str:
         return self.key("workers")
 
+    @property
+    def held(self) -> str:
+        return self.key("held")
+
+    def text(self, comment_id: str) -> str:
+        """Hash caching one comment's text and verdict (TTL ``worker.text_cache_ttl_s``)."""
+        return self.key("text", comment_id)
+
+    def done(self, comment_id: str) -> str:
+        """Marker that a comment already has its verdict (TTL ``worker.done_ttl_s``)."""
+        return self.key("done", comment_id)
+
+    def rates(self, minute: int) -> str:
+        """Per-minute counts hash; ``minute`` is ``int(epoch_seconds // 60)``."""
+        return self.key("rates", str(minute))
+
 
 @dataclass(frozen=True, kw_only=True)
 class WorkerSettings:
@@ -65,3 +83,69 @@ class WorkerSettings:
     batch: int = setting(256, "entries read per XREADGROUP call and scored in one model call")
     block_ms: int = setting(1000, "how long one XREADGROUP blocks waiting for entries, in milliseconds")
     processes: int = setting(1, "consumer processes to run on this host")
+    claim_idle_ms: int = setting(60_000, "entries pending longer than this (ms) on another consumer are taken over with XAUTOCLAIM")
+    claim_every_s: float = setting(5.0, "how often a worker looks for idle entries to take over, in seconds")
+    max_deliveries: int = setting(5, "an entry delivered more times than this goes to the dead-letter stream as poison")
+    max_text_bytes: int = setting(65_536, "longest accepted comment text in UTF-8 bytes; longer ones are dead-lettered")
+    max_fields: int = setting(16, "most fields an input entry may have; more are dead-lettered as too_many_fields")
+    max_id_bytes: int = setting(256, "longest accepted comment id in UTF-8 bytes")
+    max_meta_bytes: int = setting(1024, "longest accepted site, author or ts value in UTF-8 bytes")
+    deadletter_field_bytes: int = setting(1024, "each original field kept in a dead-letter entry is cut to this many bytes")
+    verdicts_maxlen: int = setting(1_000_000, "approximate length cap of the verdicts stream (XADD MAXLEN ~)")
+    deadletter_maxlen: int = setting(100_000, "approximate length cap of the dead-letter stream (XADD MAXLEN ~)")
+    text_cache_ttl_s: int = setting(14 * 86_400, "how long text:{id} keeps a comment's text for feedback and re-scoring (personal data)")
+    done_ttl_s: int = setting(86_400, "how long the per-id marker stops a second verdict for the same comment id")
+    rates_ttl_s: int = setting(3 * 3_600, "TTL of the per-minute rates:{minute} counters")
+    backoff_base_s: float = setting(0.1, "first wait before reconnecting to Redis, in seconds")
+    backoff_factor: float = setting(2.0, "each failed reconnect multiplies the wait by this factor")
+    backoff_cap_s: float = setting(10.0, "longest wait between reconnect attempts, in seconds")
+    reload_poll_s: float = setting(2.0, "how often the worker checks its model source for a new model, in seconds")
+    lag_every_s: float = setting(5.0, "how often the worker reports consumer-group lag and pending counts")
+    socket_timeout_s: float = setting(10.0, "Redis socket timeout on top of block_ms, in seconds")
+    site_thresholds: Mapping[str, Mapping[str, float]] = field(
+        default_factory=lambda: MappingProxyType({}),
+        metadata={
+            "help": 'per-site threshold overrides, e.g. {"forum.example" = {hold = 0.4, reject = 0.9}}; unset keys keep the model\'s'
+        },
+    )
+
+    def __post_init__(self):
+        for name, low in _WORKER_MINIMUMS.items():
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, (int, float)) or value < low:
+                raise ValueError(f"WorkerSettings: {name} must be a number >= {low}, got {value!r}")
+        if self.backoff_factor < 1.0:
+            raise ValueError(f"WorkerSettings: backoff_factor must be >= 1, got {self.backoff_factor!r}")
+        if self.backoff_cap_s < self.backoff_base_s:
+            raise ValueError(
+                f"WorkerSettings: backoff_cap_s ({self.backoff_cap_s!r}) must be >= backoff_base_s ({self.backoff_base_s!r})"
+            )
+        if not isinstance(self.site_thresholds, Mapping):
+            raise ValueError(f"WorkerSettings: site_thresholds must be a table, got {self.site_thresholds!r}")
+
+
+# Lower bounds of the numeric worker settings: one declarative table, checked in __post_init__.
+_WORKER_MINIMUMS = {
+    "batch": 1,
+    "block_ms": 1,
+    "processes": 1,
+    "claim_idle_ms": 1,
+    "claim_every_s": 0.01,
+    "max_deliveries": 1,
+    "max_text_bytes": 1,
+    "max_fields": 2,
+    "max_id_bytes": 1,
+    "max_meta_bytes": 1,
+    "deadletter_field_bytes": 16,
+    "verdicts_maxlen": 1,
+    "deadletter_maxlen": 1,
+    "text_cache_ttl_s": 1,
+    "done_ttl_s": 1,
+    "rates_ttl_s": 60,
+    "backoff_base_s": 0.001,
+    "backoff_factor": 1.0,
+    "backoff_cap_s": 0.001,
+    "reload_poll_s": 0.01,
+    "lag_every_s": 0.1,
+    "socket_timeout_s": 0.1,
+}
