@@ -1,7 +1,50 @@
-"""`seawall feedback` (being built; see its issue)."""
+"""``seawall feedback ID spam|ham``: send one moderator label to the feedback stream.
+
+For scripts and tests; a moderation tool would XADD the same flat fields
+(``id``, ``label``, optional ``moderator``, ``reason``, ``text``) itself.
+"""
 from __future__ import annotations
+
+import json
+
+from model.errors import SeawallError
+from ops.connection import add_connection_args, config_from_args, connect
+from worker.feedback import Rejected, parse_feedback
 
 
 def register(sub) -> None:
-    parser = sub.add_parser("feedback", help="(being built)")
-    parser.set_defaults(func=lambda args: print("seawall feedback: not built yet") or 1)
+    parser = sub.add_parser("feedback", help="send one moderator label (spam|ham) for a comment id")
+    parser.add_argument("id", help="the comment id")
+    parser.add_argument("label", choices=("spam", "ham"), help="the moderator's decision")
+    parser.add_argument("--text", default=None, help="the comment text, when Seawall's cache may not have it")
+    parser.add_argument("--moderator", default=None, help="who decided (the poisoning guard caps each one's share)")
+    parser.add_argument("--reason", default=None, help="free-form note kept with the label")
+    parser.add_argument("--json", action="store_true", help="print the result as JSON")
+    add_connection_args(parser)
+    parser.set_defaults(func=run)
+
+
+def feedback_fields(args) -> dict[str, str]:
+    fields = {"id": args.id, "label": args.label}
+    for name in ("moderator", "reason", "text"):
+        value = getattr(args, name)
+        if value is not None:
+            fields[name] = value
+    return fields
+
+
+def run(args) -> int:
+    config = config_from_args(args)
+    fields = feedback_fields(args)
+    checked = parse_feedback("0-0", fields, text_max_bytes=config.retrain.feedback_text_max_bytes)
+    if isinstance(checked, Rejected):
+        raise SeawallError(f"feedback: {checked.reason.removeprefix('feedback_').replace('_', ' ')}; "
+                           "give a non-empty id, spam or ham, and a text within retrain.feedback_text_max_bytes")
+    client = connect(config)
+    entry_id = client.xadd(config.keys.feedback, fields)
+    entry_id = entry_id.decode() if isinstance(entry_id, bytes) else entry_id
+    if args.json:
+        print(json.dumps({"stream_id": entry_id, "id": args.id, "label": args.label}))
+    else:
+        print(f"feedback {entry_id}: {args.id} -> {args.label}")
+    return 0
