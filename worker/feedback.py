@@ -68,11 +68,11 @@ def labels_key(keys: Keys) -> str:
 
 
 def held_key(keys: Keys) -> str:
-    return keys.key("held")
+    return keys.held
 
 
 def text_key(keys: Keys, comment_id: str) -> str:
-    return keys.key("text", comment_id)
+    return keys.text(comment_id)
 
 
 def _raw(value) -> bytes:
@@ -179,12 +179,12 @@ def write_label(client, keys: Keys, record: Mapping[str, str], *, labels_max: in
     return None
 
 
-def write_deadletter(client, keys: Keys, rejected: Rejected, *, pipeline=None):
+def write_deadletter(client, keys: Keys, rejected: Rejected, *, maxlen: int = 100_000, pipeline=None):
     """Dead-letter one feedback entry with its reason and its fields truncated."""
     pipe = pipeline if pipeline is not None else client.pipeline(transaction=True)
     entry = {f"field:{k}" if k in ("reason", "stream_id", "source") else k: v for k, v in rejected.fields.items()}
     entry.update({"reason": rejected.reason, "stream_id": rejected.stream_id, "source": keys.feedback})
-    pipe.xadd(keys.deadletter, entry)
+    pipe.xadd(keys.deadletter, entry, maxlen=maxlen, approximate=True)
     if pipeline is None:
         return pipe.execute()
     return None
@@ -198,9 +198,24 @@ def parse_read_reply(reply) -> list[tuple[str, dict]]:
     """
     out = []
     for _stream, entries in reply or ():
-        for sid, fields in entries:
-            out.append((_raw(sid).decode(), dict(fields or {})))
+        out.extend(parse_entries(entries))
     return out
+
+
+def _field_map(fields) -> dict:
+    # redis-py folds fields into a dict; a client with raw stream replies
+    # (worker.connection) gives the wire's flat [k1, v1, k2, v2, ...] list.
+    if fields is None:
+        return {}
+    if isinstance(fields, Mapping):
+        return dict(fields)
+    flat = list(fields)
+    return dict(zip(flat[0::2], flat[1::2]))
+
+
+def parse_entries(entries) -> list[tuple[str, dict]]:
+    """``[(id, fields)]`` of one stream's entries, parsed or raw (pure)."""
+    return [(_raw(sid).decode(), _field_map(fields)) for sid, fields in entries or ()]
 
 
 # Constructor parameters of FeedbackConsumer: (type, lowest, highest); None = unbounded.
@@ -212,6 +227,7 @@ _PARAMS = {
     "text_max_bytes": (int, 1, 64 * 2**20),
     "labels_max": (int, 1, 10**8),
     "claim_idle_ms": (int, 0, 86400000),
+    "deadletter_maxlen": (int, 1, 10**9),
     "backoff_initial_s": (float, 0.001, 60.0),
     "backoff_factor": (float, 1.0, 10.0),
     "backoff_cap_s": (float, 0.001, 3600.0),
@@ -239,6 +255,7 @@ class FeedbackConsumer:
     batch, block_ms : entries per read and how long a read blocks.
     text_max_bytes : largest text a label may carry.
     labels_max : bound of the labelled store.
+    deadletter_maxlen : approximate cap of the dead-letter stream (``worker.deadletter_maxlen``).
     claim_idle_ms : :meth:`drain` claims entries pending this long on other consumers.
     backoff_initial_s, backoff_factor, backoff_cap_s : reconnect back-off of :meth:`run`.
     clock : returns epoch seconds (tests pass a fixed one).
@@ -246,12 +263,13 @@ class FeedbackConsumer:
 
     def __init__(self, *, client, keys: Keys, group: str = "labellers", consumer: str = "",
                  batch: int = 256, block_ms: int = 1000, text_max_bytes: int = 262144,
-                 labels_max: int = 200000, claim_idle_ms: int = 60000,
+                 labels_max: int = 200000, claim_idle_ms: int = 60000, deadletter_maxlen: int = 100_000,
                  backoff_initial_s: float = 0.1, backoff_factor: float = 2.0,
                  backoff_cap_s: float = 10.0, clock=time.time):
         for name, value in (("group", group), ("consumer", consumer), ("batch", batch),
                             ("block_ms", block_ms), ("text_max_bytes", text_max_bytes),
                             ("labels_max", labels_max), ("claim_idle_ms", claim_idle_ms),
+                            ("deadletter_maxlen", deadletter_maxlen),
                             ("backoff_initial_s", backoff_initial_s), ("backoff_factor", backoff_factor),
                             ("backoff_cap_s", backoff_cap_s)):
             _check(name, value)
@@ -266,6 +284,7 @@ class FeedbackConsumer:
         self.text_max_bytes = text_max_bytes
         self.labels_max = labels_max
         self.claim_idle_ms = claim_idle_ms
+        self.deadletter_maxlen = deadletter_maxlen
         self.backoff_initial_s = float(backoff_initial_s)
         self.backoff_factor = float(backoff_factor)
         self.backoff_cap_s = float(backoff_cap_s)
@@ -314,7 +333,7 @@ class FeedbackConsumer:
             if isinstance(item, Feedback):
                 item = join_label(item, cached.get(item.stream_id), now=now, text_max_bytes=self.text_max_bytes)
             if isinstance(item, Rejected):
-                write_deadletter(self.client, self.keys, item, pipeline=pipe)
+                write_deadletter(self.client, self.keys, item, maxlen=self.deadletter_maxlen, pipeline=pipe)
                 counts["deadlettered"] += 1
             else:
                 write_label(self.client, self.keys, item, labels_max=self.labels_max, pipeline=pipe)
@@ -353,7 +372,7 @@ class FeedbackConsumer:
             reply = self.client.xautoclaim(self.keys.feedback, self.group, self.consumer,
                                            min_idle_time=self.claim_idle_ms, start_id=start, count=self.batch)
             cursor, entries = reply[0], reply[1]
-            claimed.extend((_raw(sid).decode(), dict(f or {})) for sid, f in entries)
+            claimed.extend(parse_entries(entries))
             start = _raw(cursor).decode()
             if start == "0-0":
                 return claimed
