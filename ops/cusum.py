@@ -22,7 +22,7 @@ test_cusum.py`` checks these run lengths by simulation.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -120,3 +120,102 @@ def siegmund_arl(params: CusumParams, shift: float) -> float:
     if abs(d) < 1e-12:
         return b * b
     return float((np.exp(-2.0 * d * b) + 2.0 * d * b - 1.0) / (2.0 * d * d))
+
+
+@dataclass(frozen=True)
+class WaveParams:
+    """How a site's minutes turn into waves (``[waves]`` settings).
+
+    ``baseline_alpha`` is the EWMA weight (Roberts 1959) that lets the normal
+    flagged share follow slow drift outside waves; ``baseline_minutes`` minutes
+    seed it (their plain mean) before the chart may alarm.
+    """
+
+    cusum: CusumParams = CusumParams()
+    baseline_alpha: float = 0.05
+    baseline_minutes: int = 30
+    min_rate: float = 0.01
+    min_comments: int = 20
+    end_quiet_minutes: int = 5
+
+    def __post_init__(self):
+        checks = {
+            "baseline_alpha": 0.0 < self.baseline_alpha <= 1.0,
+            "baseline_minutes": isinstance(self.baseline_minutes, int) and self.baseline_minutes >= 1,
+            "min_rate": 0.0 < self.min_rate < 0.5,
+            "min_comments": isinstance(self.min_comments, int) and self.min_comments >= 1,
+            "end_quiet_minutes": isinstance(self.end_quiet_minutes, int) and self.end_quiet_minutes >= 1,
+        }
+        for name, ok in checks.items():
+            if not ok:
+                raise ValueError(f"WaveParams: bad {name} {getattr(self, name)!r}")
+
+    @classmethod
+    def from_settings(cls, waves) -> "WaveParams":
+        return cls(
+            cusum=CusumParams(k=waves.cusum_k, h=waves.cusum_h),
+            baseline_alpha=waves.baseline_alpha,
+            baseline_minutes=waves.baseline_minutes,
+            min_rate=waves.min_rate,
+            min_comments=waves.min_comments,
+            end_quiet_minutes=waves.end_quiet_minutes,
+        )
+
+
+@dataclass(frozen=True)
+class WaveState:
+    """One site's detector state between minutes (stored as JSON in Redis)."""
+
+    c: float = 0.0
+    p0: float | None = None
+    seen: int = 0
+    quiet: int = 0
+    active: bool = False
+    start: int | None = None
+    peak: float = 0.0
+    last_z: float = 0.0
+
+    def to_dict(self) -> dict:
+        return {"c": self.c, "p0": self.p0, "seen": self.seen, "quiet": self.quiet, "active": self.active,
+                "start": self.start, "peak": self.peak, "last_z": self.last_z}
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "WaveState":
+        known = cls().to_dict().keys()
+        return cls(**{k: v for k, v in d.items() if k in known})
+
+
+def observe_minute(state: WaveState, *, flagged: int, total: int, minute: int,
+                   params: WaveParams) -> tuple[WaveState, str | None]:
+    """Feed one site's completed minute; returns the new state and ``"start"``, ``"end"`` or ``None``.
+
+    A minute with fewer than ``min_comments`` comments carries too little
+    evidence to move the chart; during a wave it counts as a quiet minute, so
+    a wave on a site that falls silent still ends.
+    """
+
+    if total < params.min_comments:
+        if not state.active:
+            return state, None
+        return _maybe_end(replace(state, quiet=state.quiet + 1), params)
+    share = flagged / total
+    if state.p0 is None or state.seen < params.baseline_minutes:
+        p0 = share if state.p0 is None else state.p0 + (share - state.p0) / (state.seen + 1)
+        return replace(state, p0=p0, seen=state.seen + 1), None
+    base = min(max(state.p0, params.min_rate), 0.99)
+    z = float(standardize(flagged, total, base))
+    c = upper_step(state.c, z, params.cusum)
+    if state.active:
+        quiet = state.quiet + 1 if z < params.cusum.k else 0
+        return _maybe_end(replace(state, c=c, quiet=quiet, peak=max(state.peak, share), last_z=z), params)
+    if c > params.cusum.h:
+        return replace(state, c=c, active=True, start=minute, peak=share, quiet=0, last_z=z), "start"
+    p0 = state.p0 + params.baseline_alpha * (share - state.p0)
+    return replace(state, c=c, p0=p0, seen=state.seen + 1, last_z=z), None
+
+
+def _maybe_end(state: WaveState, params: WaveParams) -> tuple[WaveState, str | None]:
+
+    if state.quiet >= params.end_quiet_minutes:
+        return replace(state, c=0.0, active=False, quiet=0), "end"
+    return state, None
