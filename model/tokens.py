@@ -1,0 +1,680 @@
+"""Comment text to tokens: normalization that undoes common evasions, then features.
+
+A comment goes through a fixed pipeline, each step a named function below:
+
+1. :func:`fold_text` - NFKC and casefold; zero-width, format and control
+   characters removed; accents and stacked combining marks stripped
+   (:func:`strip_invisibles`, :func:`strip_accents`); Cyrillic and Greek
+   look-alike letters mapped to Latin inside words that otherwise read as Latin
+   (:func:`map_homoglyphs`).  Plain ASCII takes a fast path with the same result.
+2. :func:`mark_specials` - URLs become ``<url>`` plus ``domain:<host>``,
+   e-mail addresses ``<email>``, phone numbers ``<phone>``, grouped numbers
+   (``1,299.99``) ``<num>``.
+3. :func:`word_tokens` - words are cut out; :func:`join_spaced` glues runs of
+   three or more single characters (``c a s i n o``); each word then goes through
+   :func:`undo_leet` (``fr33`` -> ``free``), :func:`squash_repeats`
+   (``freeeee`` -> ``free``) and bare integers become ``<num>``.
+
+:class:`Tokenizer` ties the steps together and adds word bigrams
+(``free_casino``) and optional character n-grams (``#cas``).  The output
+depends only on the text and :meth:`Tokenizer.params`, which the artifact
+manifest stores, so a model always sees the tokens it was trained on.
+"""
+from __future__ import annotations
+
+import re
+import unicodedata
+from itertools import islice
+from numbers import Integral
+
+__all__ = [
+    "Tokenizer",
+    "fold_text",
+    "strip_invisibles",
+    "strip_accents",
+    "map_homoglyphs",
+    "mark_specials",
+    "word_tokens",
+    "join_spaced",
+    "undo_leet",
+    "squash_repeats",
+    "mark_number",
+    "bigrams",
+    "char_ngrams",
+    "MARKERS",
+]
+
+#: Marker tokens that stand in for a whole class of strings.
+MARKERS = ("<url>", "<email>", "<phone>", "<num>")
+DOMAIN_PREFIX = "domain:"
+BIGRAM_JOINER = "_"  # words never contain "_" (it separates words), so a bigram never equals a word
+CHAR_NGRAM_PREFIX = "#"  # keeps the n-gram "win" apart from the word "win"
+
+# The version of the rules below.  A model's manifest records it; any change to
+# what a text turns into must bump it, so an old artifact is refused rather than
+# silently fed different tokens.
+NORMALIZATION_VERSION = 1
+
+_WORD_CACHE_SIZE = 1 << 16  # distinct raw words remembered per tokenizer; bounded
+
+
+# --------------------------------------------------------------------------- #
+# Character tables (built once at import from this Python's Unicode database)  #
+# --------------------------------------------------------------------------- #
+
+def _bmp_ranges(categories: frozenset[str]) -> list[tuple[int, int]]:
+    out: list[tuple[int, int]] = []
+    start = None
+    for cp in range(0x10000):
+        if unicodedata.category(chr(cp)) in categories:
+            if start is None:
+                start = cp
+        elif start is not None:
+            out.append((start, cp - 1))
+            start = None
+    if start is not None:
+        out.append((start, 0xFFFF))
+    return out
+
+
+def _class(ranges: list[tuple[int, int]]) -> str:
+    return "".join(
+        re.escape(chr(a)) if a == b else f"{re.escape(chr(a))}-{re.escape(chr(b))}" for a, b in ranges
+    )
+
+
+# Generic combining blocks used for accents and "zalgo" stacking; script-specific
+# marks (Devanagari vowel signs, Arabic harakat, ...) are kept as parts of words.
+_GENERIC_MARKS = [(0x0300, 0x036F), (0x1AB0, 0x1AFF), (0x1DC0, 0x1DFF), (0x20D0, 0x20FF), (0xFE20, 0xFE2F)]
+_VARIATION_SELECTORS = [(0xFE00, 0xFE0F), (0xE0100, 0xE01EF)]
+# Letters that render as nothing and are used to split words invisibly
+# (Hangul fillers, Khmer inherent vowels, Mongolian vowel separator).
+_BLANK_LETTERS = [(0x115F, 0x1160), (0x17B4, 0x17B5), (0x180E, 0x180E), (0x3164, 0x3164), (0xFFA0, 0xFFA0)]
+_ASTRAL_FORMAT = [(0x110BD, 0x110BD), (0x110CD, 0x110CD), (0x13430, 0x13438), (0x1BCA0, 0x1BCA3),
+                  (0x1D173, 0x1D17A), (0xE0001, 0xE0001), (0xE0020, 0xE007F)]
+_KEEP_WHITESPACE = {ord(c) for c in "\t\n\v\f\r\x1c\x1d\x1e\x1f\x85"}
+
+_INVISIBLE_RANGES = sorted(
+    [r for r in _bmp_ranges(frozenset({"Cc", "Cf", "Cs"}))]
+    + _VARIATION_SELECTORS + _BLANK_LETTERS + _ASTRAL_FORMAT
+)
+
+
+def _minus_whitespace(ranges):
+    out = []
+    for a, b in ranges:
+        cp = a
+        while cp <= b:
+            if cp in _KEEP_WHITESPACE:
+                cp += 1
+                continue
+            end = cp
+            while end + 1 <= b and end + 1 not in _KEEP_WHITESPACE:
+                end += 1
+            out.append((cp, end))
+            cp = end + 1
+    return out
+
+
+_INVISIBLE_RE = re.compile(f"[{_class(_minus_whitespace(_INVISIBLE_RANGES))}]+")
+_ACCENT_RE = re.compile(f"[{_class(_GENERIC_MARKS)}]+")
+_ASCII_CONTROL_RE = re.compile(r"[\x00-\x08\x0e-\x1b\x7f]+")
+_generic = set()
+for _a, _b in _GENERIC_MARKS:
+    _generic.update(range(_a, _b + 1))
+_SCRIPT_MARKS = _class([r for r in _bmp_ranges(frozenset({"Mn", "Mc", "Me"}))
+                        if not (r[0] in _generic and r[1] in _generic)])
+del _generic, _a, _b
+
+# Look-alike letters, mapped before casefolding so that uppercase forms map to
+# the Latin letter they imitate (Cyrillic "Н" looks like "H", lowercase "н"
+# less so).  Small, explicit and common practice rather than the full Unicode
+# confusables table: these are the letters "fancy text" generators and
+# spoofed comments use.  NFKC already folds full-width and mathematical forms.
+_HOMOGLYPHS = {
+    # Cyrillic capitals
+    "А": "a", "В": "b", "Е": "e", "К": "k", "М": "m", "Н": "h", "О": "o", "Р": "p", "С": "c",
+    "Т": "t", "Х": "x", "У": "y", "Ѕ": "s", "І": "i", "Ј": "j", "Ԛ": "q", "Ԝ": "w", "Ү": "y",
+    # Cyrillic small letters
+    "а": "a", "в": "b", "е": "e", "к": "k", "м": "m", "н": "h", "о": "o", "р": "p", "с": "c",
+    "т": "t", "х": "x", "у": "y", "ѕ": "s", "і": "i", "ј": "j", "ԛ": "q", "ԝ": "w", "ү": "y",
+    "ԁ": "d", "һ": "h", "ӏ": "l", "ь": "b", "п": "n", "г": "r",
+    # Greek capitals
+    "Α": "a", "Β": "b", "Ε": "e", "Ζ": "z", "Η": "h", "Ι": "i", "Κ": "k", "Μ": "m", "Ν": "n",
+    "Ο": "o", "Ρ": "p", "Τ": "t", "Υ": "y", "Χ": "x",
+    # Greek small letters
+    "α": "a", "β": "b", "γ": "y", "ε": "e", "η": "n", "ι": "i", "κ": "k", "ν": "v", "ο": "o",
+    "ρ": "p", "τ": "t", "υ": "u", "χ": "x", "ω": "w",
+    # Latin small capitals and other look-alikes NFKC leaves alone
+    "ᴀ": "a", "ʙ": "b", "ᴄ": "c", "ᴅ": "d", "ᴇ": "e", "ꜰ": "f", "ɢ": "g", "ʜ": "h", "ɪ": "i",
+    "ᴊ": "j", "ᴋ": "k", "ʟ": "l", "ᴍ": "m", "ɴ": "n", "ᴏ": "o", "ᴘ": "p", "ǫ": "q", "ʀ": "r",
+    "ꜱ": "s", "ᴛ": "t", "ᴜ": "u", "ᴠ": "v", "ᴡ": "w", "ʏ": "y", "ᴢ": "z",
+    "ı": "i", "ɑ": "a", "ɡ": "g", "օ": "o",
+}
+_HOMOGLYPH_TABLE = str.maketrans(_HOMOGLYPHS)
+_HOMOGLYPH_RE = re.compile(f"[{''.join(_HOMOGLYPHS)}]")
+# A word is rewritten only when every character in it is ASCII or a look-alike:
+# "саsinо" (mixed scripts) becomes "casino", "привет" (real Cyrillic with
+# letters that look like nothing Latin) stays as written.
+_LOOKALIKE_OK = frozenset(_HOMOGLYPHS) | frozenset(chr(c) for c in range(128))
+
+_WORD_CLASS = rf"\w{_SCRIPT_MARKS}"
+_ANY_WORD_RE = re.compile(f"[{_WORD_CLASS}]+")
+
+# Leetspeak digits and symbols inside words (common practice).
+_LEET_TABLE = str.maketrans({"0": "o", "1": "i", "3": "e", "4": "a", "5": "s", "7": "t", "8": "b",
+                             "9": "g", "@": "a", "$": "s"})
+_HAS_LEET_RE = re.compile(r"[0134578@$9]")
+_HAS_LETTER_RE = re.compile(r"[^\W\d]")
+# "1st", "10k", "5pm", "90s": a number with a short unit or ordinal stays as it is.
+_NUMBER_WITH_UNIT_RE = re.compile(r"\d+[a-z]{1,2}")
+# Squash to two: English has doubled letters ("free", "good") but no tripled
+# ones, so two keeps real words intact while "freeeee" and "freee" meet "free".
+_REPEAT_RE = re.compile(r"([^\W\d_])\1\1+")
+
+# Pictographs are strong spam signals ("\U0001f3b0", "\U0001f4b0"); each one is a token of its own.
+_EMOJI_CLASS = "\u2600-\u27bf\u2b00-\u2bff\U0001f000-\U0001faff"
+
+# Word tokens: runs of word characters, "@"/"$" allowed inside ("c@sino"),
+# a leading "$" before a letter ("$ave"), plus already-formed marker tokens so
+# that normalizing a normalized text changes nothing.
+_TOKEN_RE = re.compile(
+    rf"<(?:url|email|phone|num)>|domain:\S+|(?:\$(?=[^\W\d]))?[{_WORD_CLASS}]+(?:[@$][{_WORD_CLASS}]+)*"
+    rf"|[{_EMOJI_CLASS}]"
+)
+
+# Top-level domains accepted for links written without a scheme ("casino.example").
+# A short list of common and test domains, so that "file.txt" or "end.Then"
+# are not taken for links; links with a scheme or "www." need no list.
+_BARE_TLDS = (
+    "com net org info biz io co me tv cc ws xyz top site online club shop store app dev ly gl to gg "
+    "ru cn uk de fr es it nl pl br in au ca eu us jp kr ch se no fi dk be at cz pt gr tr ua vn id my "
+    "ph sg hk tw mx ar cl za ng ke pk bd ir sa ae il nz su pw tk ml ga cf gq icu cyou buzz live vip "
+    "win bid loan click link work life today world news email money cash casino bet poker fun space "
+    "website tech pro mobi name asia example invalid test onion"
+).split()
+
+_SPECIAL_RE = re.compile(
+    r"(?P<keep>domain:\S+|<(?:url|email|phone|num)>)"
+    r"|(?P<url>(?<![\w@.])(?:(?:https?|ftps?)://|www\.)[^\s<>\"'`]+)"
+    r"|(?P<email>(?<![\w.+-])[\w.+-]+@[\w-]+(?:\.[\w-]+)+)"
+    r"|(?P<bare>(?<![\w@.:/-])(?:[a-z0-9](?:[a-z0-9-]*[a-z0-9])?\.)+(?:" + "|".join(_BARE_TLDS) + r")"
+    r"(?![\w-])(?:[:/][^\s<>\"'`]*)?)"
+    r"|(?P<digits>(?<![\w+.,])\+?\(?\d(?:[\d().,-]|\s(?=[\d(]))*\d\)?(?!\w))"
+)
+_TRAILING_PUNCT = ".,;:!?)]}'\""
+_GROUPED_NUMBER_RE = re.compile(r"\d+(?:[.,]\d+)+")
+_DATE_RE = re.compile(r"\d{4}-\d{1,2}-\d{1,2}|\d{1,2}[./-]\d{1,2}[./-]\d{2,4}")
+_PHONE_SEPARATORS_RE = re.compile(r"[\s().-]+")
+
+
+# --------------------------------------------------------------------------- #
+# The named transformations                                                    #
+# --------------------------------------------------------------------------- #
+
+def strip_invisibles(text: str) -> str:
+    """Remove zero-width, format, control and surrogate characters.
+
+    Tabs, newlines and the other whitespace controls are kept, since they
+    separate words; everything else in Unicode categories Cc, Cf and Cs, the
+    variation selectors and the blank "filler" letters is removed, so that
+    ``"ca\\u200bsino"`` reads ``"casino"``.
+
+    Examples
+    --------
+    >>> strip_invisibles("fr\\u200bee\\x00 ca\\u2060sino\\ufe0f")
+    'free casino'
+    """
+    return _INVISIBLE_RE.sub("", text)
+
+
+def strip_accents(text: str) -> str:
+    """Remove generic combining marks (accents, stacked "zalgo" marks).
+
+    Expects decomposed text (NFKD), where an accent is a separate mark.
+    Script-specific marks such as Devanagari vowel signs are kept.
+
+    Examples
+    --------
+    >>> import unicodedata
+    >>> strip_accents(unicodedata.normalize("NFKD", "cásínó"))
+    'casino'
+    """
+    return _ACCENT_RE.sub("", text)
+
+
+def _map_word(match: re.Match) -> str:
+    word = match.group()
+    if _LOOKALIKE_OK.issuperset(word):
+        return word.translate(_HOMOGLYPH_TABLE)
+    return word
+
+
+def map_homoglyphs(text: str) -> str:
+    """Map Cyrillic, Greek and small-capital look-alikes to Latin letters.
+
+    Only words made entirely of ASCII and look-alike characters are rewritten,
+    so a Latin word salted with Cyrillic letters is caught while real Russian or
+    Greek text keeps its spelling.
+
+    Examples
+    --------
+    >>> map_homoglyphs("саsinо ᴄᴀꜱɪɴᴏ привет")
+    'casino casino привет'
+    """
+    if not _HOMOGLYPH_RE.search(text):
+        return text
+    return _ANY_WORD_RE.sub(_map_word, text)
+
+
+def fold_text(text: str, *, homoglyphs: bool = True, accents: bool = True) -> str:
+    """NFKC, casefold, and strip invisible characters, accents and look-alikes.
+
+    Parameters
+    ----------
+    text : str
+        Any string, including lone surrogates and control characters.
+    homoglyphs : bool
+        Map look-alike letters (see :func:`map_homoglyphs`).
+    accents : bool
+        Strip accents and combining marks (see :func:`strip_accents`).
+
+    Returns
+    -------
+    str
+        The folded text, in NFC; equal to NFKC + casefold for text without
+        accents, invisibles or look-alikes.
+
+    Examples
+    --------
+    >>> fold_text("ＦＲＥＥ Ｃasino\\u200b!")
+    'free casino!'
+    """
+    if text.isascii():
+        # NFKC leaves ASCII unchanged and casefold equals lower() on it.
+        if _ASCII_CONTROL_RE.search(text):
+            text = _ASCII_CONTROL_RE.sub("", text)
+        return text.lower()
+    text = strip_invisibles(unicodedata.normalize("NFKD", text))
+    if accents:
+        text = strip_accents(text)
+    if homoglyphs:
+        text = map_homoglyphs(text)
+    return unicodedata.normalize("NFC", text.casefold())
+
+
+def _link_host(url: str) -> str:
+    rest = url.split("://", 1)[1] if "://" in url else url
+    host = re.split(r"[/?#\\]", rest, maxsplit=1)[0]
+    host = host.rpartition("@")[2]
+    if host.startswith("["):  # IPv6 literal
+        host = host.partition("]")[0] + "]"
+    else:
+        host = host.partition(":")[0]
+    host = host.strip(".").lower()
+    if host.startswith("www."):
+        host = host[4:]
+    return host
+
+
+def _classify_digits(run: str) -> str:
+    digits = sum(c.isdigit() for c in run)
+    if 7 <= digits <= 15 and not _DATE_RE.fullmatch(run):
+        groups = [g for g in _PHONE_SEPARATORS_RE.split(run.strip("+")) if g]
+        if (
+            run.startswith("+")
+            or "(" in run
+            or len(groups) >= 3
+            or (len(groups) == 2 and "-" in run)
+            or (len(groups) == 1 and digits >= 10 and "," not in run and "." not in run)
+        ):
+            if not ("," in run or (run.count(".") == 1 and len(groups) == 2)):
+                return "<phone>"
+    # Not a phone number: grouped numbers become one marker, plain integers are
+    # left for the word pass (so spaced-out "f r 3 3" can still be joined).
+    return " ".join("<num>" if _GROUPED_NUMBER_RE.fullmatch(part) else part for part in run.split())
+
+
+def _special(match: re.Match) -> str:
+    kind = match.lastgroup
+    text = match.group()
+    if kind == "keep":
+        return f" {text} "
+    if kind == "digits":
+        return f" {_classify_digits(text)} "
+    if kind == "email":
+        return " <email> "
+    stripped = text.rstrip(_TRAILING_PUNCT)
+    host = _link_host(stripped)
+    return f" <url> {DOMAIN_PREFIX}{host} " if host else " <url> "
+
+
+def mark_specials(text: str) -> str:
+    """Replace URLs, e-mail addresses, phone numbers and grouped numbers by markers.
+
+    Expects folded text (:func:`fold_text`).  A link becomes ``<url>`` followed by
+    ``domain:<host>`` (host lowercased, a leading ``www.`` dropped); links count
+    with a scheme, with ``www.``, or bare with a common top-level domain.
+
+    Examples
+    --------
+    >>> mark_specials("see https://www.casino.example/win?x=1 or mail win@prize.example")
+    'see  <url> domain:casino.example  or mail  <email> '
+    >>> mark_specials("call +1 (555) 010-9999, pay 1,299.99")
+    'call  <phone> , pay  <num> '
+    """
+    return _SPECIAL_RE.sub(_special, text)
+
+
+def join_spaced(tokens: list[str]) -> list[str]:
+    """Join runs of three or more single characters into one word.
+
+    ``c a s i n o`` (or ``c.a.s.i.n.o``) arrives as six one-letter tokens and
+    leaves as ``casino``.  A run needs at least one letter, so ``1 2 3`` stays.
+
+    Examples
+    --------
+    >>> join_spaced(["win", "c", "a", "s", "h", "now", "1", "2", "3"])
+    ['win', 'cash', 'now', '1', '2', '3']
+    """
+    out: list[str] = []
+    run: list[str] = []
+    for token in tokens:
+        if len(token) == 1 and token.isalnum():
+            run.append(token)
+            continue
+        if run:
+            _flush_run(run, out)
+            run = []
+        out.append(token)
+    if run:
+        _flush_run(run, out)
+    return out
+
+
+def _flush_run(run: list[str], out: list[str]) -> None:
+    if len(run) >= 3 and not all(c.isdigit() for c in run):
+        out.append("".join(run))
+    else:
+        out.extend(run)
+
+
+def undo_leet(word: str) -> str:
+    """Undo leetspeak inside a word that mixes letters with digits or ``@``/``$``.
+
+    Bare numbers stay numbers, and a number with a short unit or ordinal
+    (``1st``, ``10k``, ``5pm``) is left alone.
+
+    Examples
+    --------
+    >>> [undo_leet(w) for w in ["fr33", "c4sino", "$ave", "c@sh", "2024", "10k", "mp3"]]
+    ['free', 'casino', 'save', 'cash', '2024', '10k', 'mpe']
+    """
+    if not _HAS_LETTER_RE.search(word) or not _HAS_LEET_RE.search(word):
+        return word
+    if _NUMBER_WITH_UNIT_RE.fullmatch(word):
+        return word
+    return word.translate(_LEET_TABLE)
+
+
+def squash_repeats(word: str) -> str:
+    """Squash runs of three or more repeated letters to two.
+
+    Two, not one: English doubles letters ("free", "good") but never triples
+    them, so real words survive while ``freeeee`` and ``freee`` both become ``free``.
+
+    Examples
+    --------
+    >>> squash_repeats("freeeeee"), squash_repeats("good"), squash_repeats("1000")
+    ('free', 'good', '1000')
+    """
+    return _REPEAT_RE.sub(r"\1\1", word)
+
+
+def mark_number(word: str) -> str:
+    """``<num>`` for a bare integer, the word itself otherwise.
+
+    Examples
+    --------
+    >>> mark_number("2024"), mark_number("fr33")
+    ('<num>', 'fr33')
+    """
+    return "<num>" if word.isdigit() else word
+
+
+def word_tokens(text: str) -> list[str]:
+    """Cut marked, folded text into raw word and marker tokens (no rewriting).
+
+    Examples
+    --------
+    >>> word_tokens("win  <url> domain:casino.example  c@sino $ave fr33_cash!")
+    ['win', '<url>', 'domain:casino.example', 'c@sino', '$ave', 'fr33', 'cash']
+    """
+    if "_" in text:
+        text = text.replace("_", " ")
+    return _TOKEN_RE.findall(text)
+
+
+def bigrams(words: list[str]) -> list[str]:
+    """Adjacent pairs joined by ``_`` (``free_casino``).
+
+    Examples
+    --------
+    >>> bigrams(["free", "casino", "<url>"])
+    ['free_casino', 'casino_<url>']
+    """
+    return [a + BIGRAM_JOINER + b for a, b in zip(words, islice(words, 1, None))]
+
+
+def char_ngrams(words: list[str], low: int, high: int) -> list[str]:
+    """Character n-grams of each word padded as ``<word>``, prefixed ``#``.
+
+    Marker and domain tokens are skipped; they are whole features already.
+
+    Examples
+    --------
+    >>> char_ngrams(["win", "<url>"], 3, 4)
+    ['#<wi', '#win', '#in>', '#<win', '#win>']
+    """
+    out: list[str] = []
+    for word in words:
+        if word[0] == "<" or word.startswith(DOMAIN_PREFIX):
+            continue
+        padded = f"<{word}>"
+        size = len(padded)
+        for n in range(low, high + 1):
+            out.extend([CHAR_NGRAM_PREFIX + padded[i:i + n] for i in range(size - n + 1)])
+    return out
+
+
+# --------------------------------------------------------------------------- #
+# The tokenizer                                                                #
+# --------------------------------------------------------------------------- #
+
+def _check_bool(name, value):
+    if type(value) is not bool:
+        raise ValueError(f"Tokenizer: {name} must be True or False, got {value!r}")
+    return value
+
+
+def _check_version(name, value):
+    if type(value) is not int or value != NORMALIZATION_VERSION:
+        raise ValueError(
+            f"Tokenizer: {name}={value!r} is not supported; this build implements "
+            f"normalization version {NORMALIZATION_VERSION} (retrain the model with it)"
+        )
+    return value
+
+
+def _check_char_ngrams(name, value):
+    ok = (
+        isinstance(value, (tuple, list))
+        and len(value) == 2
+        and all(isinstance(v, Integral) and not isinstance(v, bool) for v in value)
+    )
+    if ok:
+        low, high = int(value[0]), int(value[1])
+        if (low, high) == (0, 0) or 1 <= low <= high <= 8:
+            return (low, high)
+    raise ValueError(
+        f"Tokenizer: {name} must be (0, 0) for off or (low, high) with 1 <= low <= high <= 8, got {value!r}"
+    )
+
+
+# One declarative table: parameter -> (default, check).  params() and the
+# constructor both follow it, so the manifest always round-trips.
+_PARAMS = {
+    "version": (NORMALIZATION_VERSION, _check_version),
+    "bigrams": (True, _check_bool),
+    "char_ngrams": ((0, 0), _check_char_ngrams),
+    "homoglyphs": (True, _check_bool),
+    "accents": (True, _check_bool),
+    "leet": (True, _check_bool),
+    "join_spaced": (True, _check_bool),
+    "squash_repeats": (True, _check_bool),
+}
+
+
+class _WordCache(dict):
+    """Raw word -> rewritten word; bounded (the oldest half goes when full)."""
+
+    __slots__ = ("_rewrite", "_cap")
+
+    def __init__(self, rewrite, cap):
+        super().__init__()
+        self._rewrite = rewrite
+        self._cap = cap
+
+    def __missing__(self, raw):
+        word = self._rewrite(raw)
+        if len(self) >= self._cap:
+            for key in list(islice(self, len(self) // 2)):
+                del self[key]
+        self[raw] = word
+        return word
+
+
+class Tokenizer:
+    """Normalize comments and turn them into hashed-model features.
+
+    Parameters
+    ----------
+    version : int
+        Normalization rules version; only the current one (1) is accepted, so an
+        artifact built with other rules is refused instead of mis-read.
+    bigrams : bool
+        Add word bigrams such as ``free_casino``.
+    char_ngrams : tuple of (int, int)
+        ``(low, high)`` character n-gram lengths, e.g. ``(3, 5)``, for unseen
+        spellings; ``(0, 0)`` (the default) turns them off.
+    homoglyphs, accents, leet, join_spaced, squash_repeats : bool
+        Switch the individual evasion-undoing steps (all on by default).
+
+    Examples
+    --------
+    >>> tok = Tokenizer()
+    >>> tok.normalize("FR33 c a s i n o spins!!! at https://www.Casino.example/x")
+    'free casino spins at <url> domain:casino.example'
+    >>> tok.features("Win $500 now")
+    ['win', '<num>', 'now', 'win_<num>', '<num>_now']
+    >>> Tokenizer(**tok.params()) == tok
+    True
+    """
+
+    def __init__(self, *, version=NORMALIZATION_VERSION, bigrams=True, char_ngrams=(0, 0), homoglyphs=True,
+                 accents=True, leet=True, join_spaced=True, squash_repeats=True):
+        given = dict(version=version, bigrams=bigrams, char_ngrams=char_ngrams, homoglyphs=homoglyphs,
+                     accents=accents, leet=leet, join_spaced=join_spaced, squash_repeats=squash_repeats)
+        for name, (_, check) in _PARAMS.items():
+            setattr(self, name, check(name, given[name]))
+        self._words = _WordCache(self._rewrite_word, _WORD_CACHE_SIZE)
+
+    def params(self) -> dict:
+        """JSON-safe parameters; ``Tokenizer(**tok.params())`` rebuilds this tokenizer."""
+        out = {name: getattr(self, name) for name in _PARAMS}
+        out["char_ngrams"] = list(out["char_ngrams"])
+        return out
+
+    def __eq__(self, other):
+        return isinstance(other, Tokenizer) and self.params() == other.params()
+
+    def __hash__(self):
+        return hash(tuple(sorted((k, str(v)) for k, v in self.params().items())))
+
+    def __repr__(self):
+        changed = [f"{k}={getattr(self, k)!r}" for k, (d, _) in _PARAMS.items() if getattr(self, k) != d]
+        return f"Tokenizer({', '.join(changed)})"
+
+    def __getstate__(self):
+        return {name: getattr(self, name) for name in _PARAMS}
+
+    def __setstate__(self, state):
+        self.__init__(**state)
+
+    # -- the pipeline ------------------------------------------------------- #
+
+    def _rewrite_word(self, raw: str) -> str:
+        if raw[0] == "<" or raw.startswith(DOMAIN_PREFIX):
+            return raw
+        word = raw
+        if self.leet:
+            word = undo_leet(word)
+        if word.isdigit():
+            return "<num>"
+        if self.squash_repeats:
+            word = squash_repeats(word)
+        return word
+
+    def _unigrams(self, text: str) -> list[str]:
+        folded = fold_text(text, homoglyphs=self.homoglyphs, accents=self.accents)
+        marked = mark_specials(folded)
+        raw = word_tokens(marked)
+        if self.join_spaced:
+            raw = join_spaced(raw)
+        lookup = self._words.__getitem__
+        return list(map(lookup, raw))
+
+    def normalize(self, text: str) -> str:
+        """The normalized text: unigram and marker tokens joined by single spaces.
+
+        Never raises on a ``str``.
+
+        Examples
+        --------
+        >>> Tokenizer().normalize("Ｃａｌｌ +1 (555) 010-9999 or ma\\u200bil me@casino.example")
+        'call <phone> or mail <email>'
+        """
+        if not isinstance(text, str):
+            raise TypeError(f"Tokenizer.normalize: text must be str, got {type(text).__name__}")
+        return " ".join(self._unigrams(text))
+
+    def features(self, text: str) -> list[str]:
+        """Feature tokens of one comment: unigrams, markers, bigrams, char n-grams.
+
+        Domain tokens are unigrams only; bigrams run over words and markers.
+        Never raises on a ``str``.
+
+        Examples
+        --------
+        >>> Tokenizer().features("Visit casino.example")
+        ['visit', '<url>', 'domain:casino.example', 'visit_<url>']
+        """
+        if not isinstance(text, str):
+            raise TypeError(f"Tokenizer.features: text must be str, got {type(text).__name__}")
+        words = self._unigrams(text)
+        if not self.bigrams and self.char_ngrams[0] == 0:
+            return words
+        seq = words
+        if "<url>" in words:
+            seq = [w for w in words if not w.startswith(DOMAIN_PREFIX)]
+        out = list(words)
+        if self.bigrams:
+            out.extend(bigrams(seq))
+        if self.char_ngrams[0]:
+            out.extend(char_ngrams(seq, *self.char_ngrams))
+        return out
+
+    def features_many(self, texts):
+        """``[features(t) for t in texts]``; accepts any iterable of str."""
+        features = self.features
+        return [features(t) for t in texts]
