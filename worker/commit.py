@@ -1,0 +1,163 @@
+"""The one write of a batch: every verdict with its cache, counters and XACK, atomically.
+
+A batch is committed by one Lua script call (one round trip).  Redis runs a
+script without interleaving other clients, so for each comment the verdict
+XADD, the ``text:{id}`` cache, the ``held`` entry, the ``rates:{minute}``
+counts, the per-id ``done:{id}`` marker and the XACK land together or not at
+all; a worker SIGKILLed mid-batch has written either a whole comment or
+nothing of it, and its unacked entries are read again.
+
+Exactly one verdict per comment id, guarded twice inside the script:
+
+1. ``XACK`` first.  The group's pending list is shared by its consumers, so
+   when a slow worker and the consumer that reclaimed its entries both finish,
+   only the first XACK returns 1; the second commit of that entry writes
+   nothing.  XACK is the script's first write, so a server out of memory
+   refuses it before anything else is touched (Redis lets a script that has
+   written go on writing).
+2. ``SET done:{id} NX EX done_ttl``.  Catches what the pending list cannot:
+   the same comment id sent twice by a producer that retried its XADD, a
+   group recreated at ``0``, a replay.  Use ``maxmemory-policy noeviction``
+   (Redis's default, which RQ needs too) so markers are never evicted early.
+
+Dead letters are guarded by the XACK alone (they may have no id).
+"""
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+from redis.exceptions import NoScriptError
+
+from worker.settings import Keys
+from worker.validation import Comment, DeadLetter
+
+WRITTEN = 1
+DUPLICATE = 0
+
+COMMIT_LUA = r"""
+local stream, verdicts, held, rates, deadletter = KEYS[1], KEYS[2], KEYS[3], KEYS[4], KEYS[5]
+local group, vmax, text_ttl, done_ttl, rates_ttl, now, model, dmax =
+    ARGV[1], ARGV[2], ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7], ARGV[8]
+local n = tonumber(ARGV[9])
+local out = {}
+local a = 10
+local counted = false
+for i = 1, n do
+  local sid, id, score, action, reasons, site, text, author, ts =
+      ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4], ARGV[a + 5], ARGV[a + 6], ARGV[a + 7], ARGV[a + 8]
+  a = a + 9
+  local done, cache = KEYS[4 + 2 * i], KEYS[5 + 2 * i]
+  out[i] = 0
+  if redis.call('XACK', stream, group, sid) == 1 and redis.call('SET', done, sid, 'NX', 'EX', done_ttl) then
+    redis.call('XADD', verdicts, 'MAXLEN', '~', vmax, '*', 'id', id, 'score', score, 'action', action,
+               'model', model, 'reasons', reasons, 'site', site, 'stream_id', sid)
+    redis.call('HSET', cache, 'text', text, 'site', site, 'author', author, 'ts', ts, 'stream_id', sid,
+               'score', score, 'action', action, 'model', model)
+    redis.call('EXPIRE', cache, text_ttl)
+    if action == 'hold' then redis.call('ZADD', held, now, id) end
+    redis.call('HINCRBY', rates, site .. ':total', 1)
+    if action ~= 'publish' then redis.call('HINCRBY', rates, site .. ':' .. action, 1) end
+    counted = true
+    out[i] = 1
+  end
+end
+if counted then redis.call('EXPIRE', rates, rates_ttl) end
+local m = tonumber(ARGV[a])
+a = a + 1
+for j = 1, m do
+  local sid, np = ARGV[a], tonumber(ARGV[a + 1])
+  a = a + 2
+  out[n + j] = 0
+  if redis.call('XACK', stream, group, sid) == 1 then
+    local cmd = {'XADD', deadletter, 'MAXLEN', '~', dmax, '*'}
+    for k = 0, 2 * np - 1 do cmd[#cmd + 1] = ARGV[a + k] end
+    redis.call(unpack(cmd))
+    out[n + j] = 1
+  end
+  a = a + 2 * np
+end
+return out
+"""
+
+
+@dataclass(frozen=True, slots=True)
+class Scored:
+    """One comment ready to commit: its score, action and reasons already formatted."""
+
+    comment: Comment
+    score: str
+    action: str
+    reasons: str
+
+
+@dataclass(frozen=True, slots=True)
+class Limits:
+    """The TTLs and stream caps a commit applies (from WorkerSettings)."""
+
+    verdicts_maxlen: int
+    deadletter_maxlen: int
+    text_cache_ttl_s: int
+    done_ttl_s: int
+    rates_ttl_s: int
+
+    @classmethod
+    def from_settings(cls, settings) -> "Limits":
+        return cls(**{name: getattr(settings, name) for name in cls.__dataclass_fields__})
+
+
+class BatchCommitter:
+    """Builds and runs the commit script for one consumer group.
+
+    Parameters
+    ----------
+    keys : the deployment's key names.
+    limits : stream caps and TTLs.
+    """
+
+    def __init__(self, *, keys: Keys, limits: Limits):
+        self.keys = keys
+        self.limits = limits
+        self._sha = None
+
+    def arguments(self, scored: Sequence[Scored], dead: Sequence[DeadLetter], *, model: str, now: float):
+        """``(keys, args)`` of the script call; pure, so tests can inspect them."""
+        k = self.keys
+        lim = self.limits
+        keys = [k.comments, k.verdicts, k.held, k.rates(int(now // 60)), k.deadletter]
+        args = [k.group, lim.verdicts_maxlen, lim.text_cache_ttl_s, lim.done_ttl_s, lim.rates_ttl_s,
+                f"{now:.3f}", model, lim.deadletter_maxlen, len(scored)]
+        for s in scored:
+            c = s.comment
+            keys.append(k.done(c.id))
+            keys.append(k.text(c.id))
+            args += (c.stream_id, c.id, s.score, s.action, s.reasons, c.site, c.text, c.author, c.ts)
+        args.append(len(dead))
+        source = k.comments
+        for d in dead:
+            fields = d.as_fields(source)
+            args += (d.stream_id, len(fields))
+            for name, value in fields.items():
+                args += (name, value)
+        return keys, args
+
+    def commit(self, client, scored, dead, *, model: str, now: float, pipeline=None):
+        """Run the script; returns one code per comment then per dead letter (1 written, 0 duplicate).
+
+        With ``pipeline`` the call is queued there (EVAL, since a pipeline cannot
+        recover from NOSCRIPT) and ``None`` is returned; the caller executes it.
+        """
+        if not scored and not dead:
+            return []
+        keys, args = self.arguments(scored, dead, model=model, now=now)
+        if pipeline is not None:
+            pipeline.eval(COMMIT_LUA, len(keys), *keys, *args)
+            return None
+        if self._sha is None:
+            self._sha = client.script_load(COMMIT_LUA)
+        try:
+            reply = client.evalsha(self._sha, len(keys), *keys, *args)
+        except NoScriptError:  # the server restarted or its script cache was flushed
+            self._sha = client.script_load(COMMIT_LUA)
+            reply = client.evalsha(self._sha, len(keys), *keys, *args)
+        return [int(x) for x in reply]

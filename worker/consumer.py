@@ -1,0 +1,382 @@
+"""The stream worker: read a batch, score it in one model call, route, commit.
+
+One loop iteration (:meth:`StreamConsumer.step`):
+
+1. every ``claim_every_s``, take over entries idle longer than
+   ``claim_idle_ms`` on other consumers (XAUTOCLAIM) and process them;
+2. read up to ``batch`` entries (XREADGROUP COUNT/BLOCK) - first this
+   consumer's own pending entries (left by a crash or a lost connection),
+   then new ones (``>``);
+3. validate each entry; bad ones become dead letters with their reason, and
+   entries delivered more than ``max_deliveries`` times become ``poison``;
+4. score all valid comments in ONE ``score_many`` call, route them by the
+   model's thresholds and the per-site overrides, let the batch policies
+   adjust the actions;
+5. commit the whole batch in one Lua script call (see :mod:`worker.commit`).
+
+:meth:`StreamConsumer.run` repeats this until :meth:`stop` is called (the
+signal handler of ``seawall serve`` does), finishing the batch in hand.  A
+lost connection is logged and retried with capped exponential backoff; the
+batch in hand stays pending in Redis and is read again from this consumer's
+pending list, so nothing the server kept is lost.
+"""
+from __future__ import annotations
+
+import json
+import logging
+import os
+import socket
+import time
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import redis
+
+from worker.commit import WRITTEN, BatchCommitter, Limits as CommitLimits, Scored
+from worker.loader import ModelSource
+from worker.observer import NullObserver, WorkerObserver
+from worker.policies import BatchPolicy, apply_policies
+from worker.routing import Router
+from worker.settings import Keys, WorkerSettings
+from worker.streams import Entry, parse_xautoclaim, parse_xinfo_group, parse_xpending_range, parse_xreadgroup, stream_id_ms
+from worker.validation import Comment, DeadLetter, Limits as InputLimits, comment_dead_letter, dead_letter, validate
+
+log = logging.getLogger("seawall.worker")
+
+# Upper bound on XAUTOCLAIM rounds per reclaim pass, so that fresh entries are never starved.
+MAX_CLAIM_ROUNDS = 20
+
+
+def default_consumer_name() -> str:
+    return f"{socket.gethostname()}-{os.getpid()}"
+
+
+@dataclass
+class BatchResult:
+    """What one processed batch came to (for tests and the bench)."""
+
+    read: int = 0
+    written: int = 0
+    duplicates: int = 0
+    dead: dict = field(default_factory=dict)
+
+
+def format_reasons(reasons) -> str:
+    """``[[token, contribution], ...]`` as compact JSON, contributions to 4 decimals."""
+    return json.dumps([[str(t), round(float(c), 4)] for t, c in reasons], separators=(",", ":"))
+
+
+class StreamConsumer:
+    """One consumer of the ``comments`` stream inside the ``workers`` group.
+
+    Parameters
+    ----------
+    client : a redis-py client from :func:`worker.connection.connect` (raw stream replies).
+    keys : key names (``Config.keys``).
+    settings : ``Config.worker``.
+    model_source : where the model comes from; polled for hot reloads.
+    consumer : consumer name; empty means ``settings.consumer`` or ``<hostname>-<pid>``.
+    observer : receives batch, verdict, dead-letter, model, lag and reconnect reports.
+    policies : batch policies run after routing and before the commit.
+    """
+
+    def __init__(
+        self,
+        *,
+        client,
+        keys: Keys,
+        settings: WorkerSettings,
+        model_source: ModelSource,
+        consumer: str = "",
+        observer: WorkerObserver | None = None,
+        policies: Sequence[BatchPolicy] = (),
+        clock=time.time,
+    ):
+        self.client = client
+        self.keys = keys
+        self.settings = settings
+        self.model_source = model_source
+        self.consumer = consumer or settings.consumer or default_consumer_name()
+        self.observer = observer if observer is not None else NullObserver()
+        self.policies = tuple(policies)
+        self.clock = clock
+        self._input_limits = InputLimits.from_settings(settings)
+        self._committer = BatchCommitter(keys=keys, limits=CommitLimits.from_settings(settings))
+        self._stream = keys.comments.encode()
+        self._model = None
+        self._router = None
+        self._stopping = False
+        self._ready = False
+        self._backlog_from: bytes | None = b"0"
+        self._next_claim = 0.0
+        self._next_reload = 0.0
+        self._next_lag = 0.0
+        self._reports_verdicts = not isinstance(self.observer, NullObserver)
+
+    # -- life cycle ---------------------------------------------------------------------------
+
+    def stop(self) -> None:
+        """Ask the loop to stop after the batch in hand (safe to call from a signal handler)."""
+        self._stopping = True
+
+    @property
+    def stopping(self) -> bool:
+        return self._stopping
+
+    @property
+    def model(self):
+        return self._model
+
+    def prepare(self) -> None:
+        """Load the model, create the group if missing, and go back to this consumer's own backlog."""
+        if self._model is None:
+            self._install(self.model_source.current())
+        self.ensure_group()
+        self._backlog_from = b"0"
+        self._ready = True
+
+    def ensure_group(self) -> None:
+        """XGROUP CREATE ... 0 MKSTREAM: entries sent before the first worker started are scored too."""
+        try:
+            self.client.xgroup_create(self.keys.comments, self.keys.group, id="0", mkstream=True)
+            log.info("created consumer group %s on %s", self.keys.group, self.keys.comments)
+        except redis.ResponseError as exc:
+            if "BUSYGROUP" not in str(exc):
+                raise
+
+    def run(self) -> int:
+        """Process batches until :meth:`stop`; returns the exit code (0)."""
+        log.info("consumer %s reading %s as group %s", self.consumer, self.keys.comments, self.keys.group)
+        failures = 0
+        while not self._stopping:
+            try:
+                if not self._ready:
+                    self.prepare()
+                self.step()
+            except (redis.ConnectionError, redis.TimeoutError) as exc:
+                failures += 1
+                self._ready = False
+                delay = self.backoff(failures)
+                log.warning("lost connection to Redis (%s: %s); retrying in %.2fs (attempt %d)",
+                            type(exc).__name__, exc, delay, failures)
+                self._sleep(delay)
+                continue
+            except redis.ResponseError as exc:
+                if "NOGROUP" not in str(exc):
+                    raise
+                # The server came back without the group (no persistence): make it again.
+                log.warning("consumer group %s is gone; creating it again", self.keys.group)
+                self._ready = False
+                continue
+            if failures:
+                log.info("reconnected to Redis after %d failed attempt(s)", failures)
+                self.observer.on_reconnect()
+                failures = 0
+        log.info("consumer %s stopped", self.consumer)
+        return 0
+
+    def backoff(self, failures: int) -> float:
+        s = self.settings
+        return min(s.backoff_cap_s, s.backoff_base_s * s.backoff_factor ** max(0, failures - 1))
+
+    def _sleep(self, seconds: float) -> None:
+        deadline = time.monotonic() + seconds
+        while not self._stopping:
+            left = deadline - time.monotonic()
+            if left <= 0:
+                return
+            time.sleep(min(left, 0.05))
+
+    # -- one iteration ------------------------------------------------------------------------
+
+    def step(self) -> BatchResult:
+        """Reload if due, reclaim if due, then read and process one batch."""
+        now = time.monotonic()
+        if now >= self._next_reload:
+            self._next_reload = now + self.settings.reload_poll_s
+            self.reload()
+        if now >= self._next_claim:
+            self._next_claim = now + self.settings.claim_every_s
+            self.reclaim()
+        if self._reports_verdicts and now >= self._next_lag:
+            self._next_lag = now + self.settings.lag_every_s
+            self.report_lag()
+        if self._backlog_from is not None:
+            entries = self.read(self._backlog_from, block=False)
+            if entries:
+                self._backlog_from = entries[-1].stream_id
+                return self.process(entries, deliveries=self.deliveries([e.stream_id for e in entries]))
+            self._backlog_from = None
+        entries = self.read(b">", block=True)
+        return self.process(entries)
+
+    def read(self, start: bytes, *, block: bool) -> list[Entry]:
+        args = ["XREADGROUP", "GROUP", self.keys.group, self.consumer, "COUNT", self.settings.batch]
+        if block:
+            args += ["BLOCK", self.settings.block_ms]
+        args += ["STREAMS", self.keys.comments, start]
+        return parse_xreadgroup(self.client.execute_command(*args), self._stream)
+
+    def deliveries(self, stream_ids: Sequence[bytes]) -> dict[bytes, int]:
+        """Delivery counts of pending entries (XPENDING, one row per id, one round trip)."""
+        if not stream_ids:
+            return {}
+        pipe = self.client.pipeline(transaction=False)
+        for sid in stream_ids:
+            pipe.execute_command("XPENDING", self.keys.comments, self.keys.group, sid, sid, 1)
+        counts = {}
+        for reply in pipe.execute():
+            for row in parse_xpending_range(reply):
+                counts[row.stream_id] = row.deliveries
+        return counts
+
+    def reclaim(self) -> BatchResult:
+        """Take over entries idle longer than ``claim_idle_ms`` and process them."""
+        total = BatchResult()
+        cursor = b"0-0"
+        for _ in range(MAX_CLAIM_ROUNDS):
+            reply = self.client.execute_command(
+                "XAUTOCLAIM", self.keys.comments, self.keys.group, self.consumer,
+                self.settings.claim_idle_ms, cursor, "COUNT", self.settings.batch,
+            )
+            claimed = parse_xautoclaim(reply)
+            if claimed.deleted:
+                self._dead_letter_trimmed(claimed.deleted)
+            if claimed.entries:
+                log.info("took over %d idle entries", len(claimed.entries))
+                ids = [e.stream_id for e in claimed.entries]
+                result = self.process(claimed.entries, deliveries=self.deliveries(ids))
+                total.read += result.read
+                total.written += result.written
+                total.duplicates += result.duplicates
+                for reason, n in result.dead.items():
+                    total.dead[reason] = total.dead.get(reason, 0) + n
+            cursor = claimed.cursor
+            if cursor in (b"0-0", b"0") or self._stopping:
+                break
+        return total
+
+    def _dead_letter_trimmed(self, stream_ids: Sequence[bytes], pipeline=None) -> None:
+        # XAUTOCLAIM already dropped these from the pending list, and only this
+        # consumer saw them go, so no XACK guard is needed (or possible).
+        pipe = pipeline if pipeline is not None else self.client.pipeline(transaction=False)
+        for sid in stream_ids:
+            pipe.xadd(
+                self.keys.deadletter,
+                {"reason": "trimmed", "detail": "the entry was deleted from the stream before it was scored",
+                 "stream_id": sid, "source": self.keys.comments},
+                maxlen=self.settings.deadletter_maxlen, approximate=True,
+            )
+        if pipeline is None:
+            pipe.execute()
+        for _ in stream_ids:
+            self.observer.on_deadletter("trimmed")
+        log.warning("%d pending entries were trimmed from %s before they were scored", len(stream_ids), self.keys.comments)
+
+    def reload(self) -> None:
+        model = self.model_source.poll()
+        if model is not None:
+            self._install(model)
+
+    def _install(self, model) -> None:
+        router = Router(thresholds=model.thresholds, site_overrides=self.settings.site_thresholds)
+        self._model, self._router = model, router
+        log.info("serving model %s (hold %.4f, reject %.4f)", model.version, model.thresholds.hold, model.thresholds.reject)
+        self.observer.on_model(str(model.version), float(getattr(model, "created_at", 0.0) or 0.0))
+
+    def report_lag(self) -> None:
+        reply = self.client.execute_command("XINFO GROUPS", self.keys.comments)
+        info = parse_xinfo_group(reply, self.keys.group)
+        self.observer.on_lag(info["lag"], info["pending"])
+
+    # -- one batch ------------------------------------------------------------------------------
+
+    def process(self, entries: Sequence[Entry], *, deliveries: dict[bytes, int] | None = None) -> BatchResult:
+        """Validate, score, route and commit ``entries``; never raises on bad input."""
+        result = BatchResult(read=len(entries))
+        if not entries:
+            return result
+        t0 = time.perf_counter()
+        limits = self._input_limits
+        max_deliveries = self.settings.max_deliveries
+        comments: list[Comment] = []
+        dead: list[DeadLetter] = []
+        for entry in entries:
+            checked = validate(entry, limits)
+            count = deliveries.get(entry.stream_id, 1) if deliveries else 1
+            if count > max_deliveries:
+                checked = dead_letter(entry, "poison", f"delivered {count} times, limit {max_deliveries}", limits)
+            (comments if isinstance(checked, Comment) else dead).append(checked)
+
+        scored, failed = self._score(comments)
+        dead.extend(failed)
+        model = self._model
+        now = self.clock()
+        codes = self._committer.commit(self.client, scored, dead, model=str(model.version), now=now)
+
+        n = len(scored)
+        written = [s for s, code in zip(scored, codes[:n]) if code == WRITTEN]
+        result.written = len(written)
+        result.duplicates = n - len(written)
+        for d, code in zip(dead, codes[n:]):
+            if code == WRITTEN:
+                result.dead[d.reason] = result.dead.get(d.reason, 0) + 1
+                self.observer.on_deadletter(d.reason)
+        if self._reports_verdicts and written:
+            now_ms = now * 1000.0
+            self.observer.on_verdicts([
+                {"id": s.comment.id, "site": s.comment.site, "action": s.action, "score": float(s.score),
+                 "model": str(model.version), "stream_id": s.comment.stream_id,
+                 "latency_s": max(0.0, (now_ms - stream_id_ms(s.comment.stream_id)) / 1000.0)}
+                for s in written
+            ])
+        if result.duplicates:
+            log.info("skipped %d comment(s) that already had a verdict", result.duplicates)
+        self.observer.on_batch(len(entries), time.perf_counter() - t0)
+        return result
+
+    def _score(self, comments: list[Comment]) -> tuple[list[Scored], list[DeadLetter]]:
+        """One ``score_many`` call for the batch; if it fails, find the comments it fails on."""
+        if not comments:
+            return [], []
+        model = self._model
+        try:
+            scores, reasons = model.score_many([c.text for c in comments])
+            scores = [float(s) for s in scores]
+            if len(scores) != len(comments) or len(reasons) != len(comments):
+                raise ValueError(f"score_many returned {len(scores)} scores for {len(comments)} texts")
+        except Exception:  # a model bug on some input must not stop the stream: isolate it below
+            log.exception("score_many failed on a batch of %d; scoring one by one", len(comments))
+            return self._score_each(comments)
+        return self._route(comments, scores, reasons)
+
+    def _score_each(self, comments: list[Comment]) -> tuple[list[Scored], list[DeadLetter]]:
+        good, scores, reasons, dead = [], [], [], []
+        for c in comments:
+            try:
+                s, r = self._model.score_many([c.text])
+                good.append(c)
+                scores.append(float(s[0]))
+                reasons.append(r[0])
+            except Exception as exc:  # noqa: BLE001 - reported as a dead letter, never swallowed
+                dead.append(comment_dead_letter(c, "score_error", f"{type(exc).__name__} in the model",
+                                                self._input_limits))
+        scored, bad = self._route(good, scores, reasons)
+        return scored, dead + bad
+
+    def _route(self, comments, scores, reasons) -> tuple[list[Scored], list[DeadLetter]]:
+        dead = []
+        if not all(0.0 <= s <= 1.0 for s in scores):  # NaN fails both comparisons
+            keep = [i for i, s in enumerate(scores) if 0.0 <= s <= 1.0]
+            dead = [comment_dead_letter(comments[i], "score_error", "the model gave a score outside [0, 1]",
+                                        self._input_limits)
+                    for i in range(len(scores)) if not 0.0 <= scores[i] <= 1.0]
+            comments = [comments[i] for i in keep]
+            scores = [scores[i] for i in keep]
+            reasons = [reasons[i] for i in keep]
+        actions = self._router.route_many(scores, [c.site for c in comments])
+        if self.policies:
+            actions = apply_policies(self.policies, self.client, comments, scores, actions)
+        scored = [Scored(c, f"{s:.4f}", a, format_reasons(r)) for c, s, a, r in zip(comments, scores, actions, reasons)]
+        return scored, dead
+
