@@ -1,0 +1,612 @@
+"""``EmbeddingClassifier``: the averaged-embedding spam scorer.
+
+Text → tokens (:mod:`model.tokens`) → MurmurHash3 buckets
+(:mod:`model.hashing`) → the pooled mean of the buckets' embedding rows →
+a small dense head → a spam probability.  Training is mini-batch Adam with
+sparse updates (:mod:`model.training`); the model saves to one checksummed
+int8 file (:mod:`model.artifact`) and carries its own hold and reject
+thresholds (:mod:`model.calibration`).
+
+Pooling.  ``pooling="mean"`` weighs each bucket by its share of the comment's
+token occurrences (the plain mean).  ``pooling="l2"`` (the default) rescales
+that mean by ``‖c‖₁ / ‖c‖₂`` of the comment's bucket counts ``c``: the token
+weights become ``c / ‖c‖₂``, the normalisation a linear text model uses, so a
+long message's spam words are not drowned by its length.  It is still an
+average of embedding rows, times one per-comment factor.
+"""
+from __future__ import annotations
+
+import math
+import time
+from collections.abc import Iterable
+from dataclasses import dataclass
+from itertools import chain
+
+import numpy as np
+import scipy.sparse as sp
+
+from model import artifact, network, training
+from model.calibration import DEFAULT_HOLD_FPR, DEFAULT_REJECT_FPR, Thresholds, calibrate
+from model.errors import ArtifactError, DataError
+from model.evaluation import evaluate
+from model.explain import top_contributions
+from model.hashing import TokenHasher
+from model.tokens import Tokenizer
+
+DEFAULT_THRESHOLDS = Thresholds(hold=0.5, reject=0.9)
+
+
+def auto_dim(distinct_tokens: int) -> int:
+    """Embedding width by the rule of thumb d ≈ (distinct tokens) ** (1/4) (common practice).
+
+    Examples
+    --------
+    >>> auto_dim(2000)
+    7
+    """
+    return max(1, int(round(max(distinct_tokens, 1) ** 0.25)))
+
+
+# --- the parameter table -----------------------------------------------------
+
+def _int_at_least(low: int):
+    def check(v):
+        return isinstance(v, int) and not isinstance(v, bool) and v >= low
+    return check, f"an int >= {low}"
+
+
+def _power_of_two(v):
+    return isinstance(v, int) and not isinstance(v, bool) and v >= 1 and v & (v - 1) == 0
+
+
+def _dim(v):
+    return v == "auto" or (isinstance(v, int) and not isinstance(v, bool) and v >= 1)
+
+
+def _positive_float(v):
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) and v > 0
+
+
+def _nonnegative_float(v):
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v) and v >= 0
+
+
+def _share(v):
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and 0 <= v < 0.5
+
+
+def _class_weight(v):
+    if v is None or v == "balanced":
+        return True
+    return (
+        isinstance(v, dict) and set(v) == {0, 1}
+        and all(_positive_float(x) for x in v.values())
+    )
+
+
+def _char_ngrams(v):
+    if not (isinstance(v, (tuple, list)) and len(v) == 2 and all(isinstance(x, int) for x in v)):
+        return False
+    lo, hi = v
+    return (lo, hi) == (0, 0) or 1 <= lo <= hi <= 8
+
+
+PARAMS = {
+    # name: (default, check, what it must be, what it means)
+    "buckets": (2**18, _power_of_two, "a power of two", "hash buckets B (rows of the embedding table)"),
+    "dim": ("auto", _dim, "'auto' or an int >= 1", "embedding width d; auto = round(distinct tokens ** 0.25)"),
+    "hidden": (0, *_int_at_least(0), "units of the head's hidden ReLU layer; 0 = a linear head"),
+    "pooling": ("l2", lambda v: v in ("l2", "mean"), "'l2' or 'mean'", "bucket weights c/‖c‖₂ or c/‖c‖₁"),
+    "bigrams": (True, lambda v: isinstance(v, bool), "a bool", "word bigrams as features"),
+    "char_ngrams": ((0, 0), _char_ngrams, "(0, 0) or (lo, hi) with 1 <= lo <= hi <= 8", "character n-gram sizes"),
+    "epochs": (10, *_int_at_least(1), "maximum passes over the training data"),
+    "batch_size": (32, *_int_at_least(1), "comments per Adam step"),
+    "learning_rate": (0.01, _positive_float, "a float > 0", "Adam step size"),
+    "l2": (0.0, _nonnegative_float, "a float >= 0", "L2 penalty on the touched embedding rows"),
+    "class_weight": ("balanced", _class_weight, "None, 'balanced' or {0: w, 1: w}", "loss weight per class"),
+    "validation_share": (0.1, _share, "a float in [0, 0.5)", "share held out for early stopping and thresholds"),
+    "patience": (2, *_int_at_least(1), "epochs without validation improvement before stopping"),
+    "min_df": (2, *_int_at_least(1), "buckets in fewer training comments get no row"),
+    "quant_block": (1, *_int_at_least(1), "rows sharing one int8 scale and zero point (1 = per row)"),
+    "shuffle": (True, lambda v: isinstance(v, bool), "a bool", "shuffle the order of examples each epoch"),
+    "seed": (0, *_int_at_least(0), "seed of the initialisation, shuffling and validation split"),
+}
+
+
+@dataclass
+class _Bag:
+    """A batch of comments as (comment, bucket) pairs with their pooling weights."""
+
+    n: int
+    doc: np.ndarray
+    bucket: np.ndarray
+    weight: np.ndarray
+    first: np.ndarray
+    tokens: list[str]
+    indptr: np.ndarray
+
+    def matrix(self, n_buckets: int) -> sp.csr_matrix:
+        return sp.csr_matrix(
+            (self.weight.astype(np.float32), self.bucket.astype(np.int32), self.indptr),
+            shape=(self.n, n_buckets),
+        )
+
+
+class EmbeddingClassifier:
+    """Spam probability of short texts from an averaged, hashed token embedding.
+
+    Parameters
+    ----------
+    All keyword-only; see :data:`PARAMS` for each one's default and meaning.
+    The constructor only checks and stores them.
+
+    Examples
+    --------
+    >>> texts = ["win a free prize now at prize.example", "see you at the meeting",
+    ...          "free prize click now", "thanks for the notes"] * 10
+    >>> labels = [1, 0, 1, 0] * 10
+    >>> clf = EmbeddingClassifier(dim=4, min_df=1, validation_share=0.0).fit(texts, labels)
+    >>> bool(clf.predict_proba_one("free prize") > clf.predict_proba_one("the meeting notes"))
+    True
+    """
+
+    def __init__(self, **params):
+        unknown = set(params) - set(PARAMS)
+        if unknown:
+            raise TypeError(f"EmbeddingClassifier: unknown parameter(s) {sorted(unknown)}")
+        for name, (default, check, must, _) in PARAMS.items():
+            value = params.get(name, default)
+            if not check(value):
+                raise ValueError(f"EmbeddingClassifier: {name} must be {must}, got {value!r}")
+            setattr(self, name, tuple(value) if name == "char_ngrams" else value)
+        self._fitted = False
+
+    # --- parameters -----------------------------------------------------------
+
+    def get_params(self) -> dict:
+        """The constructor parameters (JSON-safe)."""
+        out = {name: getattr(self, name) for name in PARAMS}
+        out["char_ngrams"] = list(out["char_ngrams"])
+        if isinstance(out["class_weight"], dict):
+            out["class_weight"] = {str(k): v for k, v in out["class_weight"].items()}
+        return out
+
+    @classmethod
+    def _from_params(cls, params: dict) -> "EmbeddingClassifier":
+        params = dict(params)
+        params["char_ngrams"] = tuple(params["char_ngrams"])
+        if isinstance(params.get("class_weight"), dict):
+            params["class_weight"] = {int(k): v for k, v in params["class_weight"].items()}
+        return cls(**params)
+
+    def __repr__(self) -> str:
+        changed = {k: getattr(self, k) for k, (d, *_) in PARAMS.items() if getattr(self, k) != d}
+        return f"EmbeddingClassifier({', '.join(f'{k}={v!r}' for k, v in changed.items())})"
+
+    # --- features -------------------------------------------------------------
+
+    def _make_featurizers(self, tokenizer_params: dict | None = None, hashing: dict | None = None) -> None:
+        if tokenizer_params is None:
+            self._tokenizer = Tokenizer(bigrams=self.bigrams, char_ngrams=tuple(self.char_ngrams))
+        else:
+            self._tokenizer = Tokenizer(**tokenizer_params)
+        seed = 0 if hashing is None else int(hashing.get("seed", 0))
+        self._hasher = TokenHasher(n_buckets=self.buckets, seed=seed)
+
+    def _features(self, texts: list[str]) -> list[list[str]]:
+        features = self._tokenizer.features
+        return [features(t) for t in texts]
+
+    def _bag(self, feature_lists: list[list[str]]) -> _Bag:
+        n = len(feature_lists)
+        lengths = np.fromiter(map(len, feature_lists), dtype=np.int64, count=n)
+        tokens = list(chain.from_iterable(feature_lists))
+        buckets = np.asarray(self._hasher.buckets(tokens), dtype=np.int64)
+        doc = np.repeat(np.arange(n, dtype=np.int64), lengths)
+        keys, first, counts = np.unique(doc * self.buckets + buckets, return_index=True, return_counts=True)
+        pair_doc = keys // self.buckets
+        counts = counts.astype(np.float64)
+        if self.pooling == "l2":
+            norm = np.sqrt(np.bincount(pair_doc, weights=counts * counts, minlength=n))
+        else:
+            norm = lengths.astype(np.float64)
+        weight = counts / norm[pair_doc] if keys.size else counts
+        indptr = np.zeros(n + 1, dtype=np.int64)
+        np.cumsum(np.bincount(pair_doc, minlength=n), out=indptr[1:])
+        return _Bag(n, pair_doc, keys % self.buckets, weight, first, tokens, indptr)
+
+    # --- checks ---------------------------------------------------------------
+
+    @staticmethod
+    def _texts(texts, op: str) -> list[str]:
+        if isinstance(texts, str):
+            raise DataError(f"{op}: texts must be a list of strings, not one string")
+        texts = list(texts)
+        for i, t in enumerate(texts):
+            if not isinstance(t, str):
+                raise DataError(f"{op}: text {i} is {type(t).__name__}, not str")
+        return texts
+
+    @staticmethod
+    def _labels(labels, n: int, op: str) -> np.ndarray:
+        y = list(labels)
+        if len(y) != n:
+            raise DataError(f"{op}: {n} texts but {len(y)} labels; pass one label per text")
+        bad = next((v for v in y if v not in (0, 1) or isinstance(v, float) and not float(v).is_integer()), None)
+        if bad is not None:
+            raise DataError(f"{op}: labels must be 0 (ham) or 1 (spam), got {bad!r}")
+        return np.asarray(y, dtype=np.float64)
+
+    def _require_fitted(self, op: str) -> None:
+        if not self._fitted:
+            raise DataError(f"{op}: the model is not trained; call fit() or load a model first")
+
+    # --- training ---------------------------------------------------------------
+
+    def _resolve_class_weight(self, y: np.ndarray) -> tuple[float, float]:
+        if self.class_weight is None:
+            return 1.0, 1.0
+        if isinstance(self.class_weight, dict):
+            return float(self.class_weight[0]), float(self.class_weight[1])
+        n1 = float(y.sum())
+        n0 = float(y.size - n1)
+        return y.size / (2.0 * n0), y.size / (2.0 * n1)
+
+    def _split(self, y: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+        """Stratified train/validation indices; no validation when a class is too small."""
+        n = y.size
+        if self.validation_share <= 0:
+            return np.arange(n), np.empty(0, dtype=np.int64)
+        val = []
+        for cls in (0, 1):
+            idx = np.flatnonzero(y == cls)
+            take = int(round(self.validation_share * idx.size))
+            if take < 1 or take >= idx.size:
+                return np.arange(n), np.empty(0, dtype=np.int64)
+            val.append(rng.permutation(idx)[:take])
+        val_idx = np.sort(np.concatenate(val))
+        mask = np.ones(n, dtype=bool)
+        mask[val_idx] = False
+        return np.flatnonzero(mask), val_idx
+
+    def _sample_weights(self, y: np.ndarray) -> np.ndarray:
+        w0, w1 = self._class_weights
+        return np.where(y == 1, w1, w0)
+
+    def fit(self, texts: Iterable[str], labels: Iterable[int], *, on_epoch=None) -> "EmbeddingClassifier":
+        """Train a fresh model.
+
+        Parameters
+        ----------
+        texts : iterable of str.
+        labels : iterable of 0/1 (1 = spam), one per text.
+        on_epoch : optional callable receiving a
+            :class:`model.training.EpochReport` after each epoch (progress).
+
+        Returns
+        -------
+        self
+
+        Raises
+        ------
+        DataError
+            On empty data, mismatched lengths, labels other than 0/1, or a
+            single class.
+        """
+        texts = self._texts(texts, "fit")
+        y = self._labels(labels, len(texts), "fit")
+        if not texts:
+            raise DataError("fit: no training data; pass labelled spam and ham texts")
+        if y.min() == y.max():
+            raise DataError("fit: the training data hold a single class; pass both spam and ham examples")
+        started = time.perf_counter()
+        rng = np.random.default_rng(self.seed)
+        self._make_featurizers()
+        feats = self._features(texts)
+        distinct = len(set(chain.from_iterable(feats)))
+        self.dim_ = auto_dim(distinct) if self.dim == "auto" else int(self.dim)
+        self._class_weights = self._resolve_class_weight(y)
+        train_idx, val_idx = self._split(y, rng)
+        bag = self._bag(feats)
+        matrix = bag.matrix(self.buckets)
+        train_m = matrix[train_idx]
+        df = np.bincount(train_m.indices, minlength=self.buckets)
+        train_m = self._restrict(train_m, df >= self.min_df)
+        self._weights = training.Weights(
+            np.zeros((self.buckets, self.dim_), dtype=np.float32),
+            network.init_head(self.dim_, self.hidden, rng),
+        )
+        self._opt = training.Optimizer(self.learning_rate, l2=self.l2)
+        self._touched = np.bincount(train_m.indices, minlength=self.buckets) > 0
+        self._rng = rng
+        y_train = y[train_idx]
+        validation = None
+        if val_idx.size:
+            validation = (matrix[val_idx], y[val_idx], self._sample_weights(y[val_idx]))
+        summary = training.run_epochs(
+            self._weights, self._opt, train_m, y_train, self._sample_weights(y_train),
+            epochs=self.epochs, batch_size=self.batch_size, rng=rng, shuffle=self.shuffle,
+            validation=validation, patience=self.patience, on_epoch=on_epoch,
+        )
+        self._fitted = True
+        self._invalidate()
+        metrics = {}
+        self.thresholds = DEFAULT_THRESHOLDS
+        if validation is not None:
+            val_scores = self._proba_from_matrix(matrix[val_idx])
+            self.thresholds = calibrate(val_scores, y[val_idx])
+            metrics["validation"] = evaluate(y[val_idx], val_scores, self.thresholds)
+        self.summary_ = {
+            "n_train": int(train_idx.size),
+            "n_validation": int(val_idx.size),
+            "n_spam": int(y.sum()),
+            "n_ham": int(y.size - y.sum()),
+            "distinct_tokens": distinct,
+            "dim": self.dim_,
+            "rows": int(self._touched.sum()),
+            "class_weights": list(self._class_weights),
+            "seconds": round(time.perf_counter() - started, 3),
+            "updates": 0,
+            **summary,
+        }
+        self.metrics_ = metrics
+        self.created_at = time.time()
+        self._manifest = None
+        return self
+
+    @staticmethod
+    def _restrict(matrix: sp.csr_matrix, allowed: np.ndarray) -> sp.csr_matrix:
+        """Drop entries of buckets that get no row; the pooling weights stay as they were.
+
+        The dropped tokens still count in the comment's normalisation, exactly as
+        at scoring time, where their (absent) rows contribute zero.
+        """
+        keep = allowed[matrix.indices]
+        if keep.all():
+            return matrix
+        m = matrix.copy()
+        m.data[~keep] = 0.0
+        m.eliminate_zeros()
+        return m
+
+    def _ensure_trainable(self) -> None:
+        """After loading, rebuild the full float table and a fresh optimizer."""
+        if getattr(self, "_weights", None) is None:
+            table = np.zeros((self.buckets, self.dim_), dtype=np.float32)
+            rows, values, head = self._stored
+            table[rows] = values
+            self._weights = training.Weights(table, {k: v.copy() for k, v in head.items()})
+        if getattr(self, "_opt", None) is None:
+            self._opt = training.Optimizer(self.learning_rate, l2=self.l2)
+        if getattr(self, "_rng", None) is None:
+            self._rng = np.random.default_rng([self.seed, self.summary_.get("updates", 0)])
+
+    def _learn(self, texts, labels, *, epochs: int, min_df: int, op: str) -> "EmbeddingClassifier":
+        self._require_fitted(op)
+        texts = self._texts(texts, op)
+        y = self._labels(labels, len(texts), op)
+        if not texts:
+            return self
+        self._ensure_trainable()
+        m = self._bag(self._features(texts)).matrix(self.buckets)
+        df = np.bincount(m.indices, minlength=self.buckets)
+        m = self._restrict(m, self._touched | (df >= min_df))
+        training.run_epochs(
+            self._weights, self._opt, m, y, self._sample_weights(y),
+            epochs=epochs, batch_size=self.batch_size, rng=self._rng, shuffle=self.shuffle,
+        )
+        self._touched |= np.bincount(m.indices, minlength=self.buckets) > 0
+        self.summary_["updates"] = self.summary_.get("updates", 0) + len(texts)
+        self.summary_["rows"] = int(self._touched.sum())
+        self._invalidate()
+        self._manifest = None
+        return self
+
+    def learn_many(self, texts: Iterable[str], labels: Iterable[int], *, epochs: int | None = None) -> "EmbeddingClassifier":
+        """Warm-start training on more labelled texts (same update routine as :meth:`fit`).
+
+        Buckets seen in at least ``min_df`` of these texts get rows if they had
+        none.  No validation split, no early stopping: the caller gates the
+        result (the nightly retrain checks it on a holdout).
+        """
+        return self._learn(texts, labels, epochs=epochs or self.epochs, min_df=self.min_df, op="learn_many")
+
+    def learn_one(self, text: str, label: int) -> "EmbeddingClassifier":
+        """One Adam step on one labelled text; every one of its buckets may get a row."""
+        return self._learn([text], [label], epochs=1, min_df=1, op="learn_one")
+
+    # --- scoring --------------------------------------------------------------
+
+    def _invalidate(self) -> None:
+        self._scoring = None
+
+    def _scoring_tables(self):
+        """Compact scoring tables: bucket → row index (0 = no row), rows, per-row linear logit."""
+        if self._scoring is None:
+            if getattr(self, "_weights", None) is not None:
+                rows = np.flatnonzero(self._touched)
+                values = self._weights.table[rows]
+                head = self._weights.head
+            else:
+                rows, values, head = self._stored
+            index = np.zeros(self.buckets, dtype=np.int32)
+            index[rows] = np.arange(1, rows.size + 1, dtype=np.int32)
+            table = np.zeros((rows.size + 1, self.dim_), dtype=np.float32)
+            table[1:] = values
+            row_logit = table @ head["w2"] if "w1" not in head else None
+            self._scoring = (index, table, row_logit, {k: v.copy() for k, v in head.items()})
+        return self._scoring
+
+    def _logits_and_contributions(self, bag: _Bag, want_contributions: bool):
+        index, table, row_logit, head = self._scoring_tables()
+        rows = index[bag.bucket]
+        if row_logit is not None:
+            contrib = bag.weight * row_logit[rows]
+            logits = np.bincount(bag.doc, weights=contrib, minlength=bag.n) + float(head["b2"][0])
+            return logits, contrib
+        local = sp.csr_matrix((bag.weight.astype(np.float32), rows, bag.indptr), shape=(bag.n, table.shape[0]))
+        h = np.asarray(local @ table, dtype=np.float32)
+        logits, _ = network.head_forward(h, head)
+        contrib = None
+        if want_contributions:
+            g = network.token_direction(h, head)
+            contrib = bag.weight * np.einsum("ij,ij->i", table[rows], g[bag.doc])
+        return logits.astype(np.float64), contrib
+
+    def _proba_from_matrix(self, matrix: sp.csr_matrix) -> np.ndarray:
+        return network.sigmoid(training.predict_logits(self._weights, matrix))
+
+    def score_many(self, texts: Iterable[str], *, top_k: int = 5) -> tuple[np.ndarray, list[list[tuple[str, float]]]]:
+        """Spam probabilities and explanations in one pass (the worker's hot path).
+
+        Parameters
+        ----------
+        texts : iterable of str.
+        top_k : tokens per comment in the explanation (0 = none).
+
+        Returns
+        -------
+        scores : np.ndarray (n,) of float64 in [0, 1].
+        reasons : per comment, up to ``top_k`` ``(token, contribution)`` pairs,
+            largest magnitude first; contribution > 0 pushes toward spam.
+        """
+        self._require_fitted("score")
+        texts = self._texts(texts, "score")
+        bag = self._bag(self._features(texts))
+        logits, contrib = self._logits_and_contributions(bag, top_k > 0)
+        scores = network.sigmoid(logits)
+        if top_k <= 0:
+            return scores, [[] for _ in texts]
+        return scores, top_contributions(bag.doc, contrib, bag.first, bag.tokens, bag.n, top_k)
+
+    def predict_proba_many(self, texts: Iterable[str]) -> np.ndarray:
+        """Spam probability of each text, shape (n,)."""
+        return self.score_many(texts, top_k=0)[0]
+
+    def predict_proba_one(self, text: str) -> float:
+        """Spam probability of one text."""
+        return float(self.score_many([text], top_k=0)[0][0])
+
+    def explain_one(self, text: str, top_k: int = 5) -> list[tuple[str, float]]:
+        """The ``top_k`` tokens with the largest signed contributions (positive = toward spam)."""
+        return self.score_many([text], top_k=top_k)[1][0]
+
+    def calibrate(self, texts, labels, *, reject_fpr: float = DEFAULT_REJECT_FPR, hold_fpr: float = DEFAULT_HOLD_FPR) -> Thresholds:
+        """Set :attr:`thresholds` from held-out labelled texts; returns them."""
+        self._require_fitted("calibrate")
+        texts = self._texts(texts, "calibrate")
+        y = self._labels(labels, len(texts), "calibrate")
+        self.thresholds = calibrate(self.predict_proba_many(texts), y, reject_fpr=reject_fpr, hold_fpr=hold_fpr)
+        self._manifest = None
+        return self.thresholds
+
+    # --- artifact -------------------------------------------------------------
+
+    def _arrays_and_manifest(self) -> tuple[dict, dict]:
+        index, table, _, head = self._scoring_tables()
+        rows = np.flatnonzero(index)
+        values = table[1:]
+        q, scale, zero = artifact.quantize(values, self.quant_block)
+        arrays = {
+            "row_delta": artifact.encode_rows(rows),
+            "table_q": q,
+            "table_scale": scale,
+            "table_zero": zero,
+            **{f"head_{k}": v.astype(np.float32) for k, v in head.items()},
+        }
+        manifest = {
+            "created_at": self.created_at,
+            "params": self.get_params(),
+            "tokenizer": self._tokenizer.params(),
+            "hashing": {"scheme": "murmurhash3_x86_32", "n_buckets": self.buckets, "seed": self._hasher_seed()},
+            "dim": self.dim_,
+            "quantization": {"scheme": "affine-int8", "block": self.quant_block},
+            "thresholds": self.thresholds.to_dict(),
+            "training": self.summary_,
+            "metrics": self.metrics_,
+        }
+        return arrays, manifest
+
+    def _hasher_seed(self) -> int:
+        return int(getattr(self._hasher, "seed", 0))
+
+    def to_bytes(self) -> bytes:
+        """The model as one ``.npz`` artifact (see :mod:`model.artifact`)."""
+        self._require_fitted("save model")
+        arrays, manifest = self._arrays_and_manifest()
+        data, self._manifest = artifact.dumps(arrays, manifest)
+        return data
+
+    @classmethod
+    def from_bytes(cls, data: bytes) -> "EmbeddingClassifier":
+        """Rebuild a model from :meth:`to_bytes` output.
+
+        Raises
+        ------
+        ArtifactError
+            On a bad checksum, a truncated file, a wrong format version or a
+            pickled array.
+        """
+        arrays, manifest = artifact.loads(data)
+        try:
+            clf = cls._from_params(manifest["params"])
+            clf._make_featurizers(manifest["tokenizer"], manifest["hashing"])
+            clf.dim_ = int(manifest["dim"])
+            rows = artifact.decode_rows(arrays["row_delta"])
+            block = int(manifest["quantization"]["block"])
+            values = artifact.dequantize(arrays["table_q"], arrays["table_scale"], arrays["table_zero"], block)
+            head = {k[len("head_"):]: v.astype(np.float32) for k, v in arrays.items() if k.startswith("head_")}
+            if values.shape != (rows.size, clf.dim_) or (rows.size and (rows[-1] >= clf.buckets or rows[0] < 0)):
+                raise ArtifactError("load model: stored rows do not match the manifest; the file is corrupt")
+            clf.thresholds = Thresholds.from_dict(manifest["thresholds"])
+        except (KeyError, TypeError, ValueError) as exc:
+            if isinstance(exc, ArtifactError):
+                raise
+            raise ArtifactError(f"load model: the manifest is incomplete or invalid ({exc}); retrain the model") from None
+        clf._stored = (rows, values, head)
+        clf._weights = None
+        clf._opt = None
+        clf._rng = None
+        clf._touched = np.zeros(clf.buckets, dtype=bool)
+        clf._touched[rows] = True
+        clf._class_weights = tuple(manifest["training"].get("class_weights", (1.0, 1.0)))
+        clf.summary_ = dict(manifest["training"])
+        clf.metrics_ = dict(manifest.get("metrics", {}))
+        clf.created_at = float(manifest["created_at"])
+        clf._manifest = manifest
+        clf._fitted = True
+        clf._invalidate()
+        return clf
+
+    def save(self, path) -> None:
+        """Write :meth:`to_bytes` to ``path`` (atomically: a temporary file, then a rename)."""
+        import os
+
+        data = self.to_bytes()
+        tmp = f"{os.fspath(path)}.tmp-{os.getpid()}"
+        with open(tmp, "wb") as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+
+    @classmethod
+    def load(cls, path) -> "EmbeddingClassifier":
+        """Read a model file written by :meth:`save`."""
+        try:
+            with open(path, "rb") as fh:
+                data = fh.read()
+        except OSError as exc:
+            raise ArtifactError(f"load model: cannot read {path}: {exc.strerror or exc}") from None
+        return cls.from_bytes(data)
+
+    @property
+    def manifest(self) -> dict:
+        """The artifact manifest (built by serializing when the model changed since)."""
+        self._require_fitted("manifest")
+        if self._manifest is None:
+            self.to_bytes()
+        return self._manifest
+
+    @property
+    def version(self) -> str:
+        """Short content id: the first 12 hex digits of the artifact's sha256."""
+        return self.manifest["sha256"][:12]
