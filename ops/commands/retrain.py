@@ -1,7 +1,45 @@
-"""`seawall retrain` (being built; see its issue)."""
+"""``seawall retrain``: run the gated retrain now (the scheduled job runs the same code).
+
+Prints what was decided and why; ``--json`` prints the whole report, which is
+also stored in Redis (``retrain:reports``, newest first).  Exit 0 when the
+retrain ran (promoted, refused by the gate, or nothing to do); 2 when it
+could not run (another retrain holds the lock, no active model).
+"""
 from __future__ import annotations
+
+import json
+
+from ops.connection import add_connection_args, config_from_args, connect
 
 
 def register(sub) -> None:
-    parser = sub.add_parser("retrain", help="(being built)")
-    parser.set_defaults(func=lambda args: print("seawall retrain: not built yet") or 1)
+    parser = sub.add_parser("retrain", help="run the gated retrain now: feedback -> candidate -> gate -> promote")
+    parser.add_argument("--json", action="store_true", help="print the full report as JSON")
+    parser.add_argument("--no-rescore", action="store_true", help="do not queue the hold-queue re-score")
+    add_connection_args(parser)
+    parser.set_defaults(func=run)
+
+
+def run(args) -> int:
+    from ops.jobs import enqueue_rescore
+    from ops.retrain import retrain
+
+    config = config_from_args(args)
+    client = connect(config)
+    on_promoted = None if args.no_rescore else (lambda version: enqueue_rescore(client, config, version))
+    report = retrain(client, config.keys, config.retrain, on_promoted=on_promoted)
+    if args.json:
+        print(json.dumps(report, sort_keys=True))
+        return 0
+    labels = report.get("labels", {})
+    head = {
+        "promoted": f"retrain: promoted {report.get('candidate')} (was {report.get('active')})",
+        "refused": f"retrain: kept {report.get('active')}; candidate {report.get('candidate') or '-'} refused",
+        "skipped": f"retrain: nothing to do; {report.get('active') or 'no model'} stays active",
+    }[report["decision"]]
+    print(head)
+    print(f"  labels: {labels.get('new', 0)} new, {labels.get('trained_new', 0)} trained, "
+          f"{labels.get('holdout', 0)} held out, {labels.get('canary', 0)} canary; {report['seconds']:.1f}s")
+    for reason in report["reasons"]:
+        print(f"  - {reason}")
+    return 0

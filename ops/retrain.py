@@ -1,0 +1,360 @@
+"""The gated retrain: labels in, a candidate out, promoted only if it is not worse.
+
+One retrain, in order:
+
+1. take the lock (``retrain:lock``, SET NX with a TTL; a second retrain fails
+   with :class:`RetrainBusy`), and drain the feedback stream so that no
+   label sent before the start is missed;
+2. read the labelled store: *new* labels are those after the active model's
+   ``labels_cursor`` (the last label its own retrain saw; ``0-0`` for a pushed
+   model), the rest are *older*; the latest label of an id wins;
+3. poisoning guard: no single moderator supplies more than
+   ``max_moderator_share`` of the new labels (labels without a moderator
+   count as one source); the excess is dropped at random (seeded);
+4. holdout: a stable share of ids (by SHA-1 of the id, so an id is always on
+   the same side) is never trained on;
+5. candidate: a copy of the active model, warm-started with ``learn_many``
+   on the new labels + a replay sample of older labels + the replay sample of
+   the original training data stored in the registry; thresholds
+   recalibrated on holdout + canary;
+6. gate: candidate and active are scored on the same holdout (new holdout
+   labels + the registry's canary set) and, separately, on the canary set
+   alone (trusted data a label flood cannot touch).  Promote only if on each
+   set ROC-AUC and recall at ``gate_fpr`` are not worse than the active
+   model's by more than the tolerances.  The thresholds do not enter the gate:
+   both figures are threshold-free, so calibrating on the same rows does not
+   bias it;
+7. promote atomically (only if the active model is still the parent), store
+   a JSON report, emit a ``retrain`` event (the registry emits ``promote``).
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import os
+import random
+import socket
+import time
+import uuid
+from collections import Counter
+from dataclasses import dataclass
+
+import numpy as np
+
+from model.errors import DataError, SeawallError
+from model.evaluation import evaluate, recall_at_fpr
+from ops.registry import Registry, load_model
+from ops.settings import RetrainSettings
+from worker.feedback import FeedbackConsumer, scan_labels
+from worker.settings import Keys
+
+log = logging.getLogger(__name__)
+
+UNATTRIBUTED = "(unattributed)"
+
+_RELEASE = """
+if redis.call('get', KEYS[1]) == ARGV[1] then return redis.call('del', KEYS[1]) end
+return 0
+"""
+
+
+class RetrainBusy(SeawallError):
+    """Another retrain holds the lock."""
+
+
+@dataclass(frozen=True)
+class LabelRow:
+    stream_id: str
+    id: str
+    text: str
+    y: int
+    moderator: str
+
+
+def lock_key(keys: Keys) -> str:
+    return keys.key("retrain", "lock")
+
+
+def reports_key(keys: Keys) -> str:
+    return keys.key("retrain", "reports")
+
+
+# -- pure steps ---------------------------------------------------------------------
+
+def stream_id_after(a: str, b: str) -> bool:
+    """``a > b`` for Redis stream ids ``ms-seq``."""
+    ams, _, aseq = a.partition("-")
+    bms, _, bseq = b.partition("-")
+    return (int(ams), int(aseq or 0)) > (int(bms), int(bseq or 0))
+
+
+def label_rows(entries) -> list[LabelRow]:
+    """Label records -> rows, the latest label of an id winning, in stream order (pure)."""
+    latest: dict[str, LabelRow] = {}
+    for sid, rec in entries:
+        label = rec.get("label")
+        text = rec.get("text", "")
+        if label not in ("spam", "ham") or not rec.get("id") or not text.strip():
+            continue
+        latest.pop(rec["id"], None)  # re-insert so that dict order is the latest label's order
+        latest[rec["id"]] = LabelRow(sid, rec["id"], text, 1 if label == "spam" else 0,
+                                     rec.get("moderator", "") or UNATTRIBUTED)
+    return list(latest.values())
+
+
+def in_holdout(comment_id: str, share: float) -> bool:
+    """Stable assignment of an id to the gate's holdout (pure)."""
+    digest = hashlib.sha1(comment_id.encode("utf-8", "surrogatepass")).digest()
+    return int.from_bytes(digest[:4], "big") / 2**32 < share
+
+
+def moderator_cap(counts: dict[str, int], share: float) -> int | None:
+    """Largest per-source count c with every source's min(n, c) <= share of the total (pure).
+
+    ``None`` means no cap is needed.  With one source only and ``share < 1``
+    the cap is 0: a single moderator cannot make up more than ``share``.
+    """
+    if share >= 1.0 or not counts:
+        return None
+    top = max(counts.values())
+
+    def fits(c: int) -> bool:
+        total = sum(min(n, c) for n in counts.values())
+        return c <= share * total + 1e-9
+
+    if fits(top):
+        return None
+    lo, hi = 0, top  # fits(lo) holds, fits(hi) does not
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if fits(mid):
+            lo = mid
+        else:
+            hi = mid
+    return lo
+
+
+def cap_moderators(rows: list[LabelRow], share: float, rng: random.Random) -> tuple[list[LabelRow], dict]:
+    """Apply the poisoning guard; returns the kept rows and per-source given/kept counts (pure)."""
+    counts = Counter(r.moderator for r in rows)
+    cap = moderator_cap(dict(counts), share)
+    if cap is None:
+        return rows, {m: {"given": n, "kept": n} for m, n in counts.items()}
+    keep_ids: set[str] = set()
+    for source in counts:
+        mine = [r.id for r in rows if r.moderator == source]
+        if len(mine) > cap:
+            mine = rng.sample(mine, cap)
+        keep_ids.update(mine)
+    kept = [r for r in rows if r.id in keep_ids]
+    kept_counts = Counter(r.moderator for r in kept)
+    return kept, {m: {"given": n, "kept": kept_counts.get(m, 0)} for m, n in counts.items()}
+
+
+def ranking_figures(labels, scores, fpr: float) -> dict:
+    out = evaluate(labels, scores)
+    out["recall_at_gate_fpr"] = recall_at_fpr(np.asarray(labels), np.asarray(scores), fpr)
+    return out
+
+
+def gate_decision(sets: dict, *, auc_tolerance: float, recall_tolerance: float) -> tuple[bool, list[str]]:
+    """Promote only if on every evaluated set the candidate is not worse beyond the tolerances (pure)."""
+    reasons = []
+    ok = True
+    for name, pair in sets.items():
+        a, c = pair["active"], pair["candidate"]
+        d_auc = c["roc_auc"] - a["roc_auc"]
+        d_rec = c["recall_at_gate_fpr"] - a["recall_at_gate_fpr"]
+        if d_auc < -auc_tolerance:
+            ok = False
+            reasons.append(f"{name}: ROC-AUC {c['roc_auc']:.4f} is {-d_auc:.4f} below the active model's "
+                           f"{a['roc_auc']:.4f} (tolerance {auc_tolerance})")
+        if d_rec < -recall_tolerance:
+            ok = False
+            reasons.append(f"{name}: recall at the gate FPR {c['recall_at_gate_fpr']:.4f} is {-d_rec:.4f} below "
+                           f"the active model's {a['recall_at_gate_fpr']:.4f} (tolerance {recall_tolerance})")
+        if d_auc >= -auc_tolerance and d_rec >= -recall_tolerance:
+            reasons.append(f"{name}: ROC-AUC {a['roc_auc']:.4f} -> {c['roc_auc']:.4f}, recall at the gate FPR "
+                           f"{a['recall_at_gate_fpr']:.4f} -> {c['recall_at_gate_fpr']:.4f}: within tolerance")
+    return ok, reasons
+
+
+# -- the lock -------------------------------------------------------------------------
+
+class RetrainLock:
+    """``SET NX`` lock with a TTL; released only by its holder (compare-and-delete)."""
+
+    def __init__(self, *, client, keys: Keys, ttl_s: int):
+        self.client = client
+        self.key = lock_key(keys)
+        self.ttl_s = ttl_s
+        self.token = f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}:{time.time():.0f}"
+
+    def __enter__(self):
+        if not self.client.set(self.key, self.token, nx=True, ex=self.ttl_s):
+            holder = self.client.get(self.key)
+            ttl = self.client.ttl(self.key)
+            holder = holder.decode() if isinstance(holder, bytes) else holder
+            raise RetrainBusy(f"retrain: another retrain is running (lock held by {holder}, expires in {ttl}s); "
+                              "wait for it to finish, or for the lock TTL if it crashed")
+        return self
+
+    def __exit__(self, *exc):
+        self.client.eval(_RELEASE, 1, self.key, self.token)
+        return False
+
+
+# -- the retrain ------------------------------------------------------------------------
+
+def _now_report(clock) -> dict:
+    return {"started_at": round(clock(), 3), "decision": "skipped", "promoted": False, "reasons": []}
+
+
+def store_report(client, keys: Keys, report: dict, *, kept: int, clock=time.time, pipeline=None) -> None:
+    """Store the JSON report (newest first, bounded) and emit the ``retrain`` event."""
+    pipe = pipeline if pipeline is not None else client.pipeline(transaction=True)
+    pipe.lpush(reports_key(keys), json.dumps(report, sort_keys=True))
+    pipe.ltrim(reports_key(keys), 0, kept - 1)
+    summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "reasons")}
+    summary["labels_new"] = report.get("labels", {}).get("new", 0)
+    pipe.xadd(keys.events, {"type": "retrain", "ts": f"{clock():.3f}",
+                            "data": json.dumps(summary, sort_keys=True, separators=(",", ":"))},
+              maxlen=100_000, approximate=True)
+    if pipeline is None:
+        pipe.execute()
+
+
+def last_reports(client, keys: Keys, n: int = 1) -> list[dict]:
+    return [json.loads(x) for x in client.lrange(reports_key(keys), 0, n - 1)]
+
+
+def retrain(client, keys: Keys, settings: RetrainSettings, *, clock=time.time, on_promoted=None) -> dict:
+    """Run one gated retrain now; returns the report (also stored in Redis).
+
+    ``on_promoted(version)`` runs after a successful promotion (the hold-queue
+    re-score is enqueued there).  Raises :class:`RetrainBusy` when another
+    retrain holds the lock, RegistryError when there is no active model.
+    """
+    with RetrainLock(client=client, keys=keys, ttl_s=settings.lock_ttl_s):
+        report = _now_report(clock)
+        t0 = time.perf_counter()
+        try:
+            _retrain_locked(client, keys, settings, report, clock=clock)
+        finally:
+            report["seconds"] = round(time.perf_counter() - t0, 3)
+            report["finished_at"] = round(clock(), 3)
+            store_report(client, keys, report, kept=settings.reports_kept, clock=clock)
+    if report["promoted"] and on_promoted is not None:
+        on_promoted(report["candidate"])
+    return report
+
+
+def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict, *, clock) -> None:
+    registry = Registry(client=client, keys=keys, clock=clock)
+    drained = FeedbackConsumer(
+        client=client, keys=keys, group=settings.feedback_group,
+        consumer=f"retrain-{socket.gethostname()}-{os.getpid()}", batch=settings.feedback_batch,
+        text_max_bytes=settings.feedback_text_max_bytes, labels_max=settings.labels_max,
+        claim_idle_ms=settings.feedback_claim_idle_ms, clock=clock,
+    ).drain()
+
+    active_version = registry.active()
+    if active_version is None:
+        from ops.registry import RegistryError
+
+        raise RegistryError("retrain: no active model to start from; bootstrap with "
+                            "`seawall models push MODEL_FILE --replay DATA.jsonl` and `seawall models promote VERSION`")
+    active_bytes = registry.checked_blob(active_version)
+    cursor = registry.meta(active_version).get("labels_cursor", "0-0") or "0-0"
+    report["active"] = active_version
+
+    everything = list(scan_labels(client, keys))
+    new_entries = [(sid, rec) for sid, rec in everything if stream_id_after(sid, cursor)]
+    old_entries = [(sid, rec) for sid, rec in everything if not stream_id_after(sid, cursor)]
+    new_rows = label_rows(new_entries)
+    new_ids = {r.id for r in new_rows}
+    old_rows = [r for r in label_rows(old_entries) if r.id not in new_ids]
+    labels = report["labels"] = {"drained": drained, "new": len(new_rows), "older": len(old_rows),
+                                 "cursor_from": cursor}
+    if len(new_rows) < settings.min_new_labels:
+        report["reasons"].append(f"{len(new_rows)} new labels since the last promotion; "
+                                 f"retrain.min_new_labels is {settings.min_new_labels}")
+        return
+    new_cursor = max((sid for sid, _ in new_entries), key=lambda s: tuple(int(x) for x in s.split("-")))
+    labels["cursor_to"] = new_cursor
+
+    rng = random.Random(settings.seed)
+    capped, by_source = cap_moderators(new_rows, settings.max_moderator_share, rng)
+    labels["moderators"] = by_source
+    labels["kept_after_cap"] = len(capped)
+    dropped = {m: c["given"] - c["kept"] for m, c in by_source.items() if c["given"] > c["kept"]}
+    if dropped:
+        report["reasons"].append("poisoning guard: dropped " + ", ".join(
+            f"{n} labels of {m}" for m, n in sorted(dropped.items()))
+            + f" (retrain.max_moderator_share={settings.max_moderator_share})")
+
+    holdout = [r for r in capped if in_holdout(r.id, settings.holdout_share)]
+    train_new = [r for r in capped if not in_holdout(r.id, settings.holdout_share)]
+    older_pool = [r for r in old_rows if not in_holdout(r.id, settings.holdout_share)]
+    replay_old = rng.sample(older_pool, min(settings.replay_labels, len(older_pool)))
+    original = registry.replay()
+    replay_orig = rng.sample(original, min(settings.replay_original, len(original)))
+    canary = registry.canary()
+    labels.update({"holdout": len(holdout), "trained_new": len(train_new), "replay_labels": len(replay_old),
+                   "replay_original": len(replay_orig), "canary": len(canary)})
+
+    train = [(r.text, r.y) for r in train_new + replay_old] + list(replay_orig)
+    rng.shuffle(train)
+    if not train_new:
+        report["reasons"].append("every new label fell in the holdout or was dropped; nothing new to train on")
+        return
+
+    gate_rows = [(r.text, r.y) for r in holdout] + list(canary)
+    gate_y = [y for _, y in gate_rows]
+    if len(gate_rows) < settings.min_holdout or len(set(gate_y)) < 2:
+        report["decision"] = "refused"
+        report["reasons"].append(f"holdout + canary has {len(gate_rows)} rows ({sum(gate_y)} spam); the gate needs "
+                                 f">= retrain.min_holdout={settings.min_holdout} with both classes; "
+                                 "push a canary set (`seawall models push ... --replay`) or wait for more labels")
+        return
+
+    candidate = load_model(active_bytes)
+    t_fit = time.perf_counter()
+    candidate.learn_many([t for t, _ in train], [y for _, y in train], epochs=settings.epochs or None)
+    report["train_seconds"] = round(time.perf_counter() - t_fit, 3)
+    try:
+        thresholds = candidate.calibrate([t for t, _ in gate_rows], gate_y,
+                                         reject_fpr=settings.reject_fpr, hold_fpr=settings.hold_fpr)
+        report["thresholds"] = {"hold": float(thresholds.hold), "reject": float(thresholds.reject)}
+    except DataError as exc:
+        report["reasons"].append(f"thresholds kept from the active model: {exc}")
+    active = load_model(active_bytes)
+
+    gate_texts = [t for t, _ in gate_rows]
+    sets = {"holdout+canary": {
+        "active": ranking_figures(gate_y, active.predict_proba_many(gate_texts), settings.gate_fpr),
+        "candidate": ranking_figures(gate_y, candidate.predict_proba_many(gate_texts), settings.gate_fpr),
+    }}
+    canary_y = [y for _, y in canary]
+    if len(set(canary_y)) == 2:
+        canary_texts = [t for t, _ in canary]
+        sets["canary"] = {
+            "active": ranking_figures(canary_y, active.predict_proba_many(canary_texts), settings.gate_fpr),
+            "candidate": ranking_figures(canary_y, candidate.predict_proba_many(canary_texts), settings.gate_fpr),
+        }
+    ok, reasons = gate_decision(sets, auc_tolerance=settings.auc_tolerance, recall_tolerance=settings.recall_tolerance)
+    report["gate"] = {"fpr": settings.gate_fpr, "auc_tolerance": settings.auc_tolerance,
+                      "recall_tolerance": settings.recall_tolerance, "sets": sets}
+    report["reasons"].extend(reasons)
+    data = candidate.to_bytes()
+    report["candidate"] = candidate.version
+    if not ok:
+        report["decision"] = "refused"
+        return
+    version = registry.push(data, source="retrain", parent=active_version, labels_cursor=new_cursor)
+    registry.promote(version, expect_active=active_version, actor="retrain",
+                     reason="gate passed: " + "; ".join(reasons))
+    report["candidate"] = version
+    report["decision"] = "promoted"
+    report["promoted"] = True
