@@ -1,26 +1,26 @@
-"""One Redis client from the configuration: AUTH/ACL in the URL, TLS for rediss://."""
+"""One Redis client from the configuration, for the control-plane commands and jobs.
+
+AUTH/ACL credentials come in the URL; rediss:// turns TLS on with the
+``redis_tls_*`` settings (see :func:`worker.connection.connect`).  Replies are
+bytes and parsed by redis-py as usual.
+"""
 from __future__ import annotations
 
 import redis
 
 from ops.config import Config
+from worker.connection import connect as worker_connect
 
 
 def connect(config: Config, **kwargs) -> redis.Redis:
-    """A client for ``config.redis_url`` (redis://, rediss:// or unix://).
+    """A client for ``config.redis_url`` (redis://, rediss:// or unix://)."""
+    try:
+        return worker_connect(config.redis_url, tls_ca=config.redis_tls_ca, tls_cert=config.redis_tls_cert,
+                              tls_key=config.redis_tls_key, raw_streams=False, **kwargs)
+    except ValueError as exc:
+        from ops.config import ConfigError
 
-    On a rediss:// URL the CA bundle and client certificate settings are
-    applied; the password and ACL user come from the URL itself.
-    """
-    url = config.redis_url
-    if url.startswith("rediss://"):
-        if config.redis_tls_ca:
-            kwargs.setdefault("ssl_ca_certs", config.redis_tls_ca)
-        if config.redis_tls_cert:
-            kwargs.setdefault("ssl_certfile", config.redis_tls_cert)
-        if config.redis_tls_key:
-            kwargs.setdefault("ssl_keyfile", config.redis_tls_key)
-    return redis.Redis.from_url(url, **kwargs)
+        raise ConfigError(str(exc)) from None
 
 
 def add_connection_args(parser) -> None:

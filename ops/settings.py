@@ -18,6 +18,7 @@ class RetrainSettings:
     queue: str = setting("seawall", "RQ queue the retrain and hold-queue re-score jobs go to")
     job_timeout_s: int = setting(3600, "RQ job timeout of one retrain, in seconds")
     lock_ttl_s: int = setting(3600, "retrain lock TTL: a crashed retrain frees the lock after this many seconds")
+    feedback_in_serve: bool = setting(True, "every `seawall serve` process also consumes the feedback stream")
     feedback_group: str = setting("labellers", "consumer group that turns the feedback stream into labels")
     feedback_batch: int = setting(256, "feedback entries read per XREADGROUP call")
     feedback_block_ms: int = setting(1000, "how long one feedback read blocks, in milliseconds")

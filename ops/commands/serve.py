@@ -12,6 +12,7 @@ import signal
 import sys
 
 from ops.config import load_config, settings_help
+from ops.labelling import start_feedback
 from ops.processes import ProcessGroup
 from ops.serving import build_consumer, build_observer, configure_logging, model_source
 from worker.consumer import default_consumer_name
@@ -64,9 +65,14 @@ def serve_one(config) -> int:
     observer = build_observer(config)
     # Metrics: the observer's HTTP endpoint (config.metrics) is started here once ops/metrics.py exists.
     consumer = build_consumer(config, source=source, observer=observer, consumer=name)
+    feedback = start_feedback(config, worker_consumer=name)  # moderators' labels -> labelled store
     for sig in (signal.SIGTERM, signal.SIGINT):
         signal.signal(sig, lambda *_: consumer.stop())
-    return consumer.run()
+    try:
+        return consumer.run()
+    finally:
+        if feedback is not None:
+            feedback.stop()
 
 
 def run_many(args, config) -> int:

@@ -1,0 +1,65 @@
+"""The feedback consumer as a background thread of ``seawall serve``.
+
+Every serve process also reads the feedback stream, as consumer
+``<worker consumer>-feedback`` of the ``retrain.feedback_group`` group, so
+moderators' labels reach the labelled store within a second while comments are
+being scored.  It has its own Redis client (its blocking read must not share
+the comment consumer's connection).  ``retrain.feedback_in_serve = false``
+turns it off, e.g. when a separate process handles feedback.
+"""
+from __future__ import annotations
+
+import logging
+import threading
+
+from ops.config import Config
+from worker.connection import connect
+from worker.feedback import FeedbackConsumer
+
+log = logging.getLogger(__name__)
+
+
+def build_feedback_consumer(config: Config, *, consumer: str = "", client=None) -> FeedbackConsumer:
+    s = config.retrain
+    if client is None:
+        client = connect(config.redis_url, tls_ca=config.redis_tls_ca, tls_cert=config.redis_tls_cert,
+                         tls_key=config.redis_tls_key, socket_timeout=config.worker.socket_timeout_s
+                         + s.feedback_block_ms / 1000.0, client_name="seawall-feedback")
+    return FeedbackConsumer(
+        client=client, keys=config.keys, group=s.feedback_group, consumer=consumer, batch=s.feedback_batch,
+        block_ms=s.feedback_block_ms, text_max_bytes=s.feedback_text_max_bytes, labels_max=s.labels_max,
+        claim_idle_ms=s.feedback_claim_idle_ms, deadletter_maxlen=config.worker.deadletter_maxlen,
+        backoff_initial_s=s.backoff_initial_s, backoff_factor=s.backoff_factor, backoff_cap_s=s.backoff_cap_s,
+    )
+
+
+class FeedbackThread:
+    """Runs a :class:`FeedbackConsumer` in a daemon thread until :meth:`stop`."""
+
+    def __init__(self, *, consumer: FeedbackConsumer):
+        self.consumer = consumer
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="seawall-feedback", daemon=True)
+
+    def _run(self) -> None:
+        log.info("feedback consumer %s reading %s", self.consumer.consumer, self.consumer.keys.feedback)
+        self.consumer.run(self._stop)
+
+    def start(self) -> "FeedbackThread":
+        self._thread.start()
+        return self
+
+    def stop(self, timeout: float = 5.0) -> None:
+        self._stop.set()
+        self._thread.join(timeout)
+
+    @property
+    def alive(self) -> bool:
+        return self._thread.is_alive()
+
+
+def start_feedback(config: Config, *, worker_consumer: str) -> FeedbackThread | None:
+    """Start the feedback thread for a serve process (None when turned off)."""
+    if not config.retrain.feedback_in_serve:
+        return None
+    return FeedbackThread(consumer=build_feedback_consumer(config, consumer=f"{worker_consumer}-feedback")).start()
