@@ -4,7 +4,7 @@ A comment is a bag of hashed token buckets.  Its vector is the mean of the
 bucket rows of an embedding table ``E[B, d]``; a small dense head turns that
 vector into one logit and a sigmoid into a spam probability::
 
-    h = A · E            A: (n, B) sparse, each row the mean over token occurrences
+    h = A · E            A: (n, B) sparse, row i = the pooling weights of comment i
     u = relu(h · W1 + b1)        (only when the head has a hidden layer)
     z = u · w2 + b2              (or h · w2 + b2 without a hidden layer)
     p = sigmoid(z)
@@ -12,7 +12,8 @@ vector into one logit and a sigmoid into a spam probability::
 Training never materialises a dense ``(n, B)`` matrix nor a dense gradient of
 ``E``: a batch is re-indexed onto the rows it touches (:func:`localize`), the
 forward pass is ``A_local · E[rows]`` and the backward pass ``A_localᵀ · dH``,
-so the gradient exists only for the touched rows.
+so the gradient exists only for the touched rows.  Arrays keep the dtype of
+the table rows (float32 in training, float64 in the gradient check).
 """
 from __future__ import annotations
 
@@ -106,7 +107,7 @@ def forward(local: sp.csr_matrix, table_rows: np.ndarray, head: dict[str, np.nda
     table_rows : np.ndarray (k, d), the embedding rows the batch touches.
     head : the dense head parameters.
     """
-    h = np.asarray(local @ table_rows, dtype=np.float32)
+    h = np.asarray(local @ table_rows, dtype=table_rows.dtype)
     z, pre = head_forward(h, head)
     return z, Cache(local=local, h=h, pre=pre)
 
@@ -124,8 +125,8 @@ def backward(cache: Cache, dz: np.ndarray, head: dict[str, np.ndarray]) -> tuple
     d_rows : np.ndarray (k, d), gradient for ``table_rows`` only (``Aᵀ · dH``).
     d_head : dict of gradients, same keys as ``head``.
     """
-    dz = dz.astype(np.float32, copy=False)
-    grads: dict[str, np.ndarray] = {"b2": np.array([dz.sum()], dtype=np.float32)}
+    dz = dz.astype(cache.h.dtype, copy=False)
+    grads: dict[str, np.ndarray] = {"b2": np.array([dz.sum()], dtype=cache.h.dtype)}
     if "w1" in head:
         u = np.maximum(cache.pre, 0.0)
         grads["w2"] = u.T @ dz
@@ -136,7 +137,7 @@ def backward(cache: Cache, dz: np.ndarray, head: dict[str, np.ndarray]) -> tuple
     else:
         grads["w2"] = cache.h.T @ dz
         dh = np.outer(dz, head["w2"])
-    d_rows = np.asarray(cache.local.T @ dh, dtype=np.float32)
+    d_rows = np.asarray(cache.local.T @ dh, dtype=cache.h.dtype)
     return d_rows, grads
 
 
