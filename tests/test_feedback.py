@@ -200,3 +200,16 @@ def test_labels_import_checks_the_file_before_redis(tmp_path, capsys, line, mess
 def test_feedback_command_refuses_bad_input_before_redis(capsys):
     assert main(["feedback", " ", "spam", "--redis", "redis://127.0.0.1:1/0"]) == 2
     assert "feedback: missing id" in capsys.readouterr().err
+
+
+@pytest.mark.redis_server
+def test_consumer_works_on_a_client_with_raw_stream_replies(redis_server):
+    from worker.connection import connect
+
+    r = connect(redis_server.url)
+    r.xadd(KEYS.feedback, {"id": "c1", "label": "spam", "text": "buy followers"})
+    r.xadd(KEYS.feedback, {"id": "c2", "label": "nope"})
+    c = FeedbackConsumer(client=r, keys=KEYS, consumer="raw", claim_idle_ms=0)
+    assert c.drain() == 2
+    assert [rec["id"] for _s, rec in scan_labels(r, KEYS)] == ["c1"]
+    assert r.xlen(KEYS.deadletter) == 1
