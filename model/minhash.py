@@ -101,7 +101,11 @@ class MinHasher:
         multiply-add-shift hashes ``(a x + b) mod 2**64 >> 32`` (Dietzfelbinger
         1996) stand in for the random permutations.
         """
-        word_lists = [self.words(t)[: self.max_words] for t in texts]
+        return self.signatures_of_words([self.words(t) for t in texts])
+
+    def signatures_of_words(self, word_lists: list[list[str]]) -> np.ndarray:
+        """:meth:`signatures` of texts already split into words."""
+        word_lists = [list(w)[: self.max_words] for w in word_lists]
         n_texts, n = len(word_lists), self.shingle
         out = np.full((n_texts, self.num_perm), EMPTY, dtype=np.uint32)
         lengths = np.fromiter((len(w) for w in word_lists), dtype=np.int64, count=n_texts)
