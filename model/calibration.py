@@ -79,6 +79,10 @@ class Thresholds:
         return cls(hold=data["hold"], reject=data["reject"])
 
 
+#: Used before any calibration, and where held-out data are too small to resolve a target rate.
+DEFAULT_THRESHOLDS = Thresholds(hold=0.5, reject=0.9)
+
+
 def threshold_for_fpr(ham_scores: np.ndarray, fpr: float) -> float:
     """The lowest threshold that flags at most ``fpr`` of ``ham_scores``.
 
@@ -103,6 +107,7 @@ def calibrate(
     *,
     reject_fpr: float = DEFAULT_REJECT_FPR,
     hold_fpr: float = DEFAULT_HOLD_FPR,
+    fallback: "Thresholds | None" = None,
 ) -> Thresholds:
     """Thresholds from held-out scores and labels (1 = spam, 0 = ham).
 
@@ -112,11 +117,16 @@ def calibrate(
     labels : np.ndarray (n,), 0/1.
     reject_fpr, hold_fpr : the largest share of ham allowed to be rejected,
         and held or rejected.  ``reject_fpr`` must not exceed ``hold_fpr``.
+    fallback : thresholds to fall back on where the data hold fewer than
+        ``1 / fpr`` hams (see :func:`resolvable`): the threshold is then the
+        larger of "above every ham seen" and the fallback.  Default
+        :data:`DEFAULT_THRESHOLDS` (hold 0.5, reject 0.9).
 
     Returns
     -------
     Thresholds
     """
+    fallback = DEFAULT_THRESHOLDS if fallback is None else fallback
     scores = np.asarray(scores, dtype=np.float64)
     labels = np.asarray(labels)
     if scores.shape != labels.shape:
@@ -126,6 +136,23 @@ def calibrate(
     ham = scores[labels == 0]
     if ham.size == 0:
         raise DataError("calibrate: the held-out data has no ham; give it labelled ham, the thresholds target ham false-positive rates")
-    reject = threshold_for_fpr(ham, reject_fpr)
-    hold = min(threshold_for_fpr(ham, hold_fpr), reject)
+    reject = _resolved(ham, reject_fpr, fallback.reject)
+    hold = min(_resolved(ham, hold_fpr, fallback.hold), reject)
     return Thresholds(hold=hold, reject=reject)
+
+
+def resolvable(n_ham: int, fpr: float) -> bool:
+    """Whether ``n_ham`` held-out hams can measure a false-positive rate of ``fpr``.
+
+    Below ``1 / fpr`` hams not one ham may be flagged, so the threshold is
+    merely "above the highest ham seen": an optimistic, high-variance estimate.
+    """
+    return fpr > 0 and n_ham * fpr >= 1.0 - 1e-9
+
+
+def _resolved(ham: np.ndarray, fpr: float, fallback: float) -> float:
+    threshold = threshold_for_fpr(ham, fpr)
+    if resolvable(ham.size, fpr):
+        return threshold
+    # Too few hams to measure this rate: never go below the fallback threshold.
+    return max(threshold, fallback)

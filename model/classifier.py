@@ -26,15 +26,12 @@ import numpy as np
 import scipy.sparse as sp
 
 from model import artifact, network, training
-from model.calibration import DEFAULT_HOLD_FPR, DEFAULT_REJECT_FPR, Thresholds, calibrate
+from model.calibration import DEFAULT_HOLD_FPR, DEFAULT_REJECT_FPR, DEFAULT_THRESHOLDS, Thresholds, calibrate
 from model.errors import ArtifactError, DataError
 from model.evaluation import evaluate
 from model.explain import top_contributions
 from model.hashing import TokenHasher
 from model.tokens import Tokenizer
-
-DEFAULT_THRESHOLDS = Thresholds(hold=0.5, reject=0.9)
-
 
 def auto_dim(distinct_tokens: int) -> int:
     """Embedding width by the rule of thumb d ≈ (distinct tokens) ** (1/4) (common practice).

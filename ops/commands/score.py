@@ -1,7 +1,79 @@
-"""`seawall score` (being built; see its issue)."""
+"""``seawall score``: score comments given as arguments, or read from stdin.
+
+Stdin holds one comment per line: either plain text or a JSON object with a
+``text`` field (and optionally ``id``).  Each comment prints its score, the
+action its thresholds give (publish / hold / reject) and its top tokens.
+"""
 from __future__ import annotations
+
+import json
+import sys
+
+from model.classifier import EmbeddingClassifier
+from model.errors import DataError
+
+CHUNK = 1024
 
 
 def register(sub) -> None:
-    parser = sub.add_parser("score", help="(being built)")
-    parser.set_defaults(func=lambda args: print("seawall score: not built yet") or 1)
+    parser = sub.add_parser("score", help="score comments: probability, action and top tokens")
+    parser.add_argument("--model", required=True, metavar="MODEL_FILE", help="model file written by seawall train")
+    parser.add_argument("texts", nargs="*", metavar="TEXT", help="comments to score; none = read stdin")
+    parser.add_argument("--json", action="store_true", help="one JSON object per comment")
+    parser.add_argument("--top", type=int, default=5, help="tokens to show per comment (default 5)")
+    parser.add_argument("--hold", type=float, default=None, help="override the model's hold threshold")
+    parser.add_argument("--reject", type=float, default=None, help="override the model's reject threshold")
+    parser.set_defaults(func=run)
+
+
+def _stdin_comments(stream):
+    for number, line in enumerate(stream, start=1):
+        line = line.rstrip("\n")
+        if not line.strip():
+            continue
+        if line.lstrip().startswith("{"):
+            try:
+                record = json.loads(line)
+            except json.JSONDecodeError as exc:
+                raise DataError(f"score: stdin:{number}: malformed JSON ({exc.msg} at column {exc.colno})") from None
+            text = record.get("text") if isinstance(record, dict) else None
+            if not isinstance(text, str):
+                raise DataError(f"score: stdin:{number}: a JSON line needs a string \"text\" field")
+            yield record.get("id"), text
+        else:
+            yield None, line
+
+
+def _chunks(items, size):
+    chunk = []
+    for item in items:
+        chunk.append(item)
+        if len(chunk) == size:
+            yield chunk
+            chunk = []
+    if chunk:
+        yield chunk
+
+
+def run(args) -> int:
+    clf = EmbeddingClassifier.load(args.model)
+    try:
+        thresholds = clf.thresholds.with_overrides(hold=args.hold, reject=args.reject)
+    except ValueError as exc:
+        raise DataError(f"score: {exc}") from None
+    comments = ((None, t) for t in args.texts) if args.texts else _stdin_comments(sys.stdin)
+    for chunk in _chunks(comments, CHUNK):
+        scores, reasons = clf.score_many([text for _, text in chunk], top_k=max(args.top, 0))
+        actions = thresholds.actions(scores)
+        for (ident, _), score, action, why in zip(chunk, scores, actions, reasons):
+            if args.json:
+                out = {"score": round(float(score), 6), "action": action,
+                       "reasons": [[tok, round(c, 4)] for tok, c in why], "model": clf.version}
+                if ident is not None:
+                    out["id"] = ident
+                print(json.dumps(out))
+            else:
+                tokens = "  ".join(f"{tok} {c:+.3f}" for tok, c in why)
+                prefix = f"{ident}\t" if ident is not None else ""
+                print(f"{prefix}{score:.4f}\t{action}\t{tokens}")
+    return 0

@@ -1,7 +1,92 @@
-"""`seawall train` (being built; see its issue)."""
+"""``seawall train``: fit a model on labelled JSON Lines files and save it.
+
+Progress (one line per epoch: loss, validation loss and AUC) goes to stderr;
+the closing summary to stdout.
+"""
 from __future__ import annotations
+
+import argparse
+import os
+import sys
+
+from model.classifier import EmbeddingClassifier
+from ops.datafiles import read_examples, require_both_classes
+
+
+def _dim(value: str):
+    if value == "auto":
+        return value
+    try:
+        number = int(value)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be 'auto' or a positive integer, got {value!r}") from None
+    if number < 1:
+        raise argparse.ArgumentTypeError(f"must be 'auto' or a positive integer, got {value!r}")
+    return number
+
+
+def _positive(value: str) -> int:
+    try:
+        number = int(value)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a positive integer, got {value!r}") from None
+    if number < 1:
+        raise argparse.ArgumentTypeError(f"must be a positive integer, got {value!r}")
+    return number
 
 
 def register(sub) -> None:
-    parser = sub.add_parser("train", help="(being built)")
-    parser.set_defaults(func=lambda args: print("seawall train: not built yet") or 1)
+    parser = sub.add_parser(
+        "train",
+        help="train a model on labelled JSON Lines and save it",
+        description='Train on JSON Lines files of {"text": ..., "label": "spam"|"ham"} and write one model file.',
+    )
+    parser.add_argument("data", nargs="+", metavar="DATA.jsonl", help="labelled comments, one JSON object per line")
+    parser.add_argument("--out", required=True, metavar="MODEL_FILE", help="where to write the model")
+    parser.add_argument("--dim", type=_dim, default="auto", help="embedding width, or 'auto' (4th root of distinct tokens)")
+    parser.add_argument("--buckets", type=_positive, default=2**18, help="hash buckets, a power of two (default 2**18)")
+    parser.add_argument("--epochs", type=_positive, default=10, help="maximum passes over the data (default 10)")
+    parser.add_argument("--seed", type=int, default=0, help="seed of initialisation, shuffling and validation split")
+    parser.add_argument("--min-df", type=_positive, default=2, help="buckets in fewer comments get no row (default 2)")
+    parser.add_argument("--quiet", action="store_true", help="no per-epoch progress on stderr")
+    parser.set_defaults(func=run)
+
+
+def _progress(epochs: int):
+    def show(report) -> None:
+        parts = [f"epoch {report.epoch}/{epochs}", f"loss {report.loss:.4f}"]
+        if report.val_loss is not None:
+            parts.append(f"val_loss {report.val_loss:.4f}")
+        if report.val_auc is not None:
+            parts.append(f"val_auc {report.val_auc:.4f}")
+        print("  ".join(parts), file=sys.stderr, flush=True)
+    return show
+
+
+def run(args) -> int:
+    examples = read_examples(args.data, op="train")
+    require_both_classes(examples, args.data, op="train")
+    try:
+        clf = EmbeddingClassifier(dim=args.dim, buckets=args.buckets, epochs=args.epochs, seed=args.seed, min_df=args.min_df)
+    except ValueError as exc:
+        # The constructor's message names the field and value; make it a one-line user error.
+        from model.errors import DataError
+
+        raise DataError(f"train: {exc}") from None
+    clf.fit([e.text for e in examples], [e.label for e in examples],
+            on_epoch=None if args.quiet else _progress(args.epochs))
+    clf.save(args.out)
+    s = clf.summary_
+    size = os.path.getsize(args.out)
+    t = clf.thresholds
+    print(
+        f"trained on {s['n_train']} comments ({s['n_spam']} spam, {s['n_ham']} ham in all; "
+        f"{s['n_validation']} held out) in {s['seconds']:.1f}s: d={clf.dim_}, {s['rows']} rows, "
+        f"best epoch {s['best_epoch']} of {s['epochs_run']}"
+    )
+    val = clf.metrics_.get("validation")
+    if val:
+        print(f"validation: roc_auc {val['roc_auc']:.4f}  recall@1%fpr {val['recall_at_1pct_fpr']:.4f}")
+    print(f"thresholds: hold {t.hold:.4f}  reject {t.reject:.4f}")
+    print(f"wrote {args.out} ({size / 1024:.0f} KiB), version {clf.version}")
+    return 0
