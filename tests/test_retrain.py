@@ -1,0 +1,253 @@
+"""The gated retrain: new labels, warm start, gate, poisoning guard, lock, report, re-score."""
+from __future__ import annotations
+
+import dataclasses
+import json
+import random
+
+import pytest
+
+from model.evaluation import evaluate
+from ops.cli import main
+from ops.config import load_config
+from ops.registry import Registry, split_replay
+from ops.rescore import rescore_held
+from ops.retrain import (
+    LabelRow,
+    RetrainBusy,
+    RetrainLock,
+    cap_moderators,
+    gate_decision,
+    in_holdout,
+    label_rows,
+    last_reports,
+    moderator_cap,
+    retrain,
+)
+from retrain_kit import KEYS, model_bytes, send_feedback, stream, training_set
+
+SETTINGS = load_config(environ={}).retrain
+
+
+def settings(**changes):
+    return dataclasses.replace(SETTINGS, **changes)
+
+
+def bootstrap(client) -> tuple[Registry, str]:
+    """Push + promote the first model with its replay sample and canary set."""
+    registry = Registry(client=client, keys=KEYS)
+    replay, canary = split_replay([(c.text, c.label) for c in training_set()], replay_max=2000, canary_size=300)
+    version = registry.push(model_bytes(0))
+    registry.set_examples(replay=replay, canary=canary)
+    registry.promote(version)
+    return registry, version
+
+
+def quality(model, comments) -> dict:
+    return evaluate([c.label for c in comments], model.predict_proba_many([c.text for c in comments]))
+
+
+# -- pure steps -----------------------------------------------------------------------------
+
+@pytest.mark.parametrize(
+    "counts, share, cap",
+    [
+        ({"a": 10, "b": 10}, 0.5, None),
+        ({"a": 100, "b": 10, "c": 10}, 0.5, 20),
+        ({"a": 100, "b": 30, "c": 30, "d": 30}, 0.25, 30),
+        ({"a": 100, "b": 30}, 0.25, 0),
+        ({"a": 50}, 0.5, 0),
+        ({"a": 50}, 1.0, None),
+        ({}, 0.5, None),
+    ],
+    ids=["balanced", "one-floods", "quarter-share", "share-below-one-over-sources", "single-source", "share-one-disables", "empty"],
+)
+def test_moderator_cap(counts, share, cap):
+    assert moderator_cap(counts, share) == cap
+    if cap is not None and counts:
+        kept = {m: min(n, cap) for m, n in counts.items()}
+        assert max(kept.values()) <= share * sum(kept.values()) + 1e-9
+
+
+def test_cap_moderators_keeps_the_honest_labels_whole():
+    rows = [LabelRow(f"{i}-0", f"c{i}", "t", 1, "flood") for i in range(90)]
+    rows += [LabelRow(f"{i}-1", f"h{i}", "t", 0, m) for i, m in enumerate(["ana", "bo"] * 10)]
+    kept, by_source = cap_moderators(rows, 0.4, random.Random(0))
+    assert by_source["ana"] == {"given": 10, "kept": 10} and by_source["bo"] == {"given": 10, "kept": 10}
+    assert by_source["flood"]["given"] == 90 and by_source["flood"]["kept"] == 13
+    assert len(kept) == 33
+
+
+def test_latest_label_of_an_id_wins_and_bad_records_are_skipped():
+    entries = [("1-0", {"id": "c1", "label": "spam", "text": "x", "moderator": "ana"}),
+               ("2-0", {"id": "c2", "label": "ham", "text": "y"}),
+               ("3-0", {"id": "c1", "label": "ham", "text": "x", "moderator": "bo"}),
+               ("4-0", {"id": "c3", "label": "eh", "text": "z"}),
+               ("5-0", {"id": "c4", "label": "ham", "text": "  "})]
+    rows = label_rows(entries)
+    assert [(r.id, r.y, r.moderator) for r in rows] == [("c2", 0, "(unattributed)"), ("c1", 0, "bo")]
+
+
+def test_holdout_assignment_is_stable_and_near_its_share():
+    ids = [f"comment-{i}" for i in range(4000)]
+    first = [in_holdout(i, 0.2) for i in ids]
+    assert first == [in_holdout(i, 0.2) for i in ids]
+    assert 0.17 < sum(first) / len(ids) < 0.23
+
+
+def test_gate_refuses_a_drop_beyond_either_tolerance():
+    fig = lambda auc, rec: {"roc_auc": auc, "recall_at_gate_fpr": rec}  # noqa: E731
+    ok, reasons = gate_decision({"holdout": {"active": fig(0.99, 0.9), "candidate": fig(0.988, 0.95)}},
+                                auc_tolerance=0.005, recall_tolerance=0.02)
+    assert ok and "within tolerance" in reasons[0]
+    ok, reasons = gate_decision({"holdout": {"active": fig(0.99, 0.9), "candidate": fig(0.99, 0.85)}},
+                                auc_tolerance=0.005, recall_tolerance=0.02)
+    assert not ok and "recall at the gate FPR" in reasons[0]
+
+
+# -- against a real server --------------------------------------------------------------------
+
+@pytest.mark.redis_server
+def test_retrain_promotes_a_better_model_and_records_why(redis_client):
+    r = redis_client
+    registry, first = bootstrap(r)
+    old = registry.load()
+    comments = stream()
+    feedback, test = comments[:2500], comments[2500:]
+    send_feedback(r, feedback)
+    report = retrain(r, KEYS, SETTINGS)
+
+    assert report["decision"] == "promoted", report["reasons"]
+    new_version = report["candidate"]
+    assert registry.active() == new_version and registry.history() == [new_version, first]
+    meta = registry.meta(new_version)
+    assert meta["source"] == "retrain" and meta["parent"] == first
+    assert meta["labels_cursor"] == report["labels"]["cursor_to"]
+    labels = report["labels"]
+    assert labels["drained"] == 2500 and labels["new"] == 2500
+    assert labels["holdout"] + labels["trained_new"] == 2500 and labels["replay_original"] > 0
+    assert set(report["gate"]["sets"]) == {"holdout+canary", "canary"}
+    assert last_reports(r, KEYS)[0] == json.loads(json.dumps(report))
+    kinds = [f[b"type"] for _i, f in r.xrange(KEYS.events)]
+    assert kinds == [b"promote", b"promote", b"retrain"]
+    event = json.loads(r.xrange(KEYS.events)[-1][1][b"data"])
+    assert event["decision"] == "promoted" and event["candidate"] == new_version
+
+    # Labels since the last promotion only: nothing new now.
+    again = retrain(r, KEYS, SETTINGS)
+    assert again["decision"] == "skipped" and "0 new labels" in again["reasons"][0]
+
+    new = registry.load()
+    wave = [c for c in test if c.kind == "wave"]
+    ham = [c for c in test if c.label == 0]
+    assert wave, "the invented stream has campaign comments after the feedback window"
+    # The campaign's words were never in the training set: after feedback its comments
+    # rank above more of the ham than before.
+    def above_ham(model):
+        h = model.predict_proba_many([c.text for c in ham])
+        w = model.predict_proba_many([c.text for c in wave])
+        return float((w[:, None] > h[None, :]).mean())
+    assert above_ham(new) > above_ham(old) + 0.2
+    assert quality(new, test)["roc_auc"] > quality(old, test)["roc_auc"]
+
+
+@pytest.mark.redis_server
+def test_a_flood_of_contrary_labels_is_capped_and_refused_by_the_gate(redis_client):
+    r = redis_client
+    registry, first = bootstrap(r)
+    comments = stream()
+    honest, flood, test = comments[:300], comments[300:2300], comments[2300:]
+    send_feedback(r, honest)
+    send_feedback(r, flood, moderators=("mallory",), flip=True)
+
+    # Without the cap the flood is most of the holdout too, so only the canary set catches it.
+    uncapped = retrain(r, KEYS, settings(max_moderator_share=1.0))
+    assert uncapped["decision"] == "refused"
+    assert uncapped["labels"]["moderators"]["mallory"] == {"given": 2000, "kept": 2000}
+    assert any(x.startswith("canary: ROC-AUC") and "below the active model" in x for x in uncapped["reasons"])
+    assert registry.active() == first
+
+    capped = retrain(r, KEYS, SETTINGS)
+    mods = capped["labels"]["moderators"]
+    honest_total = sum(v["kept"] for m, v in mods.items() if m != "mallory")
+    assert mods["mallory"]["given"] == 2000
+    assert mods["mallory"]["kept"] <= SETTINGS.max_moderator_share * (honest_total + mods["mallory"]["kept"])
+    assert any(x.startswith("poisoning guard: dropped") for x in capped["reasons"])
+    # Whatever the gate decided, the model now serving is not worse on unseen comments.
+    serving = registry.load()
+    assert quality(serving, test)["roc_auc"] >= quality(registry.load(first), test)["roc_auc"] - SETTINGS.auc_tolerance
+    assert capped["decision"] in ("refused", "promoted")
+
+
+@pytest.mark.redis_server
+def test_two_retrains_never_run_at_once(redis_server, redis_client, capsys):
+    bootstrap(redis_client)
+    send_feedback(redis_client, stream()[:100])
+    with RetrainLock(client=redis_client, keys=KEYS, ttl_s=30):
+        with pytest.raises(RetrainBusy, match="another retrain is running"):
+            retrain(redis_client, KEYS, SETTINGS)
+        assert main(["retrain", "--redis", redis_server.url]) == 2
+        assert "another retrain is running" in capsys.readouterr().err
+    assert redis_client.ttl("seawall:retrain:lock") == -2  # released by its holder
+    assert main(["retrain", "--redis", redis_server.url, "--json", "--no-rescore"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["decision"] in ("promoted", "refused") and report["labels"]["new"] == 100
+
+
+def test_lock_expires_if_its_holder_dies(fake_redis):
+    lock = RetrainLock(client=fake_redis, keys=KEYS, ttl_s=5)
+    lock.__enter__()
+    assert 0 < fake_redis.ttl("seawall:retrain:lock") <= 5
+    other = RetrainLock(client=fake_redis, keys=KEYS, ttl_s=5)
+    fake_redis.delete("seawall:retrain:lock")  # as when the TTL ran out
+    with other:
+        lock.__exit__(None, None, None)  # the first holder's late release must not free the new lock
+        assert fake_redis.get("seawall:retrain:lock").decode() == other.token
+
+
+def test_retrain_without_enough_labels_does_nothing(fake_redis):
+    registry, first = bootstrap(fake_redis)
+    send_feedback(fake_redis, stream()[:5])
+    report = retrain(fake_redis, KEYS, SETTINGS)
+    assert report["decision"] == "skipped" and "min_new_labels" in report["reasons"][0]
+    assert registry.active() == first
+
+
+def test_gate_refuses_on_a_holdout_too_small(fake_redis):
+    registry = Registry(client=fake_redis, keys=KEYS)
+    registry.promote(registry.push(model_bytes(0)))  # no canary set pushed
+    send_feedback(fake_redis, stream()[:60])
+    report = retrain(fake_redis, KEYS, settings(min_holdout=100))
+    assert report["decision"] == "refused" and "min_holdout" in report["reasons"][-1]
+
+
+@pytest.mark.redis_server
+def test_rescore_releases_held_comments_the_new_model_is_sure_about(redis_client):
+    r = redis_client
+    registry, _first = bootstrap(r)
+    held = [c for c in stream()[:400]]
+    for c in held:
+        r.hset(KEYS.text(c.id), mapping={"text": c.text, "site": c.site, "stream_id": "1-0", "action": "hold"})
+        r.zadd(KEYS.held, {c.id: 1.0})
+    r.zadd(KEYS.held, {"expired-text": 1.0})
+    model = registry.load()
+    decided = held[0].id
+    original = model.score_many
+
+    def score_while_a_moderator_decides(texts, top_k=5):
+        r.zrem(KEYS.held, decided)  # feedback lands while the batch is scored
+        return original(texts, top_k=top_k)
+
+    model.score_many = score_while_a_moderator_decides
+    counts = rescore_held(r, KEYS, model, batch=150)
+    assert counts["held"] == 401 and counts["no_text"] == 1
+    verdicts = [f for _i, f in r.xrange(KEYS.verdicts)]
+    assert len(verdicts) == counts["rescored"] == 399
+    assert all(v[b"rescored"] == b"1" and v[b"model"] == model.version.encode() for v in verdicts)
+    assert decided.encode() not in {v[b"id"] for v in verdicts}
+    still = {m.decode() for m in r.zrange(KEYS.held, 0, -1)}
+    released = {v[b"id"].decode() for v in verdicts if v[b"action"] != b"hold"}
+    assert counts["released"] == len(released) > 0
+    assert not released & still and "expired-text" in still
+    sample = next(iter(released))
+    assert r.hget(KEYS.text(sample), "model") == model.version.encode()
