@@ -1,7 +1,315 @@
-"""`seawall bench stream` (being built; see its issue)."""
+"""``seawall bench stream``: end-to-end comments/s, transport ceiling, latency, RSS, scaling.
+
+One run measures, against one Redis (its own ``redis-server`` on a free
+port unless ``--redis`` is given; each measurement uses its own key prefix):
+
+* **throughput**: ``--comments`` invented ~200-character comments are queued,
+  then one worker process with the real model drains them; the rate is the
+  count over the span between the first and the last verdict, both read from
+  the verdict entry ids (the server's clock), so start-up is not counted;
+* **ceiling**: the same harness with a no-op scorer (every comment scores 0,
+  no reasons), i.e. what the transport alone sustains; and their **ratio**;
+* **latency**: comments offered at a fixed ``--rate`` per second for
+  ``--seconds``; enqueue->verdict is the verdict's entry id minus the
+  comment's entry id (both server milliseconds), reported as p50 and p99;
+* **RSS**: the peak resident set of the real-model worker process;
+* **scaling**: the throughput run again with two worker processes.
+
+Worker processes are started with the ``spawn`` method and build their
+consumer with :func:`ops.serving.build_consumer`, as ``seawall serve`` does.
+"""
 from __future__ import annotations
+
+import multiprocessing
+import os
+import random
+import signal
+import tempfile
+import time
+
+import numpy as np
+
+from ops.bench import peak_rss_mb, report
+from ops.bench.servers import LocalRedis
+
+TARGETS = {"real_per_s": 20_000, "ratio_to_ceiling": 0.30, "latency_p99_ms": 50.0, "worker_peak_rss_mb": 150.0}
+
+# Invented vocabulary for the comments (our own scenario: a town's local-news and hobby pages).
+_HAM = [
+    "the new footbridge over the canal finally opened this morning and it looks sturdy",
+    "does anyone know whether the library extends its opening hours during the exam weeks",
+    "our allotment committee meets on thursday to plan the spring seed swap in the hall",
+    "thanks for the write-up, the photos of the harbour at dawn are really lovely",
+    "i disagree with the parking proposal because the side streets are already full",
+    "the bakery on mill road now sells rye loaves on saturdays if you get there early",
+    "my kids loved the science fair, the volunteers explained everything so patiently",
+    "could the council publish the bus timetable changes before the school term starts",
+    "we walked the coastal path last weekend and the new signposts help a lot",
+    "great match report, the second half comeback was the best football i have seen",
+    "the choir is looking for tenors, rehearsals are in the church annex on mondays",
+    "please keep dogs on a lead near the nesting area by the reservoir this month",
+]
+_SPAM = [
+    "earn 500 a day from home with this one simple trick, no experience needed",
+    "click here to claim your free prize before midnight http://prize-claim.invalid/now",
+    "cheap pills shipped overnight without prescription, order at pharma-direct.invalid",
+    "double your crypto in 24 hours guaranteed, message me for the secret wallet",
+    "hot offer: casino bonus 300 percent on first deposit, visit spin-palace.invalid",
+    "boost your site ranking to page one today, cheap backlinks at rank-rocket.invalid",
+    "you have been selected as a winner, send your bank details to collect the reward",
+    "lose 10 kilos in a week with miracle capsules, limited stock, call 555 0100 now",
+]
+
+
+def invented_comments(n: int, *, seed: int = 0, length: int = 200) -> list[tuple[str, int]]:
+    """``n`` invented comments of about ``length`` characters as (text, label), label 1 = spam.
+
+    Each one joins shuffled sentences of one kind (about one in five is spam)
+    and is cut at a word boundary, so lengths stay within a few characters of
+    ``length``.
+    """
+    rng = random.Random(f"bench-stream-{seed}")
+    out = []
+    for _ in range(n):
+        label = 1 if rng.random() < 0.2 else 0
+        pool = _SPAM if label else _HAM
+        parts = []
+        while sum(len(p) + 1 for p in parts) < length:
+            parts.append(rng.choice(pool))
+        text = " ".join(parts)
+        cut = text.rfind(" ", 0, length + 1)
+        out.append((text[: cut if cut > length // 2 else length], label))
+    return out
+
+
+def train_model(path: str, *, seed: int = 0):
+    """A small real model trained on invented comments, saved to ``path``."""
+    from model.classifier import EmbeddingClassifier
+
+    data = invented_comments(2000, seed=seed + 1)
+    texts = [t for t, _ in data]
+    labels = [y for _, y in data]
+    model = EmbeddingClassifier(seed=seed).fit(texts, labels)
+    model.save(path)
+    return model
+
+
+class NoopScorer:
+    """Scores every text 0 with no reasons: the transport ceiling."""
+
+    version = "noop"
+    created_at = 0.0
+
+    class thresholds:  # noqa: N801 - the contract's attribute name
+        hold = 0.5
+        reject = 0.9
+
+    def score_many(self, texts, *, top_k: int = 5):
+        return np.zeros(len(texts)), [[] for _ in texts]
+
+
+def _worker_main(overrides: dict, model_path: str, noop: bool, name: str, ready, results) -> None:
+    """One worker process (spawned): build the consumer like `seawall serve`, run until SIGTERM."""
+    from ops.config import load_config
+    from ops.serving import build_consumer
+    from worker.loader import FileModelSource, StaticModelSource
+
+    config = load_config(overrides, environ={})
+    source = StaticModelSource(model=NoopScorer()) if noop else FileModelSource(path=model_path)
+    consumer = build_consumer(config, source=source, consumer=name)
+    signal.signal(signal.SIGTERM, lambda *_: consumer.stop())
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    consumer.prepare()
+    ready.set()
+    consumer.run()
+    results.put({"name": name, "peak_rss_mb": peak_rss_mb()})
+
+
+class Harness:
+    """Starts workers against ``url`` under one key prefix and reads back what they wrote."""
+
+    def __init__(self, *, url: str, prefix: str, model_path: str, batch: int, block_ms: int):
+        import redis
+
+        self.url = url
+        self.prefix = prefix
+        self.model_path = model_path
+        self.overrides = {"redis_url": url, "keys.prefix": prefix, "worker.batch": batch, "worker.block_ms": block_ms,
+                          "worker.claim_every_s": 3600.0}
+        self.client = redis.Redis.from_url(url)
+        self.ctx = multiprocessing.get_context("spawn")
+        self.procs = []
+        self.results = self.ctx.Queue()
+
+    def key(self, name: str) -> str:
+        return self.prefix + name
+
+    def start(self, n: int, *, noop: bool) -> None:
+        events = []
+        for i in range(n):
+            ready = self.ctx.Event()
+            proc = self.ctx.Process(target=_worker_main, daemon=True,
+                                    args=(self.overrides, self.model_path, noop, f"bench-{i}", ready, self.results))
+            proc.start()
+            self.procs.append(proc)
+            events.append(ready)
+        for ready, proc in zip(events, self.procs):
+            while not ready.wait(0.1):
+                if not proc.is_alive():
+                    raise RuntimeError(f"bench: worker process exited with {proc.exitcode} before it was ready")
+
+    def stop(self) -> list[dict]:
+        for proc in self.procs:
+            os.kill(proc.pid, signal.SIGTERM)
+        out = [self.results.get(timeout=60) for _ in self.procs]
+        for proc in self.procs:
+            proc.join(timeout=30)
+        self.procs = []
+        return out
+
+    def enqueue(self, comments, start: int = 0) -> None:
+        pipe = self.client.pipeline(transaction=False)
+        stream = self.key("comments")
+        for i, (text, _label) in enumerate(comments, start):
+            pipe.xadd(stream, {"id": f"b{i}", "text": text, "site": f"site{i % 4}.example"})
+            if len(pipe) >= 1000:
+                pipe.execute()
+        pipe.execute()
+
+    def wait_verdicts(self, n: int, *, timeout_s: float) -> int:
+        deadline = time.monotonic() + timeout_s
+        stream = self.key("verdicts")
+        while time.monotonic() < deadline:
+            count = self.client.xlen(stream)
+            if count >= n:
+                return count
+            time.sleep(0.02)
+        raise RuntimeError(f"bench: only {self.client.xlen(stream)} of {n} verdicts after {timeout_s:.0f}s")
+
+    def verdict_ids(self):
+        """(verdict ms, comment ms) for every verdict, read in pages."""
+        out = []
+        last = "-"
+        stream = self.key("verdicts")
+        while True:
+            page = self.client.xrange(stream, min=last, count=5000)
+            if last != "-":
+                page = page[1:]
+            if not page:
+                return out
+            for vid, fields in page:
+                out.append((int(vid.split(b"-")[0]), int(fields[b"stream_id"].split(b"-")[0])))
+            last = page[-1][0].decode()
+
+    def cleanup(self) -> None:
+        keys = list(self.client.scan_iter(match=self.prefix + "*", count=1000))
+        for i in range(0, len(keys), 1000):
+            self.client.unlink(*keys[i : i + 1000])
+        self.client.close()
+
+
+def _throughput(url, prefix, model_path, comments, *, processes, noop, batch, block_ms) -> dict:
+    h = Harness(url=url, prefix=prefix, model_path=model_path, batch=batch, block_ms=block_ms)
+    try:
+        h.enqueue(comments)
+        h.start(processes, noop=noop)
+        h.wait_verdicts(len(comments), timeout_s=600)
+        stats = h.stop()
+        ids = h.verdict_ids()
+        first, last = ids[0][0], ids[-1][0]
+        span_s = max(last - first, 1) / 1000.0
+        return {"per_s": (len(ids) - 1) / span_s, "verdicts": len(ids),
+                "peak_rss_mb": max(s["peak_rss_mb"] for s in stats)}
+    finally:
+        if h.procs:
+            h.stop()
+        h.cleanup()
+
+
+def _latency(url, prefix, model_path, comments, *, rate, seconds, batch, block_ms) -> dict:
+    h = Harness(url=url, prefix=prefix, model_path=model_path, batch=batch, block_ms=block_ms)
+    try:
+        h.start(1, noop=False)
+        tick_s = 0.005
+        per_tick = max(1, round(rate * tick_s))
+        total = int(rate * seconds)
+        stream = h.key("comments")
+        sent = 0
+        t0 = time.perf_counter()
+        while sent < total:
+            due = t0 + (sent // per_tick) * tick_s
+            pause = due - time.perf_counter()
+            if pause > 0:
+                time.sleep(pause)
+            pipe = h.client.pipeline(transaction=False)
+            for i in range(sent, min(total, sent + per_tick)):
+                text, _ = comments[i % len(comments)]
+                pipe.xadd(stream, {"id": f"l{i}", "text": text, "site": "site0.example"})
+            pipe.execute()
+            sent = min(total, sent + per_tick)
+        offered = total / (time.perf_counter() - t0)
+        h.wait_verdicts(total, timeout_s=120)
+        h.stop()
+        lat = np.array([v - c for v, c in h.verdict_ids()], dtype=float)
+        return {"offered_per_s": offered, "p50_ms": float(np.percentile(lat, 50)),
+                "p99_ms": float(np.percentile(lat, 99)), "max_ms": float(lat.max()), "n": int(lat.size)}
+    finally:
+        if h.procs:
+            h.stop()
+        h.cleanup()
+
+
+def run(args) -> int:
+    comments = invented_comments(args.comments, seed=3)
+    mean_len = float(np.mean([len(t) for t, _ in comments]))
+    with tempfile.TemporaryDirectory(prefix="seawall-bench-") as tmp:
+        model_path = os.path.join(tmp, "model.bin")
+        model = train_model(model_path)
+        if args.redis:
+            figures = _measure(args.redis, model_path, comments, args)
+        else:
+            with LocalRedis() as url:
+                figures = _measure(url, model_path, comments, args)
+    rows = {
+        "comments": len(comments),
+        "mean_comment_chars": mean_len,
+        "model_version": model.version,
+        "batch": args.batch,
+        **figures,
+        **{f"target_{k}": v for k, v in TARGETS.items()},
+    }
+    report("seawall bench stream (one run; ratios against the no-op scorer in the same run)", rows, as_json=args.json)
+    return 0
+
+
+def _measure(url: str, model_path: str, comments, args) -> dict:
+    tag = f"seawall-bench-{os.getpid()}"
+    kw = {"batch": args.batch, "block_ms": args.block_ms}
+    real = _throughput(url, f"{tag}-real:", model_path, comments, processes=1, noop=False, **kw)
+    ceiling = _throughput(url, f"{tag}-noop:", model_path, comments, processes=1, noop=True, **kw)
+    two = _throughput(url, f"{tag}-two:", model_path, comments, processes=2, noop=False, **kw)
+    lat = _latency(url, f"{tag}-lat:", model_path, comments, rate=args.rate, seconds=args.seconds, **kw)
+    return {
+        "real_per_s": real["per_s"],
+        "ceiling_per_s": ceiling["per_s"],
+        "ratio_to_ceiling": real["per_s"] / ceiling["per_s"],
+        "two_processes_per_s": two["per_s"],
+        "scaling_1_to_2": two["per_s"] / real["per_s"],
+        "latency_offered_per_s": lat["offered_per_s"],
+        "latency_p50_ms": lat["p50_ms"],
+        "latency_p99_ms": lat["p99_ms"],
+        "latency_max_ms": lat["max_ms"],
+        "worker_peak_rss_mb": real["peak_rss_mb"],
+    }
 
 
 def register(sub) -> None:
-    parser = sub.add_parser("stream", help="(being built)")
-    parser.set_defaults(func=lambda args: print("seawall bench stream: not built yet") or 1)
+    parser = sub.add_parser("stream", help="end-to-end comments/s, transport ceiling, latency, RSS, 1->2 processes")
+    parser.add_argument("--redis", metavar="URL", help="Redis to use (default: start a redis-server on a free port)")
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+    parser.add_argument("--comments", type=int, default=50_000, help="comments per throughput run")
+    parser.add_argument("--batch", type=int, default=256, help="worker batch size")
+    parser.add_argument("--block-ms", type=int, default=100, help="worker XREADGROUP block time")
+    parser.add_argument("--rate", type=float, default=2000.0, help="offered comments/s for the latency run")
+    parser.add_argument("--seconds", type=float, default=5.0, help="length of the latency run")
+    parser.set_defaults(func=run)
