@@ -258,10 +258,11 @@ class PrometheusObserver:
     def on_feedback(self, label) -> None:
         self.metrics.feedback.labels(bounded(label, FEEDBACK_LABELS)).inc()
 
-    def on_retrain(self, outcome, ts: float | None = None) -> None:
-        """One retrain run finished with ``outcome``; it becomes the last outcome."""
+    def on_retrain(self, outcome, ts: float | None = None, *, count: bool = True) -> None:
+        """A retrain finished with ``outcome``; it becomes the last outcome (``count=False``: seen before start-up)."""
         outcome = bounded(outcome, RETRAIN_OUTCOMES)
-        self.metrics.retrains.labels(outcome).inc()
+        if count:
+            self.metrics.retrains.labels(outcome).inc()
         for o in RETRAIN_OUTCOMES + (OTHER,):
             self.metrics.retrain_last.labels(o).set(1 if o == outcome else 0)
         self.metrics.retrain_last_ts.set(ts if ts is not None else self.clock())
