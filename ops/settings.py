@@ -97,6 +97,11 @@ class MetricsSettings:
     flagged_window_s: float = setting(300.0, "sliding window of the per-site flagged-ratio gauge, in seconds")
     poll_s: float = setting(5.0, "how often the ops loop runs the wave detector and refreshes shared gauges (waves, campaigns, retrains) from Redis")
 
+    def __post_init__(self):
+        _check_bounds(self, _METRICS_BOUNDS)
+        if "other" in self.sites:
+            raise ValueError("MetricsSettings: sites must not contain the reserved name 'other'")
+
 
 @dataclass(frozen=True, kw_only=True)
 class WaveSettings:
@@ -118,3 +123,39 @@ class WaveSettings:
     campaign_window_s: int = setting(600, "window T in seconds; LSH buckets expire after it")
     campaign_min_words: int = setting(6, "comments with fewer words are not checked for campaigns")
     campaign_hold: bool = setting(True, "hold members of an active campaign even when the model would publish them")
+
+    def __post_init__(self):
+        _check_bounds(self, _WAVE_BOUNDS)
+        if self.campaign_perm % self.campaign_bands:
+            raise ValueError(f"WaveSettings: campaign_bands ({self.campaign_bands}) must divide campaign_perm ({self.campaign_perm})")
+
+
+# (field, lowest, highest) of the numeric metrics and wave settings; checked once at start-up.
+_METRICS_BOUNDS = (
+    ("port", 0, 65535),
+    ("flagged_window_s", 1.0, 86400.0),
+    ("poll_s", 0.1, 3600.0),
+)
+_WAVE_BOUNDS = (
+    ("cusum_k", 0.0, 10.0),
+    ("cusum_h", 0.1, 100.0),
+    ("baseline_alpha", 0.001, 1.0),
+    ("baseline_minutes", 1, 10000),
+    ("min_rate", 0.0001, 0.5),
+    ("min_comments", 1, 10**9),
+    ("end_quiet_minutes", 1, 10000),
+    ("campaign_shingle", 1, 16),
+    ("campaign_perm", 1, 4096),
+    ("campaign_bands", 1, 4096),
+    ("campaign_min_size", 2, 10**9),
+    ("campaign_min_authors", 1, 10**9),
+    ("campaign_window_s", 1, 7 * 86400),
+    ("campaign_min_words", 1, 10000),
+)
+
+
+def _check_bounds(section, bounds) -> None:
+    for name, low, high in bounds:
+        value = getattr(section, name)
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not low <= value <= high:
+            raise ValueError(f"{type(section).__name__}: {name} must be in [{low}, {high}], got {value!r}")
