@@ -51,9 +51,9 @@ def test_models_commands_bootstrap_list_show_pull_promote_rollback(redis_server,
     pushed = json_out(capsys)
     a = pushed["version"]
     assert pushed["canary"] > 0 and pushed["replay"] > 0
-    assert main(["models", "promote", a, "--redis", url, "--json", "--no-rescore"]) == 0
+    assert main(["models", "promote", a, "--redis", url, "--json", "--rescore", "off"]) == 0
     first_promote = json_out(capsys)
-    assert (first_promote["version"], first_promote["previous"], first_promote["rescore_job"]) == (a, None, None)
+    assert (first_promote["version"], first_promote["previous"]) == (a, None) and "rescore_job" not in first_promote
 
     assert main(["models", "push", str(second), "--redis", url, "--json"]) == 0
     b = json_out(capsys)["version"]
@@ -77,8 +77,12 @@ def test_models_commands_bootstrap_list_show_pull_promote_rollback(redis_server,
     assert out.read_bytes() == model_bytes(1)
     assert EmbeddingClassifier.load(out).version == b
 
-    assert main(["models", "rollback", "--redis", url, "--json", "--no-rescore"]) == 0
-    assert json_out(capsys)["version"] == a
+    held = redis_server.client()
+    held.hset(KEYS.text("c1"), mapping={"text": "lovely allotment photos", "site": "allotments"})
+    held.zadd(KEYS.held, {"c1": 1.0})
+    assert main(["models", "rollback", "--redis", url, "--json", "--rescore", "now"]) == 0
+    rolled = json_out(capsys)
+    assert rolled["version"] == a and rolled["rescore"]["rescored"] == 1 and rolled["rescore"]["model"] == a
     registry = Registry(client=redis_server.client(), keys=KEYS)
     assert registry.active() == a and registry.history() == [a]
     events = [f[b"type"] for _i, f in redis_server.client().xrange(KEYS.events)]

@@ -189,7 +189,7 @@ def test_two_retrains_never_run_at_once(redis_server, redis_client, capsys):
         assert main(["retrain", "--redis", redis_server.url]) == 2
         assert "another retrain is running" in capsys.readouterr().err
     assert redis_client.ttl("seawall:retrain:lock") == -2  # released by its holder
-    assert main(["retrain", "--redis", redis_server.url, "--json", "--no-rescore"]) == 0
+    assert main(["retrain", "--redis", redis_server.url, "--json", "--rescore", "off"]) == 0
     report = json.loads(capsys.readouterr().out)
     assert report["decision"] in ("promoted", "refused") and report["labels"]["new"] == 100
 

@@ -5,7 +5,7 @@ A first model is bootstrapped with ``push`` then ``promote``.  ``push
 training data and, unless ``--canary`` names a file, carves the fixed canary
 set the retrain gate evaluates on from it.  ``promote`` and ``rollback``
 switch the active model atomically, tell every worker over pub/sub, and
-queue the hold-queue re-score (``--no-rescore`` skips it).
+queue the hold-queue re-score (``--rescore now`` runs it in-process, ``off`` skips it).
 """
 from __future__ import annotations
 
@@ -41,14 +41,37 @@ def register(sub) -> None:
     p.set_defaults(func=run_pull)
     p = inner.add_parser("promote", help="make VERSION the active model on every worker")
     p.add_argument("version")
-    p.add_argument("--no-rescore", action="store_true", help="do not queue the hold-queue re-score")
+    add_rescore_arg(p)
     p.set_defaults(func=run_promote)
     p = inner.add_parser("rollback", help="make the previously promoted version active again")
-    p.add_argument("--no-rescore", action="store_true", help="do not queue the hold-queue re-score")
+    add_rescore_arg(p)
     p.set_defaults(func=run_rollback)
     for action in inner.choices.values():
         action.add_argument("--json", action="store_true", help="print the result as JSON")
         add_connection_args(action)
+
+
+def add_rescore_arg(parser) -> None:
+    parser.add_argument("--rescore", choices=("queue", "now", "off"), default="queue",
+                        help="re-score the hold queue with the new model: as an RQ job (default), "
+                             "now in this process (no RQ worker needed), or not at all")
+
+
+def rescore_after_switch(mode: str, client, config, version: str) -> dict:
+    """Run or queue the hold-queue re-score after the active model changed."""
+    if mode == "off":
+        return {}
+    if mode == "queue":
+        from ops.jobs import enqueue_rescore
+
+        return {"rescore_job": enqueue_rescore(client, config, version).id}
+    from ops.registry import Registry
+    from ops.rescore import rescore_held
+
+    model = Registry(client=client, keys=config.keys).load(version)
+    return {"rescore": rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
+                                    site_overrides=config.worker.site_thresholds,
+                                    verdicts_maxlen=config.worker.verdicts_maxlen)}
 
 
 def _registry(args):
@@ -132,15 +155,13 @@ def run_pull(args) -> int:
 
 
 def _after_switch(args, config, client, result: dict, kind: str) -> int:
-    job = None
-    if not args.no_rescore:
-        from ops.jobs import enqueue_rescore
-
-        job = enqueue_rescore(client, config, result["version"]).id
-    result = dict(result, rescore_job=job)
+    result = dict(result, **rescore_after_switch(args.rescore, client, config, result["version"]))
     text = f"models {kind}: {result['version']} is active (was {result['previous'] or 'none'})"
-    if job:
+    if "rescore_job" in result:
         text += f"; hold-queue re-score queued on RQ queue {config.retrain.queue!r}"
+    if "rescore" in result:
+        done = result["rescore"]
+        text += f"; re-scored {done['rescored']} held comments, {done['released']} left the hold queue"
     _print(args, result, text)
     return 0
 

@@ -9,25 +9,27 @@ from __future__ import annotations
 
 import json
 
+from ops.commands.models import add_rescore_arg, rescore_after_switch
 from ops.connection import add_connection_args, config_from_args, connect
 
 
 def register(sub) -> None:
     parser = sub.add_parser("retrain", help="run the gated retrain now: feedback -> candidate -> gate -> promote")
     parser.add_argument("--json", action="store_true", help="print the full report as JSON")
-    parser.add_argument("--no-rescore", action="store_true", help="do not queue the hold-queue re-score")
+    add_rescore_arg(parser)
     add_connection_args(parser)
     parser.set_defaults(func=run)
 
 
 def run(args) -> int:
-    from ops.jobs import enqueue_rescore
     from ops.retrain import retrain
 
     config = config_from_args(args)
     client = connect(config)
-    on_promoted = None if args.no_rescore else (lambda version: enqueue_rescore(client, config, version))
-    report = retrain(client, config.keys, config.retrain, on_promoted=on_promoted)
+    after = {}
+    report = retrain(client, config.keys, config.retrain,
+                     on_promoted=lambda version: after.update(rescore_after_switch(args.rescore, client, config, version)))
+    report.update(after)
     if args.json:
         print(json.dumps(report, sort_keys=True))
         return 0
