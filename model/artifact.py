@@ -6,7 +6,7 @@ Layout (format ``seawall-model``, version 1):
   thresholds, training summary, metrics, creation time, ``sha256``);
 - ``row_delta``: the stored bucket ids, sorted and delta-encoded (first id,
   then gaps), in the narrowest unsigned dtype that holds the largest gap;
-- ``table_q`` (k, d) ``int8``, ``table_scale`` (k / block,) ``float32``,
+- ``table_q`` (k, d) ``int8``, ``table_scale`` (k / block,) ``float16``,
   ``table_zero`` (k / block,) ``int8``: affine int8 quantization of the
   embedding rows, ``x ≈ scale * (q - zero)`` (Jacob et al. 2018), with the
   range of each row (or block of rows) widened to contain 0 so that 0 is
@@ -24,6 +24,7 @@ import hashlib
 import io
 import json
 import zipfile
+import zlib
 
 import numpy as np
 
@@ -47,14 +48,15 @@ def quantize(x: np.ndarray, block: int = 1) -> tuple[np.ndarray, np.ndarray, np.
     Returns
     -------
     q : np.ndarray (k, d) int8
-    scale : np.ndarray (ceil(k / block),) float32, > 0
+    scale : np.ndarray (ceil(k / block),) float16, > 0
     zero : np.ndarray (ceil(k / block),) int8
 
     Notes
     -----
     For a block with used range ``[lo, hi]`` widened to contain 0,
-    ``scale = (hi - lo) / 255`` and ``zero = round(-128 - lo / scale)``; every
-    value then round-trips within ``scale / 2`` (Jacob et al. 2018, eq. 1).
+    ``scale = (hi - lo) / 255`` (rounded up to float16) and ``zero =
+    round(-128 - lo / scale)``; every value then round-trips within
+    ``scale / 2`` of the stored scale (Jacob et al. 2018, eq. 1).
 
     Examples
     --------
@@ -72,8 +74,14 @@ def quantize(x: np.ndarray, block: int = 1) -> tuple[np.ndarray, np.ndarray, np.
     blocks = padded.reshape(nb, block * d) if k else np.zeros((0, max(d, 1)), np.float32)
     lo = np.minimum(blocks.min(axis=1, initial=0.0), 0.0).astype(np.float64)
     hi = np.maximum(blocks.max(axis=1, initial=0.0), 0.0).astype(np.float64)
-    scale = ((hi - lo) / 255.0).astype(np.float32)
-    scale[scale <= 0] = 1.0
+    exact = (hi - lo) / 255.0
+    exact[exact <= 0] = 1.0
+    # Stored as float16 (half the bytes, and the scales are most of the file),
+    # rounded up so that the block's whole range still fits in 256 steps.
+    scale = exact.astype(np.float16)
+    low = scale.astype(np.float64) < exact
+    scale[low] = np.nextafter(scale[low], np.float16(np.inf))
+    scale = np.maximum(scale, np.float16(2.0**-24))
     s64 = scale.astype(np.float64)
     zero = np.clip(np.round(-128.0 - lo / s64), -128, 127)
     per_row_scale = np.repeat(s64, block)[:k, None]
@@ -148,6 +156,8 @@ def loads(data: bytes) -> tuple[dict[str, np.ndarray], dict]:
         object array, lacks a manifest, has another format or version, or
         whose sha256 does not match its contents.
     """
+    if not data.startswith(b"PK\x03\x04"):
+        raise ArtifactError("load model: not a model file (no .npz archive header); check the path or retrain")
     try:
         with np.load(io.BytesIO(data), allow_pickle=False) as npz:
             arrays = {name: npz[name] for name in npz.files}
@@ -155,7 +165,7 @@ def loads(data: bytes) -> tuple[dict[str, np.ndarray], dict]:
         if "pickle" in str(exc).lower():
             raise ArtifactError("load model: the file holds a pickled (object) array; refusing to unpickle it") from None
         raise ArtifactError(f"load model: not a readable model file ({exc}); retrain or copy it again") from None
-    except (zipfile.BadZipFile, EOFError, OSError, KeyError, zipfile.LargeZipFile) as exc:
+    except (zipfile.BadZipFile, zlib.error, EOFError, OSError, KeyError, zipfile.LargeZipFile) as exc:
         raise ArtifactError(
             f"load model: truncated or not a model file ({type(exc).__name__}); retrain or copy it again"
         ) from None

@@ -500,17 +500,21 @@ class EmbeddingClassifier:
     # --- artifact -------------------------------------------------------------
 
     def _arrays_and_manifest(self) -> tuple[dict, dict]:
-        index, table, _, head = self._scoring_tables()
-        rows = np.flatnonzero(index)
-        values = table[1:]
-        q, scale, zero = artifact.quantize(values, self.quant_block)
-        arrays = {
-            "row_delta": artifact.encode_rows(rows),
-            "table_q": q,
-            "table_scale": scale,
-            "table_zero": zero,
-            **{f"head_{k}": v.astype(np.float32) for k, v in head.items()},
-        }
+        if getattr(self, "_weights", None) is None:
+            # Loaded and not trained since: keep the stored arrays bit for bit
+            # (re-quantizing dequantized values need not give the same bytes).
+            arrays = self._stored_arrays
+        else:
+            index, table, _, head = self._scoring_tables()
+            rows = np.flatnonzero(index)
+            q, scale, zero = artifact.quantize(table[1:], self.quant_block)
+            arrays = {
+                "row_delta": artifact.encode_rows(rows),
+                "table_q": q,
+                "table_scale": scale,
+                "table_zero": zero,
+                **{f"head_{k}": v.astype(np.float32) for k, v in head.items()},
+            }
         manifest = {
             "created_at": self.created_at,
             "params": self.get_params(),
@@ -561,6 +565,7 @@ class EmbeddingClassifier:
                 raise
             raise ArtifactError(f"load model: the manifest is incomplete or invalid ({exc}); retrain the model") from None
         clf._stored = (rows, values, head)
+        clf._stored_arrays = arrays
         clf._weights = None
         clf._opt = None
         clf._rng = None
@@ -594,6 +599,18 @@ class EmbeddingClassifier:
         except OSError as exc:
             raise ArtifactError(f"load model: cannot read {path}: {exc.strerror or exc}") from None
         return cls.from_bytes(data)
+
+    @property
+    def thresholds(self) -> Thresholds:
+        """Hold and reject thresholds; stored in the artifact, assignable to override."""
+        return self._thresholds
+
+    @thresholds.setter
+    def thresholds(self, value: Thresholds) -> None:
+        if not isinstance(value, Thresholds):
+            raise TypeError(f"thresholds must be a Thresholds, got {type(value).__name__}")
+        self._thresholds = value
+        self._manifest = None
 
     @property
     def manifest(self) -> dict:
