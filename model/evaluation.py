@@ -17,8 +17,8 @@ from model.errors import DataError
 def recall_at_fpr(labels: np.ndarray, scores: np.ndarray, fpr: float) -> float:
     """Highest true-positive rate among thresholds whose false-positive rate is <= ``fpr``.
 
-    Uses every threshold of ``sklearn.metrics.roc_curve`` (``drop_intermediate=False``),
-    because dropping collinear points can hide the best point under ``fpr``.
+    Read off ``sklearn.metrics.roc_curve``; a comment is flagged when its score
+    is >= the threshold, so tied scores are flagged together.
     """
     fprs, tprs, _ = metrics.roc_curve(labels, scores, drop_intermediate=False)
     ok = fprs <= fpr + 1e-12
