@@ -469,12 +469,26 @@ class EmbeddingClassifier:
         """
         self._require_fitted("score")
         texts = self._texts(texts, "score")
-        bag = self._bag(self._features(texts))
+        return self.score_features(self._features(texts), top_k=top_k)
+
+    def score_features(self, feature_lists: list[list[str]], *, top_k: int = 5):
+        """:meth:`score_many` for comments already cut into feature tokens.
+
+        Lets a caller (or a test) score a comment with some tokens removed.
+        """
+        self._require_fitted("score")
+        bag = self._bag(feature_lists)
         logits, contrib = self._logits_and_contributions(bag, top_k > 0)
         scores = network.sigmoid(logits)
         if top_k <= 0:
-            return scores, [[] for _ in texts]
+            return scores, [[] for _ in range(bag.n)]
         return scores, top_contributions(bag.doc, contrib, bag.first, bag.tokens, bag.n, top_k)
+
+    def logits_many(self, texts: Iterable[str]) -> np.ndarray:
+        """Log-odds of spam per text (the sigmoid's input), shape (n,)."""
+        self._require_fitted("score")
+        bag = self._bag(self._features(self._texts(texts, "score")))
+        return self._logits_and_contributions(bag, False)[0]
 
     def predict_proba_many(self, texts: Iterable[str]) -> np.ndarray:
         """Spam probability of each text, shape (n,)."""
