@@ -100,9 +100,10 @@ class FileModelSource:
             return None
         try:
             model = self._load()
-        except (ArtifactError, OSError, ValueError) as exc:
+            model.thresholds.hold, model.thresholds.reject, model.version  # what the worker needs of it
+        except Exception as exc:  # any failure to load a NEW model must leave the old one serving
             self._refused = signature
-            log.error("model reload: refused %s (%s); still serving %s", self.path, exc,
+            log.error("model reload: refused %s (%s: %s); still serving %s", self.path, type(exc).__name__, exc,
                       getattr(self._model, "version", "?"))
             return None
         self._model, self._signature, self._refused = model, signature, None

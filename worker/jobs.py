@@ -1,0 +1,159 @@
+"""RQ jobs, for apps that already run RQ: score a list of comments, get verdicts back.
+
+Enqueue :func:`score_batch` by its dotted name with plain values only::
+
+    Queue("seawall", connection=Redis()).enqueue("worker.jobs.score_batch", [{"id": "c1", "text": "..."}])
+
+The job's return value is one dict per comment, in order, routed exactly like
+the stream worker (the model's thresholds, then the per-site overrides).
+
+Where the model comes from: the **rq worker's environment**.
+``SEAWALL_MODEL_PATH`` names the model file; it is read once per process,
+the model is cached, and the file is watched like ``seawall serve --model``
+(a changed file is reloaded at most every ``RELOAD_POLL_S`` seconds, a
+corrupt one refused).  ``SEAWALL_WORKER_SITE_THRESHOLDS`` (JSON, the same
+setting as the stream worker's) adds per-site overrides.  An app embedding
+Seawall differently (e.g. the registry) installs its own source once per
+process with :func:`set_model_source`.  RQ's default worker forks a work
+horse per job, so each job loads the model once; run
+``rq worker --worker-class rq.worker.SimpleWorker`` to keep it loaded
+between jobs.
+
+Apart from the ``SEAWALL_*`` variables above, nothing here reads config:
+the job has no access to the operator's Config.
+"""
+from __future__ import annotations
+
+import json
+import os
+import threading
+import time
+from collections.abc import Mapping, Sequence
+
+from model.errors import SeawallError
+from worker.consumer import format_reasons
+from worker.loader import FileModelSource, ModelSource
+from worker.routing import Router
+from worker.settings import WorkerSettings
+from worker.streams import Entry
+from worker.validation import Comment, Limits, validate
+
+MODEL_PATH_ENV = "SEAWALL_MODEL_PATH"
+SITE_THRESHOLDS_ENV = "SEAWALL_WORKER_SITE_THRESHOLDS"
+RELOAD_POLL_S = 2.0
+PLAIN_VALUES = (str, int, float)
+MAX_COMMENTS = 10_000
+
+
+class JobArgumentError(SeawallError, TypeError):
+    """A job was enqueued with something other than a list of plain comment dicts."""
+
+
+class _Process:
+    """The per-process model state behind the jobs (one per rq work horse)."""
+
+    def __init__(self):
+        self.lock = threading.Lock()
+        self.source: ModelSource | None = None
+        self.overrides: dict | None = None
+        self.next_poll = 0.0
+        self.router = None
+        self.model = None
+
+
+_PROCESS = _Process()
+
+
+def set_model_source(source: ModelSource, *, site_thresholds: Mapping | None = None) -> None:
+    """Use ``source`` for this process's jobs instead of ``SEAWALL_MODEL_PATH``."""
+    with _PROCESS.lock:
+        _PROCESS.source = source
+        _PROCESS.overrides = dict(site_thresholds or {})
+        _PROCESS.model = None
+
+
+def _current():
+    state = _PROCESS
+    with state.lock:
+        if state.source is None:
+            path = os.environ.get(MODEL_PATH_ENV, "")
+            if not path:
+                raise SeawallError(
+                    f"score_batch: no model; set {MODEL_PATH_ENV} to the model file in the rq worker's environment"
+                )
+            state.source = FileModelSource(path=path)
+        if state.overrides is None:
+            raw = os.environ.get(SITE_THRESHOLDS_ENV, "")
+            try:
+                state.overrides = json.loads(raw) if raw.strip() else {}
+            except ValueError:
+                raise SeawallError(f"score_batch: {SITE_THRESHOLDS_ENV} is not valid JSON; fix the worker's environment") from None
+        now = time.monotonic()
+        model = state.model
+        if model is None:
+            model = state.source.current()
+        elif now >= state.next_poll:
+            model = state.source.poll() or model
+        if model is not state.model:
+            state.router = Router(thresholds=model.thresholds, site_overrides=state.overrides)
+            state.model = model
+            state.next_poll = now + RELOAD_POLL_S
+        return state.model, state.router
+
+
+def _check_plain(comments) -> list[dict]:
+    if isinstance(comments, (str, bytes, Mapping)) or not isinstance(comments, Sequence):
+        raise JobArgumentError(
+            f"score_batch: comments must be a list of dicts like {{'id': ..., 'text': ...}}, got {type(comments).__name__}"
+        )
+    if len(comments) > MAX_COMMENTS:
+        raise JobArgumentError(f"score_batch: at most {MAX_COMMENTS} comments per job, got {len(comments)}; split the batch")
+    for i, item in enumerate(comments):
+        if type(item) is not dict:
+            raise JobArgumentError(f"score_batch: comments[{i}] is a {type(item).__name__}, expected a plain dict")
+        for key, value in item.items():
+            if type(key) is not str:
+                raise JobArgumentError(f"score_batch: comments[{i}] has a non-string key {key!r}")
+            if value is not None and (type(value) not in PLAIN_VALUES):
+                raise JobArgumentError(
+                    f"score_batch: comments[{i}][{key!r}] is a {type(value).__name__}; only str, int, float or None"
+                )
+    return list(comments)
+
+
+def score_batch(comments, *, top_k: int = 5) -> list[dict]:
+    """Score ``comments`` (a list of ``{"id", "text", "site"?, "author"?, "ts"?}``) in one model call.
+
+    Returns, in order, ``{"id", "score", "action", "model", "reasons", "site"}``
+    per comment (score a float to 4 decimals, reasons a list of
+    ``[token, contribution]``), or ``{"id", "error", "detail"}`` for a comment
+    the stream worker would dead-letter (same reasons: ``missing_text``,
+    ``empty_text``, ``text_too_large``...).  Raises :class:`JobArgumentError`
+    on anything but plain values.
+    """
+    items = _check_plain(comments)
+    if isinstance(top_k, bool) or not isinstance(top_k, int) or top_k < 0:
+        raise JobArgumentError(f"score_batch: top_k must be an integer >= 0, got {top_k!r}")
+    model, router = _current()
+    limits = Limits.from_settings(WorkerSettings())
+    checked = []
+    for i, item in enumerate(items):
+        pairs = tuple((k.encode(), str(v).encode()) for k, v in item.items() if v is not None)
+        checked.append(validate(Entry(f"rq-{i}".encode(), pairs), limits))
+    good = [c for c in checked if isinstance(c, Comment)]
+    verdicts: dict[int, dict] = {}
+    if good:
+        scores, reasons = model.score_many([c.text for c in good], top_k=top_k)
+        scores = [float(s) for s in scores]
+        actions = router.route_many(scores, [c.site for c in good])
+        for c, s, a, r in zip(good, scores, actions, reasons):
+            verdicts[id(c)] = {"id": c.id, "score": round(s, 4), "action": a, "model": str(model.version),
+                               "reasons": json.loads(format_reasons(r)), "site": c.site}
+    out = []
+    for item, c in zip(items, checked):
+        if isinstance(c, Comment):
+            out.append(verdicts[id(c)])
+        else:
+            out.append({"id": None if item.get("id") is None else str(item["id"]), "error": c.reason,
+                        "detail": c.detail})
+    return out
