@@ -159,8 +159,10 @@ def test_stalled_worker_is_reclaimed_and_both_finishing_write_no_duplicates(redi
     (model, _version), _ = model_files
     settings = {"batch": 200, "claim_idle_ms": 400, "claim_every_s": 0.1}
     slow = Worker(redis_server.url, model, "slow", tmp_path, **settings)
-    workers.append(slow)
-    wait_for(lambda: client.xlen(KEYS.verdicts) >= 200, what="the first verdicts")
+    fast = Worker(redis_server.url, model, "fast", tmp_path, **settings)
+    workers += [slow, fast]
+    wait_for(lambda: client.exists(KEYS.comments) and client.xinfo_groups(KEYS.comments) and pending_count(client, "slow"),
+             what="the slow worker's first batch")
     for _attempt in range(50):                                    # stall it while it holds a batch
         slow.signal(signal.SIGSTOP)
         held = pending_count(client, "slow")
@@ -169,8 +171,6 @@ def test_stalled_worker_is_reclaimed_and_both_finishing_write_no_duplicates(redi
         slow.signal(signal.SIGCONT)
         time.sleep(0.005)
     assert held, "could not stop the slow worker while it held a batch"
-    fast = Worker(redis_server.url, model, "fast", tmp_path, **settings)
-    workers.append(fast)
     wait_for(lambda: client.xlen(KEYS.verdicts) >= len(good) and pending_count(client) == 0, timeout=60,
              what="the fast worker to finish everything, the stalled batch included")
     slow.signal(signal.SIGCONT)                                   # the slow one wakes and commits its stale batch
