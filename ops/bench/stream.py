@@ -122,7 +122,23 @@ def _worker_main(overrides: dict, model_path: str, noop: bool, name: str, ready,
     consumer.prepare()
     ready.set()
     consumer.run()
-    results.put({"name": name, "peak_rss_mb": peak_rss_mb()})
+    results.put({"name": name, "peak_rss_mb": own_peak_rss_mb()})
+
+
+def own_peak_rss_mb() -> float:
+    """This process's peak RSS since it started its program (VmHWM), in MiB.
+
+    ``ru_maxrss`` would not do in a spawned child: Linux carries the peak of
+    the forked image (the whole bench process) over the exec.
+    """
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0
+    except OSError:
+        pass
+    return peak_rss_mb()
 
 
 class Harness:
