@@ -212,16 +212,31 @@ class NaNScorer(WordScorer):
 
 
 def test_out_of_range_scores_are_dead_lettered_not_published(client):
-    send(client, 2, id="c{i}")
+    send(client, 2, id="c{i}", text="note {i}")
     result = make(client, model=NaNScorer()).step()
     assert result.written == 1 and result.dead == {"score_error": 1}
 
 
-def test_the_whole_batch_is_scored_in_one_model_call(client):
-    send(client, 50, id="c{i}")
-    model = WordScorer()
+class CountingScorer(WordScorer):
+    def __init__(self):
+        super().__init__()
+        self.texts = []
+
+    def score_many(self, texts, *, top_k=5):
+        self.texts.append(list(texts))
+        return super().score_many(texts, top_k=top_k)
+
+
+def test_the_whole_batch_is_scored_in_one_model_call_each_distinct_text_once(client):
+    send(client, 50, id="c{i}", text="note number {i} about bonus roses")
+    send(client, 10, id="d{i}", text="free casino bonus")        # a wave: ten copies of one text
+    model = CountingScorer()
     make(client, model=model, batch=64).step()
-    assert model.calls == 1
+    assert len(model.texts) == 1 and len(model.texts[0]) == 51
+    got = {v["id"]: v for v in verdicts(client)}
+    assert len(got) == 60
+    assert {got[f"d{i}"]["action"] for i in range(10)} == {"reject"}
+    assert got["c7"]["score"] == "0.1667" and got["d3"]["score"] == "1.0000"
 
 
 class HoldEverything:

@@ -351,14 +351,20 @@ class StreamConsumer:
         if not comments:
             return [], []
         model = self._model
+        # A spam wave repeats itself word for word: score each distinct text once.
+        slots: dict[str, int] = {}
+        index = [slots.setdefault(c.text, len(slots)) for c in comments]
         try:
-            scores, reasons = model.score_many([c.text for c in comments])
+            scores, reasons = model.score_many(list(slots))
             scores = [float(s) for s in scores]
-            if len(scores) != len(comments) or len(reasons) != len(comments):
-                raise ValueError(f"score_many returned {len(scores)} scores for {len(comments)} texts")
+            if len(scores) != len(slots) or len(reasons) != len(slots):
+                raise ValueError(f"score_many returned {len(scores)} scores for {len(slots)} texts")
         except Exception:  # a model bug on some input must not stop the stream: isolate it below
             log.exception("score_many failed on a batch of %d; scoring one by one", len(comments))
             return self._score_each(comments)
+        if len(slots) < len(comments):
+            scores = [scores[i] for i in index]
+            reasons = [reasons[i] for i in index]
         return self._route(comments, scores, reasons)
 
     def _score_each(self, comments: list[Comment]) -> tuple[list[Scored], list[DeadLetter]]:
