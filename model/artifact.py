@@ -23,6 +23,8 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+import struct
+import tokenize
 import zipfile
 import zlib
 
@@ -165,7 +167,10 @@ def loads(data: bytes) -> tuple[dict[str, np.ndarray], dict]:
         if "pickle" in str(exc).lower():
             raise ArtifactError("load model: the file holds a pickled (object) array; refusing to unpickle it") from None
         raise ArtifactError(f"load model: not a readable model file ({exc}); retrain or copy it again") from None
-    except (zipfile.BadZipFile, zlib.error, EOFError, OSError, KeyError, zipfile.LargeZipFile) as exc:
+    except (zipfile.BadZipFile, zlib.error, EOFError, OSError, KeyError, zipfile.LargeZipFile,
+            # A damaged archive or .npy header also surfaces as these (zipfile: an unknown
+            # compression method or a set "encrypted" flag; numpy: an unparsable header or dtype).
+            NotImplementedError, RuntimeError, SyntaxError, tokenize.TokenError, TypeError, struct.error) as exc:
         raise ArtifactError(
             f"load model: truncated or not a model file ({type(exc).__name__}); retrain or copy it again"
         ) from None
