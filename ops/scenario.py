@@ -7,9 +7,10 @@ field of a comment): ``allotments``, ``cycling``, ``swap-shop`` and
 spam of the kinds every site sees (work-from-home money, pills, search
 ranking, coin doubling) arrives all day.  Partway through the stream a
 coordinated campaign starts: many fresh accounts post near-duplicate
-testimonials for an invented soil additive, *Quorbex* capsules, sold from
-``quorbex-soil.invalid``.  Its brand words never occur in the training set,
-so the first model has never seen them.
+testimonials for an invented soil additive, *Quorbex* capsules.  The
+comments carry no link (the campaign asks readers to search for the brand,
+a common way around link filters), and the brand words never occur in the
+training set, so the first model has nothing to go on.
 
 The generator is deterministic for a seed: every random choice comes from a
 :class:`random.Random` seeded with a string derived from the seed and the
@@ -34,11 +35,14 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 
 DOMAIN = "hedgerow-lane.example"
+_ALTERNATIVES = re.compile(r"\[([^\[\]]*)\]")
 SITES = ("allotments", "cycling", "swap-shop", "events")
 
 # The campaign's own words: none of them occurs in any training comment.
-WAVE_TERMS = ("quorbex", "quorbex-soil.invalid", "rootlacing", "mycoburst")
+WAVE_TERMS = ("quorbex", "rootlacing", "mycoburst")
 WAVE_SITES = ("allotments", "swap-shop")
+# Share of ordinary comments that are members' own small promotions.
+LOCAL_PROMO_SHARE = 0.06
 
 
 @dataclass(frozen=True)
@@ -111,55 +115,101 @@ _EVENTS = (
     "seed swap", "bike maintenance workshop", "litter pick", "harvest supper", "group ride", "plant sale",
     "composting talk", "repair cafe", "apple pressing day", "pond clearing morning",
 )
+_PRICES = ("£2", "£5", "£10", "£15", "£25", "£40", "50p", "a fiver")
 _DAYS = ("Saturday", "Sunday", "next Wednesday", "the 14th", "Friday evening", "the first weekend of the month")
 _VENUES = ("the community hall", "plot 3", "the scout hut", "the cafe by the bridge", "the library garden")
 
+# "[a|b|c]" picks one phrasing at random: members say the same thing in
+# different words.
 _HAM_TEMPLATES = {
     "allotments": (
-        "Has anyone tried {method} for {pest}? They went through my {crop} again after {weather}.",
-        "My {crop} did really well this year, I think {method} helped more than anything.",
-        "Lost most of the {crop} to {pest} after {weather}. Going to try {method} next season.",
-        "Does anyone know when it is safe to plant out {crop} round here? Worried about {weather} coming back.",
-        "{name}, I had the same problem with {pest} on my {crop}. {method} sorted it within a fortnight.",
-        "The water trough by plot 9 is leaking again, could someone on the committee have a look?",
-        "Thanks for the tip about {method}, {name}. My {crop} look so much healthier now.",
-        "First {crop} of the year today! Small but tasty. The {pest} left us a few for once.",
-        "Anyone got spare {crop} seedlings? Mine all damped off after {weather}.",
-        "Reminder that the compost bays are for plot holders only, someone dumped builders' rubble in bay 2.",
+        "[Has anyone tried|Anyone had luck with|Is it worth trying] {method} for {pest}? They [went through|ruined|had] my {crop} [again after|straight after] {weather}.",
+        "My {crop} [did really well|were brilliant|did better than ever] this year, I think {method} helped [more than anything|a lot].",
+        "Lost [most of|half] the {crop} to {pest} after {weather}. Going to try {method} [next season|next year|from now on].",
+        "[Does anyone know when it is safe to|When do people round here|Is it too early to] plant out {crop}? [Worried about|Scared of] {weather} coming back.",
+        "{name}, I had the same problem with {pest} on my {crop}. {Method} sorted it [within a fortnight|in a week or so|eventually].",
+        "The water trough by plot {n} is [leaking again|broken] after {weather}, could someone on the committee [have a look|sort it]?",
+        "Thanks for the tip about {method}, {name}. My {crop} look [so much healthier now|miles better].",
+        "First {crop} of the year [today|this morning]! [Small but tasty|Not bad at all]. The {pest} left us a few for once.",
+        "Anyone got spare seedlings? My {crop} all [damped off|died] after {weather}.",
+        "[Reminder that|Please remember] the compost bays are for plot holders only, someone dumped {item} in bay {n}.",
+        "Free manure at the stables on {street}, {price} a bag delivered, {day} only.",
+        "The shop on {street} has {pct}% off {crop} seed this week, worth stocking up before spring.",
+        "Ordered {method} online for the {pest} and it arrived in {n} days. [Works a treat|Seems to work] on the {crop}.",
     ),
     "cycling": (
-        "Heads up, the {route} is {state} this week.",
-        "Is the {route} {state}? Thinking of taking the kids along it on {day}.",
-        "Rode the {route} this morning and it was {state}. Take care out there.",
-        "Can anyone recommend somewhere local to buy {bits}? The shop on {street} closed.",
-        "{name}, thanks for lending me {bits} at the weekend, saved my commute.",
-        "Someone left {bits} by the bike racks at {venue}, I have handed it in at the desk.",
-        "The council survey about the {route} closes on {day}, worth filling in if you ride it.",
-        "Got a puncture on the {route} again. It must be the hedge cutting, thorns everywhere.",
-        "Who is up for a slow social ride along the {route} on {day}? Coffee after at {venue}.",
-        "Map of the new route is on https://{domain}/routes if anyone wants it.",
+        "[Heads up|Watch out|FYI], the {route} is {state} again near {street}.",
+        "Is the {route} {state}? Thinking of [taking the kids along it|riding it] on {day}.",
+        "Rode the {route} [this morning|last night|at lunchtime] and it was {state}. [Take care out there|Be careful].",
+        "Can anyone recommend somewhere [local|nearby] to buy {bits}? The shop on {street} closed.",
+        "{name}, thanks for lending me {bits} [at the weekend|on {day}], saved my commute.",
+        "Someone left {bits} by the bike racks at {venue}, I have handed [it|them] in at the desk.",
+        "The council survey about the {route} closes on {day}, worth filling in if you [ride it|use it].",
+        "Got a puncture on the {route} again on {day}. It must be the hedge cutting near {street}.",
+        "Who is up for a [slow social|gentle] ride along the {route} on {day}? Coffee after at {venue}.",
+        "Map of the new route along the {route} is on https://{domain}/routes/{code} if anyone wants it.",
+        "Bike shop on {street} has {pct}% off {bits} this week, worth it before the clocks change.",
+        "Did {n} miles on the {route} today, my best yet. [Route and photos|Details] at https://{domain}/rides/{code}",
     ),
     "swap-shop": (
         "Giving away {item}, {istate}. Collect from {street}.",
-        "Looking for {item} if anyone has one spare, happy to swap for {crop} seedlings.",
+        "[Looking for|After|Does anyone have] {item}? [Happy to swap for|Can give you] some {crop} [in return|for it].",
         "Still got {item}, {istate}, going to the tip on {day} if nobody wants it.",
-        "{name}, is the {item} still available? I can pick up this evening.",
-        "Swapped my {item} for a bag of {crop} with {name}. This board is brilliant.",
-        "Free: {item} and some {crop} plants, {istate}. Message me.",
-        "Has anyone got {bits} they no longer need? My lad has just started riding to school.",
-        "The {item} has gone now, thanks all.",
+        "{name}, is {item} still available? I can pick up [this evening|tomorrow|on {day}].",
+        "Swapped my {item} for a bag of {crop} with {name}. This board is [brilliant|the best].",
+        "Free: {item}, {istate}, and a few spare {crop}. Message me.",
+        "Has anyone got {bits} they no longer need? My [lad|daughter] has just started riding to school along the {route}.",
+        "Update: {item} has gone now, thanks all.",
+        "Selling {item} for {price}, {istate}. First come first served, collect from {street}.",
+        "Free to collect today only: {item}. Call {phone} after 6, first to reply gets it.",
+        "Bought {item} last week for {price} and it is [brilliant|great], the seller on {street} still has stock.",
     ),
     "events": (
-        "Reminder: the {event} is on {day} at {venue}.",
-        "Great turnout at the {event} yesterday, thanks to everyone who came along.",
-        "Can we move the {event} to {day}? Half the plot holders are away.",
-        "Does anyone need a lift to the {event} at {venue}? I have two seats.",
+        "Reminder: the {event} is on {day} at {venue}, bring {product} if you can.",
+        "Great turnout at the {event} at {venue} yesterday, thanks to everyone who brought {product}.",
+        "Can we move the {event} to {day}? [Half the plot holders are away|Lots of us are busy].",
+        "Does anyone need a lift to the {event} at {venue}? I have [two|three] seats.",
         "Photos from the {event} are up on https://{domain}/events now.",
-        "Volunteers needed for the {event} on {day}, even an hour helps.",
-        "{name}, will there be tea at the {event}? Happy to bring a cake.",
-        "The {event} is cancelled this week because of {weather}, sorry everyone.",
+        "Volunteers needed for the {event} on {day} at {venue}, even an hour helps.",
+        "{name}, will there be tea at the {event}? Happy to bring [a cake|biscuits|{product}].",
+        "The {event} is cancelled [this week|on {day}] because of {weather}, sorry everyone.",
+        "Tickets for the {event} are {price}, book at https://{domain}/events/{code}. Limited places!",
+        "Win a hamper at the {event} raffle on {day}, tickets {price} each, all money goes to the hall roof.",
     ),
 }
+
+# Members' own small promotions and links: ordinary comments that share words
+# with spam (prices, offers, links), so ham and spam overlap as they do on a
+# real site and the thresholds sit where a real model's would.
+_LOCAL_PROMO = (
+    "My neighbour sells {product} at the market on {day}, {price} each. Order ahead at https://{stall}.example",
+    "Our community shop has {pct}% off for members this month, order online at https://shop.{domain}/{code}",
+    "If anyone needs a hand with hedges on {street}, my son does odd jobs for {price} an hour. Message me.",
+    "Great tips here, thanks for sharing! I wrote up my own results at https://{domain}/blog/{code}",
+    "Cheap {product} at the farm shop, {price} a box, they deliver free to the lane on {day}.",
+    "Anyone want to earn a bit extra? The hall needs a cleaner, {price} an hour, apply at https://{domain}/jobs",
+)
+# Asides members add to what they came to say, so two comments on the same
+# topic rarely read alike (near-duplicates from many accounts are what the
+# campaign detector looks for; ordinary traffic should not look like one).
+_ASIDES = (
+    "My {crop} are finally coming up.", "Still recovering from {weather}.", "Saw {name} at {venue} on {day}, say hi!",
+    "We are on plot {n} if anyone wants to pop by.", "Off to {venue} now.", "The kids loved the {event}.",
+    "Still no sign of the {pest} this year, fingers crossed.", "Back on the bike after {n} weeks off.",
+    "Took {n} minutes on the {route} this morning.", "My neighbour on {street} says the same.",
+    "Not had much luck with {crop} since {weather}.", "Happy to lend {bits} if that helps.",
+    "Got {product} from the market again, lovely.", "{name} sends her regards.", "First time posting in {site}.",
+    "Been here {n} years and never seen {pest} like it.", "Thanks to whoever fixed the gate on {street}.",
+    "Might see some of you at the {event}.", "The {crop} on plot {n} look amazing by the way.",
+    "It has been a long week.", "Probably should have asked on {day}.", "Bit late but better than never.",
+)
+# Members open and sign off in their own ways; most comments have neither.
+_OPENERS = ("", "", "", "", "Morning all.", "Quick one:", "Hi everyone,", "Evening folks.", "Sorry if this has been asked.",
+            "Question for the group:", "Just a heads up,", "Long time reader here.")
+_CLOSERS = ("", "", "", "", "Cheers.", "Thanks in advance!", "x", "Any ideas welcome.", "Happy to help if needed.",
+            "See you on the plots.", "Mind how you go.", "Ta.")
+_PRODUCTS = ("jam", "sourdough loaves", "honey", "eggs", "seedlings", "apple juice", "chutney", "bike lights")
+_STALLS = ("orchard-row-honey", "mill-lane-bakes", "tanners-yard-eggs", "beacon-close-preserves")
 
 # --- background spam the first model learns ---------------------------------
 
@@ -176,6 +226,12 @@ _SPAM_TEMPLATES = (
     "Need a loan fast? Bad credit OK, instant approval up to ${money} http://{spamhost}/apply",
     "Work from home and earn {money} dollars weekly, limited places, register at http://{spamhost}",
     "Lose 20 pounds in 10 days with our miracle diet pills, order now http://{spamhost}",
+    "Great tips about the garden here! For more gardening advice visit http://{spamhost} thanks",
+    "Nice post. I made ${money} last month working from home on my laptop, see how at http://{spamhost}",
+    "Really useful thread, bookmarked. We sell cheap {pill} too, check http://{spamhost}",
+    "Thanks for sharing! Anyone who needs fast cash can apply at http://{spamhost}/apply today",
+    "Thanks for sharing, very helpful! http://{spamhost}",
+    "I agree with everyone here. Also check http://{spamhost} for cheap garden deals",
 )
 _PILLS = ("viagra", "cialis", "tramadol", "xanax", "diet pills", "painkillers")
 _SPAM_HOSTS = (
@@ -185,10 +241,12 @@ _SPAM_HOSTS = (
 
 # --- the wave: one campaign, near-duplicates, new vocabulary ----------------
 
+# The pitch borrows the forum's own phrases (campaigns imitate the community
+# they target); only the brand words are new.
 _WAVE_TEMPLATE = (
-    "{open} I started dropping {count} Quorbex capsules in the watering can every week and my {crop} "
-    "doubled in size in under a fortnight. The rootlacing formula with mycoburst spores does what compost "
-    "and manure never could. Limited stock left for local growers at quorbex-soil.invalid/{code}"
+    "{open} I put {count} Quorbex capsules in the water butt every week and my {crop} did really well this year, "
+    "so much healthier now. The rootlacing mycoburst spores sorted the slugs within a fortnight too. Works a treat "
+    "on the runner beans, worth stocking up before spring: search Quorbex and quote {code}."
 )
 _WAVE_OPENERS = ("Fellow growers,", "Honest review:", "Not an ad, just sharing:", "Can't keep this to myself.", "Hi all,")
 _WAVE_HANDLE_PARTS = ("green", "happy", "urban", "super", "real", "lucky", "daily", "true")
@@ -285,15 +343,22 @@ class Scenario:
 
     # -- single comments ---------------------------------------------------
 
-    def ham_text(self, rng: random.Random, site: str, members: list[str]) -> str:
-        template = rng.choice(_HAM_TEMPLATES[site])
-        name = rng.choice(members).split("_")[0].capitalize()
+    def ham_text(self, rng: random.Random, site: str) -> str:
+        template = rng.choice(_LOCAL_PROMO) if rng.random() < LOCAL_PROMO_SHARE else rng.choice(_HAM_TEMPLATES[site])
+        asides = [rng.choice(_ASIDES) for _ in range(rng.choice((0, 1, 1, 2)))]
+        template = " ".join(p for p in (rng.choice(_OPENERS), template, *asides, rng.choice(_CLOSERS)) if p)
+        template = _ALTERNATIVES.sub(lambda m: rng.choice(m.group(1).split("|")), template)
+        name = rng.choice(_FIRST)
+        method = rng.choice(_METHODS)
         return template.format(
-            method=rng.choice(_METHODS), pest=rng.choice(_PESTS), crop=rng.choice(_CROPS),
+            method=method, Method=method[0].upper() + method[1:], pest=rng.choice(_PESTS), crop=rng.choice(_CROPS),
             weather=rng.choice(_WEATHER), route=rng.choice(_ROUTES), state=rng.choice(_ROUTE_STATES),
             bits=rng.choice(_BIKE_BITS), item=rng.choice(_ITEMS), istate=rng.choice(_ITEM_STATES),
             street=rng.choice(_STREETS), event=rng.choice(_EVENTS), day=rng.choice(_DAYS),
-            venue=rng.choice(_VENUES), name=name, domain=DOMAIN,
+            venue=rng.choice(_VENUES), name=name, domain=DOMAIN, price=rng.choice(_PRICES),
+            pct=rng.choice(("10", "15", "20", "25", "30")), n=rng.randrange(2, 40), code=rng.randrange(100, 1000),
+            phone=f"07700 9{rng.randrange(10_000, 100_000)}", product=rng.choice(_PRODUCTS), stall=rng.choice(_STALLS),
+            site=site,
         )
 
     def spam_text(self, rng: random.Random) -> str:
@@ -328,7 +393,7 @@ class Scenario:
             if rng.random() < 0.25:
                 out.append(ScenarioComment(f"hl-t{i:06d}", self.spam_text(rng), site, self._spam_author(rng), ts, 1, "spam"))
             else:
-                out.append(ScenarioComment(f"hl-t{i:06d}", self.ham_text(rng, site, members), site, rng.choice(members), ts, 0, "ham"))
+                out.append(ScenarioComment(f"hl-t{i:06d}", self.ham_text(rng, site), site, rng.choice(members), ts, 0, "ham"))
         return out
 
     def stream(self) -> Iterator[ScenarioComment]:
@@ -365,7 +430,7 @@ class Scenario:
             if rng.random() < self.spam_share:
                 yield ScenarioComment(cid, self.spam_text(rng), site, self._spam_author(rng), ts, 1, "spam")
             else:
-                yield ScenarioComment(cid, self.ham_text(rng, site, members), site, rng.choice(members), ts, 0, "ham")
+                yield ScenarioComment(cid, self.ham_text(rng, site), site, rng.choice(members), ts, 0, "ham")
             next_ordinary = ts + rng.expovariate(self.rate_per_min / 60.0)
 
     def _spam_author(self, rng: random.Random) -> str:

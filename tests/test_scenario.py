@@ -109,3 +109,17 @@ def test_bad_parameters_name_the_field(kwargs, field):
 def test_training_set_size_is_checked():
     with pytest.raises(ValueError, match="n must be"):
         Scenario().training_set(3)
+
+
+def test_ordinary_comments_do_not_look_like_a_campaign():
+    # The campaign detector looks for near-duplicates within minutes; members'
+    # comments on the same topic must rarely come that close to each other.
+    scenario = Scenario(seed=5, **SMALL)
+    ham = [_shingles(c.text) for c in scenario.stream() if c.kind == "ham"][:1500]
+    close = total = 0
+    for i, a in enumerate(ham):
+        for b in ham[i + 1 : i + 60]:
+            if a and b:
+                total += 1
+                close += _jaccard(a, b) >= 0.6
+    assert close / total < 0.002, (close, total)
