@@ -199,10 +199,18 @@ class EmbeddingClassifier:
         lengths = np.fromiter(map(len, feature_lists), dtype=np.int64, count=n)
         tokens = list(chain.from_iterable(feature_lists))
         buckets = np.asarray(self._hasher.buckets(tokens), dtype=np.int64)
-        doc = np.repeat(np.arange(n, dtype=np.int64), lengths)
-        keys, first, counts = np.unique(doc * self.buckets + buckets, return_index=True, return_counts=True)
-        pair_doc = keys // self.buckets
-        counts = counts.astype(np.float64)
+        key_type = np.int32 if n * self.buckets < 2**31 else np.int64
+        doc = np.repeat(np.arange(n, dtype=key_type), lengths)
+        keys = doc * key_type(self.buckets) + buckets.astype(key_type, copy=False)
+        # Group token occurrences into (comment, bucket) pairs.  Any occurrence
+        # names its bucket in an explanation, so an unstable sort will do.
+        order = np.argsort(keys)
+        sorted_keys = keys[order]
+        starts = np.flatnonzero(np.concatenate(([True], sorted_keys[1:] != sorted_keys[:-1]))) if keys.size else order
+        keys = sorted_keys[starts]
+        first = order[starts]
+        counts = np.diff(np.append(starts, sorted_keys.size)).astype(np.float64)
+        pair_doc = (keys // self.buckets).astype(np.int64)
         if self.pooling == "l2":
             norm = np.sqrt(np.bincount(pair_doc, weights=counts * counts, minlength=n))
         else:
@@ -210,7 +218,7 @@ class EmbeddingClassifier:
         weight = counts / norm[pair_doc] if keys.size else counts
         indptr = np.zeros(n + 1, dtype=np.int64)
         np.cumsum(np.bincount(pair_doc, minlength=n), out=indptr[1:])
-        return _Bag(n, pair_doc, keys % self.buckets, weight, first, tokens, indptr)
+        return _Bag(n, pair_doc, (keys % self.buckets).astype(np.int64), weight, first, tokens, indptr)
 
     # --- checks ---------------------------------------------------------------
 

@@ -21,19 +21,14 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
+from scipy.special import expit
 
 HEAD_KEYS = ("w1", "b1", "w2", "b2")
 
 
 def sigmoid(z: np.ndarray) -> np.ndarray:
-    """Numerically stable logistic function."""
-    z = np.asarray(z, dtype=np.float64)
-    out = np.empty_like(z)
-    pos = z >= 0
-    out[pos] = 1.0 / (1.0 + np.exp(-z[pos]))
-    ez = np.exp(z[~pos])
-    out[~pos] = ez / (1.0 + ez)
-    return out
+    """Logistic function (``scipy.special.expit``: stable for any ``z``), float64."""
+    return expit(np.asarray(z, dtype=np.float64))
 
 
 def localize(batch: sp.csr_matrix) -> tuple[np.ndarray, sp.csr_matrix]:
@@ -50,12 +45,14 @@ def localize(batch: sp.csr_matrix) -> tuple[np.ndarray, sp.csr_matrix]:
     local : scipy.sparse.csr_matrix, shape (n, k)
         The same batch with column ``j`` standing for bucket ``rows[j]``.
     """
-    rows, inverse = np.unique(batch.indices, return_inverse=True)
-    local = sp.csr_matrix(
-        (batch.data, inverse.astype(np.int32, copy=False), batch.indptr),
-        shape=(batch.shape[0], rows.size),
-    )
-    return rows, local
+    ordered = np.sort(batch.indices)
+    if ordered.size:
+        rows = ordered[np.concatenate(([True], ordered[1:] != ordered[:-1]))]
+    else:
+        rows = ordered
+    inverse = np.searchsorted(rows, batch.indices).astype(np.int32, copy=False)
+    local = sp.csr_matrix((batch.data, inverse, batch.indptr), shape=(batch.shape[0], rows.size))
+    return rows.astype(np.int64, copy=False), local
 
 
 @dataclass

@@ -59,10 +59,16 @@ class Optimizer:
 
 
 def log_loss(p: np.ndarray, y: np.ndarray, w: np.ndarray) -> float:
-    """Weighted mean binary cross-entropy."""
+    """Weighted mean binary cross-entropy of probabilities ``p``."""
     p = np.clip(p, 1e-12, 1 - 1e-12)
     ll = -(y * np.log(p) + (1 - y) * np.log1p(-p))
     return float(np.sum(w * ll) / max(float(np.sum(w)), 1e-12))
+
+
+def log_loss_from_logits(z: np.ndarray, y: np.ndarray, w: np.ndarray) -> float:
+    """Weighted mean binary cross-entropy of logits ``z``: ``softplus(z) - y z``, exact for any ``z``."""
+    ll = np.logaddexp(0.0, z) - y * z
+    return float(np.dot(w, ll) / max(float(np.sum(w)), 1e-12))
 
 
 def batch_gradients(weights: Weights, batch: sp.csr_matrix, y: np.ndarray, w: np.ndarray):
@@ -77,7 +83,7 @@ def batch_gradients(weights: Weights, batch: sp.csr_matrix, y: np.ndarray, w: np
     total = max(float(np.sum(w)), 1e-12)
     dz = (p - y) * w / total
     d_rows, d_head = network.backward(cache, dz, weights.head)
-    return log_loss(p, y, w), rows, d_rows, d_head
+    return log_loss_from_logits(z, y, w), rows, d_rows, d_head
 
 
 def update(weights: Weights, opt: Optimizer, batch: sp.csr_matrix, y: np.ndarray, w: np.ndarray) -> float:
@@ -90,22 +96,49 @@ def update(weights: Weights, opt: Optimizer, batch: sp.csr_matrix, y: np.ndarray
     loss, rows, d_rows, d_head = batch_gradients(weights, batch, y, w)
     opt.step += 1
     t = opt.step
-    lr = opt.learning_rate * np.sqrt(1.0 - BETA2**t) / (1.0 - BETA1**t)
+    lr = np.float32(opt.learning_rate * np.sqrt(1.0 - BETA2**t) / (1.0 - BETA1**t))
     if rows.size:
         if opt.l2:
-            d_rows = d_rows + opt.l2 * weights.table[rows]
-        m = opt.m_table[rows] * BETA1 + (1.0 - BETA1) * d_rows
-        v = opt.v_table[rows] * BETA2 + (1.0 - BETA2) * d_rows * d_rows
-        opt.m_table[rows] = m
-        opt.v_table[rows] = v
-        weights.table[rows] -= (lr * m / (np.sqrt(v) + EPSILON)).astype(np.float32)
+            d_rows = d_rows + np.float32(opt.l2) * weights.table[rows]
+        _adam_rows(weights.table, opt.m_table, opt.v_table, rows, d_rows, lr)
     for k, g in d_head.items():
-        m = opt.m_head[k] * BETA1 + (1.0 - BETA1) * g
-        v = opt.v_head[k] * BETA2 + (1.0 - BETA2) * g * g
-        opt.m_head[k] = m.astype(np.float32)
-        opt.v_head[k] = v.astype(np.float32)
-        weights.head[k] -= (lr * m / (np.sqrt(v) + EPSILON)).astype(np.float32)
+        _adam_dense(weights.head[k], opt.m_head[k], opt.v_head[k], g, lr)
     return loss
+
+
+def _adam_rows(table, m_table, v_table, rows, grad, lr) -> None:
+    """Lazy Adam on ``rows`` only: gather, update in place, scatter back."""
+    m = m_table[rows]
+    m *= BETA1
+    m += (1.0 - BETA1) * grad
+    v = v_table[rows]
+    v *= BETA2
+    v += (1.0 - BETA2) * (grad * grad)
+    m_table[rows] = m
+    v_table[rows] = v
+    np.sqrt(v, out=v)
+    v += EPSILON
+    m *= lr
+    m /= v
+    table[rows] -= m
+
+
+def _adam_dense(param, m, v, grad, lr) -> None:
+    m *= BETA1
+    m += (1.0 - BETA1) * grad
+    v *= BETA2
+    v += (1.0 - BETA2) * (grad * grad)
+    param -= (lr * m / (np.sqrt(v) + EPSILON)).astype(param.dtype, copy=False)
+
+
+def row_slice(matrix: sp.csr_matrix, start: int, stop: int) -> sp.csr_matrix:
+    """Rows ``start:stop`` of a canonical CSR matrix, as views of its arrays (no checks, no copies)."""
+    lo, hi = matrix.indptr[start], matrix.indptr[stop]
+    out = sp.csr_matrix((stop - start, matrix.shape[1]), dtype=matrix.dtype)
+    out.data = matrix.data[lo:hi]
+    out.indices = matrix.indices[lo:hi]
+    out.indptr = matrix.indptr[start:stop + 1] - lo
+    return out
 
 
 def predict_logits(weights: Weights, matrix: sp.csr_matrix, chunk: int = 4096) -> np.ndarray:
@@ -163,12 +196,15 @@ def run_epochs(
     epoch = 0
     for epoch in range(1, epochs + 1):
         order = rng.permutation(n) if shuffle else np.arange(n)
+        shuffled = matrix[order] if shuffle else matrix
+        ys, ws = y[order], w[order]
         total = 0.0
         weight_sum = 0.0
         for start in range(0, n, batch_size):
-            idx = order[start:start + batch_size]
-            bw = w[idx]
-            total += update(weights, opt, matrix[idx], y[idx], bw) * float(bw.sum())
+            stop = min(start + batch_size, n)
+            bw = ws[start:stop]
+            batch = row_slice(shuffled, start, stop)
+            total += update(weights, opt, batch, ys[start:stop], bw) * float(bw.sum())
             weight_sum += float(bw.sum())
         report = EpochReport(epoch, total / max(weight_sum, 1e-12), None, None)
         if validation is not None:
