@@ -354,3 +354,33 @@ def test_stop_ends_run_after_the_batch(client):
     consumer = make(client, observer=StopAfterBatch())
     assert consumer.run() == 0
     assert len(verdicts(client)) == 3 and pending(client) == 0
+
+
+def test_a_refused_commit_backs_off_and_the_batch_stays_pending(client):
+    """A key of the wrong type (or OOM) makes Redis refuse the script: nothing is lost, the loop retries."""
+    send(client, 2, id="c{i}")
+    client.set(KEYS.verdicts, "not a stream")
+    sleeps = []
+
+    class Once(StreamConsumer):
+        def _sleep(self, seconds):
+            sleeps.append(seconds)
+            client.delete(KEYS.verdicts)                          # the operator fixes it
+            if len(sleeps) > 1:
+                self.stop()
+
+    c = Once(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, backoff_base_s=0.25),
+             model_source=StaticModelSource(model=WordScorer()), consumer="w")
+    c.stop_after = None
+    original_step = c.step
+
+    def step():
+        result = original_step()
+        if result.written:
+            c.stop()
+        return result
+
+    c.step = step
+    assert c.run() == 0
+    assert sleeps[0] == 0.25
+    assert sorted(v["id"] for v in verdicts(client)) == ["c0", "c1"] and pending(client) == 0

@@ -155,14 +155,15 @@ def test_sigkill_mid_stream_then_restart_gives_every_id_one_verdict(redis_server
 def test_stalled_worker_is_reclaimed_and_both_finishing_write_no_duplicates(redis_server, model_files, tmp_path,
                                                                              workers):
     client = redis_server.client()
-    good = send(client, 2000)
     (model, _version), _ = model_files
     settings = {"batch": 200, "claim_idle_ms": 400, "claim_every_s": 0.1}
     slow = Worker(redis_server.url, model, "slow", tmp_path, **settings)
     fast = Worker(redis_server.url, model, "fast", tmp_path, **settings)
     workers += [slow, fast]
-    wait_for(lambda: client.exists(KEYS.comments) and client.xinfo_groups(KEYS.comments) and pending_count(client, "slow"),
-             what="the slow worker's first batch")
+    wait_for(lambda: client.exists(KEYS.comments) and client.xinfo_groups(KEYS.comments)
+             and len(client.xinfo_consumers(KEYS.comments, KEYS.group)) == 2, what="both workers to be reading")
+    good = send(client, 2000)                                     # both share the stream from the start
+    wait_for(lambda: pending_count(client, "slow"), what="the slow worker's first batch")
     for _attempt in range(50):                                    # stall it while it holds a batch
         slow.signal(signal.SIGSTOP)
         held = pending_count(client, "slow")

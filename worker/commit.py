@@ -3,24 +3,27 @@
 A batch is committed by one Lua script call (one round trip).  Redis runs a
 script without interleaving other clients, so for each comment the verdict
 XADD, the ``text:{id}`` cache, the ``held`` entry, the ``rates:{minute}``
-counts, the per-id ``done:{id}`` marker and the XACK land together or not at
-all; a worker SIGKILLed mid-batch has written either a whole comment or
-nothing of it, and its unacked entries are read again.
+counts, the per-id ``done:{id}`` marker and the XACK land together; a worker
+SIGKILLed mid-batch has written either a whole comment or nothing of it, and
+its unacked entries are read again.
 
-Exactly one verdict per comment id, guarded twice inside the script:
+Exactly one verdict per comment id, checked before anything is written:
 
-1. ``XACK`` first.  The group's pending list is shared by its consumers, so
-   when a slow worker and the consumer that reclaimed its entries both finish,
-   only the first XACK returns 1; the second commit of that entry writes
-   nothing.  XACK is the script's first write, so a server out of memory
-   refuses it before anything else is touched (Redis lets a script that has
-   written go on writing).
-2. ``SET done:{id} NX EX done_ttl``.  Catches what the pending list cannot:
+1. the entry is still in the group's pending list (``XPENDING`` of that one
+   id).  The list is shared by the group's consumers, so when a slow worker
+   and the consumer that reclaimed its entries both finish, the second
+   commit of an entry finds it acked and writes nothing;
+2. ``done:{id}`` does not exist.  This catches what the pending list cannot:
    the same comment id sent twice by a producer that retried its XADD, a
    group recreated at ``0``, a replay.  Use ``maxmemory-policy noeviction``
    (Redis's default, which RQ needs too) so markers are never evicted early.
 
-Dead letters are guarded by the XACK alone (they may have no id).
+Redis does not roll a script back when a command fails half-way, so the
+writes are ordered for the failures that can happen: the verdict XADD comes
+first (an out-of-memory server refuses a script's first write, and nothing
+else has been touched), the marker right after it (from then on a retry
+cannot write a second verdict), the XACK last (a comment is never acked
+without its verdict).  Dead letters follow the same rule: XADD, then XACK.
 """
 from __future__ import annotations
 
@@ -43,23 +46,30 @@ local n = tonumber(ARGV[9])
 local out = {}
 local a = 10
 local counted = false
+local function still_pending(sid)
+  return #redis.call('XPENDING', stream, group, sid, sid, 1) == 1
+end
 for i = 1, n do
   local sid, id, score, action, reasons, site, text, author, ts =
       ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4], ARGV[a + 5], ARGV[a + 6], ARGV[a + 7], ARGV[a + 8]
   a = a + 9
   local done, cache = KEYS[4 + 2 * i], KEYS[5 + 2 * i]
   out[i] = 0
-  if redis.call('XACK', stream, group, sid) == 1 and redis.call('SET', done, sid, 'NX', 'EX', done_ttl) then
-    redis.call('XADD', verdicts, 'MAXLEN', '~', vmax, '*', 'id', id, 'score', score, 'action', action,
-               'model', model, 'reasons', reasons, 'site', site, 'stream_id', sid)
-    redis.call('HSET', cache, 'text', text, 'site', site, 'author', author, 'ts', ts, 'stream_id', sid,
-               'score', score, 'action', action, 'model', model)
-    redis.call('EXPIRE', cache, text_ttl)
-    if action == 'hold' then redis.call('ZADD', held, now, id) end
-    redis.call('HINCRBY', rates, site .. ':total', 1)
-    if action ~= 'publish' then redis.call('HINCRBY', rates, site .. ':' .. action, 1) end
-    counted = true
-    out[i] = 1
+  if still_pending(sid) then
+    if redis.call('EXISTS', done) == 0 then
+      redis.call('XADD', verdicts, 'MAXLEN', '~', vmax, '*', 'id', id, 'score', score, 'action', action,
+                 'model', model, 'reasons', reasons, 'site', site, 'stream_id', sid)
+      redis.call('SET', done, sid, 'EX', done_ttl)
+      redis.call('HSET', cache, 'text', text, 'site', site, 'author', author, 'ts', ts, 'stream_id', sid,
+                 'score', score, 'action', action, 'model', model)
+      redis.call('EXPIRE', cache, text_ttl)
+      if action == 'hold' then redis.call('ZADD', held, now, id) end
+      redis.call('HINCRBY', rates, site .. ':total', 1)
+      if action ~= 'publish' then redis.call('HINCRBY', rates, site .. ':' .. action, 1) end
+      counted = true
+      out[i] = 1
+    end
+    redis.call('XACK', stream, group, sid)
   end
 end
 if counted then redis.call('EXPIRE', rates, rates_ttl) end
@@ -69,10 +79,11 @@ for j = 1, m do
   local sid, np = ARGV[a], tonumber(ARGV[a + 1])
   a = a + 2
   out[n + j] = 0
-  if redis.call('XACK', stream, group, sid) == 1 then
+  if still_pending(sid) then
     local cmd = {'XADD', deadletter, 'MAXLEN', '~', dmax, '*'}
     for k = 0, 2 * np - 1 do cmd[#cmd + 1] = ARGV[a + k] end
     redis.call(unpack(cmd))
+    redis.call('XACK', stream, group, sid)
     out[n + j] = 1
   end
   a = a + 2 * np

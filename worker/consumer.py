@@ -173,11 +173,17 @@ class StreamConsumer:
                 self._sleep(delay)
                 continue
             except redis.ResponseError as exc:
-                if "NOGROUP" not in str(exc):
-                    raise
-                # The server came back without the group (no persistence): make it again.
-                log.warning("consumer group %s is gone; creating it again", self.keys.group)
                 self._ready = False
+                if "NOGROUP" in str(exc):
+                    # The server came back without the group (no persistence): make it again.
+                    log.warning("consumer group %s is gone; creating it again", self.keys.group)
+                    continue
+                # OOM, BUSY, a key of the wrong type...: the batch stays pending; back off and retry.
+                failures += 1
+                delay = self.backoff(failures)
+                log.error("Redis refused a command (%s); the batch stays pending; retrying in %.2fs (attempt %d)",
+                          exc, delay, failures)
+                self._sleep(delay)
                 continue
             if failures:
                 log.info("reconnected to Redis after %d failed attempt(s)", failures)

@@ -71,6 +71,8 @@ def parse_entry(raw) -> Entry:
     if not isinstance(flat, (list, tuple)):
         raise StreamReplyError(f"stream reply: entry {stream_id!r} fields should be an array")
     odd = len(flat) % 2 == 1
+    if not odd and all(type(x) is bytes for x in flat):  # the usual case, kept cheap
+        return Entry(stream_id, tuple(zip(flat[::2], flat[1::2])))
     pairs = tuple(
         (_as_bytes(flat[i], "field"), _as_bytes(flat[i + 1], "value")) for i in range(0, len(flat) - 1, 2)
     )
