@@ -12,6 +12,8 @@ import argparse
 import importlib
 import sys
 
+import redis
+
 from model.errors import SeawallError
 from ops.config import ConfigError
 
@@ -48,6 +50,19 @@ def main(argv: list[str] | None = None) -> int:
         code = args.func(args)
     except (SeawallError, ConfigError) as exc:
         print(f"seawall {args.command}: error: {exc}", file=sys.stderr)
+        return 2
+    except redis.exceptions.AuthenticationError as exc:
+        # Checked before ConnectionError, its base class.  The URL is not printed: it holds the password.
+        print(f"seawall {args.command}: error: Redis refused the credentials ({exc}); "
+              "check the user and password in redis_url", file=sys.stderr)
+        return 2
+    except redis.exceptions.NoPermissionError as exc:
+        print(f"seawall {args.command}: error: the Redis ACL user may not do this ({exc}); "
+              "see the README's ACL rule for the commands Seawall needs", file=sys.stderr)
+        return 2
+    except (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError) as exc:
+        print(f"seawall {args.command}: error: cannot reach Redis ({exc}); check redis_url and that the server runs",
+              file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         return 130
