@@ -22,8 +22,9 @@ Redis does not roll a script back when a command fails half-way, so the
 writes are ordered for the failures that can happen: the verdict XADD comes
 first (an out-of-memory server refuses a script's first write, and nothing
 else has been touched), the marker right after it (from then on a retry
-cannot write a second verdict), the XACK last (a comment is never acked
-without its verdict).  Dead letters follow the same rule: XADD, then XACK.
+cannot write a second verdict), one XACK of the whole batch last (a comment
+is never acked without its verdict).  Holds, counters and acks are batched
+into one command each.  Dead letters: XADD, then XACK, one by one.
 """
 from __future__ import annotations
 
@@ -43,11 +44,14 @@ local stream, verdicts, held, rates, deadletter = KEYS[1], KEYS[2], KEYS[3], KEY
 local group, vmax, text_ttl, done_ttl, rates_ttl, now, model, dmax =
     ARGV[1], ARGV[2], ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7], ARGV[8]
 local n = tonumber(ARGV[9])
-local out = {}
+local out, acks, holds, counts, fields = {}, {}, {}, {}, {}
 local a = 10
-local counted = false
 local function still_pending(sid)
   return #redis.call('XPENDING', stream, group, sid, sid, 1) == 1
+end
+local function count(field)
+  if counts[field] == nil then counts[field] = 0; fields[#fields + 1] = field end
+  counts[field] = counts[field] + 1
 end
 for i = 1, n do
   local sid, id, score, action, reasons, site, text, author, ts =
@@ -63,16 +67,21 @@ for i = 1, n do
       redis.call('HSET', cache, 'text', text, 'site', site, 'author', author, 'ts', ts, 'stream_id', sid,
                  'score', score, 'action', action, 'model', model)
       redis.call('EXPIRE', cache, text_ttl)
-      if action == 'hold' then redis.call('ZADD', held, now, id) end
-      redis.call('HINCRBY', rates, site .. ':total', 1)
-      if action ~= 'publish' then redis.call('HINCRBY', rates, site .. ':' .. action, 1) end
-      counted = true
+      if action == 'hold' then holds[#holds + 1] = now; holds[#holds + 1] = id end
+      count(site .. ':total')
+      if action ~= 'publish' then count(site .. ':' .. action) end
       out[i] = 1
     end
-    redis.call('XACK', stream, group, sid)
+    acks[#acks + 1] = sid
   end
 end
-if counted then redis.call('EXPIRE', rates, rates_ttl) end
+if #holds > 0 then redis.call('ZADD', held, unpack(holds)) end
+if #fields > 0 then
+  for _, field in ipairs(fields) do redis.call('HINCRBY', rates, field, counts[field]) end
+  redis.call('EXPIRE', rates, rates_ttl)
+end
+-- Acked last: a script stopped by a refused command leaves no comment acked without its verdict.
+if #acks > 0 then redis.call('XACK', stream, group, unpack(acks)) end
 local m = tonumber(ARGV[a])
 a = a + 1
 for j = 1, m do

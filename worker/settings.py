@@ -114,6 +114,8 @@ class WorkerSettings:
             value = getattr(self, name)
             if isinstance(value, bool) or not isinstance(value, (int, float)) or value < low:
                 raise ValueError(f"WorkerSettings: {name} must be a number >= {low}, got {value!r}")
+        if self.batch > MAX_BATCH:
+            raise ValueError(f"WorkerSettings: batch must be <= {MAX_BATCH} (one Lua call commits a batch), got {self.batch!r}")
         if self.backoff_factor < 1.0:
             raise ValueError(f"WorkerSettings: backoff_factor must be >= 1, got {self.backoff_factor!r}")
         if self.backoff_cap_s < self.backoff_base_s:
@@ -123,6 +125,8 @@ class WorkerSettings:
         if not isinstance(self.site_thresholds, Mapping):
             raise ValueError(f"WorkerSettings: site_thresholds must be a table, got {self.site_thresholds!r}")
 
+
+MAX_BATCH = 4096
 
 # Lower bounds of the numeric worker settings: one declarative table, checked in __post_init__.
 _WORKER_MINIMUMS = {
