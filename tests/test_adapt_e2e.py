@@ -1,0 +1,103 @@
+"""The whole loop with a real worker: serve from the registry, moderators label held
+comments, a retrain promotes, the worker switches without a restart, rollback switches back."""
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+from ops.cli import main
+from ops.registry import Registry
+from retrain_kit import KEYS, MODERATORS, stream
+from test_retrain import bootstrap
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+def wait_until(predicate, *, seconds: float, every: float = 0.05):
+    deadline = time.monotonic() + seconds
+    while time.monotonic() < deadline:
+        value = predicate()
+        if value:
+            return value
+        time.sleep(every)
+    return predicate()
+
+
+def seconds_until_served(client, version: str, probes, *, limit: float = 10.0) -> float:
+    """Send a probe comment every 0.2 s until one gets a verdict from ``version``."""
+    t0 = time.monotonic()
+    for probe in probes:
+        mark = client.xadd(KEYS.comments, probe.fields())
+        got = wait_until(lambda: [f for _i, f in client.xrange(KEYS.verdicts, min=mark) if f[b"id"] == probe.id.encode()],
+                         seconds=0.2, every=0.02)
+        if got and got[0][b"model"].decode() == version:
+            return time.monotonic() - t0
+        if time.monotonic() - t0 > limit:
+            break
+    return float("inf")
+
+
+def verdict_models(client, after="-"):
+    return [f[b"model"].decode() for _i, f in client.xrange(KEYS.verdicts, min=after)]
+
+
+@pytest.mark.redis_server
+@pytest.mark.slow
+def test_feedback_retrain_promote_hot_reload_and_rollback_with_a_running_worker(redis_server, redis_client, capsys,
+                                                                                tmp_path):
+    r = redis_client
+    registry, first = bootstrap(r)
+    env = dict(os.environ, SEAWALL_REDIS_URL=redis_server.url, SEAWALL_WORKER_RELOAD_POLL_S="0.2",
+               SEAWALL_WORKER_BLOCK_MS="100", SEAWALL_RETRAIN_FEEDBACK_BLOCK_MS="100", SEAWALL_LOG_LEVEL="INFO",
+               SEAWALL_METRICS_PORT="0")
+    env.pop("SEAWALL_CONFIG", None)
+    env.pop("SEAWALL_MODEL_PATH", None)
+    log_path = tmp_path / "serve.log"
+    log_file = log_path.open("w")
+    worker = subprocess.Popen([sys.executable, "-m", "ops.cli", "serve", "--consumer", "e2e-1"], cwd=ROOT, env=env,
+                              stdout=subprocess.DEVNULL, stderr=log_file)
+    log = lambda: log_path.read_text()[-3000:]  # noqa: E731
+    try:
+        comments = stream()[:1200]
+        pipe = r.pipeline(transaction=False)
+        for c in comments:
+            pipe.xadd(KEYS.comments, c.fields())
+        pipe.execute()
+        assert wait_until(lambda: r.xlen(KEYS.verdicts) >= len(comments), seconds=60), log()
+        assert set(verdict_models(r)) == {first}
+
+        # Moderators label comments by id only: the text comes from the worker's cache.
+        for i, c in enumerate(comments[:1000]):
+            pipe.xadd(KEYS.feedback, {"id": c.id, "label": "spam" if c.label else "ham",
+                                      "moderator": MODERATORS[i % len(MODERATORS)]})
+        pipe.execute()
+        # The worker's own feedback thread turns them into labels.
+        assert wait_until(lambda: r.xlen("seawall:labels") >= 1000, seconds=30)
+        assert r.xlen(KEYS.deadletter) == 0
+
+        assert main(["retrain", "--redis", redis_server.url, "--rescore", "now"]) == 0
+        out = capsys.readouterr().out
+        new = registry.active()
+        assert new != first and f"promoted {new}" in out, out
+
+        # Pub/sub tells the worker; it switches within a few seconds, without a restart.
+        assert seconds_until_served(r, new, stream()[1200:1300]) < 5, log()
+
+        assert main(["models", "rollback", "--redis", redis_server.url, "--rescore", "off"]) == 0
+        assert seconds_until_served(r, first, stream()[1300:1400]) < 5, log()
+    finally:
+        worker.send_signal(signal.SIGTERM)
+        try:
+            code = worker.wait(timeout=20)
+        except subprocess.TimeoutExpired:
+            worker.kill()
+            code = worker.wait(timeout=10)
+        log_file.close()
+    assert code == 0, log()
+    assert Registry(client=r, keys=KEYS).active() == first
