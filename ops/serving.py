@@ -13,12 +13,17 @@ from __future__ import annotations
 import importlib
 import importlib.util
 import logging
+import time
+
+import redis
 
 from ops.config import Config, ConfigError
 from worker.connection import connect
 from worker.consumer import StreamConsumer
 from worker.loader import FileModelSource, ModelSource
 from worker.observer import NullObserver, WorkerObserver
+
+log = logging.getLogger("seawall.serve")
 
 
 def redis_client(config: Config, *, blocking_ms: int = 0, client_name: str = "", raw_streams: bool = True):
@@ -43,8 +48,43 @@ def model_source(config: Config) -> ModelSource:
         source_class = getattr(registry, "RegistryModelSource", None)
         if source_class is not None:
             client = redis_client(config, client_name="seawall-models", raw_streams=False)
-            return source_class(client=client, keys=config.keys, poll_interval_s=config.worker.reload_poll_s)
+            source = source_class(client=client, keys=config.keys, poll_interval_s=config.worker.reload_poll_s)
+            return WaitForRedis(source=source, settings=config.worker)
     raise ConfigError("serve: no model to serve; pass --model FILE or set SEAWALL_MODEL_PATH")
+
+
+class WaitForRedis:
+    """A model source whose first load needs Redis: it waits for the server instead of failing.
+
+    A worker started before its Redis (a host boot, a compose file without
+    ordering) must not crash: the first ``current()`` retries lost or refused
+    connections with the worker's capped exponential backoff and logs each
+    wait.  Everything else is the wrapped source's.
+    """
+
+    def __init__(self, *, source: ModelSource, settings, sleep=time.sleep):
+        self.source = source
+        self.settings = settings
+        self.sleep = sleep
+
+    def current(self):
+        s = self.settings
+        failures = 0
+        while True:
+            try:
+                return self.source.current()
+            except (redis.ConnectionError, redis.TimeoutError) as exc:
+                failures += 1
+                delay = min(s.backoff_cap_s, s.backoff_base_s * s.backoff_factor ** (failures - 1))
+                log.warning("waiting for Redis to load the active model (%s: %s); retrying in %.2fs (attempt %d)",
+                            type(exc).__name__, exc, delay, failures)
+                self.sleep(delay)
+
+    def poll(self):
+        return self.source.poll()
+
+    def __getattr__(self, name):
+        return getattr(self.source, name)
 
 
 def build_observer(config: Config) -> WorkerObserver:
