@@ -9,20 +9,15 @@ from pathlib import Path
 
 import pytest
 
+from worker_models import tiny_model
 from ops.bench.stream import invented_comments
 
 pytestmark = pytest.mark.redis_server
 
 
 @pytest.fixture(scope="module")
-def model_file(tmp_path_factory):
-    from model.classifier import EmbeddingClassifier
-
-    data = invented_comments(400, seed=4)
-    model = EmbeddingClassifier(seed=4, epochs=3).fit([t for t, _ in data], [y for _, y in data])
-    path = tmp_path_factory.mktemp("rq-model") / "model.bin"
-    model.save(path)
-    return path
+def model_file():
+    return tiny_model(4)[0]
 
 
 @pytest.fixture

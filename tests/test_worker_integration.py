@@ -17,6 +17,7 @@ import time
 import pytest
 import redis
 
+from worker_models import tiny_model
 from ops.bench.stream import invented_comments
 from worker.settings import Keys
 
@@ -26,19 +27,9 @@ KEYS = Keys()
 
 
 @pytest.fixture(scope="module")
-def model_files(tmp_path_factory):
+def model_files():
     """Two small real models (different training data, so different versions)."""
-    from model.classifier import EmbeddingClassifier
-
-    folder = tmp_path_factory.mktemp("models")
-    paths = []
-    for seed in (1, 2):
-        data = invented_comments(400, seed=seed)
-        model = EmbeddingClassifier(seed=seed, epochs=3).fit([t for t, _ in data], [y for _, y in data])
-        path = folder / f"model-{seed}.bin"
-        model.save(path)
-        paths.append((path, model.version))
-    return paths
+    return [tiny_model(1), tiny_model(2)]
 
 
 class Worker:
