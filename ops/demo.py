@@ -40,6 +40,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 
 from croniter import croniter
+from prometheus_client import CollectorRegistry
 
 from model.classifier import EmbeddingClassifier
 from ops.config import Config
@@ -50,7 +51,9 @@ from ops.retrain import retrain
 from ops.scenario import SITES, Scenario, ScenarioComment
 from ops.waves import WaveDetector
 from model.minhash import MinHasher
-from worker.campaigns import CampaignPolicy, campaign_keys, end_idle_campaigns
+from ops.metrics import PrometheusObserver, build_metrics
+from ops.monitor import Monitor
+from worker.campaigns import CampaignPolicy, campaign_keys
 from worker.consumer import StreamConsumer
 from worker.events import parse_event
 from worker.feedback import FeedbackConsumer
@@ -131,6 +134,7 @@ class DemoResult:
     wall_seconds: float = 0.0
     train_seconds: float = 0.0
     batches: Counter = field(default_factory=Counter)
+    metrics: dict = field(default_factory=dict)
 
     # -- derived figures ----------------------------------------------------------------
     @property
@@ -197,6 +201,23 @@ class DemoResult:
         return [{"minute": m, **rows.get(m, Counter())} for m in range(n)]
 
 
+def metric_samples(registry: CollectorRegistry) -> dict[str, float]:
+    """A few of the worker's Prometheus series at the end of the run, as a scrape would see them."""
+    out: dict[str, float] = {}
+    for metric in registry.collect():
+        for sample in metric.samples:
+            if sample.name == "seawall_comments_total":
+                key = f"seawall_comments_total{{action={sample.labels.get('action')}}}"
+                out[key] = out.get(key, 0.0) + sample.value
+            elif sample.name in ("seawall_campaigns_active", "seawall_retrain_runs_total", "seawall_feedback_total"):
+                key = sample.name + ("{" + ",".join(f"{k}={v}" for k, v in sorted(sample.labels.items())) + "}"
+                                     if sample.labels else "")
+                out[key] = sample.value
+            elif sample.name == "seawall_wave_active" and sample.value:
+                out[f"seawall_wave_active{{site={sample.labels.get('site')}}}"] = sample.value
+    return out
+
+
 def _share(flags) -> float | None:
     flags = list(flags)
     return sum(bool(f) for f in flags) / len(flags) if flags else None
@@ -235,8 +256,12 @@ def bootstrap_registry(client, config: Config, model, rows, *, clock) -> str:
     return version
 
 
-def build_workers(client, config: Config, *, clock) -> list[StreamConsumer]:
-    """Two consumers of one group, each with its own registry model source and the campaign policy."""
+def build_workers(client, config: Config, *, clock, observer=None) -> list[StreamConsumer]:
+    """Two consumers of one group, each with its own registry model source and the campaign policy.
+
+    The policy is what :func:`ops.monitor.campaign_policy` builds for ``seawall
+    serve``, with the story's clock.
+    """
     w = config.waves
     workers = []
     for name in WORKERS:
@@ -250,7 +275,7 @@ def build_workers(client, config: Config, *, clock) -> list[StreamConsumer]:
             ))
         source = RegistryModelSource(client=client, keys=config.keys, poll_interval_s=config.retrain.registry_poll_s)
         workers.append(StreamConsumer(client=client, keys=config.keys, settings=config.worker, model_source=source,
-                                      consumer=name, policies=policies, clock=clock))
+                                      consumer=name, policies=policies, observer=observer, clock=clock))
     return workers
 
 
@@ -336,7 +361,12 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
              f"in {result.train_seconds:.1f}s; promoted (hold >= {model.thresholds.hold:.3f}, "
              f"reject >= {model.thresholds.reject:.3f})")
 
-    workers = build_workers(worker_client, config, clock=clock)
+    # What one `seawall serve` process runs beside its consumer: the metrics
+    # observer and the monitor pass (wave detector, idle campaigns, gauges).
+    registry = CollectorRegistry()
+    observer = PrometheusObserver(metrics=build_metrics(registry), sites=config.metrics.sites,
+                                  flagged_window_s=config.metrics.flagged_window_s, clock=clock)
+    workers = build_workers(worker_client, config, clock=clock, observer=observer)
     for w in workers:
         w.prepare()
     feedback = FeedbackConsumer(
@@ -346,6 +376,8 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
     )
     detector = WaveDetector(client=client, keys=keys, params=WaveParams.from_settings(config.waves),
                             sites=config.metrics.sites, clock=clock)
+    monitor = Monitor(client=client, keys=keys, observer=observer, detector=detector,
+                      campaign_window_s=config.waves.campaign_window_s, poll_s=config.metrics.poll_s, clock=clock)
     retrain_at = next_retrain_ts(config, scenario.start_ts)
     progress(f"{stamp(clock.now)} {len(workers)} workers in group {keys.group}; the nightly retrain "
              f"({config.retrain.cron!r}) will run at {stamp(retrain_at)}; a spam wave starts at "
@@ -388,8 +420,7 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
 
         # the minute is over: detectors read the shared counts
         clock.now = minute_start + 60.0 + 3.0
-        end_idle_campaigns(client, keys, now=clock.now, window_s=config.waves.campaign_window_s)
-        detector.tick()
+        monitor.refresh()
         for event in _read_events(client, keys):
             if event["id"] in announced:
                 continue
@@ -411,6 +442,7 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
             _nightly_retrain(client, config, workers, result, clock, progress, stamp)
 
     result.verdicts = _read_verdicts(client, keys, truth, minute_of)
+    result.metrics = metric_samples(registry)
     result.wall_seconds = time.perf_counter() - t_wall
     for w in workers:
         w.model_source.close()

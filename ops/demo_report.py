@@ -316,6 +316,8 @@ def render_html(result: DemoResult, *, backend: str) -> str:
     ]
     fact_rows = "".join(f"<tr><td>{html.escape(k)}</td><td class=num>{html.escape(v)}</td></tr>" for k, v in facts)
     story = "".join(f"<li>{item}</li>" for item in story_items(result))
+    metric_rows = "".join(f"<tr><td><code>{html.escape(k)}</code></td><td class=num>{v:,.0f}</td></tr>"
+                          for k, v in sorted(result.metrics.items()))
     day = datetime.fromtimestamp(result.scenario.start_ts, tz=timezone.utc).strftime("%Y-%m-%d")
     return f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8"><title>Seawall demo report</title>
@@ -328,6 +330,8 @@ retrain ({day}, times UTC), played through Seawall's real workers, detectors, fe
 <h2>Summary</h2>
 <table><tr><th></th><th>before the retrain</th><th>after the retrain</th></tr>{rows}</table>
 <table>{fact_rows}</table>
+<h2>What a scrape of the workers' metrics shows at the end</h2>
+<table>{metric_rows}</table>
 <h2>Flagged rate over time</h2>
 {flagged_rate_svg(result)}
 <p class="note">Red: share of each minute's comments held or rejected (by the model or the campaign policy).

@@ -107,6 +107,16 @@ def test_moderators_labels_reached_the_retrain(demo):
     assert result.retrain_report["labels"]["moderators"]
 
 
+def test_the_workers_metrics_agree_with_the_verdicts(demo):
+    result = demo["result"]
+    metrics = result.metrics
+    counted = {k.split("=")[1].rstrip("}"): v for k, v in metrics.items() if k.startswith("seawall_comments_total")}
+    actions = result.figures()["actions"]
+    assert counted == {a: float(n) for a, n in actions.items()}
+    assert metrics["seawall_retrain_runs_total{outcome=promoted}"] == 1.0
+    assert any(k.startswith("seawall_wave_active") for k in metrics)
+
+
 class _Tags(html.parser.HTMLParser):
     def __init__(self):
         super().__init__()
