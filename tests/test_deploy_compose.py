@@ -9,6 +9,8 @@ variable that is not a Seawall setting, a command Seawall or RQ would refuse.
 from __future__ import annotations
 
 import re
+import shutil
+import subprocess
 from pathlib import Path
 
 import pytest
@@ -17,6 +19,7 @@ import yaml
 from ops.cli import build_parser
 from ops.config import env_name, iter_settings
 from ops.settings import MetricsSettings, RetrainSettings
+from servers import require
 
 DEPLOY = Path(__file__).resolve().parents[1] / "deploy"
 SETTINGS = {env_name(name) for name, *_ in iter_settings()}
@@ -100,24 +103,51 @@ def _host_path(mounts: dict[str, str], inside: str) -> Path | None:
     return None
 
 
-def test_prometheus_gets_the_scrape_config_it_is_told_to_read(services):
+def _prometheus_mounts(services) -> tuple[dict[str, str], str]:
     prom = services["prometheus"]
     mounts = {}
     for volume in prom["volumes"]:
         source, target, *_ = volume.split(":")
         mounts[target] = source
     config_flag = next(a for a in prom["command"] if a.startswith("--config.file="))
-    config_path = config_flag.split("=", 1)[1]
+    return mounts, config_flag.split("=", 1)[1]
+
+
+def test_prometheus_reads_a_mounted_config_that_finds_every_worker_replica(services):
+    mounts, config_path = _prometheus_mounts(services)
     host_path = _host_path(mounts, config_path)
-    assert host_path is not None, "the config file Prometheus reads is not mounted from deploy/"
-    assert host_path.resolve() == (DEPLOY / "prometheus" / "prometheus.yml").resolve()
-    assert host_path.is_file(), host_path
-    # the rule files the scrape config names must come through the mounts too
+    assert host_path is not None and host_path.is_file(), "the config Prometheus reads is not mounted from deploy/"
     scrape = yaml.safe_load(host_path.read_text())
-    for pattern in scrape.get("rule_files") or []:
+    (job,) = scrape["scrape_configs"]
+    # loopback targets are unreachable from the Prometheus container: the workers are found by service name
+    assert "static_configs" not in job
+    (sd,) = job["dns_sd_configs"]
+    assert sd["names"] == ["worker"] and sd["type"] == "A"
+    assert sd["port"] == int(services["worker"]["environment"]["SEAWALL_METRICS_PORT"])
+    # same job name as the operator's config, so the alert rules and the dashboard apply unchanged
+    operator = yaml.safe_load((DEPLOY / "prometheus" / "prometheus.yml").read_text())
+    assert job["job_name"] == operator["scrape_configs"][0]["job_name"]
+
+
+def test_prometheus_loads_the_operators_alert_rules(services, tmp_path):
+    mounts, config_path = _prometheus_mounts(services)
+    scrape = yaml.safe_load(_host_path(mounts, config_path).read_text())
+    rule_files = scrape.get("rule_files") or []
+    assert rule_files
+    layout = tmp_path / "etc-prometheus"
+    layout.mkdir()
+    for pattern in rule_files:
         inside = pattern if pattern.startswith("/") else str(Path(config_path).parent / pattern)
         rules = _host_path(mounts, inside)
-        assert rules is not None and list(rules.parent.glob(rules.name)), pattern
+        assert rules is not None and rules.is_file(), pattern
+        assert rules.resolve().parent == (DEPLOY / "prometheus").resolve()
+        shutil.copy(rules, layout / Path(inside).name)
+    # promtool (Debian's prometheus package, installed by .ci/run) checks the config and the rules it names
+    require(shutil.which("promtool") is not None, "promtool is not installed (Debian package prometheus)")
+    shutil.copy(_host_path(mounts, config_path), layout / "prometheus.yml")
+    checked = subprocess.run(["promtool", "check", "config", str(layout / "prometheus.yml")],
+                             capture_output=True, text=True, timeout=60)
+    assert checked.returncode == 0, checked.stdout + checked.stderr
 
 
 def test_every_bind_mount_exists(services):
