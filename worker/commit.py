@@ -9,10 +9,11 @@ its unacked entries are read again.
 
 Exactly one verdict per comment id, checked before anything is written:
 
-1. the entry is still in the group's pending list (``XPENDING`` of that one
-   id).  The list is shared by the group's consumers, so when a slow worker
-   and the consumer that reclaimed its entries both finish, the second
-   commit of an entry finds it acked and writes nothing;
+1. the entry is still pending **for this consumer** (one ``XPENDING`` over the
+   batch's id range, filtered by consumer).  Only an entry's current owner
+   commits it: when a slow worker's entries were taken over (XAUTOCLAIM moves
+   ownership) and both finish, the slow one finds them no longer its own, or
+   already acked, and writes nothing;
 2. ``done:{id}`` does not exist.  This catches what the pending list cannot:
    the same comment id sent twice by a producer that retried its XADD, a
    group recreated at ``0``, a replay.  Use ``maxmemory-policy noeviction``
@@ -43,11 +44,15 @@ COMMIT_LUA = r"""
 local stream, verdicts, held, rates, deadletter = KEYS[1], KEYS[2], KEYS[3], KEYS[4], KEYS[5]
 local group, vmax, text_ttl, done_ttl, rates_ttl, now, model, dmax =
     ARGV[1], ARGV[2], ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7], ARGV[8]
-local n = tonumber(ARGV[9])
+local consumer, first, last, span = ARGV[9], ARGV[10], ARGV[11], ARGV[12]
+local n = tonumber(ARGV[13])
 local out, acks, holds, counts, fields = {}, {}, {}, {}, {}
-local a = 10
+local a = 14
+-- The batch's entries this consumer still owns: one read of its pending list over the batch's id range.
+local mine = {}
+for _, row in ipairs(redis.call('XPENDING', stream, group, first, last, span, consumer)) do mine[row[1]] = true end
 local function still_pending(sid)
-  return #redis.call('XPENDING', stream, group, sid, sid, 1) == 1
+  return mine[sid] == true
 end
 local function count(field)
   if counts[field] == nil then counts[field] = 0; fields[#fields + 1] = field end
@@ -140,13 +145,17 @@ class BatchCommitter:
         self.limits = limits
         self._sha = None
 
-    def arguments(self, scored: Sequence[Scored], dead: Sequence[DeadLetter], *, model: str, now: float):
+    def arguments(self, scored: Sequence[Scored], dead: Sequence[DeadLetter], *, model: str, now: float,
+                  consumer: str):
         """``(keys, args)`` of the script call; pure, so tests can inspect them."""
         k = self.keys
         lim = self.limits
         keys = [k.comments, k.verdicts, k.held, k.rates(int(now // 60)), k.deadletter]
+        ids = [s.comment.stream_id for s in scored] + [d.stream_id for d in dead]
+        first, last = min(ids, key=_id_order), max(ids, key=_id_order)
+        span = 2 * len(ids) + 64  # room for leftovers of an earlier failed commit in the same range
         args = [k.group, lim.verdicts_maxlen, lim.text_cache_ttl_s, lim.done_ttl_s, lim.rates_ttl_s,
-                f"{now:.3f}", model, lim.deadletter_maxlen, len(scored)]
+                f"{now:.3f}", model, lim.deadletter_maxlen, consumer, first, last, span, len(scored)]
         for s in scored:
             c = s.comment
             keys.append(k.done(c.id))
@@ -161,7 +170,7 @@ class BatchCommitter:
                 args += (name, value)
         return keys, args
 
-    def commit(self, client, scored, dead, *, model: str, now: float, pipeline=None):
+    def commit(self, client, scored, dead, *, model: str, now: float, consumer: str, pipeline=None):
         """Run the script; returns one code per comment then per dead letter (1 written, 0 duplicate).
 
         With ``pipeline`` the call is queued there (EVAL, since a pipeline cannot
@@ -169,7 +178,7 @@ class BatchCommitter:
         """
         if not scored and not dead:
             return []
-        keys, args = self.arguments(scored, dead, model=model, now=now)
+        keys, args = self.arguments(scored, dead, model=model, now=now, consumer=consumer)
         if pipeline is not None:
             pipeline.eval(COMMIT_LUA, len(keys), *keys, *args)
             return None
@@ -181,3 +190,9 @@ class BatchCommitter:
             self._sha = client.script_load(COMMIT_LUA)
             reply = client.evalsha(self._sha, len(keys), *keys, *args)
         return [int(x) for x in reply]
+
+
+def _id_order(stream_id: str) -> tuple[int, int]:
+    """Stream ids order by (ms, seq) as numbers, not as strings ("9-0" < "10-0")."""
+    ms, _, seq = stream_id.partition("-")
+    return int(ms), int(seq or 0)

@@ -329,7 +329,8 @@ class StreamConsumer:
         dead.extend(failed)
         model = self._model
         now = self.clock()
-        codes = self._committer.commit(self.client, scored, dead, model=str(model.version), now=now)
+        codes = self._committer.commit(self.client, scored, dead, model=str(model.version), now=now,
+                                       consumer=self.consumer)
 
         n = len(scored)
         written = [s for s, code in zip(scored, codes[:n]) if code == WRITTEN]
