@@ -179,9 +179,9 @@ def start_observability(config, *, client=None, registry: CollectorRegistry | No
     registry = registry if registry is not None else CollectorRegistry()
     observer = PrometheusObserver(metrics=build_metrics(registry), sites=config.metrics.sites,
                                   flagged_window_s=config.metrics.flagged_window_s)
-    client = client if client is not None else connect(config, socket_timeout=5.0, socket_connect_timeout=5.0)
+    client = client if client is not None else connect(config, socket_timeout=5.0, client_name="seawall-monitor")
     out = Observability(registry=registry, observer=observer)
-    if config.waves.enabled:
+    if config.waves.enabled and config.waves.campaigns:
         out.policies = (campaign_policy(config),)
     detector = None
     if config.waves.enabled:

@@ -8,15 +8,17 @@ the same buckets.  Per bucket Redis keeps, for the last ``window_s`` seconds:
 * ``campaigns:lsh:{band}:{key}``: sorted set of comment ids, scored by time;
 * ``campaigns:authors:{band}:{key}``: sorted set of author hashes (never the
   author id itself), scored by time;
-* ``campaigns:link:{band}:{key}``: the campaign the bucket belongs to, if any.
+* ``campaigns:link:{band}:{key}``: the campaign the bucket belongs to, if any;
+* ``campaigns:member:{comment id}``: the campaign a comment was counted in.
 
 All three expire ``window_s`` after their last write.  A bucket that holds at
 least ``min_size`` comments from at least ``min_authors`` distinct authors
 within the window starts a campaign (one ``campaign_start`` event: the
 ``SET NX`` on the bucket's link decides which worker announces it).  Later
 comments that land in any bucket linked to an active campaign are its members;
-their other buckets are linked too, so the campaign follows the template's
-variations.  With ``hold=True`` members the model would publish are held for
+another bucket of a member that is dense itself (N comments, M authors) is
+linked too, so the campaign follows the template's variations without
+chaining in comments that are merely similar to a member.  With ``hold=True`` members the model would publish are held for
 review: this catches a new wave before the nightly retrain has learned it.
 
 Writes are safe to repeat (a redelivered comment re-adds the same member with
@@ -71,6 +73,9 @@ for i = 0, n - 1 do
 end
 return out
 """
+
+# Recent members of a newly dense bucket looked up to find the campaign they already belong to.
+MEMBER_SAMPLE = 10
 
 _PARAMS = {
     "bands": lambda v: isinstance(v, int) and v >= 1,
@@ -165,20 +170,43 @@ class CampaignPolicy:
         active = {_text(k) for k in client.hkeys(ck["active"])}
         members: dict[int, str] = {}
         new_links: dict[str, str] = {}
+        dense: dict[int, str] = {}  # comment index -> its fullest bucket, when that bucket meets N and M
+        in_batch: dict[str, str] = {}  # comment id -> campaign, for members not yet written
         for i, bucket_list, (size, n_authors, best_band, links) in zip(eligible, buckets, reply):
             linked = [_text(x) for x in links] + [new_links[b] for b in bucket_list if b in new_links]
             campaign = next((c for c in linked if c in active), None)
-            if campaign is None and size >= self.min_size and n_authors >= self.min_authors:
-                campaign = self._start(client, comments[i], bucket_list[int(best_band)], int(size), int(n_authors), now)
-                active.add(campaign)
+            is_dense = size >= self.min_size and n_authors >= self.min_authors
+            if campaign is None and is_dense:
+                best = bucket_list[int(best_band)]
+                campaign = self._campaign_of_members(client, best, active, in_batch)
+                if campaign is None:
+                    campaign = self._start(client, comments[i], best, int(size), int(n_authors), now)
+                    active.add(campaign)
             if campaign is None:
                 continue
             members[i] = campaign
-            for b in bucket_list:
-                new_links[b] = campaign
+            in_batch[_get(comments[i], "id")] = campaign
+            if is_dense:
+                # Only a bucket that itself holds N near-duplicates from M authors joins the campaign:
+                # linking every bucket of every member would chain merely similar comments into it.
+                dense[i] = bucket_list[int(best_band)]
+                new_links[dense[i]] = campaign
         if members:
-            self._record_members(client, members, buckets, eligible, now)
+            self._record_members(client, comments, members, dense, now)
         return members
+
+    def _campaign_of_members(self, client, bucket: str, active: set[str], in_batch: dict[str, str]) -> str | None:
+        """The active campaign that recent members of a newly dense bucket already belong to, if any.
+
+        A template's variants fill several buckets; the second bucket to fill
+        joins the first one's campaign instead of announcing another.
+        """
+        recent = client.zrevrange(self._bucket("lsh", bucket), 0, MEMBER_SAMPLE - 1)
+        if not recent:
+            return None
+        local = [in_batch[_text(m)] for m in recent if _text(m) in in_batch]
+        found = local + client.mget([self.keys.key("campaigns", "member", _text(m)) for m in recent])
+        return next((_text(c) for c in found if c is not None and _text(c) in active), None)
 
     def _start(self, client, comment, bucket: str, size: int, n_authors: int, now: float) -> str:
         campaign = "c" + hashlib.blake2b(f"{bucket}:{int(now)}".encode(), digest_size=6).hexdigest()
@@ -199,13 +227,13 @@ class CampaignPolicy:
                     self.window_s)
         return campaign
 
-    def _record_members(self, client, members: dict[int, str], buckets, eligible, now: float) -> None:
+    def _record_members(self, client, comments, members: dict[int, str], dense: dict[int, str], now: float) -> None:
         ck = campaign_keys(self.keys)
-        by_index = dict(zip(eligible, buckets))
         pipe = client.pipeline(transaction=False)
         for i, campaign in members.items():
-            for b in by_index[i]:
-                pipe.set(self._bucket("link", b), campaign, ex=self.window_s)
+            if i in dense:
+                pipe.set(self._bucket("link", dense[i]), campaign, ex=self.window_s)
+            pipe.set(self.keys.key("campaigns", "member", _get(comments[i], "id")), campaign, ex=self.window_s)
             pipe.hincrby(ck["size"], campaign, 1)
             pipe.hset(ck["last"], campaign, f"{now:.3f}")
         pipe.execute()

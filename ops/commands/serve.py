@@ -14,7 +14,8 @@ import sys
 from ops.config import load_config, settings_help
 from ops.labelling import start_feedback
 from ops.processes import ProcessGroup
-from ops.serving import build_consumer, build_observer, configure_logging, model_source
+from ops.monitor import start_observability
+from ops.serving import build_consumer, configure_logging, model_source
 from worker.consumer import default_consumer_name
 
 # Flag -> dotted setting; a flag left out (None) leaves the setting to env, file and defaults.
@@ -26,6 +27,8 @@ FLAGS = {
     "block_ms": "worker.block_ms",
     "processes": "worker.processes",
     "log_level": "log_level",
+    "metrics_port": "metrics.port",
+    "metrics_host": "metrics.host",
 }
 
 
@@ -45,6 +48,9 @@ def register(sub) -> None:
     parser.add_argument("--processes", type=int, metavar="N", help="consumer processes on this host")
     parser.add_argument("--config", metavar="FILE", help="TOML config file (else $SEAWALL_CONFIG)")
     parser.add_argument("--log-level", metavar="LEVEL", help="DEBUG, INFO, WARNING or ERROR")
+    parser.add_argument("--metrics-port", type=int, metavar="PORT",
+                        help="/metrics, /healthz, /readyz port (default 9310; process i of N uses PORT+i; 0: off)")
+    parser.add_argument("--metrics-host", metavar="HOST", help="metrics bind address (default 127.0.0.1)")
     parser.set_defaults(func=run)
 
 
@@ -62,9 +68,9 @@ def serve_one(config) -> int:
     configure_logging(config.log_level, tag=name)
     source = model_source(config)
     source.current()  # a bad model file fails here, before anything is read
-    observer = build_observer(config)
-    # Metrics: the observer's HTTP endpoint (config.metrics) is started here once ops/metrics.py exists.
-    consumer = build_consumer(config, source=source, observer=observer, consumer=name)
+    observability = start_observability(config)  # metrics endpoint, wave detector, campaign policy
+    consumer = build_consumer(config, source=source, observer=observability.observer, consumer=name,
+                              policies=observability.policies)
     feedback = start_feedback(config, worker_consumer=name)  # moderators' labels -> labelled store
     for sig in (signal.SIGTERM, signal.SIGINT):
         signal.signal(sig, lambda *_: consumer.stop())
@@ -73,6 +79,7 @@ def serve_one(config) -> int:
     finally:
         if feedback is not None:
             feedback.stop()
+        observability.stop()
 
 
 def run_many(args, config) -> int:
@@ -82,12 +89,14 @@ def run_many(args, config) -> int:
     passed = []
     for flag, _setting in FLAGS.items():
         value = getattr(args, flag)
-        if value is not None and flag not in ("processes", "consumer"):
+        if value is not None and flag not in ("processes", "consumer", "metrics_port"):
             passed += [f"--{flag.replace('_', '-')}", str(value)]
     if args.config:
         passed += ["--config", args.config]
 
     def argv_for(i: int) -> list[str]:
-        return [sys.executable, "-m", "ops.cli", "serve", *passed, "--processes", "1", "--consumer", f"{base}-{i}"]
+        port = config.metrics.port + i if config.metrics.port else 0  # one metrics endpoint per process
+        return [sys.executable, "-m", "ops.cli", "serve", *passed, "--processes", "1", "--consumer", f"{base}-{i}",
+                "--metrics-port", str(port)]
 
     return ProcessGroup(n=config.worker.processes, argv_for=argv_for).run()
