@@ -12,11 +12,13 @@ One retrain, in order:
    ``max_moderator_share`` of the new labels (labels without a moderator
    count as one source); the excess is dropped at random (seeded);
 4. holdout: a stable share of ids (by SHA-1 of the id, so an id is always on
-   the same side) is never trained on;
+   the same side) is never trained on; the holdout labels of a source the
+   cap had to trim do not judge the gate (a flood must not grade itself);
 5. candidate: a copy of the active model, warm-started with ``learn_many``
    on the new labels + a replay sample of older labels + the replay sample of
-   the original training data stored in the registry; thresholds
-   recalibrated on holdout + canary;
+   the original training data stored in the registry (at most
+   ``replay_ratio`` replay rows per new label), for ``epochs`` passes;
+   thresholds recalibrated on holdout + canary;
 6. gate: candidate and active are scored on the same holdout (new holdout
    labels + the registry's canary set) and, separately, on the canary set
    alone (trusted data a label flood cannot touch).  Promote only if on each
@@ -150,6 +152,24 @@ def cap_moderators(rows: list[LabelRow], share: float, rng: random.Random) -> tu
     kept = [r for r in rows if r.id in keep_ids]
     kept_counts = Counter(r.moderator for r in kept)
     return kept, {m: {"given": n, "kept": kept_counts.get(m, 0)} for m, n in counts.items()}
+
+
+def replay_sizes(n_new: int, n_older: int, n_original: int, settings: RetrainSettings) -> tuple[int, int]:
+    """How many older labels and original rows to replay beside ``n_new`` new labels (pure).
+
+    The replay is at most ``replay_ratio`` rows per new label, so that old
+    data remind the model without drowning what it should learn; when both
+    kinds are available each gets half of that budget, and what one cannot
+    use goes to the other.
+    """
+    budget = int(settings.replay_ratio * n_new)
+    older = min(settings.replay_labels, n_older)
+    original = min(settings.replay_original, n_original)
+    if older + original <= budget:
+        return older, original
+    half = budget // 2
+    take_old = min(older, max(half, budget - original))
+    return take_old, min(original, budget - take_old)
 
 
 def ranking_figures(labels, scores, fpr: float) -> dict:
@@ -297,9 +317,10 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
     holdout = [r for r in capped if in_holdout(r.id, settings.holdout_share)]
     train_new = [r for r in capped if not in_holdout(r.id, settings.holdout_share)]
     older_pool = [r for r in old_rows if not in_holdout(r.id, settings.holdout_share)]
-    replay_old = rng.sample(older_pool, min(settings.replay_labels, len(older_pool)))
     original = registry.replay()
-    replay_orig = rng.sample(original, min(settings.replay_original, len(original)))
+    n_old, n_orig = replay_sizes(len(train_new), len(older_pool), len(original), settings)
+    replay_old = rng.sample(older_pool, n_old)
+    replay_orig = rng.sample(original, n_orig)
     canary = registry.canary()
     labels.update({"holdout": len(holdout), "trained_new": len(train_new), "replay_labels": len(replay_old),
                    "replay_original": len(replay_orig), "canary": len(canary)})
@@ -310,7 +331,12 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
         report["reasons"].append("every new label fell in the holdout or was dropped; nothing new to train on")
         return
 
-    gate_rows = [(r.text, r.y) for r in holdout] + list(canary)
+    # A source the cap had to trim is suspect: its labels still train (capped),
+    # but they do not judge the candidate.
+    trimmed = set(dropped)
+    judged = [r for r in holdout if r.moderator not in trimmed]
+    labels["holdout_judging"] = len(judged)
+    gate_rows = [(r.text, r.y) for r in judged] + list(canary)
     gate_y = [y for _, y in gate_rows]
     if len(gate_rows) < settings.min_holdout or len(set(gate_y)) < 2:
         report["decision"] = "refused"
@@ -331,17 +357,20 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
         report["reasons"].append(f"thresholds kept from the active model: {exc}")
     active = load_model(active_bytes)
 
+    # Canary rows are the tail of the gate rows: score every row once per model.
     gate_texts = [t for t, _ in gate_rows]
+    active_scores = active.predict_proba_many(gate_texts)
+    candidate_scores = candidate.predict_proba_many(gate_texts)
     sets = {"holdout+canary": {
-        "active": ranking_figures(gate_y, active.predict_proba_many(gate_texts), settings.gate_fpr),
-        "candidate": ranking_figures(gate_y, candidate.predict_proba_many(gate_texts), settings.gate_fpr),
+        "active": ranking_figures(gate_y, active_scores, settings.gate_fpr),
+        "candidate": ranking_figures(gate_y, candidate_scores, settings.gate_fpr),
     }}
     canary_y = [y for _, y in canary]
     if len(set(canary_y)) == 2:
-        canary_texts = [t for t, _ in canary]
+        tail = len(canary)
         sets["canary"] = {
-            "active": ranking_figures(canary_y, active.predict_proba_many(canary_texts), settings.gate_fpr),
-            "candidate": ranking_figures(canary_y, candidate.predict_proba_many(canary_texts), settings.gate_fpr),
+            "active": ranking_figures(canary_y, active_scores[-tail:], settings.gate_fpr),
+            "candidate": ranking_figures(canary_y, candidate_scores[-tail:], settings.gate_fpr),
         }
     ok, reasons = gate_decision(sets, auc_tolerance=settings.auc_tolerance, recall_tolerance=settings.recall_tolerance)
     report["gate"] = {"fpr": settings.gate_fpr, "auc_tolerance": settings.auc_tolerance,

@@ -33,9 +33,10 @@ class RetrainSettings:
     min_holdout: int = setting(40, "the gate refuses to promote on a holdout smaller than this")
     replay_labels: int = setting(5000, "replay sample of older labels trained with each retrain")
     replay_original: int = setting(5000, "replay sample of the original training data kept in the registry")
+    replay_ratio: float = setting(1.0, "at most this many replay rows (older labels + original data) per new label trained on")
     canary_size: int = setting(500, "canary rows carved from `models push --replay` data when no --canary file is given")
     max_moderator_share: float = setting(0.5, "no single moderator supplies more than this share of one retrain's new labels")
-    epochs: int = setting(0, "training epochs of the warm-start update; 0 means the model's own default")
+    epochs: int = setting(3, "passes of the warm-start update over its rows (0 = the model's own epochs); few, as the active model is already trained and no early stopping guards the update")
     seed: int = setting(0, "seed of the retrain's samples")
     gate_fpr: float = setting(0.01, "false-positive rate at which the gate compares recall")
     auc_tolerance: float = setting(0.005, "promote only if candidate ROC-AUC >= active ROC-AUC - this")
@@ -70,6 +71,7 @@ _RETRAIN_BOUNDS = (
     ("min_holdout", 1, 10**8),
     ("replay_labels", 0, 10**7),
     ("replay_original", 0, 10**7),
+    ("replay_ratio", 0.0, 100.0),
     ("canary_size", 0, 10**7),
     ("max_moderator_share", 0.01, 1.0),
     ("epochs", 0, 1000),

