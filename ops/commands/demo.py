@@ -85,6 +85,9 @@ def run(args) -> int:
     print(summary_text(result, backend=backend))
     report_path.write_text(render_html(result, backend=backend), encoding="utf-8")
     print(f"\nreport: {report_path}")
+    if not embedded:
+        print(f"the demo's keys stay under {args.prefix!r} for you to look at "
+              f"(e.g. XRANGE {config.keys.events} - +); run with --reset to start over")
     return 0
 
 
