@@ -30,7 +30,6 @@ and the HTML report (:mod:`ops.demo_report`) show.
 """
 from __future__ import annotations
 
-import json
 import logging
 import random
 import time
@@ -43,16 +42,16 @@ from croniter import croniter
 from prometheus_client import CollectorRegistry
 
 from model.classifier import EmbeddingClassifier
+from model.minhash import MinHasher
 from ops.config import Config
 from ops.cusum import WaveParams
+from ops.metrics import PrometheusObserver, build_metrics
+from ops.monitor import Monitor
 from ops.registry import Registry, RegistryModelSource, split_replay
 from ops.rescore import rescore_held
 from ops.retrain import retrain
 from ops.scenario import SITES, Scenario, ScenarioComment
 from ops.waves import WaveDetector
-from model.minhash import MinHasher
-from ops.metrics import PrometheusObserver, build_metrics
-from ops.monitor import Monitor
 from worker.campaigns import CampaignPolicy, campaign_keys
 from worker.consumer import StreamConsumer
 from worker.events import parse_event
@@ -432,7 +431,7 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
 
         # published spam since the last round is what readers may report
         if (minute + 1) % MODERATION_EVERY_MIN == 0:
-            n = moderate(client, config, rng, truth, reports.since_last(client), result.labels_sent)
+            moderate(client, config, rng, truth, reports.since_last(client), result.labels_sent)
             feedback.drain()
             if (minute + 1) % STATUS_EVERY_MIN == 0:
                 progress(f"{stamp(clock.now)} {_status(client, keys)}; "
