@@ -33,6 +33,10 @@ from model.explain import top_contributions
 from model.hashing import TokenHasher
 from model.tokens import Tokenizer
 
+#: Up to this many comments per call are scored by the pure-Python path.
+FEW = 4
+
+
 def auto_dim(distinct_tokens: int) -> int:
     """Embedding width by the rule of thumb d ≈ (distinct tokens) ** (1/4) (common practice).
 
@@ -424,6 +428,58 @@ class EmbeddingClassifier:
 
     def _invalidate(self) -> None:
         self._scoring = None
+        self._bucket_logit = None
+
+    def _bucket_logits(self) -> dict[int, float] | None:
+        """bucket → its row's logit term, for the few-comments path (linear head only)."""
+        if getattr(self, "_bucket_logit", None) is None:
+            index, _, row_logit, _ = self._scoring_tables()
+            if row_logit is None:
+                return None
+            buckets = np.flatnonzero(index)
+            self._bucket_logit = dict(zip(buckets.tolist(), row_logit[index[buckets]].tolist()))
+        return self._bucket_logit
+
+    def _score_few(self, feature_lists, top_k: int, table: dict[int, float]):
+        """Pure-Python scoring for a handful of comments.
+
+        Same arithmetic as the vectorised path; for one comment the dozen numpy
+        calls of that path cost more than the whole comment, so a single
+        comment (the latency case) is scored with plain dicts.
+        """
+        lookup = self._hasher._cache.__getitem__
+        bias = float(self._scoring_tables()[3]["b2"][0])
+        l2 = self.pooling == "l2"
+        scores = np.empty(len(feature_lists))
+        reasons = []
+        for i, tokens in enumerate(feature_lists):
+            counts: dict[int, int] = {}
+            names: dict[int, str] = {}
+            for token in tokens:
+                b = lookup(token)
+                if b in counts:
+                    counts[b] += 1
+                else:
+                    counts[b] = 1
+                    names[b] = token
+            norm = math.sqrt(sum(c * c for c in counts.values())) if l2 else float(len(tokens))
+            terms = []
+            logit = bias
+            if norm:
+                get = table.get
+                for b, c in counts.items():
+                    value = get(b)
+                    if value is not None and value != 0.0:
+                        term = c / norm * value
+                        logit += term
+                        terms.append((names[b], term))
+            scores[i] = logit
+            if top_k > 0:
+                terms.sort(key=lambda t: -abs(t[1]))
+                reasons.append(terms[:top_k])
+            else:
+                reasons.append([])
+        return network.sigmoid(scores), reasons
 
     def _scoring_tables(self):
         """Compact scoring tables: bucket → row index (0 = no row), rows, per-row linear logit."""
@@ -485,6 +541,10 @@ class EmbeddingClassifier:
         Lets a caller (or a test) score a comment with some tokens removed.
         """
         self._require_fitted("score")
+        if len(feature_lists) <= FEW and self.hidden == 0 and isinstance(self._hasher._cache, dict):
+            table = self._bucket_logits()
+            if table is not None:
+                return self._score_few(feature_lists, top_k, table)
         bag = self._bag(feature_lists)
         logits, contrib = self._logits_and_contributions(bag, top_k > 0)
         scores = network.sigmoid(logits)
