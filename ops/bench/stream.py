@@ -13,7 +13,11 @@ port unless ``--redis`` is given; each measurement uses its own key prefix):
   ``--seconds``; enqueue->verdict is the verdict's entry id minus the
   comment's entry id (both server milliseconds), reported as p50 and p99;
 * **RSS**: the peak resident set of the real-model worker process;
-* **scaling**: the throughput run again with two worker processes.
+* **scaling**: the throughput run again with two worker processes;
+* **CPU per comment** of the worker process (``time.process_time``) and of
+  Redis (``INFO cpu``): unlike rates, these do not depend on how
+  busy a shared machine is, and ``1e6 / max(worker, redis)`` estimates the
+  rate on one uncontended core for each.
 
 Worker processes are started with the ``spawn`` method and build their
 consumer with :func:`ops.serving.build_consumer`, as ``seawall serve`` does.
@@ -121,8 +125,9 @@ def _worker_main(overrides: dict, model_path: str, noop: bool, name: str, ready,
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     consumer.prepare()
     ready.set()
+    cpu0 = time.process_time()
     consumer.run()
-    results.put({"name": name, "peak_rss_mb": own_peak_rss_mb()})
+    results.put({"name": name, "peak_rss_mb": own_peak_rss_mb(), "cpu_s": time.process_time() - cpu0})
 
 
 def own_peak_rss_mb() -> float:
@@ -159,6 +164,14 @@ class Harness:
 
     def key(self, name: str) -> str:
         return self.prefix + name
+
+    def redis_cpu_usec(self) -> float:
+        """CPU time of the Redis server process so far (INFO cpu, user + system), in microseconds.
+
+        Not commandstats: commands a script calls are counted there twice.
+        """
+        cpu = self.client.info("cpu")
+        return (float(cpu["used_cpu_user"]) + float(cpu["used_cpu_sys"])) * 1e6
 
     def start(self, n: int, *, noop: bool) -> None:
         events = []
@@ -229,13 +242,17 @@ def _throughput(url, prefix, model_path, comments, *, processes, noop, batch, bl
     try:
         h.enqueue(comments)
         h.start(processes, noop=noop)
+        redis_before = h.redis_cpu_usec()
         h.wait_verdicts(len(comments), timeout_s=600)
+        redis_usec = h.redis_cpu_usec() - redis_before
         stats = h.stop()
         ids = h.verdict_ids()
         first, last = ids[0][0], ids[-1][0]
         span_s = max(last - first, 1) / 1000.0
         return {"per_s": (len(ids) - 1) / span_s, "verdicts": len(ids),
-                "peak_rss_mb": max(s["peak_rss_mb"] for s in stats)}
+                "peak_rss_mb": max(s["peak_rss_mb"] for s in stats),
+                "worker_cpu_us": sum(s["cpu_s"] for s in stats) / len(ids) * 1e6,
+                "redis_cpu_us": redis_usec / len(ids)}
     finally:
         if h.procs:
             h.stop()
@@ -309,6 +326,13 @@ def _measure(url: str, model_path: str, comments, args) -> dict:
         "real_per_s": real["per_s"],
         "ceiling_per_s": ceiling["per_s"],
         "ratio_to_ceiling": real["per_s"] / ceiling["per_s"],
+        # CPU per comment does not depend on how busy a shared machine is; 1e6 / max(worker, redis)
+        # is what one uncontended core for the worker and one for Redis would sustain.
+        "real_worker_cpu_us_per_comment": real["worker_cpu_us"],
+        "noop_worker_cpu_us_per_comment": ceiling["worker_cpu_us"],
+        "redis_cpu_us_per_comment": real["redis_cpu_us"],
+        "uncontended_real_per_s": 1e6 / max(real["worker_cpu_us"], real["redis_cpu_us"]),
+        "uncontended_ceiling_per_s": 1e6 / max(ceiling["worker_cpu_us"], ceiling["redis_cpu_us"]),
         "two_processes_per_s": two["per_s"],
         "scaling_1_to_2": two["per_s"] / real["per_s"],
         "latency_offered_per_s": lat["offered_per_s"],
