@@ -166,3 +166,16 @@ def test_no_text_or_author_is_stored(fake_redis):
 def test_params_are_validated(kwargs, field):
     with pytest.raises(ValueError, match=field):
         policy(Clock(), **kwargs)
+
+
+def test_a_burst_of_variants_is_one_campaign(fake_redis):
+    """Variants filling different buckets in the same batch join the first campaign (one event)."""
+    from ops.scenario import Scenario
+
+    scenario = Scenario()
+    wave = [c for c in scenario.stream() if c.kind == "wave"][:120]
+    clock = Clock(wave[-1].ts)
+    out = policy(clock).apply(fake_redis, wave, [0.1] * len(wave), ["publish"] * len(wave))
+    starts = [e for e in events(fake_redis) if e.type == "campaign_start"]
+    assert len(starts) == 1, [e.data for e in starts]
+    assert out.count("hold") >= 100

@@ -9,7 +9,8 @@ the same buckets.  Per bucket Redis keeps, for the last ``window_s`` seconds:
 * ``campaigns:authors:{band}:{key}``: sorted set of author hashes (never the
   author id itself), scored by time;
 * ``campaigns:link:{band}:{key}``: the campaign the bucket belongs to, if any;
-* ``campaigns:member:{comment id}``: the campaign a comment was counted in.
+* ``campaigns:member:{comment id}``: the campaign a comment was counted in;
+* ``campaigns:seed``: per active campaign, its first member's band keys.
 
 All three expire ``window_s`` after their last write.  A bucket that holds at
 least ``min_size`` comments from at least ``min_authors`` distinct authors
@@ -89,7 +90,7 @@ _PARAMS = {
 
 def campaign_keys(keys: Keys) -> dict[str, str]:
     return {"active": keys.key("campaigns", "active"), "last": keys.key("campaigns", "last"),
-            "size": keys.key("campaigns", "size")}
+            "size": keys.key("campaigns", "size"), "seed": keys.key("campaigns", "seed")}
 
 
 def author_hash(author: str, comment_id: str) -> str:
@@ -172,6 +173,7 @@ class CampaignPolicy:
         new_links: dict[str, str] = {}
         dense: dict[int, str] = {}  # comment index -> its fullest bucket, when that bucket meets N and M
         in_batch: dict[str, str] = {}  # comment id -> campaign, for members not yet written
+        seeds: dict[str, set[str]] | None = None  # campaign -> its first member's band keys, read when needed
         for i, bucket_list, (size, n_authors, best_band, links) in zip(eligible, buckets, reply):
             linked = [_text(x) for x in links] + [new_links[b] for b in bucket_list if b in new_links]
             campaign = next((c for c in linked if c in active), None)
@@ -180,8 +182,13 @@ class CampaignPolicy:
                 best = bucket_list[int(best_band)]
                 campaign = self._campaign_of_members(client, best, active, in_batch)
                 if campaign is None:
-                    campaign = self._start(client, comments[i], best, int(size), int(n_authors), now)
+                    if seeds is None:
+                        seeds = self._load_seeds(client)
+                    campaign = self._campaign_of_seeds(client, bucket_list, active, seeds)
+                if campaign is None:
+                    campaign = self._start(client, comments[i], best, bucket_list, int(size), int(n_authors), now)
                     active.add(campaign)
+                    seeds[campaign] = set(bucket_list)
             if campaign is None:
                 continue
             members[i] = campaign
@@ -208,7 +215,28 @@ class CampaignPolicy:
         found = local + client.mget([self.keys.key("campaigns", "member", _text(m)) for m in recent])
         return next((_text(c) for c in found if c is not None and _text(c) in active), None)
 
-    def _start(self, client, comment, bucket: str, size: int, n_authors: int, now: float) -> str:
+    def _load_seeds(self, client) -> dict[str, set[str]]:
+        out = {}
+        for k, v in client.hgetall(campaign_keys(self.keys)["seed"]).items():
+            try:
+                out[_text(k)] = set(json.loads(v))
+            except (ValueError, TypeError):
+                continue
+        return out
+
+    def _campaign_of_seeds(self, client, bucket_list: list[str], active: set[str], seeds) -> str | None:
+        """The active campaign whose first member shares a band key with this comment, if any.
+
+        Variants of one template that fill different buckets at the same
+        moment (a burst) then join one campaign instead of announcing several.
+        """
+        if seeds is None:
+            raise RuntimeError("campaigns: seeds must be loaded first")
+        mine = set(bucket_list)
+        return next((c for c, keys in seeds.items() if c in active and keys & mine), None)
+
+    def _start(self, client, comment, bucket: str, bucket_list: list[str], size: int, n_authors: int,
+               now: float) -> str:
         campaign = "c" + hashlib.blake2b(f"{bucket}:{int(now)}".encode(), digest_size=6).hexdigest()
         link = self._bucket("link", bucket)
         if not client.set(link, campaign, nx=True, ex=self.window_s):
@@ -221,6 +249,7 @@ class CampaignPolicy:
         pipe.hset(ck["active"], campaign, json.dumps(data, sort_keys=True))
         pipe.hset(ck["last"], campaign, f"{now:.3f}")
         pipe.hset(ck["size"], campaign, size - 1)  # the trigger itself is added as the first member
+        pipe.hset(ck["seed"], campaign, json.dumps(bucket_list))
         add_event(client, self.keys.events, "campaign_start", data, ts=now, maxlen=self.events_maxlen, pipeline=pipe)
         pipe.execute()
         log.warning("campaign_start %s: %d near-duplicates from %d authors within %ds", campaign, size, n_authors,
@@ -265,6 +294,7 @@ def end_idle_campaigns(client, keys: Keys, *, now: float, window_s: int, events_
         pipe = client.pipeline(transaction=True)
         pipe.hdel(ck["last"], campaign)
         pipe.hdel(ck["size"], campaign)
+        pipe.hdel(ck["seed"], campaign)
         add_event(client, keys.events, "campaign_end", data, ts=now, maxlen=events_maxlen, pipeline=pipe)
         pipe.execute()
         ended.append(data)
