@@ -52,11 +52,14 @@ def top_contributions(
     doc, contribution, first = doc[keep], contribution[keep], first[keep]
     if doc.size == 0:
         return out
-    # One sort on a composite key: the comment, then magnitude descending
-    # (a fraction in [0, 0.5]); cheaper than a two-key lexsort.
-    magnitude = np.abs(contribution)
-    key = doc + 0.5 * (1.0 - magnitude / magnitude.max())
-    order = np.argsort(key)
+    # Pairs in order of first appearance (which also groups them by comment),
+    # then one stable sort on a composite key: the comment, then magnitude
+    # descending as a fraction in [0, 0.5].  Equal contributions keep the order
+    # the tokens appear in, so the ranking is the same whichever path scored.
+    by_position = np.argsort(first)
+    magnitude = np.abs(contribution[by_position])
+    key = doc[by_position] + 0.5 * (1.0 - magnitude / magnitude.max())
+    order = by_position[np.argsort(key, kind="stable")]
     sorted_doc = doc[order]
     starts = np.searchsorted(sorted_doc, np.arange(n_docs))
     rank = np.arange(sorted_doc.size) - starts[sorted_doc]

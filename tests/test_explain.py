@@ -97,3 +97,18 @@ def test_top_k_zero_skips_explanations(linear):
     assert reasons == [[] for _ in SPAM]
     np.testing.assert_allclose(scores, linear.predict_proba_many(SPAM))
     assert np.all(network.sigmoid(linear.logits_many(SPAM)) == scores)
+
+
+def test_the_one_comment_path_agrees_with_the_batch_path(linear):
+    # score_many takes a pure-Python path for a handful of comments and a
+    # vectorised one for more; both must give the same scores and reasons.
+    from model import classifier
+
+    texts = UNSEEN_SPAM + HAM + ["", "zzqx only unknown words"]
+    assert len(texts) > classifier.FEW
+    batch_scores, batch_reasons = linear.score_many(texts, top_k=4)
+    for text, score, why in zip(texts, batch_scores, batch_reasons):
+        (one_score,), (one_why,) = linear.score_many([text], top_k=4)
+        assert one_score == pytest.approx(score, abs=1e-12)
+        assert [t for t, _ in one_why] == [t for t, _ in why]
+        np.testing.assert_allclose([c for _, c in one_why], [c for _, c in why], atol=1e-12)
