@@ -138,7 +138,12 @@ def test_retrain_cronjob_runs_the_gated_retrain_nightly_without_overlap():
     assert container["image"]
     command = container["command"] + container.get("args", [])
     assert command[0] == "seawall"
-    assert build_parser().parse_args(command[1:]).command == "retrain"
+    args = build_parser().parse_args(command[1:])
+    assert args.command == "retrain"
+    # the default hands the hold-queue re-score to an RQ worker; none runs in these manifests
+    runs_rq_worker = any("rq" in (c.get("command") or [""])[0] for d in documents() if d["kind"] == "Deployment"
+                         for c in d["spec"]["template"]["spec"]["containers"])
+    assert runs_rq_worker or args.rescore in {"now", "off"}
     for key in container_env(container):
         assert key in SETTINGS, key
 
