@@ -187,3 +187,57 @@ def test_real_worker_metrics_scraped_by_real_prometheus_without_leaking_text(wor
     log_text = worker["log"].read_text(errors="replace")
     assert "DEBUG" in log_text or "INFO" in log_text  # the log is not empty, so the check means something
     assert marker not in log_text
+
+
+def free_port_pair() -> int:
+    """A port P with P + 1 free as well (both checked by binding)."""
+    import socket
+
+    for _ in range(50):
+        p = free_port()
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            try:
+                s.bind(("127.0.0.1", p + 1))
+            except OSError:
+                continue
+        return p
+    raise RuntimeError("no two consecutive free loopback ports")
+
+
+def test_processes_each_serve_their_own_endpoint(redis_server, model_file, tmp_path):
+    """`--processes 2 --metrics-port P`: process i serves on P + i, each with its own counts."""
+    port = free_port_pair()
+    env = {k: v for k, v in os.environ.items() if not k.startswith("SEAWALL_")}
+    log = open(tmp_path / "supervisor.log", "wb")
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "ops.cli", "serve", "--redis", redis_server.url, "--model", str(model_file),
+         "--consumer", "pair", "--processes", "2", "--block-ms", "50", "--metrics-port", str(port)],
+        env=env, stdout=log, stderr=subprocess.STDOUT,
+    )
+    try:
+        for p in (port, port + 1):
+            wait_for_port("127.0.0.1", p, timeout=60)
+            assert fetch(f"http://127.0.0.1:{p}/healthz")[0] == 200
+        client = redis_server.client()
+        for i, (text, _label) in enumerate(invented_comments(200, seed=3)):
+            client.xadd(KEYS.comments, {"id": f"p{i}", "text": text})
+        wait_until(lambda: client.xlen(KEYS.verdicts) >= 200, timeout=30, what="every verdict")
+
+        def counted():
+            per = []
+            for p in (port, port + 1):
+                body = fetch(f"http://127.0.0.1:{p}/metrics")[1]
+                per.append(sum(sample(body, "seawall_comments_total", site="other", action=a) or 0
+                               for a in ("publish", "hold", "reject")))
+            return per if sum(per) == 200 else None
+
+        per_process = wait_until(counted, timeout=10, what="the two endpoints to add up to every verdict")
+        assert sum(per_process) == 200  # summed over instances, as the dashboard does
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            proc.wait(timeout=30)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait(timeout=10)
+        log.close()
