@@ -447,7 +447,7 @@ class EmbeddingClassifier:
         calls of that path cost more than the whole comment, so a single
         comment (the latency case) is scored with plain dicts.
         """
-        lookup = self._hasher._cache.__getitem__
+        buckets_of = self._hasher.buckets
         bias = float(self._scoring_tables()[3]["b2"][0])
         l2 = self.pooling == "l2"
         scores = np.empty(len(feature_lists))
@@ -455,8 +455,7 @@ class EmbeddingClassifier:
         for i, tokens in enumerate(feature_lists):
             counts: dict[int, int] = {}
             names: dict[int, str] = {}
-            for token in tokens:
-                b = lookup(token)
+            for token, b in zip(tokens, buckets_of(tokens).tolist()):
                 if b in counts:
                     counts[b] += 1
                 else:
@@ -541,7 +540,7 @@ class EmbeddingClassifier:
         Lets a caller (or a test) score a comment with some tokens removed.
         """
         self._require_fitted("score")
-        if len(feature_lists) <= FEW and self.hidden == 0 and isinstance(self._hasher._cache, dict):
+        if len(feature_lists) <= FEW and self.hidden == 0:
             table = self._bucket_logits()
             if table is not None:
                 return self._score_few(feature_lists, top_k, table)
