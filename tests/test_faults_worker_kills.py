@@ -1,0 +1,79 @@
+"""SIGKILL real workers at random points of a 20,000-comment run: nothing lost, nothing doubled."""
+from __future__ import annotations
+
+import json
+import random
+import signal
+import time
+
+import pytest
+
+from faults_kit import (
+    KEYS,
+    Producer,
+    Worker,
+    consumer_pending,
+    deadletters,
+    group_lag,
+    group_pending,
+    stop_all,
+    verdict_ids,
+    wait_until,
+    write_model,
+)
+
+COMMENTS = 20_000
+KILLS = 20
+
+
+@pytest.mark.redis_server
+@pytest.mark.slow
+def test_twenty_sigkills_during_a_20000_comment_run_lose_and_double_nothing(redis_server, tmp_path):
+    client = redis_server.client()
+    model = write_model(tmp_path / "model.bin")
+    rng = random.Random(20)
+    # Kills are the test's doing, not the entries': lift the poison limit so that an entry
+    # caught in several kills is not dead-lettered (poison has its own unit test).
+    env = {"SEAWALL_WORKER_MAX_DELIVERIES": "1000"}
+    workers = [Worker(url=redis_server.url, name=f"w{i}", log_dir=tmp_path, model_path=model, env=env).start()
+               for i in range(2)]
+    kills = []
+    try:
+        # The whole run is queued up front, so the workers always have a batch in hand.
+        Producer(url=redis_server.url, n=COMMENTS, rate=1e9, chunk=1000).run()
+        deadline = time.monotonic() + 150
+        for k in range(KILLS):
+            # Kills are spread over the run: the k-th waits for its share of the verdicts.
+            due = (k + 1) * COMMENTS // (KILLS + 2)
+            wait_until(lambda: client.xlen(KEYS.verdicts) >= due, timeout=max(0.0, deadline - time.monotonic()))
+            time.sleep(rng.uniform(0.0, 0.2))
+            # Aim at a worker holding unacknowledged entries, so the kill lands mid-batch.
+            busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name)],
+                              timeout=5, interval=0.01)
+            victim = rng.choice(busy or workers)
+            held = consumer_pending(client, victim.name)
+            assert victim.kill() == -signal.SIGKILL
+            kills.append({"worker": victim.name, "pending_at_kill": held})
+            # Even kills: restart under the same name (it reads its own backlog first);
+            # odd kills: a new name, so the others must reclaim what the dead one held.
+            base = victim.name.split(".")[0]
+            victim.start(name=victim.name if len(kills) % 2 == 0 else f"{base}.{len(kills)}")
+        finished = wait_until(lambda: client.xlen(KEYS.verdicts) >= COMMENTS and group_pending(client) == 0,
+                              timeout=max(10.0, deadline - time.monotonic()), interval=0.2)
+        counts = verdict_ids(client)
+        assert finished, f"{len(counts)} ids with verdicts, {group_pending(client)} pending after the run"
+    finally:
+        codes = stop_all(workers)
+    lost = COMMENTS - len(counts)
+    duplicates = sum(n - 1 for n in counts.values() if n > 1)
+    mid_batch = sum(1 for k in kills if k["pending_at_kill"] > 0)
+    print("faults:", json.dumps({"test": "worker_kills", "comments": COMMENTS, "kills": len(kills),
+                                 "kills_mid_batch": mid_batch, "lost": lost, "duplicates": duplicates,
+                                 "pending": group_pending(client), "deadletters": client.xlen(KEYS.deadletter)}))
+    assert set(counts) == {f"c{i}" for i in range(COMMENTS)}
+    assert lost == 0 and duplicates == 0
+    assert client.xlen(KEYS.verdicts) == COMMENTS
+    assert group_pending(client) == 0 and group_lag(client) in (0, None)
+    assert deadletters(client) == []
+    assert mid_batch >= KILLS // 2, kills  # the kills really hit workers in the middle of their work
+    assert codes == [0, 0]  # the survivors still stop cleanly on SIGTERM
