@@ -114,3 +114,13 @@ def test_systemd_timer_is_the_same_nightly_schedule_and_runs_a_real_command():
     args = build_parser().parse_args(argv[1:])
     assert args.command == "retrain" and args.rescore == "now"
     assert "EnvironmentFile=/etc/seawall/seawall.env" in service and "Type=oneshot" in service
+
+
+def test_bench_retrain_runs_and_reports_its_ratio(capsys):
+    from ops.cli import main
+
+    assert main(["bench", "retrain", "--n", "300", "--replay", "100", "--repeats", "1", "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert rows["comments"] == 300 and rows["update_epochs"] == 3
+    assert rows["update_over_fresh_fit"] == pytest.approx(rows["update_median_s"] / rows["fresh_fit_median_s"], rel=0.05)
+    assert rows["full_retrain_decision"] in ("promoted", "refused")
