@@ -163,3 +163,35 @@ def test_demo_on_a_real_server_refuses_a_used_prefix_then_runs_with_reset(redis_
     row = next(line for line in out.splitlines() if line.startswith("  by the model alone"))
     before, after = (float(x.rstrip("%")) for x in row.split()[-2:])
     assert before < 10.0 and after > 90.0
+
+
+@pytest.mark.parametrize(
+    "argv, message",
+    [
+        (["--report", "/nonexistent-folder/r.html"], "does not exist"),
+        (["--prefix", ""], "--prefix must not be empty"),
+    ],
+    ids=["report-folder-missing", "empty-prefix"],
+)
+def test_bad_arguments_fail_before_anything_runs(argv, message, capsys):
+    assert main(["demo", *argv]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("seawall demo: error: demo: ") and message in err
+
+
+def test_report_of_a_refused_retrain_says_so_and_shows_no_after_figures():
+    from ops.demo import DemoResult, Verdict
+    from ops.demo_report import render_html, summary_text
+    from ops.scenario import Scenario
+
+    scenario = Scenario(duration_s=300.0, wave_start_s=120.0, wave_end_s=300.0)
+    comments = list(scenario.stream())
+    result = DemoResult(scenario=scenario, first_model="m1", thresholds={"m1": {"hold": 0.5, "reject": 0.9}},
+                        retrain_report={"decision": "refused", "reasons": ["holdout too small"]})
+    result.verdicts = [Verdict(c, "hold" if c.label else "publish", 0.7 if c.label else 0.1, "m1",
+                               int((c.ts - scenario.start_ts) // 60)) for c in comments]
+    text = summary_text(result, backend="test")
+    assert "nightly retrain: refused" in text
+    assert "n/a" in text  # nothing was scored by a retrained model
+    page = render_html(result, backend="test")
+    assert page.count("<svg") == 4 and "n/a" in page
