@@ -76,7 +76,9 @@ def decode_examples(blob: bytes | None) -> list[tuple[str, int]]:
     except (zlib.error, UnicodeDecodeError) as exc:
         raise DataError(f"registry: a stored example set is corrupt ({exc}); push it again with --replay") from None
     out = []
-    for line in text.splitlines():
+    for line in text.split("\n"):  # not splitlines(): texts may hold U+2028 and other separators
+        if not line:
+            continue
         obj = json.loads(line)
         out.append((obj["text"], int(obj["label"])))
     return out
@@ -94,7 +96,7 @@ def read_examples(path: str | Path, *, operation: str) -> list[tuple[str, int]]:
     """Read a JSON-lines file of ``{"text", "label"}`` objects; errors name the line."""
     p = Path(path)
     try:
-        lines = p.read_text(encoding="utf-8").splitlines()
+        lines = p.read_text(encoding="utf-8").split("\n")
     except OSError as exc:
         raise DataError(f"{operation}: cannot read {p}: {exc.strerror}") from None
     except UnicodeDecodeError:
@@ -311,9 +313,7 @@ class Registry:
                 pipe.multi()
                 pipe.set(self.active_key, target)
                 if pop:
-                    pipe.lpop(self.history_key)
-                    if not history[1:] or history[1] != target:
-                        pipe.lpush(self.history_key, target)
+                    pipe.lpop(self.history_key)  # the head was the active version; the target is next
                 else:
                     pipe.lpush(self.history_key, target)
                     pipe.ltrim(self.history_key, 0, HISTORY_MAX - 1)

@@ -236,7 +236,8 @@ def store_report(client, keys: Keys, report: dict, *, kept: int, clock=time.time
     pipe = pipeline if pipeline is not None else client.pipeline(transaction=True)
     pipe.lpush(reports_key(keys), json.dumps(report, sort_keys=True))
     pipe.ltrim(reports_key(keys), 0, kept - 1)
-    summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "reasons")}
+    summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "reasons", "error")
+               if k in report}
     summary["labels_new"] = report.get("labels", {}).get("new", 0)
     pipe.xadd(keys.events, {"type": "retrain", "ts": f"{clock():.3f}",
                             "data": json.dumps(summary, sort_keys=True, separators=(",", ":"))},
@@ -261,6 +262,10 @@ def retrain(client, keys: Keys, settings: RetrainSettings, *, clock=time.time, o
         t0 = time.perf_counter()
         try:
             _retrain_locked(client, keys, settings, report, clock=clock)
+        except Exception as exc:
+            # Recorded (report and event say "failed" and why), then raised to the caller.
+            report.update(decision="failed", promoted=False, error=f"{type(exc).__name__}: {exc}")
+            raise
         finally:
             report["seconds"] = round(time.perf_counter() - t0, 3)
             report["finished_at"] = round(clock(), 3)

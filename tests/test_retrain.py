@@ -275,3 +275,16 @@ def test_replay_sizes_share_the_budget(n_new, n_older, n_original, ratio, expect
     from ops.retrain import replay_sizes
 
     assert replay_sizes(n_new, n_older, n_original, settings(replay_ratio=ratio)) == expected
+
+
+def test_a_retrain_that_cannot_run_is_recorded_as_failed(fake_redis):
+    from ops.registry import RegistryError
+
+    send_feedback(fake_redis, stream()[:50])
+    with pytest.raises(RegistryError, match="no active model"):
+        retrain(fake_redis, KEYS, SETTINGS)
+    report = last_reports(fake_redis, KEYS)[0]
+    assert report["decision"] == "failed" and "no active model" in report["error"]
+    event = json.loads(fake_redis.xrange(KEYS.events)[-1][1][b"data"])
+    assert event["decision"] == "failed"
+    assert fake_redis.get("seawall:retrain:lock") is None
