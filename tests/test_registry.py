@@ -223,3 +223,27 @@ def wait_for(fn, *, seconds: float):
             return value
         time.sleep(0.02)
     return None
+
+
+def test_example_sets_keep_texts_with_unicode_line_separators(tmp_path):
+    from ops.registry import read_examples
+
+    rows = [("one\u2028two\x85three\x1cfour", 1), ("plain\nnewline", 0)]
+    assert decode_examples(encode_examples(rows)) == rows
+    assert read_examples(write_jsonl(tmp_path / "d.jsonl", rows), operation="t") == rows
+
+
+@pytest.mark.redis_server
+def test_push_with_an_explicit_canary_file_keeps_all_replay_rows(redis_server, tmp_path, capsys):
+    model = tmp_path / "a.model"
+    model.write_bytes(model_bytes(0))
+    rows = [(c.text, c.label) for c in training_set()[:400]]
+    canary_rows = [(c.text, c.label) for c in training_set()[400:460]]
+    data = write_jsonl(tmp_path / "train.jsonl", rows)
+    canary = write_jsonl(tmp_path / "canary.jsonl", canary_rows)
+    assert main(["models", "push", str(model), "--replay", data, "--canary", canary, "--redis", redis_server.url,
+                 "--json"]) == 0
+    assert json_out(capsys)["canary"] == 60
+    registry = Registry(client=redis_server.client(), keys=KEYS)
+    assert registry.canary() == canary_rows
+    assert sorted(registry.replay()) == sorted(rows)
