@@ -3,27 +3,31 @@
 For each batch, :class:`CampaignPolicy` computes the MinHash signatures of the
 comments (:mod:`model.minhash`) and adds each comment to the LSH bucket of each
 of its bands, in Redis, so that a template posted through many workers meets in
-the same buckets.  Per bucket Redis keeps, for the last ``window_s`` seconds:
+the same buckets.  Redis keeps:
 
-* ``campaigns:lsh:{band}:{key}``: sorted set of comment ids, scored by time;
-* ``campaigns:authors:{band}:{key}``: sorted set of author hashes (never the
-  author id itself), scored by time;
-* ``campaigns:link:{band}:{key}``: the campaign the bucket belongs to, if any;
-* ``campaigns:member:{comment id}``: the campaign a comment was counted in;
-* ``campaigns:seed``: per active campaign, its first member's band keys.
+* ``campaigns:lsh:{band}:{key}``: per bucket, a hash with the number of
+  comments, the first member's time, the campaign it is linked to (if any)
+  and one field per author *hash* (never the author id itself); its counts
+  cover the ``window_s`` after its first member, then it starts afresh;
+* ``campaigns:seed``: per active campaign, its first member's band keys;
+* ``campaigns:active``, ``campaigns:size``, ``campaigns:last``: the active
+  campaigns, their member counts and their last member's time.
 
-All three expire ``window_s`` after their last write.  A bucket that holds at
-least ``min_size`` comments from at least ``min_authors`` distinct authors
+A bucket that holds at least ``min_size`` comments from at least ``min_authors`` distinct authors
 within the window starts a campaign (one ``campaign_start`` event: the
 ``SET NX`` on the bucket's link decides which worker announces it).  Later
 comments that land in any bucket linked to an active campaign are its members;
 another bucket of a member that is dense itself (N comments, M authors) is
-linked too, so the campaign follows the template's variations without
-chaining in comments that are merely similar to a member.  With ``hold=True`` members the model would publish are held for
-review: this catches a new wave before the nightly retrain has learned it.
+linked too, and a newly dense bucket that shares a band key with an active
+campaign's first member joins that campaign, so the campaign follows the
+template's variations (and a burst is announced once) without chaining in
+comments that are merely similar to a member.  With ``hold=True`` members
+the model would publish are held for review: this catches a new wave before
+the nightly retrain has learned it.
 
-Writes are safe to repeat (a redelivered comment re-adds the same member with
-a new time), as :mod:`worker.policies` requires.  :func:`end_idle_campaigns`
+Writes are safe to repeat, as :mod:`worker.policies` requires: a redelivered
+comment counts twice in its buckets, which can only bring a campaign forward
+by one comment.  :func:`end_idle_campaigns`
 ends campaigns with no new member for ``window_s`` (``campaign_end``).
 """
 from __future__ import annotations
@@ -40,43 +44,56 @@ from worker.settings import Keys
 
 log = logging.getLogger("seawall.worker.campaigns")
 
-# Adds every comment to its bands' buckets, trims and refreshes them, and
-# reports per comment the fullest bucket (size, distinct authors, band) and the
-# campaigns its buckets are linked to.  KEYS: per comment and band, the lsh,
-# authors and link keys.  ARGV: now, cutoff, ttl, bands, then (member, author)
-# per comment.
+# Adds every comment to its bands' buckets and reports per comment the fullest
+# bucket (size, distinct authors, band) and the campaigns its buckets are
+# linked to.  A bucket is a hash {n: comments, t0: first member's time,
+# L: linked campaign, <author hash>: 1, ...}.  It costs 2-3 O(1) calls per
+# band for the usual bucket that holds a handful of comments; only a bucket
+# with at least min_size comments is checked for its age (by the writers'
+# clock: older than the window, it starts afresh), its authors (HLEN minus the
+# fixed fields) and its link.  The EXPIRE frees memory.
+# KEYS: per comment and band, the bucket.  ARGV: ttl, bands, now, min_size,
+# then (member, author) per comment.
 _ADD_SCRIPT = """
-local now, cutoff, ttl, bands = ARGV[1], '(' .. ARGV[2], tonumber(ARGV[3]), tonumber(ARGV[4])
+local ttl, bands, now, min_size = tonumber(ARGV[1]), tonumber(ARGV[2]), tonumber(ARGV[3]), tonumber(ARGV[4])
 local out = {}
 local n = (#ARGV - 4) / 2
 for i = 0, n - 1 do
-  local member, author = ARGV[5 + 2 * i], ARGV[6 + 2 * i]
+  local author = ARGV[6 + 2 * i]
   local best_size, best_authors, best_band = 0, 0, -1
   local links = {}
-  for j = 0, bands - 1 do
-    local base = (i * bands + j) * 3
-    local lsh, auth, link = KEYS[base + 1], KEYS[base + 2], KEYS[base + 3]
-    redis.call('ZADD', lsh, now, member)
-    redis.call('ZADD', auth, now, author)
-    redis.call('ZREMRANGEBYSCORE', lsh, '-inf', cutoff)
-    redis.call('ZREMRANGEBYSCORE', auth, '-inf', cutoff)
-    redis.call('EXPIRE', lsh, ttl)
-    redis.call('EXPIRE', auth, ttl)
-    local size = redis.call('ZCARD', lsh)
-    local na = redis.call('ZCARD', auth)
-    if size > best_size or (size == best_size and na > best_authors) then
-      best_size, best_authors, best_band = size, na, j
+  for j = 1, bands do
+    local bucket = KEYS[i * bands + j]
+    local size = redis.call('HINCRBY', bucket, 'n', 1)
+    if size >= min_size and now - tonumber(redis.call('HGET', bucket, 't0') or ARGV[3]) >= ttl then
+      redis.call('DEL', bucket)
+      size = redis.call('HINCRBY', bucket, 'n', 1)
     end
-    local l = redis.call('GET', link)
-    if l then table.insert(links, l) end
+    if size == 1 then
+      redis.call('HSET', bucket, 't0', ARGV[3], author, '1')
+      redis.call('EXPIRE', bucket, ttl)
+    else
+      redis.call('HSETNX', bucket, author, '1')
+    end
+    if size >= min_size then
+      local fields = redis.call('HLEN', bucket)
+      local link = redis.call('HGET', bucket, 'L')
+      local na = fields - 2
+      if link then
+        na = na - 1
+        table.insert(links, link)
+      end
+      if size > best_size or (size == best_size and na > best_authors) then
+        best_size, best_authors, best_band = size, na, j - 1
+      end
+    elseif best_size < min_size and size > best_size then
+      best_size, best_authors, best_band = size, 0, j - 1
+    end
   end
   table.insert(out, {best_size, best_authors, best_band, links})
 end
 return out
 """
-
-# Recent members of a newly dense bucket looked up to find the campaign they already belong to.
-MEMBER_SAMPLE = 10
 
 _PARAMS = {
     "bands": lambda v: isinstance(v, int) and v >= 1,
@@ -157,10 +174,10 @@ class CampaignPolicy:
         now = self.clock()
         signatures = self.hasher.signatures_of_words([words[i] for i in eligible])
         buckets = [band_keys(sig, self.bands) for sig in signatures]
-        script_keys, argv = [], [f"{now:.3f}", f"{now - self.window_s:.3f}", str(self.window_s), str(self.bands)]
+        script_keys, argv = [], [str(self.window_s), str(self.bands), f"{now:.3f}", str(self.min_size)]
         for i, bucket_list in zip(eligible, buckets):
             for b in bucket_list:
-                script_keys += [self._bucket("lsh", b), self._bucket("authors", b), self._bucket("link", b)]
+                script_keys.append(self._bucket("lsh", b))
             cid = _get(comments[i], "id")
             argv += [cid, author_hash(_get(comments[i], "author"), cid)]
         if self._script is None:
@@ -172,7 +189,6 @@ class CampaignPolicy:
         members: dict[int, str] = {}
         new_links: dict[str, str] = {}
         dense: dict[int, str] = {}  # comment index -> its fullest bucket, when that bucket meets N and M
-        in_batch: dict[str, str] = {}  # comment id -> campaign, for members not yet written
         seeds: dict[str, set[str]] | None = None  # campaign -> its first member's band keys, read when needed
         for i, bucket_list, (size, n_authors, best_band, links) in zip(eligible, buckets, reply):
             linked = [_text(x) for x in links] + [new_links[b] for b in bucket_list if b in new_links]
@@ -180,11 +196,9 @@ class CampaignPolicy:
             is_dense = size >= self.min_size and n_authors >= self.min_authors
             if campaign is None and is_dense:
                 best = bucket_list[int(best_band)]
-                campaign = self._campaign_of_members(client, best, active, in_batch)
-                if campaign is None:
-                    if seeds is None:
-                        seeds = self._load_seeds(client)
-                    campaign = self._campaign_of_seeds(client, bucket_list, active, seeds)
+                if seeds is None:
+                    seeds = self._load_seeds(client)
+                campaign = self._campaign_of_seeds(client, bucket_list, active, seeds)
                 if campaign is None:
                     campaign = self._start(client, comments[i], best, bucket_list, int(size), int(n_authors), now)
                     active.add(campaign)
@@ -192,7 +206,6 @@ class CampaignPolicy:
             if campaign is None:
                 continue
             members[i] = campaign
-            in_batch[_get(comments[i], "id")] = campaign
             if is_dense:
                 # Only a bucket that itself holds N near-duplicates from M authors joins the campaign:
                 # linking every bucket of every member would chain merely similar comments into it.
@@ -201,19 +214,6 @@ class CampaignPolicy:
         if members:
             self._record_members(client, comments, members, dense, now)
         return members
-
-    def _campaign_of_members(self, client, bucket: str, active: set[str], in_batch: dict[str, str]) -> str | None:
-        """The active campaign that recent members of a newly dense bucket already belong to, if any.
-
-        A template's variants fill several buckets; the second bucket to fill
-        joins the first one's campaign instead of announcing another.
-        """
-        recent = client.zrevrange(self._bucket("lsh", bucket), 0, MEMBER_SAMPLE - 1)
-        if not recent:
-            return None
-        local = [in_batch[_text(m)] for m in recent if _text(m) in in_batch]
-        found = local + client.mget([self.keys.key("campaigns", "member", _text(m)) for m in recent])
-        return next((_text(c) for c in found if c is not None and _text(c) in active), None)
 
     def _load_seeds(self, client) -> dict[str, set[str]]:
         out = {}
@@ -238,9 +238,9 @@ class CampaignPolicy:
     def _start(self, client, comment, bucket: str, bucket_list: list[str], size: int, n_authors: int,
                now: float) -> str:
         campaign = "c" + hashlib.blake2b(f"{bucket}:{int(now)}".encode(), digest_size=6).hexdigest()
-        link = self._bucket("link", bucket)
-        if not client.set(link, campaign, nx=True, ex=self.window_s):
-            other = client.get(link)
+        key = self._bucket("lsh", bucket)
+        if not client.hsetnx(key, "L", campaign):  # another worker announced this bucket's campaign first
+            other = client.hget(key, "L")
             return _text(other) if other is not None else campaign
         ck = campaign_keys(self.keys)
         data = {"id": campaign, "site": _get(comment, "site")[:200], "members": size, "authors": n_authors,
@@ -261,8 +261,7 @@ class CampaignPolicy:
         pipe = client.pipeline(transaction=False)
         for i, campaign in members.items():
             if i in dense:
-                pipe.set(self._bucket("link", dense[i]), campaign, ex=self.window_s)
-            pipe.set(self.keys.key("campaigns", "member", _get(comments[i], "id")), campaign, ex=self.window_s)
+                pipe.hset(self._bucket("lsh", dense[i]), "L", campaign)
             pipe.hincrby(ck["size"], campaign, 1)
             pipe.hset(ck["last"], campaign, f"{now:.3f}")
         pipe.execute()
