@@ -25,7 +25,7 @@ class Keys:
     that the streams and the keys a comment's MULTI touches share one slot.
     """
 
-    prefix: str = "seawall:"
+    prefix: str = setting("seawall:", "prefix of every Redis key; use a hash tag such as {seawall}: on Redis Cluster")
 
     def __post_init__(self):
         if not isinstance(self.prefix, str) or not self.prefix:
