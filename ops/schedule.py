@@ -4,8 +4,9 @@ Run exactly one scheduler per deployment, and at least one worker for the
 queue (``retrain.queue``, default ``seawall``), both with the same ``SEAWALL_*``
 environment as the rest of Seawall::
 
-    rq cron --url "$SEAWALL_REDIS_URL" ops.schedule
-    rq worker --url "$SEAWALL_REDIS_URL" seawall
+    export RQ_REDIS_URL="$SEAWALL_REDIS_URL"   # RQ's own variable: no password in the process list
+    rq cron ops.schedule
+    rq worker seawall
 
 The cron string is ``retrain.cron`` (``SEAWALL_RETRAIN_CRON``), default
 ``0 3 * * *``, in UTC.  ``rq cron`` imports this module once at start-up, so
