@@ -124,3 +124,27 @@ def test_bench_retrain_runs_and_reports_its_ratio(capsys):
     assert rows["comments"] == 300 and rows["update_epochs"] == 3
     assert rows["update_over_fresh_fit"] == pytest.approx(rows["update_median_s"] / rows["fresh_fit_median_s"], rel=0.05)
     assert rows["full_retrain_decision"] in ("promoted", "refused")
+
+
+@pytest.mark.redis_server
+def test_rq_cron_command_starts_with_the_schedule_module(redis_server, redis_client):
+    import signal
+
+    env = dict(os.environ, RQ_REDIS_URL=redis_server.url, TZ="America/New_York")
+    env.pop("SEAWALL_CONFIG", None)
+    proc = subprocess.Popen([sys.executable, "-m", "rq.cli", "cron", "ops.schedule"], cwd=ROOT, env=env,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 30
+        schedulers = []
+        while time.monotonic() < deadline and not schedulers:
+            schedulers = CronScheduler.all(redis_client)
+            time.sleep(0.1)
+    finally:
+        proc.send_signal(signal.SIGTERM)
+        err = proc.communicate(timeout=20)[1]
+    assert schedulers, err[-2000:]
+    (job,) = schedulers[0].get_jobs()
+    assert job.func_name == "ops.jobs.retrain_job" and job.cron == "0 3 * * *" and job.queue_name == "seawall"
+    nxt = job.next_enqueue_time.astimezone(timezone.utc)
+    assert (nxt.hour, nxt.minute) == (3, 0)  # UTC, although the process started in New York time
