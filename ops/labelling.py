@@ -19,7 +19,7 @@ from worker.feedback import FeedbackConsumer
 log = logging.getLogger(__name__)
 
 
-def build_feedback_consumer(config: Config, *, consumer: str = "", client=None) -> FeedbackConsumer:
+def build_feedback_consumer(config: Config, *, consumer: str = "", client=None, observer=None) -> FeedbackConsumer:
     s = config.retrain
     if client is None:
         client = connect(config.redis_url, tls_ca=config.redis_tls_ca, tls_cert=config.redis_tls_cert,
@@ -30,6 +30,7 @@ def build_feedback_consumer(config: Config, *, consumer: str = "", client=None) 
         block_ms=s.feedback_block_ms, text_max_bytes=s.feedback_text_max_bytes, labels_max=s.labels_max,
         claim_idle_ms=s.feedback_claim_idle_ms, deadletter_maxlen=config.worker.deadletter_maxlen,
         backoff_initial_s=s.backoff_initial_s, backoff_factor=s.backoff_factor, backoff_cap_s=s.backoff_cap_s,
+        observer=observer,
     )
 
 
@@ -58,8 +59,12 @@ class FeedbackThread:
         return self._thread.is_alive()
 
 
-def start_feedback(config: Config, *, worker_consumer: str) -> FeedbackThread | None:
-    """Start the feedback thread for a serve process (None when turned off)."""
+def start_feedback(config: Config, *, worker_consumer: str, observer=None) -> FeedbackThread | None:
+    """Start the feedback thread for a serve process (None when turned off).
+
+    ``observer`` (the worker's) counts feedback dead letters by reason.
+    """
     if not config.retrain.feedback_in_serve:
         return None
-    return FeedbackThread(consumer=build_feedback_consumer(config, consumer=f"{worker_consumer}-feedback")).start()
+    consumer = build_feedback_consumer(config, consumer=f"{worker_consumer}-feedback", observer=observer)
+    return FeedbackThread(consumer=consumer).start()

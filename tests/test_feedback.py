@@ -213,3 +213,17 @@ def test_consumer_works_on_a_client_with_raw_stream_replies(redis_server):
     assert c.drain() == 2
     assert [rec["id"] for _s, rec in scan_labels(r, KEYS)] == ["c1"]
     assert r.xlen(KEYS.deadletter) == 1
+
+
+def test_consumer_reports_dead_letters_to_its_observer(fake_redis):
+    seen = []
+
+    class Observer:
+        def on_deadletter(self, reason):
+            seen.append(reason)
+
+    fake_redis.xadd(KEYS.feedback, {"id": "c1", "label": "maybe"})
+    fake_redis.xadd(KEYS.feedback, {"id": "c2", "label": "ham"})
+    fake_redis.xadd(KEYS.feedback, {"id": "c3", "label": "ham", "text": "fine"})
+    FeedbackConsumer(client=fake_redis, keys=KEYS, observer=Observer()).drain()
+    assert seen == ["feedback_unknown_label", "feedback_no_text"]

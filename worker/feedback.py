@@ -258,6 +258,8 @@ class FeedbackConsumer:
     deadletter_maxlen : approximate cap of the dead-letter stream (``worker.deadletter_maxlen``).
     claim_idle_ms : :meth:`drain` claims entries pending this long on other consumers.
     backoff_initial_s, backoff_factor, backoff_cap_s : reconnect back-off of :meth:`run`.
+    observer : optional :class:`worker.observer.WorkerObserver`; gets ``on_deadletter(reason)``
+        for each dead-lettered feedback entry and ``on_reconnect()``.
     clock : returns epoch seconds (tests pass a fixed one).
     """
 
@@ -265,7 +267,7 @@ class FeedbackConsumer:
                  batch: int = 256, block_ms: int = 1000, text_max_bytes: int = 262144,
                  labels_max: int = 200000, claim_idle_ms: int = 60000, deadletter_maxlen: int = 100_000,
                  backoff_initial_s: float = 0.1, backoff_factor: float = 2.0,
-                 backoff_cap_s: float = 10.0, clock=time.time):
+                 backoff_cap_s: float = 10.0, observer=None, clock=time.time):
         for name, value in (("group", group), ("consumer", consumer), ("batch", batch),
                             ("block_ms", block_ms), ("text_max_bytes", text_max_bytes),
                             ("labels_max", labels_max), ("claim_idle_ms", claim_idle_ms),
@@ -288,6 +290,7 @@ class FeedbackConsumer:
         self.backoff_initial_s = float(backoff_initial_s)
         self.backoff_factor = float(backoff_factor)
         self.backoff_cap_s = float(backoff_cap_s)
+        self.observer = observer
         self.clock = clock
         self._group_ready = False
         self._own_pending_done = False
@@ -328,6 +331,7 @@ class FeedbackConsumer:
                 cached[fb.stream_id] = {k: v for k, v in (("text", text), ("site", site)) if v is not None}
         now = self.clock()
         counts = {"labelled": 0, "deadlettered": 0}
+        dead_reasons = []
         pipe = self.client.pipeline(transaction=True)
         for item in parsed:
             if isinstance(item, Feedback):
@@ -335,12 +339,16 @@ class FeedbackConsumer:
             if isinstance(item, Rejected):
                 write_deadletter(self.client, self.keys, item, maxlen=self.deadletter_maxlen, pipeline=pipe)
                 counts["deadlettered"] += 1
+                dead_reasons.append(item.reason)
             else:
                 write_label(self.client, self.keys, item, labels_max=self.labels_max, pipeline=pipe)
                 pipe.zrem(held_key(self.keys), item["id"])
                 counts["labelled"] += 1
         pipe.xack(self.keys.feedback, self.group, *[sid for sid, _ in entries])
         pipe.execute()
+        if self.observer is not None:
+            for reason in dead_reasons:
+                self.observer.on_deadletter(reason)
         return counts
 
     def step(self, *, block_ms: int | None = None) -> int:
@@ -405,6 +413,8 @@ class FeedbackConsumer:
                 self._own_pending_done = False
                 if on_reconnect is not None:
                     on_reconnect()
+                elif self.observer is not None:
+                    self.observer.on_reconnect()
                 stop.wait(delay)
                 delay = min(delay * self.backoff_factor, self.backoff_cap_s)
 

@@ -71,7 +71,7 @@ def serve_one(config) -> int:
     observability = start_observability(config)  # metrics endpoint, wave detector, campaign policy
     consumer = build_consumer(config, source=source, observer=observability.observer, consumer=name,
                               policies=observability.policies)
-    feedback = start_feedback(config, worker_consumer=name)  # moderators' labels -> labelled store
+    feedback = start_feedback(config, worker_consumer=name, observer=observability.observer)  # labels -> labelled store
     for sig in (signal.SIGTERM, signal.SIGINT):
         signal.signal(sig, lambda *_: consumer.stop())
     try:
