@@ -224,6 +224,19 @@ class EmbeddingClassifier:
         np.cumsum(np.bincount(pair_doc, minlength=n), out=indptr[1:])
         return _Bag(n, pair_doc, (keys % self.buckets).astype(np.int64), weight, first, tokens, indptr)
 
+    def _matrix(self, texts: list[str], seen: set[str] | None = None, chunk: int = 8192) -> sp.csr_matrix:
+        """Pooling-weight rows of many texts, built in chunks so that only one
+        chunk's token strings are alive at a time; ``seen`` collects distinct tokens."""
+        parts = []
+        for start in range(0, len(texts), chunk):
+            feats = self._features(texts[start:start + chunk])
+            if seen is not None:
+                seen.update(chain.from_iterable(feats))
+            parts.append(self._bag(feats).matrix(self.buckets))
+        if len(parts) == 1:
+            return parts[0]
+        return sp.vstack(parts, format="csr") if parts else sp.csr_matrix((0, self.buckets), dtype=np.float32)
+
     # --- checks ---------------------------------------------------------------
 
     @staticmethod
@@ -311,13 +324,13 @@ class EmbeddingClassifier:
         started = time.perf_counter()
         rng = np.random.default_rng(self.seed)
         self._make_featurizers()
-        feats = self._features(texts)
-        distinct = len(set(chain.from_iterable(feats)))
+        seen: set[str] = set()
+        matrix = self._matrix(texts, seen)
+        distinct = len(seen)
+        del seen
         self.dim_ = auto_dim(distinct) if self.dim == "auto" else int(self.dim)
         self._class_weights = self._resolve_class_weight(y)
         train_idx, val_idx = self._split(y, rng)
-        bag = self._bag(feats)
-        matrix = bag.matrix(self.buckets)
         train_m = matrix[train_idx]
         df = np.bincount(train_m.indices, minlength=self.buckets)
         train_m = self._restrict(train_m, df >= self.min_df)
@@ -397,7 +410,7 @@ class EmbeddingClassifier:
         if not texts:
             return self
         self._ensure_trainable()
-        m = self._bag(self._features(texts)).matrix(self.buckets)
+        m = self._matrix(texts)
         df = np.bincount(m.indices, minlength=self.buckets)
         m = self._restrict(m, self._touched | (df >= min_df))
         training.run_epochs(

@@ -253,3 +253,13 @@ def test_fit_rejects_unusable_data(texts, labels, match):
 def test_scoring_an_untrained_model_is_an_error():
     with pytest.raises(DataError, match="not trained"):
         EmbeddingClassifier().predict_proba_one("hello")
+
+
+def test_features_built_in_chunks_equal_one_pass():
+    texts, labels = small_corpus(2)
+    clf = EmbeddingClassifier(dim=2, min_df=1, validation_share=0.0, epochs=1).fit(texts, labels)
+    seen_chunked: set[str] = set()
+    chunked = clf._matrix(texts, seen_chunked, chunk=3)
+    whole = clf._matrix(texts, chunk=10_000)
+    assert (chunked != whole).nnz == 0 and chunked.shape == whole.shape
+    assert len(seen_chunked) == clf.summary_["distinct_tokens"]
