@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from ops.config import load_config
 from ops.connection import connect
+from worker.jobs import JobArgumentError
 
 RESCORE_FUNC = "ops.jobs.rescore_job"
 
@@ -23,10 +24,24 @@ def enqueue_rescore(client, config, version: str):
                          description=f"re-score the hold queue with model {version}")
 
 
+def plain_arguments(operation: str, **values) -> None:
+    """Refuse a job whose arguments are not plain strings (or None) before it does anything.
+
+    RQ would run a job with any picklable object in it; ours take a version
+    and a config path only, so anything else means a caller built the job
+    wrongly (or someone planted it), and it fails with a message instead.
+    """
+    for name, value in values.items():
+        if value is not None and type(value) is not str:
+            raise JobArgumentError(f"{operation}: {name} must be a plain string or None, got a "
+                                   f"{type(value).__name__}; enqueue Seawall jobs with plain values only")
+
+
 def retrain_job(config_file: str | None = None) -> dict:
     """The scheduled retrain (same code as ``seawall retrain``); returns the report's summary."""
     from ops.retrain import retrain
 
+    plain_arguments("retrain job", config_file=config_file)
     config = load_config(config_file=config_file)
     client = connect(config)
     report = retrain(client, config.keys, config.retrain,
@@ -39,6 +54,7 @@ def rescore_job(version: str | None = None, config_file: str | None = None) -> d
     from ops.registry import Registry
     from ops.rescore import rescore_held
 
+    plain_arguments("re-score job", version=version, config_file=config_file)
     config = load_config(config_file=config_file)
     client = connect(config)
     registry = Registry(client=client, keys=config.keys)
