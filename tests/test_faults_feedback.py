@@ -1,0 +1,130 @@
+"""Bad and poisoned feedback against a real server.
+
+* Bad feedback sent to a running ``seawall serve`` (its feedback thread):
+  unknown labels, unknown ids, oversized text and other malformed entries each
+  become one dead letter with their own reason; the good ones become labels.
+* Poisoned feedback: one moderator sends 5,000 contrary labels.  Without the
+  per-moderator cap the gate refuses the candidate; with it the flood is cut
+  down and the model that ends up serving is not worse.  The report says why.
+"""
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import pytest
+
+from faults_kit import KEYS, Worker, clean_env, deadletters, stop_all, verdict_ids, wait_until, write_model
+from model.evaluation import evaluate
+from ops.registry import Registry, split_replay
+from retrain_kit import model_bytes, send_feedback, stream, training_set
+
+pytestmark = pytest.mark.redis_server
+
+TEXT_MAX = 1024
+
+
+def test_bad_feedback_to_a_running_worker_is_dead_lettered_with_its_reason(redis_server, tmp_path):
+    admin = redis_server.client()
+    model = write_model(tmp_path / "model.bin")
+    worker = Worker(url=redis_server.url, name="fb-w", log_dir=tmp_path, model_path=model,
+                    env={"SEAWALL_RETRAIN_FEEDBACK_IN_SERVE": "1",
+                         "SEAWALL_RETRAIN_FEEDBACK_TEXT_MAX_BYTES": str(TEXT_MAX)})
+    cases = [
+        ({"id": "c1", "label": "spam", "moderator": "mod-a"}, None),
+        ({"id": "c2", "label": "HAM ", "moderator": "mod-b"}, None),                    # normalized, accepted
+        ({"id": "new1", "label": "spam", "text": "a label that carries its own text"}, None),
+        ({"id": "c3", "label": "maybe"}, "feedback_unknown_label"),
+        ({"id": "c3", "label": ""}, "feedback_unknown_label"),
+        ({"id": "c3"}, "feedback_unknown_label"),
+        ({"id": "never-seen", "label": "spam"}, "feedback_no_text"),                  # unknown id, no text
+        ({"id": "c4", "label": "ham", "text": "x" * (TEXT_MAX + 1)}, "feedback_text_too_large"),
+        ({"id": "c4", "label": "ham", "text": "é" * TEXT_MAX}, "feedback_text_too_large"),
+        ({"label": "spam"}, "feedback_missing_id"),
+        ({"id": "   ", "label": "spam"}, "feedback_missing_id"),
+        ({"id": "i" * 300, "label": "spam"}, "feedback_bad_id"),
+        ({"id": b"c5\xff", "label": "spam"}, "feedback_invalid_utf8"),
+        ({"id": "c5", "label": "spam", "moderator": "m" * 500}, "feedback_bad_field"),
+        ({"id": "c5", "label": "spam", **{f"x{i}": "v" for i in range(20)}}, "feedback_too_many_fields"),
+    ]
+    try:
+        worker.start()
+        for i in range(1, 6):
+            admin.xadd(KEYS.comments, {"id": f"c{i}", "text": f"comment number {i} about the allotment"})
+        assert wait_until(lambda: len(verdict_ids(admin)) == 5, timeout=60), worker.output()[-2000:]
+        expected = {}
+        for fields, reason in cases:
+            expected[admin.xadd(KEYS.feedback, fields)] = reason
+        bad = sum(1 for r in expected.values() if r)
+        assert wait_until(lambda: admin.xlen(KEYS.deadletter) >= bad and admin.xlen(KEYS.key("labels")) >= 3,
+                          timeout=30), worker.output()[-2000:]
+        assert worker.alive()
+    finally:
+        codes = stop_all([worker])
+    assert codes == [0]
+    got = {row["stream_id"].encode(): row["reason"] for row in deadletters(admin)}
+    assert got == {sid: reason for sid, reason in expected.items() if reason}
+    assert all(row["source"] == KEYS.feedback for row in deadletters(admin))
+    labels = [(f[b"id"], f[b"label"]) for _i, f in admin.xrange(KEYS.key("labels"))]
+    assert labels == [(b"c1", b"spam"), (b"c2", b"ham"), (b"new1", b"spam")]
+    assert admin.xpending(KEYS.feedback, "labellers")["pending"] == 0
+
+
+def bootstrap(client) -> tuple[Registry, str]:
+    registry = Registry(client=client, keys=KEYS)
+    replay, canary = split_replay([(c.text, c.label) for c in training_set()], replay_max=2000, canary_size=300)
+    version = registry.push(model_bytes(0))
+    registry.set_examples(replay=replay, canary=canary)
+    registry.promote(version)
+    return registry, version
+
+
+def retrain_cli(url: str, **env) -> dict:
+    done = subprocess.run([sys.executable, "-m", "ops.cli", "retrain", "--redis", url, "--json", "--rescore", "off"],
+                          capture_output=True, text=True, timeout=600, env=clean_env(env))
+    assert done.returncode == 0, done.stderr
+    return json.loads(done.stdout)
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason=(
+    "open bug (reported to the retrain owner): the capped flood still trains the candidate on the campaign "
+    "comments no honest moderator labelled, and neither the honest holdout nor the canary set holds any of "
+    "them, so the gate passes (ROC-AUC 1.0 -> 1.0) and a model with test ROC-AUC 0.19 (was 0.91) is promoted"))
+def test_five_thousand_contrary_labels_from_one_moderator_keep_a_worse_model_out(redis_server):
+    client = redis_server.client()
+    registry, first = bootstrap(client)
+    comments = stream(6000)
+    honest, flood, test = comments[:400], comments[400:5400], comments[5400:]
+    send_feedback(client, honest)
+    send_feedback(client, flood, moderators=("mod-mallory",), flip=True)
+    assert len(flood) == 5000
+
+    # No cap: the flood is most of the new labels and of the holdout; the canary set catches it.
+    uncapped = retrain_cli(redis_server.url, SEAWALL_RETRAIN_MAX_MODERATOR_SHARE="1.0")
+    assert uncapped["decision"] == "refused"
+    assert uncapped["labels"]["moderators"]["mod-mallory"] == {"given": 5000, "kept": 5000}
+    assert any(r.startswith("canary: ") and "below the active model" in r for r in uncapped["reasons"])
+    assert registry.active() == first
+
+    # The default cap: the flood is cut to at most half of what is kept, and the report says so.
+    capped = retrain_cli(redis_server.url)
+    mods = capped["labels"]["moderators"]
+    kept = sum(m["kept"] for m in mods.values())
+    assert mods["mod-mallory"]["given"] == 5000 and mods["mod-mallory"]["kept"] <= 0.5 * kept
+    guard = [r for r in capped["reasons"] if r.startswith("poisoning guard: dropped")]
+    assert guard and "of mod-mallory" in guard[0]
+    serving = registry.load()
+    before = evaluate([c.label for c in test], registry.load(first).predict_proba_many([c.text for c in test]))
+    after = evaluate([c.label for c in test], serving.predict_proba_many([c.text for c in test]))
+    print("faults:", json.dumps({"test": "poisoned_feedback", "contrary_labels": 5000,
+                                 "uncapped": uncapped["decision"], "capped": capped["decision"],
+                                 "mallory_kept": mods["mod-mallory"]["kept"],
+                                 "auc_before": round(before["roc_auc"], 4), "auc_after": round(after["roc_auc"], 4)}))
+    assert after["roc_auc"] >= before["roc_auc"] - 0.005  # retrain.auc_tolerance: not worse
+    if capped["decision"] == "refused":
+        assert registry.active() == first
+        assert any("below the active model" in r for r in capped["reasons"])
+    else:
+        assert registry.active() == capped["candidate"]
