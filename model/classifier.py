@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import math
 import time
+from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass
 from itertools import chain
@@ -465,23 +466,18 @@ class EmbeddingClassifier:
         l2 = self.pooling == "l2"
         scores = np.empty(len(feature_lists))
         reasons = []
+        get = table.get
         for i, tokens in enumerate(feature_lists):
-            counts: dict[int, int] = {}
-            names: dict[int, str] = {}
-            for token, b in zip(tokens, buckets_of(tokens).tolist()):
-                if b in counts:
-                    counts[b] += 1
-                else:
-                    counts[b] = 1
-                    names[b] = token
+            buckets = buckets_of(tokens).tolist()
+            counts = Counter(buckets)  # insertion order = order of first appearance
             norm = math.sqrt(sum(c * c for c in counts.values())) if l2 else float(len(tokens))
             terms = []
             logit = bias
             if norm:
-                get = table.get
+                names = dict(zip(reversed(buckets), reversed(tokens)))  # the first occurrence wins
                 for b, c in counts.items():
                     value = get(b)
-                    if value is not None and value != 0.0:
+                    if value:
                         term = c / norm * value
                         logit += term
                         terms.append((names[b], term))
