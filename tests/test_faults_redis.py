@@ -116,7 +116,8 @@ def test_redis_missing_at_start_up_the_worker_waits_then_works(tmp_path):
         server.stop()
     assert codes == [0, 0]
     # The clear log line: what is being waited for, the error, and the next retry.
-    expected = {"file-w": "lost connection to Redis (ConnectionError", "reg-w": "waiting for Redis to load the active model"}
+    expected = {"file-w": "lost connection to Redis (ConnectionError",
+                "reg-w": "waiting for Redis to load the active model"}
     for w in workers:
         log = w.output()
         assert "Traceback" not in log, log[-3000:]

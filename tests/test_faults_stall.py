@@ -76,7 +76,8 @@ def test_stalled_workers_past_the_reclaim_time_write_no_duplicate_verdicts(redis
         codes = stop_all(workers)
     duplicates = sum(v - 1 for v in counts.values())
     late = sum(w.output().count("already had a verdict") for w in workers)
-    print("faults:", json.dumps({"test": "stalls", "stalls": len(stalls), "taken_over": sum(s["taken_over"] for s in stalls),
+    print("faults:", json.dumps({"test": "stalls", "stalls": len(stalls),
+                                 "taken_over": sum(s["taken_over"] for s in stalls),
                                  "comments": n, "lost": n - len(counts), "duplicates": duplicates,
                                  "late_commits_skipped": late}))
     assert len(stalls) >= STALLS - 1, stalls
