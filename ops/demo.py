@@ -72,15 +72,6 @@ DEMO_SETTINGS = {
     "worker.block_ms": 10,
     "worker.reload_poll_s": 3600.0,
 }
-# fakeredis runs every Redis call inside a Lua script in Python (about 0.3 ms
-# each), and the campaign script makes 8 calls per LSH band and comment; on the
-# in-process server the demo uses 4 bands of 8 rows (pairs above Jaccard ~0.8
-# meet) instead of 16 of 4, to finish in well under a minute.  A real server
-# (--redis) runs the defaults.
-EMBEDDED_SETTINGS = {
-    "waves.campaign_perm": 32,
-    "waves.campaign_bands": 4,
-}
 # The story's hour: the stream starts 40 minutes before the nightly retrain
 # (03:00 UTC by default), the wave 20 minutes in.
 LEAD_S = 40 * 60.0

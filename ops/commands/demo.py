@@ -20,7 +20,7 @@ from pathlib import Path
 
 from model.errors import SeawallError
 from ops.config import load_config
-from ops.demo import DEMO_SETTINGS, EMBEDDED_SETTINGS, demo_scenario, run_demo
+from ops.demo import DEMO_SETTINGS, demo_scenario, run_demo
 from ops.demo_report import render_html, summary_text
 from ops.serving import configure_logging
 
@@ -56,8 +56,6 @@ def run(args) -> int:
     if not args.prefix or not args.prefix.strip():
         raise DemoError("demo: --prefix must not be empty")
     overrides = dict(DEMO_SETTINGS)
-    if embedded:
-        overrides.update(EMBEDDED_SETTINGS)
     overrides["keys.prefix"] = args.prefix
     if args.redis:
         overrides["redis_url"] = args.redis
