@@ -12,18 +12,27 @@ collision rate, and training only ever touches and stores the rows it sees.
 """
 from __future__ import annotations
 
-from itertools import islice
+from itertools import islice, repeat
+from operator import itemgetter
 from numbers import Integral
 
 import numpy as np
 import scipy.sparse as sp
 from sklearn.utils import murmurhash3_32
 
+try:  # scikit-learn's C loop behind FeatureHasher: the same MurmurHash3, without a Python call per token
+    from sklearn.feature_extraction._hashing_fast import transform as _sklearn_hash_loop
+except ImportError:  # pragma: no cover - private module moved; the per-token path still works
+    _sklearn_hash_loop = None
+
 __all__ = ["murmur_bucket", "TokenHasher", "MAX_BUCKETS"]
 
 #: Largest bucket count: bucket ids must fit the int32 index arrays of the CSR matrix.
 MAX_BUCKETS = 2**30
 _MAX_SEED = 2**32 - 1
+# From this many tokens in one call, hashing everything in C beats the cache
+# (measured: a 2**18-entry dict lookup costs more than one MurmurHash3 in C).
+_BULK_TOKENS = 4096
 
 
 def _hash(token: str, seed: int) -> int:
@@ -100,31 +109,26 @@ _PARAMS = {
 }
 
 
-class _BucketCache(dict):
-    """Token -> bucket, filled on a miss; holds at most ``cap`` tokens.
+def _hash_many(tokens: list[str], seed: int, mask: int) -> np.ndarray:
+    """Buckets of many tokens at once; equal to ``_hash(t, seed) & mask`` for each.
 
-    A hit is a plain dict lookup in C.  When full, the oldest half (insertion
-    order) is dropped, so memory stays bounded while recent tokens stay warm.
+    scikit-learn's loop returns ``abs(h) % n`` with the sign of the signed hash
+    ``h`` as the value; for ``n`` a power of two the unsigned hash's low bits
+    are ``abs(h) % n`` when ``h >= 0`` and ``-(abs(h) % n) % n`` otherwise.
+    ``n = mask + 1``; tests check this against :func:`murmur_bucket`.
     """
-
-    __slots__ = ("_seed", "_mask", "_cap")
-
-    def __init__(self, seed, mask, cap):
-        super().__init__()
-        self._seed = seed
-        self._mask = mask
-        self._cap = cap
-
-    def __missing__(self, token):
+    if _sklearn_hash_loop is not None:
+        try:
+            index, _, sign = _sklearn_hash_loop([zip(tokens, repeat(1))], mask + 1, np.float32, True, seed)
+        except (UnicodeEncodeError, TypeError):
+            pass  # lone surrogates or a non-str token: the per-token path handles or names it
+        else:
+            index = index.astype(np.int64)
+            return np.where(sign > 0, index, -index & mask).astype(np.int32)
+    for token in tokens:
         if not isinstance(token, str):
             raise TypeError(f"TokenHasher: tokens must be str, got {type(token).__name__}")
-        bucket = _hash(token, self._seed) & self._mask
-        if self._cap:
-            if len(self) >= self._cap:
-                for old in list(islice(self, max(1, len(self) // 2))):
-                    del self[old]
-            self[token] = bucket
-        return bucket
+    return np.fromiter((_hash(t, seed) & mask for t in tokens), dtype=np.int32, count=len(tokens))
 
 
 class TokenHasher:
@@ -153,7 +157,9 @@ class TokenHasher:
         given = dict(n_buckets=n_buckets, seed=seed, cache_size=cache_size)
         for name, (_, check) in _PARAMS.items():
             setattr(self, name, check("TokenHasher", name, given[name]))
-        self._cache = _BucketCache(self.seed, self.n_buckets - 1, self.cache_size)
+        # token -> bucket; a plain dict so a hit is one C lookup.  Misses are
+        # hashed in bulk per call and added; the size never exceeds cache_size.
+        self._cache: dict[str, int] = {}
 
     def params(self) -> dict:
         """JSON-safe parameters; ``TokenHasher(**h.params())`` rebuilds this hasher."""
@@ -193,7 +199,42 @@ class TokenHasher:
         """
         if isinstance(tokens, str):
             raise TypeError("TokenHasher.buckets: tokens must be an iterable of str, not one str")
-        return np.fromiter(map(self._cache.__getitem__, tokens), dtype=np.int32)
+        return self._lookup(list(tokens))
+
+    def _lookup(self, tokens: list) -> np.ndarray:
+        if len(tokens) >= _BULK_TOKENS and _sklearn_hash_loop is not None:
+            # A big batch hashes faster in scikit-learn's C loop than it looks
+            # up in a large dict (random memory access), so it skips the cache.
+            return _hash_many(tokens, self.seed, self.n_buckets - 1)
+        cache = self._cache
+        ids = np.fromiter(map(cache.get, tokens, repeat(-1)), dtype=np.int32, count=len(tokens))
+        missing = np.flatnonzero(ids < 0)
+        if missing.size:
+            if missing.size == 1:
+                missed = [tokens[missing[0]]]
+            else:
+                missed = list(itemgetter(*missing.tolist())(tokens))
+            distinct = list(dict.fromkeys(missed))
+            found = _hash_many(distinct, self.seed, self.n_buckets - 1).tolist()
+            fresh = dict(zip(distinct, found))
+            ids[missing] = list(map(fresh.__getitem__, missed))
+            self._remember(fresh)
+        return ids
+
+    def _remember(self, fresh: dict) -> None:
+        cap = self.cache_size
+        if not cap:
+            return
+        cache = self._cache
+        if len(cache) + len(fresh) > cap:
+            # Drop the oldest entries (insertion order) down to half the cap,
+            # or all of them when this batch alone fills the cache.
+            keep = max(0, cap // 2 - len(fresh))
+            for token in list(islice(cache, len(cache) - keep)):
+                del cache[token]
+            if len(fresh) > cap:
+                fresh = dict(islice(fresh.items(), cap))
+        cache.update(fresh)
 
     def matrix(self, token_lists) -> sp.csr_matrix:
         """Documents as rows of bucket frequencies: the mean over token occurrences.
@@ -213,28 +254,22 @@ class TokenHasher:
             float32, shape ``(n_docs, n_buckets)``, canonical (sorted indices,
             no duplicates), int32 indices.
         """
-        lookup = self._cache.__getitem__
-        flat: list[int] = []
+        flat: list[str] = []
         extend = flat.extend
         ends = [0]
         mark = ends.append
         for tokens in token_lists:
             if isinstance(tokens, str):
                 raise TypeError("TokenHasher.matrix: each document must be a list of tokens, not a str")
-            extend(map(lookup, tokens))
+            extend(tokens)
             mark(len(flat))
-        return self._rows(flat, ends)
-
-    def _rows(self, flat, ends) -> sp.csr_matrix:
-        n_docs = len(ends) - 1
-        indptr = np.array(ends, dtype=np.int64)
-        counts = np.diff(indptr)
-        indices = np.array(flat, dtype=np.int32)
+        if len(flat) > 2**31 - 1:
+            raise ValueError("TokenHasher.matrix: more than 2**31 - 1 tokens in one call; pass fewer documents")
+        indices = self._lookup(flat)
+        indptr = np.array(ends, dtype=np.int32)
+        lengths = np.diff(indptr).astype(np.float32)
         data = np.ones(len(flat), dtype=np.float32)
-        if len(flat) >= 2**31 - 1:
-            raise ValueError("TokenHasher.matrix: more than 2**31 tokens in one call; pass fewer documents")
-        out = sp.csr_matrix((data, indices, indptr.astype(np.int32)), shape=(n_docs, self.n_buckets))
-        out.sum_duplicates()  # sorts each row's indices and adds up repeats and collisions
-        per_entry = np.repeat(counts.astype(np.float32), np.diff(out.indptr))
-        out.data /= per_entry
+        out = sp.csr_matrix((data, indices, indptr), shape=(len(ends) - 1, self.n_buckets))
+        out.sum_duplicates()  # in place: sorts each row, adds up repeats and collisions
+        out.data /= np.repeat(lengths, np.diff(out.indptr))
         return out

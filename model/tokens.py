@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import re
 import unicodedata
-from itertools import islice
+from itertools import chain, islice
 from numbers import Integral
 
 __all__ = [
@@ -34,6 +34,7 @@ __all__ = [
     "strip_accents",
     "map_homoglyphs",
     "mark_specials",
+    "mark_spaced_phones",
     "word_tokens",
     "join_spaced",
     "undo_leet",
@@ -55,7 +56,7 @@ CHAR_NGRAM_PREFIX = "#"  # keeps the n-gram "win" apart from the word "win"
 # silently fed different tokens.
 NORMALIZATION_VERSION = 1
 
-_WORD_CACHE_SIZE = 1 << 16  # distinct raw words remembered per tokenizer; bounded
+_CHUNK_CACHE_SIZE = 1 << 16  # distinct whitespace chunks remembered per tokenizer; bounded
 
 
 # --------------------------------------------------------------------------- #
@@ -206,6 +207,8 @@ _TRAILING_PUNCT = ".,;:!?)]}'\""
 _GROUPED_NUMBER_RE = re.compile(r"\d+(?:[.,]\d+)+")
 _DATE_RE = re.compile(r"\d{4}-\d{1,2}-\d{1,2}|\d{1,2}[./-]\d{1,2}[./-]\d{2,4}")
 _PHONE_SEPARATORS_RE = re.compile(r"[\s().-]+")
+_SPACED_PHONE_HINT_RE = re.compile(r"\d[\d().-]* \(?\d")  # starts with a digit: a fast scan
+_SPACED_PHONE_RE = re.compile(r"\+?\(?\d[\d().-]*(?: \(?\d[\d().-]*)+")
 
 
 # --------------------------------------------------------------------------- #
@@ -317,22 +320,52 @@ def _link_host(url: str) -> str:
     return host
 
 
-def _classify_digits(run: str) -> str:
+def _is_phone(run: str) -> bool:
+    """Whether a run of digits and separators reads as a phone number (7-15 digits)."""
     digits = sum(c.isdigit() for c in run)
-    if 7 <= digits <= 15 and not _DATE_RE.fullmatch(run):
-        groups = [g for g in _PHONE_SEPARATORS_RE.split(run.strip("+")) if g]
-        if (
-            run.startswith("+")
-            or "(" in run
-            or len(groups) >= 3
-            or (len(groups) == 2 and "-" in run)
-            or (len(groups) == 1 and digits >= 10 and "," not in run and "." not in run)
-        ):
-            if not ("," in run or (run.count(".") == 1 and len(groups) == 2)):
-                return "<phone>"
+    if not 7 <= digits <= 15 or _DATE_RE.fullmatch(run) or "," in run:
+        return False
+    groups = [g for g in _PHONE_SEPARATORS_RE.split(run.strip("+")) if g]
+    if run.count(".") == 1 and len(groups) == 2:  # a decimal number
+        return False
+    return (
+        run.startswith("+")
+        or "(" in run
+        or len(groups) >= 3
+        or (len(groups) == 2 and "-" in run)
+        or (len(groups) == 1 and digits >= 10 and "." not in run)
+    )
+
+
+def _classify_digits(run: str) -> str:
+    if _is_phone(run):
+        return "<phone>"
     # Not a phone number: grouped numbers become one marker, plain integers are
     # left for the word pass (so spaced-out "f r 3 3" can still be joined).
     return " ".join("<num>" if _GROUPED_NUMBER_RE.fullmatch(part) else part for part in run.split())
+
+
+def _spaced_phone(match: re.Match) -> str:
+    text, start, end = match.string, match.start(), match.end()
+    if start and (text[start - 1].isalnum() or text[start - 1] in "+.,_"):
+        return match.group()
+    if end < len(text) and (text[end].isalnum() or text[end] == "_"):
+        return match.group()
+    return " <phone> " if _is_phone(match.group()) else match.group()
+
+
+def mark_spaced_phones(text: str) -> str:
+    """Replace phone numbers written with spaces (``+1 555 010 9999``) by ``<phone>``.
+
+    Phone numbers without spaces are found per chunk by :func:`mark_specials`;
+    this is the one pattern that spans whitespace.
+
+    Examples
+    --------
+    >>> mark_spaced_phones("call +1 555 010 9999 or 0800 555 0199, not 2 3")
+    'call  <phone>  or  <phone> , not 2 3'
+    """
+    return _SPACED_PHONE_RE.sub(_spaced_phone, text)
 
 
 def _special(match: re.Match) -> str:
@@ -366,11 +399,17 @@ def mark_specials(text: str) -> str:
     return _SPECIAL_RE.sub(_special, text)
 
 
-def join_spaced(tokens: list[str]) -> list[str]:
+def join_spaced(tokens: list[str], rewrite=None) -> list[str]:
     """Join runs of three or more single characters into one word.
 
     ``c a s i n o`` (or ``c.a.s.i.n.o``) arrives as six one-letter tokens and
     leaves as ``casino``.  A run needs at least one letter, so ``1 2 3`` stays.
+
+    Parameters
+    ----------
+    tokens : list of str
+    rewrite : callable, optional
+        Applied to each joined word (the tokenizer undoes leetspeak there).
 
     Examples
     --------
@@ -384,17 +423,18 @@ def join_spaced(tokens: list[str]) -> list[str]:
             run.append(token)
             continue
         if run:
-            _flush_run(run, out)
+            _flush_run(run, out, rewrite)
             run = []
         out.append(token)
     if run:
-        _flush_run(run, out)
+        _flush_run(run, out, rewrite)
     return out
 
 
-def _flush_run(run: list[str], out: list[str]) -> None:
+def _flush_run(run: list[str], out: list[str], rewrite) -> None:
     if len(run) >= 3 and not all(c.isdigit() for c in run):
-        out.append("".join(run))
+        word = "".join(run)
+        out.append(rewrite(word) if rewrite else word)
     else:
         out.extend(run)
 
@@ -463,7 +503,7 @@ def bigrams(words: list[str]) -> list[str]:
     >>> bigrams(["free", "casino", "<url>"])
     ['free_casino', 'casino_<url>']
     """
-    return [a + BIGRAM_JOINER + b for a, b in zip(words, islice(words, 1, None))]
+    return list(map(BIGRAM_JOINER.join, zip(words, islice(words, 1, None))))
 
 
 def char_ngrams(words: list[str], low: int, high: int) -> list[str]:
@@ -535,8 +575,12 @@ _PARAMS = {
 }
 
 
-class _WordCache(dict):
-    """Raw word -> rewritten word; bounded (the oldest half goes when full)."""
+class _ChunkCache(dict):
+    """Whitespace chunk -> its tokens; bounded (the oldest half goes when full).
+
+    Comments reuse the same few thousand chunks ("the", "great,", "free!"), so
+    the regex work runs once per distinct chunk and a hit is a C dict lookup.
+    """
 
     __slots__ = ("_rewrite", "_cap")
 
@@ -545,13 +589,17 @@ class _WordCache(dict):
         self._rewrite = rewrite
         self._cap = cap
 
-    def __missing__(self, raw):
-        word = self._rewrite(raw)
+    def __missing__(self, chunk):
+        tokens = self._rewrite(chunk)
         if len(self) >= self._cap:
             for key in list(islice(self, len(self) // 2)):
                 del self[key]
-        self[raw] = word
-        return word
+        self[chunk] = tokens
+        return tokens
+
+
+_DIGITS = "0123456789"
+_SINGLE_DIGITS = frozenset(_DIGITS)
 
 
 class Tokenizer:
@@ -570,6 +618,13 @@ class Tokenizer:
     homoglyphs, accents, leet, join_spaced, squash_repeats : bool
         Switch the individual evasion-undoing steps (all on by default).
 
+    Notes
+    -----
+    Work is done per whitespace-separated chunk and remembered in a bounded
+    per-instance cache, so the cost of the regular expressions is paid once
+    per distinct chunk.  Only spaced-out phone numbers and spaced-out letters
+    span chunks; they are handled on the whole text and on the token list.
+
     Examples
     --------
     >>> tok = Tokenizer()
@@ -587,7 +642,7 @@ class Tokenizer:
                      accents=accents, leet=leet, join_spaced=join_spaced, squash_repeats=squash_repeats)
         for name, (_, check) in _PARAMS.items():
             setattr(self, name, check(name, given[name]))
-        self._words = _WordCache(self._rewrite_word, _WORD_CACHE_SIZE)
+        self._chunks = _ChunkCache(self._rewrite_chunk, _CHUNK_CACHE_SIZE)
 
     def params(self) -> dict:
         """JSON-safe parameters; ``Tokenizer(**tok.params())`` rebuilds this tokenizer."""
@@ -616,23 +671,38 @@ class Tokenizer:
     def _rewrite_word(self, raw: str) -> str:
         if raw[0] == "<" or raw.startswith(DOMAIN_PREFIX):
             return raw
-        word = raw
-        if self.leet:
-            word = undo_leet(word)
+        word = undo_leet(raw) if self.leet else raw
         if word.isdigit():
-            return "<num>"
-        if self.squash_repeats:
-            word = squash_repeats(word)
-        return word
+            # A single digit waits for the token-list pass: it may belong to a
+            # spaced-out word ("f r 3 3").
+            return word if len(word) == 1 else "<num>"
+        return squash_repeats(word) if self.squash_repeats else word
+
+    def _rewrite_chunk(self, chunk: str) -> tuple[str, ...]:
+        folded = fold_text(chunk, homoglyphs=self.homoglyphs, accents=self.accents)
+        if folded.isalpha() and folded.isascii():
+            return (squash_repeats(folded) if self.squash_repeats else folded,)
+        return tuple(map(self._rewrite_word, word_tokens(mark_specials(folded))))
+
+    def _finish(self, tokens: list[str]) -> list[str]:
+        """Token-list pass: join spaced-out runs, then single digits become ``<num>``."""
+        if self.join_spaced:
+            lengths = list(map(len, tokens))
+            if lengths.count(1) >= 3 and b"\x01\x01\x01" in bytes(map((1).__eq__, lengths)):
+                tokens = join_spaced(tokens, self._rewrite_word)
+        if _SINGLE_DIGITS.isdisjoint(tokens):
+            return tokens
+        return ["<num>" if t in _SINGLE_DIGITS else t for t in tokens]
 
     def _unigrams(self, text: str) -> list[str]:
-        folded = fold_text(text, homoglyphs=self.homoglyphs, accents=self.accents)
-        marked = mark_specials(folded)
-        raw = word_tokens(marked)
-        if self.join_spaced:
-            raw = join_spaced(raw)
-        lookup = self._words.__getitem__
-        return list(map(lookup, raw))
+        if text.isascii():
+            text = text.lower()
+        if any(map(text.__contains__, _DIGITS)) and _SPACED_PHONE_HINT_RE.search(text):
+            text = mark_spaced_phones(text)
+        tokens = list(chain.from_iterable(map(self._chunks.__getitem__, text.split())))
+        if 1 in map(len, tokens):
+            return self._finish(tokens)
+        return tokens
 
     def normalize(self, text: str) -> str:
         """The normalized text: unigram and marker tokens joined by single spaces.

@@ -1,0 +1,78 @@
+"""Normalization steps, features and the never-raises property."""
+import doctest
+import json
+
+import pytest
+from hypothesis import given, settings, strategies as st
+
+import model.tokens as tokens_module
+from model.tokens import Tokenizer, fold_text, join_spaced, mark_specials, squash_repeats, undo_leet
+
+TOK = Tokenizer()
+
+
+@pytest.mark.parametrize("raw,expected", [
+    ("ＦＲＥＥ", "free"), ("𝐜𝐚𝐬𝐢𝐧𝐨", "casino"), ("ca\u200bsi\u2060no", "casino"), ("hi\x00there", "hithere"),
+    ("саsinо", "casino"), ("ΗΕLLO", "hello"), ("ᴄᴀꜱɪɴᴏ", "casino"), ("cásínó", "casino"), ("привет", "привет"),
+], ids=["fullwidth", "math-bold", "zero-width", "nul", "cyrillic-mix", "greek-caps", "small-caps", "accents", "real-cyrillic"])
+def test_fold(raw, expected):
+    assert TOK.normalize(raw) == expected
+
+
+@pytest.mark.parametrize("word,expected", [("fr33", "free"), ("c4sino", "casino"), ("$ave", "save"), ("2024", "2024"), ("10k", "10k")],
+                         ids=["fr33", "c4sino", "dollar", "bare-number", "unit"])
+def test_undo_leet(word, expected):
+    assert undo_leet(word) == expected
+
+
+@pytest.mark.parametrize("word,expected", [("freeeee", "free"), ("good", "good"), ("sooooo", "soo")], ids=["long", "double", "o"])
+def test_squash_repeats(word, expected):
+    assert squash_repeats(word) == expected
+
+
+@pytest.mark.parametrize("text,expected", [("c a s i n o now", "casino now"), ("c.a.s.h", "cash"), ("f r 3 3", "free"), ("1 2 3", "<num> <num> <num>")],
+                         ids=["spaces", "dots", "leet-run", "numbers-stay"])
+def test_join_spaced(text, expected):
+    assert TOK.normalize(text) == expected
+
+
+@pytest.mark.parametrize("text,expected", [
+    ("see https://www.Casino.EXAMPLE/x?y=1.", "see <url> domain:casino.example"),
+    ("visit prize.example now", "visit <url> domain:prize.example now"),
+    ("mail win@prize.example", "mail <email>"),
+    ("call +1 (555) 010-9999", "call <phone>"), ("call 555-0199", "call <phone>"),
+    ("pay 1,299.99 or 30", "pay <num> or <num>"),
+], ids=["url", "bare-domain", "email", "phone-spaced", "phone-dash", "numbers"])
+def test_markers(text, expected):
+    assert TOK.normalize(text) == expected
+
+
+def test_features_bigrams_and_char_ngrams():
+    assert TOK.features("free casino") == ["free", "casino", "free_casino"]
+    grams = Tokenizer(char_ngrams=(3, 5)).features("win")
+    assert "#<wi" in grams and "#<win>" in grams
+
+
+def test_params_json_round_trip():
+    tok = Tokenizer(char_ngrams=(3, 5), leet=False)
+    again = Tokenizer(**json.loads(json.dumps(tok.params())))
+    assert again == tok and again.features("fr33 casino") == tok.features("fr33 casino")
+
+
+@pytest.mark.parametrize("field,value", [("bigrams", 1), ("char_ngrams", (5, 3)), ("version", 2)], ids=["bool", "ngrams", "version"])
+def test_invalid_params_name_field(field, value):
+    with pytest.raises(ValueError, match=field):
+        Tokenizer(**{field: value})
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.text(alphabet=st.characters(min_codepoint=0, max_codepoint=0x10FFFF), max_size=80)
+       | st.text(alphabet="\ud800\udfff\x00\u202e\u200b 🎰a1.@:/+-()", max_size=40))
+def test_never_raises(text):
+    out = TOK.features(text)
+    assert all(isinstance(t, str) and t for t in out)
+    assert TOK.normalize(text) == " ".join(TOK._unigrams(text))
+
+
+def test_docstring_examples():
+    assert doctest.testmod(tokens_module).failed == 0
