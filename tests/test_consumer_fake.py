@@ -47,6 +47,9 @@ class Recorder:
 
 def make(client, *, name="w1", model=None, observer=None, policies=(), **settings):
     settings.setdefault("block_ms", 5)
+    # Inline commits by default: with the commit thread's second connection, fakeredis's
+    # blocking read was seen to take ~5 s; one test below runs the commit thread on purpose.
+    settings.setdefault("overlap_commit", False)
     c = StreamConsumer(client=client, keys=KEYS, settings=WorkerSettings(**settings),
                        model_source=StaticModelSource(model=model or WordScorer()), consumer=name,
                        observer=observer, policies=policies)
@@ -369,14 +372,13 @@ def test_a_refused_commit_backs_off_and_the_batch_stays_pending(client):
             if len(sleeps) > 1:
                 self.stop()
 
-    c = Once(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, backoff_base_s=0.25),
+    c = Once(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, backoff_base_s=0.25, overlap_commit=False),
              model_source=StaticModelSource(model=WordScorer()), consumer="w")
-    c.stop_after = None
     original_step = c.step
 
-    def step():
-        result = original_step()
-        if result.written:
+    def step(**kwargs):
+        result = original_step(**kwargs)
+        if client.exists(KEYS.verdicts) and client.type(KEYS.verdicts) == b"stream":
             c.stop()
         return result
 
@@ -384,3 +386,20 @@ def test_a_refused_commit_backs_off_and_the_batch_stays_pending(client):
     assert c.run() == 0
     assert sleeps[0] == 0.25
     assert sorted(v["id"] for v in verdicts(client)) == ["c0", "c1"] and pending(client) == 0
+
+
+@pytest.mark.parametrize("overlap", [True, False], ids=["commit-thread", "inline"])
+def test_run_commits_every_batch_with_or_without_the_commit_thread(client, overlap):
+    send(client, 500, id="c{i}", text="note {i} about the garden")
+
+    class StopWhenDone(Recorder):
+        def on_verdicts(self, verdicts):
+            super().on_verdicts(verdicts)
+            if len(self.verdicts) == 500:
+                consumer.stop()
+
+    rec = StopWhenDone()
+    consumer = make(client, observer=rec, batch=64, overlap_commit=overlap)
+    assert consumer.run() == 0
+    assert sorted(v["id"] for v in rec.verdicts) == sorted(f"c{i}" for i in range(500))
+    assert len(verdicts(client)) == 500 and pending(client) == 0

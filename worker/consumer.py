@@ -30,6 +30,8 @@ import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
+from concurrent.futures import ThreadPoolExecutor
+
 import redis
 
 from worker.commit import WRITTEN, BatchCommitter, Limits as CommitLimits, Scored
@@ -123,6 +125,8 @@ class StreamConsumer:
         self._next_reload = 0.0
         self._next_lag = 0.0
         self._reports_verdicts = not isinstance(self.observer, NullObserver)
+        self._executor: ThreadPoolExecutor | None = None
+        self._inflight = None
 
     # -- life cycle ---------------------------------------------------------------------------
 
@@ -156,15 +160,35 @@ class StreamConsumer:
                 raise
 
     def run(self) -> int:
-        """Process batches until :meth:`stop`; returns the exit code (0)."""
+        """Process batches until :meth:`stop`; returns the exit code (0).
+
+        With ``settings.overlap_commit`` a batch is committed on a second
+        connection while the next one is read and scored; commits still happen
+        one at a time and in order, and the last one is waited for before
+        returning.
+        """
         log.info("consumer %s reading %s as group %s", self.consumer, self.keys.comments, self.keys.group)
+        if self.settings.overlap_commit:
+            self._executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="seawall-commit")
+        try:
+            self._loop()
+        finally:
+            self._abandon_inflight()
+            if self._executor is not None:
+                self._executor.shutdown(wait=True)
+                self._executor = None
+        log.info("consumer %s stopped", self.consumer)
+        return 0
+
+    def _loop(self) -> None:
         failures = 0
         while not self._stopping:
             try:
                 if not self._ready:
                     self.prepare()
-                self.step()
+                self.step(overlap=True)
             except (redis.ConnectionError, redis.TimeoutError) as exc:
+                self._abandon_inflight()
                 failures += 1
                 self._ready = False
                 delay = self.backoff(failures)
@@ -173,6 +197,7 @@ class StreamConsumer:
                 self._sleep(delay)
                 continue
             except redis.ResponseError as exc:
+                self._abandon_inflight()
                 self._ready = False
                 if "NOGROUP" in str(exc):
                     # The server came back without the group (no persistence): make it again.
@@ -189,8 +214,6 @@ class StreamConsumer:
                 log.info("reconnected to Redis after %d failed attempt(s)", failures)
                 self.observer.on_reconnect()
                 failures = 0
-        log.info("consumer %s stopped", self.consumer)
-        return 0
 
     def backoff(self, failures: int) -> float:
         s = self.settings
@@ -206,7 +229,7 @@ class StreamConsumer:
 
     # -- one iteration ------------------------------------------------------------------------
 
-    def step(self) -> BatchResult:
+    def step(self, *, overlap: bool = False) -> BatchResult:
         """Reload if due, reclaim if due, then read and process one batch."""
         now = time.monotonic()
         if now >= self._next_reload:
@@ -222,10 +245,11 @@ class StreamConsumer:
             entries = self.read(self._backlog_from, block=False)
             if entries:
                 self._backlog_from = entries[-1].stream_id
-                return self.process(entries, deliveries=self.deliveries([e.stream_id for e in entries]))
+                return self.process(entries, deliveries=self.deliveries([e.stream_id for e in entries]),
+                                    overlap=overlap)
             self._backlog_from = None
         entries = self.read(b">", block=True)
-        return self.process(entries)
+        return self.process(entries, overlap=overlap)
 
     def read(self, start: bytes, *, block: bool) -> list[Entry]:
         args = ["XREADGROUP", "GROUP", self.keys.group, self.consumer, "COUNT", self.settings.batch]
@@ -249,6 +273,7 @@ class StreamConsumer:
 
     def reclaim(self) -> BatchResult:
         """Take over entries idle longer than ``claim_idle_ms`` and process them."""
+        self.settle()
         total = BatchResult()
         cursor = b"0-0"
         for _ in range(MAX_CLAIM_ROUNDS):
@@ -308,8 +333,14 @@ class StreamConsumer:
 
     # -- one batch ------------------------------------------------------------------------------
 
-    def process(self, entries: Sequence[Entry], *, deliveries: dict[bytes, int] | None = None) -> BatchResult:
-        """Validate, score, route and commit ``entries``; never raises on bad input."""
+    def process(self, entries: Sequence[Entry], *, deliveries: dict[bytes, int] | None = None,
+                overlap: bool = False) -> BatchResult:
+        """Validate, score, route and commit ``entries``; never raises on bad input.
+
+        With ``overlap`` (used by :meth:`run`), the commit goes to the commit
+        thread and this returns once the batch is scored; the counts of the
+        returned result are filled in when the commit settles (see :meth:`settle`).
+        """
         result = BatchResult(read=len(entries))
         if not entries:
             return result
@@ -329,9 +360,34 @@ class StreamConsumer:
         dead.extend(failed)
         model = self._model
         now = self.clock()
-        codes = self._committer.commit(self.client, scored, dead, model=str(model.version), now=now,
-                                       consumer=self.consumer)
+        batch = (scored, dead, model, now, result, t0, len(entries))
+        if overlap and self._executor is not None:
+            self.settle()  # commits stay in order: one in flight at a time
+            self._inflight = (self._executor.submit(self._commit, scored, dead, model, now), batch)
+            return result
+        return self._finish(self._commit(scored, dead, model, now), *batch)
 
+    def _commit(self, scored, dead, model, now) -> list[int]:
+        return self._committer.commit(self.client, scored, dead, model=str(model.version), now=now,
+                                      consumer=self.consumer)
+
+    def settle(self) -> BatchResult | None:
+        """Wait for the commit in flight, if any, and report it; its errors are raised here."""
+        if self._inflight is None:
+            return None
+        future, batch = self._inflight
+        self._inflight = None
+        return self._finish(future.result(), *batch)
+
+    def _abandon_inflight(self) -> None:
+        # After a failure elsewhere: let the commit in flight end; if it failed too, its
+        # entries are still pending and are read again from this consumer's backlog.
+        try:
+            self.settle()
+        except (redis.RedisError, OSError) as exc:
+            log.warning("the batch being committed did not commit (%s); it stays pending", exc)
+
+    def _finish(self, codes, scored, dead, model, now, result: BatchResult, t0: float, size: int) -> BatchResult:
         n = len(scored)
         written = [s for s, code in zip(scored, codes[:n]) if code == WRITTEN]
         result.written = len(written)
@@ -350,7 +406,7 @@ class StreamConsumer:
             ])
         if result.duplicates:
             log.info("skipped %d comment(s) that already had a verdict", result.duplicates)
-        self.observer.on_batch(len(entries), time.perf_counter() - t0)
+        self.observer.on_batch(size, time.perf_counter() - t0)
         return result
 
     def _score(self, comments: list[Comment]) -> tuple[list[Scored], list[DeadLetter]]:

@@ -102,6 +102,7 @@ class WorkerSettings:
     reload_poll_s: float = setting(2.0, "how often the worker checks its model source for a new model, in seconds")
     lag_every_s: float = setting(5.0, "how often the worker reports consumer-group lag and pending counts")
     socket_timeout_s: float = setting(10.0, "Redis socket timeout on top of block_ms, in seconds")
+    overlap_commit: bool = setting(True, "commit a batch on a second connection while the next one is read and scored")
     site_thresholds: Mapping[str, Mapping[str, float]] = field(
         default_factory=lambda: MappingProxyType({}),
         metadata={
