@@ -14,7 +14,8 @@ buckets.
 LSH: the signature is cut into ``bands`` bands of ``rows = k / bands`` rows;
 two comments share a band's key with probability ``J**rows``, and at least one
 of ``bands`` keys with ``1 - (1 - J**rows)**bands``, an S-curve whose middle
-is near ``(1 / bands) ** (1 / rows)``.
+is near ``(1 / bands) ** (1 / rows)``.  :func:`band_hashes` gives every
+band of a whole batch its 64-bit key in one numpy pass.
 """
 from __future__ import annotations
 
@@ -23,6 +24,7 @@ import re
 import unicodedata
 import zlib
 from collections.abc import Callable, Iterable
+from itertools import chain
 
 import numpy as np
 
@@ -78,6 +80,7 @@ class MinHasher:
         rng = np.random.default_rng(seed)
         self._a = rng.integers(0, 1 << 63, size=num_perm, dtype=np.uint64) * np.uint64(2) + np.uint64(1)
         self._b = rng.integers(0, 1 << 63, size=num_perm, dtype=np.uint64)
+        self._word_crc = _WordCrc()
 
     def shingles(self, text: str) -> set[str]:
         """The set of word shingles (for exact Jaccard); a text shorter than ``shingle`` words is one shingle."""
@@ -105,14 +108,15 @@ class MinHasher:
 
     def signatures_of_words(self, word_lists: list[list[str]]) -> np.ndarray:
         """:meth:`signatures` of texts already split into words."""
-        word_lists = [list(w)[: self.max_words] for w in word_lists]
+        word_lists = [w[: self.max_words] for w in word_lists]
         n_texts, n = len(word_lists), self.shingle
         out = np.full((n_texts, self.num_perm), EMPTY, dtype=np.uint32)
         lengths = np.fromiter((len(w) for w in word_lists), dtype=np.int64, count=n_texts)
         total = int(lengths.sum())
         if total == 0:
             return out
-        wh = np.fromiter((zlib.crc32(w.encode("utf-8")) for ws in word_lists for w in ws), dtype=np.uint64, count=total)
+        wh = np.fromiter(map(self._word_crc.__getitem__, chain.from_iterable(word_lists)), dtype=np.uint64,
+                         count=total)
         wh = np.concatenate([wh, np.zeros(n, dtype=np.uint64)])
         starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
         text_of = np.repeat(np.arange(n_texts), lengths)
@@ -138,6 +142,22 @@ class MinHasher:
 
 
 _MIX = np.uint64(0x9E3779B97F4A7C15)
+
+
+class _WordCrc(dict):
+    """word -> CRC-32 of its UTF-8 bytes, remembered: a site's common words cost one C lookup.
+
+    Bounded: when it holds ``cap`` words it starts afresh (a plain dict keeps
+    the hit path in C; recomputing a CRC is cheap).
+    """
+
+    cap = 1 << 16
+
+    def __missing__(self, word: str) -> int:
+        if len(self) >= self.cap:
+            self.clear()
+        value = self[word] = zlib.crc32(word.encode("utf-8"))
+        return value
 
 
 def _fmix64(x: np.ndarray) -> np.ndarray:
@@ -175,6 +195,34 @@ def band_keys(signature: np.ndarray, bands: int) -> list[str]:
         f"{b}:{hashlib.blake2b(sig[b * rows:(b + 1) * rows].astype('<u4').tobytes(), digest_size=8).hexdigest()}"
         for b in range(bands)
     ]
+
+
+def band_hashes(signatures: np.ndarray, bands: int) -> np.ndarray:
+    """A 64-bit key per band of each signature, shape ``(n, bands)``, dtype uint64.
+
+    Equal for two signatures iff their band's rows are equal (up to 64-bit
+    hash collisions, about ``2**-64`` per pair); the band index is mixed in, so
+    keys of different bands never meet.  One numpy pass over a whole batch:
+    each row is folded in with a multiply-add and MurmurHash3's finalizer.
+
+    Examples
+    --------
+    >>> sig = np.arange(8, dtype=np.uint32).reshape(1, 8)
+    >>> band_hashes(sig, 4).shape
+    (1, 4)
+    """
+    sig = np.asarray(signatures, dtype=np.uint32)
+    if sig.ndim == 1:
+        sig = sig[None, :]
+    if sig.ndim != 2 or bands < 1 or sig.shape[1] % bands:
+        raise ValueError(f"band_hashes: {bands} bands do not divide signatures of shape {sig.shape}")
+    rows = sig.shape[1] // bands
+    cells = sig.reshape(sig.shape[0], bands, rows).astype(np.uint64)
+    with np.errstate(over="ignore"):
+        h = np.broadcast_to(_fmix64(np.arange(1, bands + 1, dtype=np.uint64) * _MIX), cells.shape[:2])
+        for r in range(rows):
+            h = _fmix64(h * _MIX + cells[:, :, r])
+    return h
 
 
 def collision_probability(j: float, *, bands: int, rows: int) -> float:

@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from model.minhash import MinHasher, band_keys, collision_probability, exact_jaccard, jaccard_estimate
+from model.minhash import MinHasher, band_hashes, band_keys, collision_probability, exact_jaccard, jaccard_estimate
 
 VOCAB = np.array([f"w{i}" for i in range(5000)])  # invented words, so no two shingles collide by accident of language
 
@@ -93,3 +93,16 @@ def test_lsh_collision_curve():
 def test_params_are_validated(kwargs, field):
     with pytest.raises(ValueError, match=field):
         MinHasher(**kwargs)
+
+
+def test_band_hashes_match_for_equal_bands_only_and_batch_equals_alone():
+    sigs = np.stack([np.arange(64, dtype=np.uint32), np.arange(64, dtype=np.uint32)])
+    sigs[1, 0] = 999  # band 0 differs
+    h = band_hashes(sigs, 16)
+    assert h.shape == (2, 16) and h.dtype == np.uint64
+    assert h[0, 0] != h[1, 0] and (h[0, 1:] == h[1, 1:]).all()
+    np.testing.assert_array_equal(band_hashes(sigs[1], 16)[0], h[1])
+    same_rows = np.tile(np.array([7, 7, 7, 7], dtype=np.uint32), 16)  # every band has the same rows
+    assert len(set(band_hashes(same_rows, 16)[0].tolist())) == 16  # the band index is part of the key
+    with pytest.raises(ValueError, match="bands"):
+        band_hashes(sigs, 5)
