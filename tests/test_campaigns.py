@@ -179,3 +179,32 @@ def test_a_burst_of_variants_is_one_campaign(fake_redis):
     starts = [e for e in events(fake_redis) if e.type == "campaign_start"]
     assert len(starts) == 1, [e.data for e in starts]
     assert out.count("hold") >= 100
+
+
+def test_comments_with_no_near_duplicate_cost_no_bucket_of_their_own(shared_redis):
+    """The usual comment only joins the current slot's set of first sightings: no per-band key."""
+    rng = np.random.default_rng(3)
+    vocab = [f"word{i}" for i in range(3000)]
+    texts = [" ".join(rng.choice(vocab, size=30)) for _ in range(200)]
+    policy(Clock()).apply(shared_redis, comments(texts), [0.1] * 200, ["publish"] * 200)
+    keys = sorted(k.decode() for k in shared_redis.keys("seawall:campaigns:*"))
+    assert len(keys) == 1 and keys[0].startswith("seawall:campaigns:seen:"), keys
+    assert shared_redis.scard(keys[0]) == 200 * 16
+    assert 0 < shared_redis.ttl(keys[0]) <= 600 + 1  # until the end of the next half-window slot, plus 1 s
+
+
+def test_near_duplicates_either_side_of_a_slot_boundary_all_count(fake_redis):
+    """First sightings live in half-window slots; the previous slot is read too, so none is missed.
+
+    Ten variants 40 s apart, the first 100 s before a slot ends: the tenth makes the campaign
+    (as when all ten come in one batch) only if the ones after the boundary still find the
+    earlier ones.
+    """
+    clock = Clock(1_800_000_000.0 - 1_800_000_000.0 % 300 + 200)
+    p = policy(clock)
+    out = []
+    for i in range(10):
+        out += p.apply(fake_redis, comments([campaign_text(i)], start=i), [0.1], ["publish"])
+        clock.t += 40
+    assert out == ["publish"] * 9 + ["hold"]
+    assert len(read_campaigns(fake_redis, KEYS)) == 1

@@ -5,10 +5,14 @@ comments (:mod:`model.minhash`) and adds each comment to the LSH bucket of each
 of its bands, in Redis, so that a template posted through many workers meets in
 the same buckets.  Redis keeps:
 
-* ``campaigns:lsh:{band}:{key}``: per bucket, a hash with the number of
-  comments, the first member's time, the campaign it is linked to (if any)
-  and one field per author *hash* (never the author id itself); its counts
-  cover the ``window_s`` after its first member, then it starts afresh;
+* ``campaigns:seen:{slot}``: per half window, a set of the band keys first
+  seen in it (8 bytes each: hashes of the MinHash bands, never text), so a
+  band key that only one comment ever had costs no per-band Redis call;
+* ``campaigns:lsh:{key}``: per band key seen twice within the window, a hash
+  with the number of comments, the second member's time, the campaign it is
+  linked to (if any) and one field per author *hash* (never the author id
+  itself); its counts cover the ``window_s`` after its second member (the
+  first was seen at most ``window_s`` earlier), then it starts afresh;
 * ``campaigns:seed``: per active campaign, its first member's band keys;
 * ``campaigns:active``, ``campaigns:size``, ``campaigns:last``: the active
   campaigns, their member counts and their last member's time.
@@ -38,59 +42,99 @@ import logging
 import time
 from collections.abc import Callable, Sequence
 
-from model.minhash import MinHasher, band_keys
+import numpy as np
+
+from model.minhash import MinHasher, band_hashes
 from worker.events import EVENTS_MAXLEN, add_event
 from worker.settings import Keys
 
 log = logging.getLogger("seawall.worker.campaigns")
 
-# Adds every comment to its bands' buckets and reports per comment the fullest
-# bucket (size, distinct authors, band) and the campaigns its buckets are
-# linked to.  A bucket is a hash {n: comments, t0: first member's time,
-# L: linked campaign, <author hash>: 1, ...}.  It costs 2-3 O(1) calls per
-# band for the usual bucket that holds a handful of comments; only a bucket
-# with at least min_size comments is checked for its age (by the writers'
-# clock: older than the window, it starts afresh), its authors (HLEN minus the
-# fixed fields) and its link.  The EXPIRE frees memory.
-# KEYS: per comment and band, the bucket.  ARGV: ttl, bands, now, min_size,
-# then (member, author) per comment.
+# Adds every comment of a batch to its bands' buckets and reports, for each
+# comment whose fullest bucket holds at least min_size comments, that bucket's
+# size, distinct authors and band, and the campaigns its buckets are linked to.
+#
+# Most buckets only ever hold one comment, so a band key's first sighting only
+# makes it a member of the current time slot's set (KEYS[1]; slots are half a
+# window long, KEYS[2] is the previous one, so together they reach back at
+# least half a window and at most a whole one): the whole batch costs two
+# SMISMEMBERs and one SADD, whatever its size and number of bands.  A key
+# already in either slot (or earlier in the batch) is a second sighting within
+# the window, and only then does its bucket get a hash of its own under the
+# rich prefix: {n: comments, t0: its second comment's time, L: linked
+# campaign, <author hash>: 1, ...}, made with n = 2 and the current author.
+# The first comment's author is not known, so authors are counted among the
+# later members only: M distinct authors are never reached early.  A bucket
+# costs 2-3 calls per comment from then on; only one holding min_size comments
+# is checked for age (by the writers' clock: older than the window, it starts
+# afresh), authors (HLEN minus the fixed fields) and link.  The EXPIREs free
+# memory: a slot lasts until the end of the next slot, a bucket one window.
+# KEYS: current slot, previous slot.  ARGV: window, now, min_size, bands, rich
+# prefix, current slot's TTL, band keys (8 bytes each, bands per comment),
+# author hashes (16 hex each), and the 1-based places of band keys that occur
+# earlier in the batch.
 _ADD_SCRIPT = """
-local ttl, bands, now, min_size = tonumber(ARGV[1]), tonumber(ARGV[2]), tonumber(ARGV[3]), tonumber(ARGV[4])
+local window, now, min_size, bands = tonumber(ARGV[1]), tonumber(ARGV[2]), tonumber(ARGV[3]), tonumber(ARGV[4])
+local prefix, slot_ttl, blob, authors = ARGV[5], tonumber(ARGV[6]), ARGV[7], ARGV[8]
+local n_fields = #blob / 8
+local fields = {}
+for f = 1, n_fields do fields[f] = string.sub(blob, 8 * f - 7, 8 * f) end
+local repeated = {}  -- places of keys that occur earlier in the batch
+for f in string.gmatch(ARGV[9], '%d+') do repeated[tonumber(f)] = true end
+local CHUNK = 7000  -- unpack() is bounded by the Lua stack (8000)
+local cur, prev
+if n_fields <= CHUNK then
+  cur = redis.call('SMISMEMBER', KEYS[1], unpack(fields))
+  prev = redis.call('SMISMEMBER', KEYS[2], unpack(fields))
+  redis.call('SADD', KEYS[1], unpack(fields))
+else
+  cur, prev = {}, {}
+  for s = 1, n_fields, CHUNK do
+    local e = math.min(s + CHUNK - 1, n_fields)
+    local c = redis.call('SMISMEMBER', KEYS[1], unpack(fields, s, e))
+    local p = redis.call('SMISMEMBER', KEYS[2], unpack(fields, s, e))
+    for i = 1, #c do cur[s + i - 1], prev[s + i - 1] = c[i], p[i] end
+  end
+  for s = 1, n_fields, CHUNK do redis.call('SADD', KEYS[1], unpack(fields, s, math.min(s + CHUNK - 1, n_fields))) end
+end
+redis.call('EXPIRE', KEYS[1], slot_ttl)
 local out = {}
-local n = (#ARGV - 4) / 2
-for i = 0, n - 1 do
-  local author = ARGV[6 + 2 * i]
+for i = 0, n_fields / bands - 1 do
+  local author = nil
   local best_size, best_authors, best_band = 0, 0, -1
   local links = {}
   for j = 1, bands do
-    local bucket = KEYS[i * bands + j]
-    local size = redis.call('HINCRBY', bucket, 'n', 1)
-    if size >= min_size and now - tonumber(redis.call('HGET', bucket, 't0') or ARGV[3]) >= ttl then
-      redis.call('DEL', bucket)
-      size = redis.call('HINCRBY', bucket, 'n', 1)
-    end
-    if size == 1 then
-      redis.call('HSET', bucket, 't0', ARGV[3], author, '1')
-      redis.call('EXPIRE', bucket, ttl)
-    else
-      redis.call('HSETNX', bucket, author, '1')
-    end
-    if size >= min_size then
-      local fields = redis.call('HLEN', bucket)
-      local link = redis.call('HGET', bucket, 'L')
-      local na = fields - 2
-      if link then
-        na = na - 1
-        table.insert(links, link)
+    local f = i * bands + j
+    if cur[f] == 1 or prev[f] == 1 or repeated[f] then
+      author = author or string.sub(authors, 16 * i + 1, 16 * i + 16)
+      local bucket = prefix .. string.format('%02x%02x%02x%02x%02x%02x%02x%02x', string.byte(fields[f], 1, 8))
+      local size = redis.call('HINCRBY', bucket, 'n', 1)
+      if size >= min_size and now - tonumber(redis.call('HGET', bucket, 't0') or ARGV[2]) >= window then
+        redis.call('DEL', bucket)
+        size = redis.call('HINCRBY', bucket, 'n', 1)
+        redis.call('HSET', bucket, 't0', ARGV[2], author, '1')
+        redis.call('EXPIRE', bucket, window)
+      elseif size == 1 then
+        size = 2
+        redis.call('HSET', bucket, 'n', 2, 't0', ARGV[2], author, '1')
+        redis.call('EXPIRE', bucket, window)
+      else
+        redis.call('HSETNX', bucket, author, '1')
       end
-      if size > best_size or (size == best_size and na > best_authors) then
-        best_size, best_authors, best_band = size, na, j - 1
+      if size >= min_size then
+        local na = redis.call('HLEN', bucket) - 2
+        local link = redis.call('HGET', bucket, 'L')
+        if link then
+          na = na - 1
+          table.insert(links, link)
+        end
+        if size > best_size or (size == best_size and na > best_authors) then
+          best_size, best_authors, best_band = size, na, j - 1
+        end
       end
-    elseif best_size < min_size and size > best_size then
-      best_size, best_authors, best_band = size, 0, j - 1
     end
   end
-  table.insert(out, {best_size, best_authors, best_band, links})
+  if best_size >= min_size then table.insert(out, {i, best_size, best_authors, best_band, links}) end
 end
 return out
 """
@@ -173,24 +217,40 @@ class CampaignPolicy:
             return {}
         now = self.clock()
         signatures = self.hasher.signatures_of_words([words[i] for i in eligible])
-        buckets = [band_keys(sig, self.bands) for sig in signatures]
-        script_keys, argv = [], [str(self.window_s), str(self.bands), f"{now:.3f}", str(self.min_size)]
-        for i, bucket_list in zip(eligible, buckets):
-            for b in bucket_list:
-                script_keys.append(self._bucket("lsh", b))
-            cid = _get(comments[i], "id")
-            argv += [cid, author_hash(_get(comments[i], "author"), cid)]
+        # every band key of the batch in one argument (8 bytes each), not one argument per band;
+        # the rich buckets' names use their hex
+        keys = band_hashes(signatures, self.bands).ravel()
+        blob = keys.astype(">u8").tobytes()
+        _, first = np.unique(keys, return_index=True)
+        repeated = np.ones(keys.size, dtype=bool)
+        repeated[first] = False
+        repeated = " ".join(map(str, np.flatnonzero(repeated) + 1))  # usually empty
+        authors = "".join(author_hash(_get(comments[i], "author"), _get(comments[i], "id")) for i in eligible)
+        # first sightings go to slots of half a window: the current and the previous one reach back
+        # at least half a window and at most a whole one
+        slot_s = self.window_s / 2.0
+        slot = int(now // slot_s)
+        slot_ttl = max(1, int((slot + 2) * slot_s - now) + 1)  # relative: the server's clock may differ
         if self._script is None:
             self._script = client.register_script(_ADD_SCRIPT)
-        reply = self._script(keys=script_keys, args=argv, client=client)
+        reply = self._script(keys=[self._bucket("seen", str(slot)), self._bucket("seen", str(slot - 1))],
+                             args=[self.window_s, f"{now:.3f}", self.min_size, self.bands, self._bucket("lsh", ""),
+                                   slot_ttl, blob, authors, repeated],
+                             client=client)
+        if not reply:  # the usual batch: no bucket holds min_size comments
+            return {}
 
+        hexes = blob.hex()
+        width = 16 * self.bands
         ck = campaign_keys(self.keys)
         active = {_text(k) for k in client.hkeys(ck["active"])}
         members: dict[int, str] = {}
         new_links: dict[str, str] = {}
         dense: dict[int, str] = {}  # comment index -> its fullest bucket, when that bucket meets N and M
         seeds: dict[str, set[str]] | None = None  # campaign -> its first member's band keys, read when needed
-        for i, bucket_list, (size, n_authors, best_band, links) in zip(eligible, buckets, reply):
+        for pos, size, n_authors, best_band, links in reply:
+            i, pos = eligible[int(pos)], int(pos)
+            bucket_list = [hexes[pos * width + 16 * j:pos * width + 16 * (j + 1)] for j in range(self.bands)]
             linked = [_text(x) for x in links] + [new_links[b] for b in bucket_list if b in new_links]
             campaign = next((c for c in linked if c in active), None)
             is_dense = size >= self.min_size and n_authors >= self.min_authors
