@@ -41,6 +41,8 @@ _PARAMS = {
 
 def default_words(text: str) -> list[str]:
     """NFKC, casefold, then runs of word characters."""
+    if text.isascii():  # NFKC leaves ASCII as it is, and casefold() of ASCII is lower()
+        return _WORD.findall(text.lower())
     return _WORD.findall(unicodedata.normalize("NFKC", text).casefold())
 
 

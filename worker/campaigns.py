@@ -40,6 +40,7 @@ import hashlib
 import json
 import logging
 import time
+from collections import Counter
 from collections.abc import Callable, Sequence
 
 import numpy as np
@@ -65,17 +66,19 @@ log = logging.getLogger("seawall.worker.campaigns")
 # campaign, <author hash>: 1, ...}, made with n = 2 and the current author.
 # The first comment's author is not known, so authors are counted among the
 # later members only: M distinct authors are never reached early.  A bucket
-# costs 2-3 calls per comment from then on; only one holding min_size comments
+# costs 2 calls per comment from then on; only one holding min_size comments
 # is checked for age (by the writers' clock: older than the window, it starts
-# afresh), authors (HLEN minus the fixed fields) and link.  The EXPIREs free
+# afresh) and link (one HMGET) and authors (HLEN minus the fixed fields; once
+# it has min_authors, later authors are not written).  The EXPIREs free
 # memory: a slot lasts until the end of the next slot, a bucket one window.
 # KEYS: current slot, previous slot.  ARGV: window, now, min_size, bands, rich
 # prefix, current slot's TTL, band keys (8 bytes each, bands per comment),
-# author hashes (16 hex each), and the 1-based places of band keys that occur
-# earlier in the batch.
+# author hashes (16 hex each), the 1-based places of band keys that occur
+# earlier in the batch, min_authors.
 _ADD_SCRIPT = """
 local window, now, min_size, bands = tonumber(ARGV[1]), tonumber(ARGV[2]), tonumber(ARGV[3]), tonumber(ARGV[4])
 local prefix, slot_ttl, blob, authors = ARGV[5], tonumber(ARGV[6]), ARGV[7], ARGV[8]
+local min_authors = tonumber(ARGV[10])
 local n_fields = #blob / 8
 local fields = {}
 for f = 1, n_fields do fields[f] = string.sub(blob, 8 * f - 7, 8 * f) end
@@ -109,28 +112,33 @@ for i = 0, n_fields / bands - 1 do
       author = author or string.sub(authors, 16 * i + 1, 16 * i + 16)
       local bucket = prefix .. string.format('%02x%02x%02x%02x%02x%02x%02x%02x', string.byte(fields[f], 1, 8))
       local size = redis.call('HINCRBY', bucket, 'n', 1)
-      if size >= min_size and now - tonumber(redis.call('HGET', bucket, 't0') or ARGV[2]) >= window then
-        redis.call('DEL', bucket)
-        size = redis.call('HINCRBY', bucket, 'n', 1)
-        redis.call('HSET', bucket, 't0', ARGV[2], author, '1')
-        redis.call('EXPIRE', bucket, window)
+      if size >= min_size then
+        local got = redis.call('HMGET', bucket, 't0', 'L')
+        local link = got[2]
+        if now - tonumber(got[1] or ARGV[2]) >= window then  -- older than the window: start afresh
+          redis.call('DEL', bucket)
+          size = redis.call('HINCRBY', bucket, 'n', 1)
+          redis.call('HSET', bucket, 't0', ARGV[2], author, '1')
+          redis.call('EXPIRE', bucket, window)
+        else
+          local na = redis.call('HLEN', bucket) - 2
+          if link then
+            na = na - 1
+            table.insert(links, link)
+          end
+          if na < min_authors then  -- past M, more authors change nothing: skip the write
+            na = na + redis.call('HSETNX', bucket, author, '1')
+          end
+          if size > best_size or (size == best_size and na > best_authors) then
+            best_size, best_authors, best_band = size, na, j - 1
+          end
+        end
       elseif size == 1 then
         size = 2
         redis.call('HSET', bucket, 'n', 2, 't0', ARGV[2], author, '1')
         redis.call('EXPIRE', bucket, window)
       else
         redis.call('HSETNX', bucket, author, '1')
-      end
-      if size >= min_size then
-        local na = redis.call('HLEN', bucket) - 2
-        local link = redis.call('HGET', bucket, 'L')
-        if link then
-          na = na - 1
-          table.insert(links, link)
-        end
-        if size > best_size or (size == best_size and na > best_authors) then
-          best_size, best_authors, best_band = size, na, j - 1
-        end
       end
     end
   end
@@ -162,6 +170,8 @@ def author_hash(author: str, comment_id: str) -> str:
 
 def _get(comment, name: str) -> str:
     value = comment.get(name, "") if isinstance(comment, dict) else getattr(comment, name, "")
+    if value.__class__ is str:  # the worker's comments: skip the checks below
+        return value
     if isinstance(value, bytes):
         value = value.decode("utf-8", "replace")
     return value if isinstance(value, str) else str(value or "")
@@ -235,7 +245,7 @@ class CampaignPolicy:
             self._script = client.register_script(_ADD_SCRIPT)
         reply = self._script(keys=[self._bucket("seen", str(slot)), self._bucket("seen", str(slot - 1))],
                              args=[self.window_s, f"{now:.3f}", self.min_size, self.bands, self._bucket("lsh", ""),
-                                   slot_ttl, blob, authors, repeated],
+                                   slot_ttl, blob, authors, repeated, self.min_authors],
                              client=client)
         if not reply:  # the usual batch: no bucket holds min_size comments
             return {}
@@ -322,7 +332,8 @@ class CampaignPolicy:
         for i, campaign in members.items():
             if i in dense:
                 pipe.hset(self._bucket("lsh", dense[i]), "L", campaign)
-            pipe.hincrby(ck["size"], campaign, 1)
+        for campaign, count in Counter(members.values()).items():  # once per campaign and batch
+            pipe.hincrby(ck["size"], campaign, count)
             pipe.hset(ck["last"], campaign, f"{now:.3f}")
         pipe.execute()
 
