@@ -133,6 +133,11 @@ class Worker:
                 raise
         return self.proc.returncode
 
+    def started(self) -> bool:
+        """The latest start has reached its read loop (signal handlers are installed by then)."""
+        return bool(self.logs) and self.logs[-1].exists() and \
+            f"consumer {self.name} reading" in self.logs[-1].read_text(errors="replace")
+
     def output(self) -> str:
         return "\n".join(p.read_text(errors="replace") for p in self.logs if p.exists())
 

@@ -62,6 +62,8 @@ def test_twenty_sigkills_during_a_20000_comment_run_lose_and_double_nothing(redi
                               timeout=max(10.0, deadline - time.monotonic()), interval=0.2)
         counts = verdict_ids(client)
         assert finished, f"{len(counts)} ids with verdicts, {group_pending(client)} pending after the run"
+        # A worker restarted by the last kill may still be starting; let it join before SIGTERM.
+        assert wait_until(lambda: all(w.started() for w in workers), timeout=60)
     finally:
         codes = stop_all(workers)
     lost = COMMENTS - len(counts)
