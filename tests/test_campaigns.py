@@ -208,3 +208,31 @@ def test_near_duplicates_either_side_of_a_slot_boundary_all_count(fake_redis):
         clock.t += 40
     assert out == ["publish"] * 9 + ["hold"]
     assert len(read_campaigns(fake_redis, KEYS)) == 1
+
+
+def test_members_a_worker_knows_skip_most_bucket_writes_and_are_still_held_and_counted():
+    """Once a worker has seen a bucket linked to a campaign, its later members skip most bucket writes.
+
+    The same comments go to two Redis servers in the same state; on one, the worker that saw the
+    campaign start goes on, on the other a worker that has learnt nothing.  Both hold and count
+    every later member; the first writes far less to the buckets.
+    """
+    first = [campaign_text(i) for i in range(14)]
+    later = [campaign_text(i) for i in range(14, 38)]
+    growth, sizes = {}, {}
+    for kind in ("learnt", "fresh"):
+        clock = Clock()
+        r = fakeredis.FakeRedis(server=fakeredis.FakeServer())
+        p = policy(clock)
+        p.apply(r, comments(first), [0.1] * 14, ["publish"] * 14)
+        (cid,) = read_campaigns(r, KEYS)
+        size0 = read_campaigns(r, KEYS)[cid]["members"]
+        total0 = sum(int(r.hget(k, "n") or 0) for k in r.keys("seawall:campaigns:lsh:*"))
+        if kind == "fresh":
+            p = policy(clock)
+        clock.t += 5
+        assert p.apply(r, comments(later, start=100), [0.1] * 24, ["publish"] * 24) == ["hold"] * 24
+        growth[kind] = sum(int(r.hget(k, "n") or 0) for k in r.keys("seawall:campaigns:lsh:*")) - total0
+        sizes[kind] = read_campaigns(r, KEYS)[cid]["members"] - size0
+    assert sizes == {"learnt": 24, "fresh": 24}
+    assert growth["learnt"] < growth["fresh"] / 2, growth

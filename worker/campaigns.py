@@ -74,7 +74,9 @@ log = logging.getLogger("seawall.worker.campaigns")
 # KEYS: current slot, previous slot.  ARGV: window, now, min_size, bands, rich
 # prefix, current slot's TTL, band keys (8 bytes each, bands per comment),
 # author hashes (16 hex each), the 1-based places of band keys that occur
-# earlier in the batch, min_authors.
+# earlier in the batch, min_authors, and the 0-based comments to leave out of
+# the buckets (the worker knows them as members already; they still go into
+# the slot sets).  Links come back as (band, campaign) pairs.
 _ADD_SCRIPT = """
 local window, now, min_size, bands = tonumber(ARGV[1]), tonumber(ARGV[2]), tonumber(ARGV[3]), tonumber(ARGV[4])
 local prefix, slot_ttl, blob, authors = ARGV[5], tonumber(ARGV[6]), ARGV[7], ARGV[8]
@@ -84,6 +86,8 @@ local fields = {}
 for f = 1, n_fields do fields[f] = string.sub(blob, 8 * f - 7, 8 * f) end
 local repeated = {}  -- places of keys that occur earlier in the batch
 for f in string.gmatch(ARGV[9], '%d+') do repeated[tonumber(f)] = true end
+local known = {}  -- 0-based comments the worker already knows as members (a band key linked to a campaign)
+for i in string.gmatch(ARGV[11], '%d+') do known[tonumber(i)] = true end
 local CHUNK = 7000  -- unpack() is bounded by the Lua stack (8000)
 local cur, prev
 if n_fields <= CHUNK then
@@ -106,7 +110,7 @@ for i = 0, n_fields / bands - 1 do
   local author = nil
   local best_size, best_authors, best_band = 0, 0, -1
   local links = {}
-  for j = 1, bands do
+  for j = 1, (known[i] and 0 or bands) do
     local f = i * bands + j
     if cur[f] == 1 or prev[f] == 1 or repeated[f] then
       author = author or string.sub(authors, 16 * i + 1, 16 * i + 16)
@@ -124,6 +128,7 @@ for i = 0, n_fields / bands - 1 do
           local na = redis.call('HLEN', bucket) - 2
           if link then
             na = na - 1
+            table.insert(links, j - 1)
             table.insert(links, link)
           end
           if na < min_authors then  -- past M, more authors change nothing: skip the write
@@ -146,6 +151,9 @@ for i = 0, n_fields / bands - 1 do
 end
 return out
 """
+
+_KNOWN_SAMPLE = 4
+_MAX_LEARNT_LINKS = 10_000  # linked buckets a worker remembers (a campaign links a few per template variant)
 
 _PARAMS = {
     "bands": lambda v: isinstance(v, int) and v >= 1,
@@ -212,6 +220,10 @@ class CampaignPolicy:
         self.clock = clock
         self.events_maxlen = events_maxlen
         self._script = None
+        # band key (uint64) -> (campaign, until): buckets this worker saw linked to a campaign.  A comment
+        # with such a key is a member (as the script would find), so its bands skip the bucket writes:
+        # in a flood, most comments are members and would otherwise cost 3 calls per band.
+        self._links: dict[int, tuple[str, float]] = {}
 
     def apply(self, client, comments: Sequence, scores: Sequence[float], actions: list[str]) -> list[str]:
         members = self.observe(client, comments)
@@ -236,6 +248,10 @@ class CampaignPolicy:
         repeated[first] = False
         repeated = " ".join(map(str, np.flatnonzero(repeated) + 1))  # usually empty
         authors = "".join(author_hash(_get(comments[i], "author"), _get(comments[i], "id")) for i in eligible)
+        known = self._known_members(keys.reshape(len(eligible), self.bands), now)
+        # one known member in KNOWN_SAMPLE still goes through every bucket, so the template's
+        # other buckets keep growing and its variants keep being linked
+        skip = [pos for pos in known if keys[pos * self.bands] % _KNOWN_SAMPLE]
         # first sightings go to slots of half a window: the current and the previous one reach back
         # at least half a window and at most a whole one
         slot_s = self.window_s / 2.0
@@ -245,9 +261,10 @@ class CampaignPolicy:
             self._script = client.register_script(_ADD_SCRIPT)
         reply = self._script(keys=[self._bucket("seen", str(slot)), self._bucket("seen", str(slot - 1))],
                              args=[self.window_s, f"{now:.3f}", self.min_size, self.bands, self._bucket("lsh", ""),
-                                   slot_ttl, blob, authors, repeated, self.min_authors],
+                                   slot_ttl, blob, authors, repeated, self.min_authors,
+                                   " ".join(map(str, skip))],
                              client=client)
-        if not reply:  # the usual batch: no bucket holds min_size comments
+        if not reply and not known:  # the usual batch: no bucket holds min_size comments
             return {}
 
         hexes = blob.hex()
@@ -258,10 +275,19 @@ class CampaignPolicy:
         new_links: dict[str, str] = {}
         dense: dict[int, str] = {}  # comment index -> its fullest bucket, when that bucket meets N and M
         seeds: dict[str, set[str]] | None = None  # campaign -> its first member's band keys, read when needed
+        for pos, campaign in known.items():
+            if campaign in active:
+                members[eligible[pos]] = campaign
+            else:  # ended: forget its buckets
+                self._links = {k: v for k, v in self._links.items() if v[0] != campaign}
         for pos, size, n_authors, best_band, links in reply:
             i, pos = eligible[int(pos)], int(pos)
             bucket_list = [hexes[pos * width + 16 * j:pos * width + 16 * (j + 1)] for j in range(self.bands)]
-            linked = [_text(x) for x in links] + [new_links[b] for b in bucket_list if b in new_links]
+            pairs = [(int(links[k]), _text(links[k + 1])) for k in range(0, len(links), 2)]
+            for band, c in pairs:
+                if c in active:
+                    self._learn(bucket_list[band], c, now)
+            linked = [c for _b, c in pairs] + [new_links[b] for b in bucket_list if b in new_links]
             campaign = next((c for c in linked if c in active), None)
             is_dense = size >= self.min_size and n_authors >= self.min_authors
             if campaign is None and is_dense:
@@ -281,9 +307,30 @@ class CampaignPolicy:
                 # linking every bucket of every member would chain merely similar comments into it.
                 dense[i] = bucket_list[int(best_band)]
                 new_links[dense[i]] = campaign
+                self._learn(dense[i], campaign, now)
         if members:
             self._record_members(client, comments, members, dense, now)
         return members
+
+    def _known_members(self, keys, now: float) -> dict[int, str]:
+        """``{row: campaign}`` for rows of ``keys`` (comments x bands) with a band key this worker saw linked.
+
+        A learnt link is trusted for one window (the bucket may start afresh after that).
+        """
+        if not self._links:
+            return {}
+        self._links = {k: v for k, v in self._links.items() if v[1] > now}
+        if not self._links:
+            return {}
+        learnt = np.fromiter(self._links, dtype=np.uint64, count=len(self._links))
+        hits = np.isin(keys, learnt)
+        rows = np.flatnonzero(hits.any(axis=1))
+        return {int(r): self._links[int(keys[r][hits[r]][0])][0] for r in rows}
+
+    def _learn(self, band_key_hex: str, campaign: str, now: float) -> None:
+        if len(self._links) >= _MAX_LEARNT_LINKS:
+            self._links.clear()
+        self._links[int(band_key_hex, 16)] = (campaign, now + self.window_s)
 
     def _load_seeds(self, client) -> dict[str, set[str]]:
         out = {}
