@@ -8,12 +8,27 @@ One retrain, in order:
 2. read the labelled store: *new* labels are those after the active model's
    ``labels_cursor`` (the last label its own retrain saw; ``0-0`` for a pushed
    model), the rest are *older*; the latest label of an id wins;
-3. poisoning guard: no single moderator supplies more than
-   ``max_moderator_share`` of the new labels (labels without a moderator
-   count as one source); the excess is dropped at random (seeded);
+3. poisoning guard, in two parts:
+
+   a. the cap: no single moderator supplies more than
+      ``max_moderator_share`` of the new labels (labels without a moderator
+      count as one source); the excess is dropped at random (seeded);
+   b. corroboration: a source the cap had to trim is suspect, and the labels
+      it kept train and judge only where another moderator backs them: an
+      untrimmed source labelled the same comment, or a near-identical one
+      (word 3-shingle Jaccard >= ``corroboration_similarity``), the same way,
+      and more of those labels agree than disagree.  The rest are set aside
+      and counted in the report.  The active model's own verdict is *not*
+      corroboration: a flood flipping a new campaign to "ham" agrees with a
+      model that still publishes the campaign, and those labels alone are
+      what would teach "campaign = ham" (on the flood of
+      tests/test_faults_feedback.py, 72 of the 400 labels the cap kept were
+      such, and training on them alone took the ROC-AUC on later comments
+      from 0.908 to 0.397).  Sources under the cap are untouched, so a wave
+      several honest moderators correct is still learned;
 4. holdout: a stable share of ids (by SHA-1 of the id, so an id is always on
-   the same side) is never trained on; the holdout labels of a source the
-   cap had to trim do not judge the gate (a flood must not grade itself);
+   the same side) is never trained on; with 3b every label left is either
+   from an untrimmed source or backed by one, so all of them judge;
 5. candidate: a copy of the active model, warm-started with ``learn_many``
    on the new labels + a replay sample of older labels + the replay sample of
    the original training data stored in the registry (at most
@@ -46,6 +61,7 @@ import numpy as np
 
 from model.errors import DataError, SeawallError
 from model.evaluation import evaluate, recall_at_fpr
+from model.minhash import MinHasher, band_hashes, exact_jaccard
 from ops.registry import Registry, load_model
 from ops.settings import RetrainSettings
 from worker.feedback import FeedbackConsumer, scan_labels
@@ -152,6 +168,86 @@ def cap_moderators(rows: list[LabelRow], share: float, rng: random.Random) -> tu
     kept = [r for r in rows if r.id in keep_ids]
     kept_counts = Counter(r.moderator for r in kept)
     return kept, {m: {"given": n, "kept": kept_counts.get(m, 0)} for m, n in counts.items()}
+
+
+# Near-identical comments for corroboration: exact Jaccard of word 3-shingle sets,
+# candidates found by MinHash LSH.  128 permutations in 32 bands of 4 rows: a pair
+# at Jaccard 0.6 shares a band key with probability 0.99, one at 0.1 with 0.003
+# (1 - (1 - J**4)**32).  On the invented forum, campaign pairs are at 0.62-1.0 and
+# ordinary comment pairs below 0.52 (measured over 3,000 random pairs each).
+_SHINGLE = 3
+_NUM_PERM = 128
+_BANDS = 32
+_SIGNATURE_CHUNK = 256   # texts per signatures() call: bounds its (num_perm x shingles) scratch array
+_MAX_CANDIDATES = 200    # pool texts checked per query: bounds the work when thousands of copies share a bucket
+_MAX_WITNESSES = 25      # near-identical labels counted per query
+
+
+def near_duplicates(queries: list[str], pool: list[str], similarity: float) -> list[list[int]]:
+    """For each query text, indices of pool texts whose word 3-shingle Jaccard is >= ``similarity`` (pure).
+
+    At most ``_MAX_WITNESSES`` matches per query, from at most ``_MAX_CANDIDATES``
+    LSH candidates, in pool order.  Texts without a word match nothing.
+    """
+    if not queries or not pool:
+        return [[] for _ in queries]
+    hasher = MinHasher(num_perm=_NUM_PERM, shingle=_SHINGLE)
+
+    def band_keys_of(texts: list[str]) -> np.ndarray:
+        return np.concatenate([band_hashes(hasher.signatures(texts[i:i + _SIGNATURE_CHUNK]), _BANDS)
+                               for i in range(0, len(texts), _SIGNATURE_CHUNK)])
+
+    pool_shingles = [hasher.shingles(t) for t in pool]
+    buckets: dict[int, list[int]] = {}
+    for j, keys in enumerate(band_keys_of(pool).tolist()):
+        if pool_shingles[j]:
+            for key in keys:
+                buckets.setdefault(key, []).append(j)
+    out = []
+    for text, keys in zip(queries, band_keys_of(queries).tolist()):
+        mine = hasher.shingles(text)
+        found: list[int] = []
+        if mine:
+            candidates = sorted({j for key in keys for j in buckets.get(key, ())})[:_MAX_CANDIDATES]
+            found = [j for j in candidates if exact_jaccard(mine, pool_shingles[j]) >= similarity][:_MAX_WITNESSES]
+        out.append(found)
+    return out
+
+
+def corroborate(rows: list[LabelRow], witnesses: list[LabelRow], suspects: set[str], *,
+                similarity: float) -> tuple[list[LabelRow], dict]:
+    """Keep a suspect source's labels only where other moderators back them (pure).
+
+    ``rows`` are the labels left after the cap; ``suspects`` the sources it
+    trimmed; ``witnesses`` the new labels of every other source (including any
+    a suspect's later label of the same id replaced).  A suspect's label is
+    kept when, among the witnesses' labels of the same id or of a
+    near-identical text (:func:`near_duplicates`), more agree with it than
+    disagree; otherwise it is set aside.  Labels of other sources are kept
+    as they are.  Returns the kept rows (order kept) and, per suspect source,
+    ``{"set_aside": n, "contradicted": m}``: ``m`` of the ``n`` had witnesses
+    against them (at least as many as for them), the rest had none at all.
+    """
+    counts = {m: {"set_aside": 0, "contradicted": 0} for m in suspects}
+    suspect_rows = [r for r in rows if r.moderator in suspects]
+    if not suspect_rows:
+        return list(rows), counts
+    pool = [w for w in witnesses if w.moderator not in suspects]
+    by_id: dict[str, list[int]] = {}
+    for j, w in enumerate(pool):
+        by_id.setdefault(w.id, []).append(j)
+    near = near_duplicates([r.text for r in suspect_rows], [w.text for w in pool], similarity)
+    set_aside: set[str] = set()
+    for r, found in zip(suspect_rows, near):
+        backing = set(found) | set(by_id.get(r.id, ()))
+        agree = sum(1 for j in backing if pool[j].y == r.y)
+        if agree > len(backing) - agree:
+            continue
+        set_aside.add(r.id)
+        counts[r.moderator]["set_aside"] += 1
+        if len(backing) - agree > 0:
+            counts[r.moderator]["contradicted"] += 1
+    return [r for r in rows if r.id not in set_aside], counts  # ids are unique: the latest label of an id won
 
 
 def replay_sizes(n_new: int, n_older: int, n_original: int, settings: RetrainSettings) -> tuple[int, int]:
@@ -314,10 +410,27 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
     labels["moderators"] = by_source
     labels["kept_after_cap"] = len(capped)
     dropped = {m: c["given"] - c["kept"] for m, c in by_source.items() if c["given"] > c["kept"]}
-    if dropped:
-        report["reasons"].append("poisoning guard: dropped " + ", ".join(
-            f"{n} labels of {m}" for m, n in sorted(dropped.items()))
-            + f" (retrain.max_moderator_share={settings.max_moderator_share})")
+    # A source the cap had to trim is suspect: what it kept trains and judges only
+    # where another moderator backs it (see the module docstring, step 3b).
+    trimmed = set(dropped)
+    if trimmed:
+        witnesses = label_rows([(sid, rec) for sid, rec in new_entries
+                                if (rec.get("moderator", "") or UNATTRIBUTED) not in trimmed])
+        capped, guard = corroborate(capped, witnesses, trimmed, similarity=settings.corroboration_similarity)
+        for m in sorted(trimmed):
+            src = by_source[m]
+            aside, contradicted = guard[m]["set_aside"], guard[m]["contradicted"]
+            src.update(over_cap=dropped[m], set_aside=aside, contradicted=contradicted,
+                       kept=src["kept"] - aside)
+            report["reasons"].append(
+                f"poisoning guard: {m} supplied {src['given']} of {len(new_rows)} new labels "
+                f"(cap {settings.max_moderator_share:.0%}, retrain.max_moderator_share): dropped {dropped[m]} "
+                f"over the cap, set aside {aside} that no other moderator backed ({contradicted} of them "
+                f"contradicted another moderator's label of the same or a near-identical comment, "
+                f"{aside - contradicted} had no such label; the active model's agreement does not count), "
+                f"kept {src['kept']}")
+    labels["set_aside"] = sum(by_source[m].get("set_aside", 0) for m in trimmed)
+    labels["kept_after_guard"] = len(capped)
 
     holdout = [r for r in capped if in_holdout(r.id, settings.holdout_share)]
     train_new = [r for r in capped if not in_holdout(r.id, settings.holdout_share)]
@@ -336,10 +449,8 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
         report["reasons"].append("every new label fell in the holdout or was dropped; nothing new to train on")
         return
 
-    # A source the cap had to trim is suspect: its labels still train (capped),
-    # but they do not judge the candidate.
-    trimmed = set(dropped)
-    judged = [r for r in holdout if r.moderator not in trimmed]
+    # Every label left is from an untrimmed source or backed by one (step 3b), so all judge.
+    judged = holdout
     labels["holdout_judging"] = len(judged)
     gate_rows = [(r.text, r.y) for r in judged] + list(canary)
     gate_y = [y for _, y in gate_rows]

@@ -36,6 +36,7 @@ class RetrainSettings:
     replay_ratio: float = setting(1.0, "at most this many replay rows (older labels + original data) per new label trained on")
     canary_size: int = setting(500, "canary rows carved from `models push --replay` data when no --canary file is given")
     max_moderator_share: float = setting(0.5, "no single moderator supplies more than this share of one retrain's new labels")
+    corroboration_similarity: float = setting(0.6, "a source the cap trimmed trains and judges only with labels another moderator backs: same comment, or one whose word 3-shingle Jaccard similarity is at least this")
     epochs: int = setting(3, "passes of the warm-start update over its rows (0 = the model's own epochs); few, as the active model is already trained and no early stopping guards the update")
     seed: int = setting(0, "seed of the retrain's samples")
     gate_fpr: float = setting(0.01, "false-positive rate at which the gate compares recall")
@@ -74,6 +75,7 @@ _RETRAIN_BOUNDS = (
     ("replay_ratio", 0.0, 100.0),
     ("canary_size", 0, 10**7),
     ("max_moderator_share", 0.01, 1.0),
+    ("corroboration_similarity", 0.05, 1.0),
     ("epochs", 0, 1000),
     ("seed", 0, 2**32 - 1),
     ("gate_fpr", 0.0001, 0.5),

@@ -17,11 +17,13 @@ from ops.retrain import (
     RetrainBusy,
     RetrainLock,
     cap_moderators,
+    corroborate,
     gate_decision,
     in_holdout,
     label_rows,
     last_reports,
     moderator_cap,
+    near_duplicates,
     retrain,
 )
 from retrain_kit import KEYS, model_bytes, send_feedback, stream, training_set
@@ -76,6 +78,48 @@ def test_cap_moderators_keeps_the_honest_labels_whole():
     assert by_source["ana"] == {"given": 10, "kept": 10} and by_source["bo"] == {"given": 10, "kept": 10}
     assert by_source["flood"]["given"] == 90 and by_source["flood"]["kept"] == 13
     assert len(kept) == 33
+
+
+PITCH = ("I put two Zorvex capsules in the water butt every week and my leeks did really well this year, "
+         "so much healthier now, search Zorvex and quote {}")
+
+
+def test_near_duplicates_are_found_by_word_shingle_jaccard():
+    pool = [PITCH.format("AB12"), "Giving away a wheelbarrow, collect from Mill Lane.", PITCH.format("CD34"), "?!"]
+    found = near_duplicates([PITCH.format("EF56"), "Is the canal towpath flooded again?", "..."], pool, 0.6)
+    assert found == [[0, 2], [], []]  # 3-shingle Jaccard of two pitches: 25/27; texts without words match nothing
+    assert near_duplicates([PITCH.format("EF56")], pool, 0.95) == [[]]
+    assert near_duplicates([], pool, 0.6) == [] and near_duplicates(["x"], [], 0.6) == [[]]
+
+
+def test_corroboration_sets_aside_a_trimmed_sources_unbacked_labels_only():
+    row = lambda i, cid, text, y, who: LabelRow(f"{i}-0", cid, text, y, who)  # noqa: E731
+    witnesses = [
+        row(1, "c-same", "the canal towpath is flooded near Mill Lane", 1, "ana"),  # later relabelled by the flood
+        row(2, "c-w1", PITCH.format("AB12"), 1, "ana"),
+        row(3, "c-w2", PITCH.format("CD34"), 1, "bo"),
+        row(4, "c-w3", "Selling a cold frame for a fiver, collect from Orchard Row this Saturday morning", 0, "ana"),
+        row(5, "c-w4", "Selling a cold frame for a fiver, collect from Orchard Row this Saturday evening", 1, "bo"),
+        row(6, "c-bo", "Lovely photos of the harvest supper", 0, "bo"),
+    ]
+    rows = [
+        row(10, "c-same", "the canal towpath is flooded near Mill Lane", 1, "flood"),   # same id, same label
+        row(11, "c-f1", PITCH.format("EF56"), 1, "flood"),                             # near-identical, agrees
+        row(12, "c-f2", PITCH.format("GH78"), 0, "flood"),                             # near-identical, contradicts
+        row(13, "c-f3", "Free manure at the stables on Cooper Street, a fiver a bag", 1, "flood"),  # nobody else
+        row(14, "c-f4", "Selling a cold frame for a fiver, collect from Orchard Row this Saturday night", 0, "flood"),
+        row(15, "c-o1", PITCH.format("IJ90"), 0, "other"),                             # a second trimmed source
+        row(16, "c-o2", PITCH.format("KL12"), 0, "flood"),                             # backed only by "other"
+        row(17, "c-bo", "Lovely photos of the harvest supper", 0, "bo"),               # untrimmed: untouched
+        row(18, "c-cy", "A comment nobody else labelled, by an untrimmed source", 1, "cy"),
+    ]
+    kept, counts = corroborate(rows, witnesses + [rows[5]], {"flood", "other"}, similarity=0.6)
+    assert [r.id for r in kept] == ["c-same", "c-f1", "c-bo", "c-cy"]
+    # c-f2 and c-o2: two witnesses against; c-f4: one for and one against (a tie is not backing);
+    # c-o1: contradicted too; c-f3: no witness at all.  A trimmed source never backs another one.
+    assert counts == {"flood": {"set_aside": 4, "contradicted": 3}, "other": {"set_aside": 1, "contradicted": 1}}
+    # No trimmed source: nothing changes.
+    assert corroborate(rows, witnesses, set(), similarity=0.6) == (rows, {})
 
 
 def test_latest_label_of_an_id_wins_and_bad_records_are_skipped():
@@ -175,10 +219,16 @@ def test_a_flood_of_contrary_labels_is_capped_and_refused_by_the_gate(redis_clie
     mods = capped["labels"]["moderators"]
     honest_total = sum(v["kept"] for m, v in mods.items() if m != "mallory")
     assert mods["mallory"]["given"] == len(flood)
-    # The trimmed source's holdout labels do not judge the candidate.
-    assert capped["labels"]["holdout_judging"] < capped["labels"]["holdout"]
-    assert mods["mallory"]["kept"] <= SETTINGS.max_moderator_share * (honest_total + mods["mallory"]["kept"])
-    assert any(x.startswith("poisoning guard: dropped") for x in capped["reasons"])
+    # The trimmed source's labels that no honest moderator backs neither train nor judge; here the honest
+    # moderators labelled the campaign too, so the flipped campaign labels are contradicted, not just unbacked.
+    mallory = mods["mallory"]
+    assert mallory["set_aside"] > 0 and mallory["contradicted"] > 0
+    assert mallory["given"] == mallory["over_cap"] + mallory["set_aside"] + mallory["kept"]
+    assert capped["labels"]["kept_after_guard"] == capped["labels"]["kept_after_cap"] - mallory["set_aside"]
+    assert capped["labels"]["holdout_judging"] == capped["labels"]["holdout"]
+    assert mallory["kept"] <= SETTINGS.max_moderator_share * (honest_total + mallory["kept"])
+    assert any(x.startswith(f"poisoning guard: mallory supplied {len(flood)} of {len(window)} new labels")
+               for x in capped["reasons"])
     # Whatever the gate decided, the model now serving is not worse on unseen comments.
     serving = registry.load()
     assert quality(serving, test)["roc_auc"] >= quality(registry.load(first), test)["roc_auc"] - SETTINGS.auc_tolerance
