@@ -5,7 +5,8 @@
   become one dead letter with their own reason; the good ones become labels.
 * Poisoned feedback: one moderator sends 5,000 contrary labels.  Without the
   per-moderator cap the gate refuses the candidate; with it the flood is cut
-  down and the model that ends up serving is not worse.  The report says why.
+  down, what the flooder kept trains only where another moderator backs it,
+  and the model that ends up serving is not worse.  The report says why.
 """
 from __future__ import annotations
 
@@ -88,10 +89,6 @@ def retrain_cli(url: str, **env) -> dict:
 
 
 @pytest.mark.slow
-@pytest.mark.xfail(strict=True, reason=(
-    "open bug (reported to the retrain owner): the capped flood still trains the candidate on the campaign "
-    "comments no honest moderator labelled, and neither the honest holdout nor the canary set holds any of "
-    "them, so the gate passes (ROC-AUC 1.0 -> 1.0) and a model with test ROC-AUC 0.19 (was 0.91) is promoted"))
 def test_five_thousand_contrary_labels_from_one_moderator_keep_a_worse_model_out(redis_server):
     client = redis_server.client()
     registry, first = bootstrap(client)
@@ -108,19 +105,30 @@ def test_five_thousand_contrary_labels_from_one_moderator_keep_a_worse_model_out
     assert any(r.startswith("canary: ") and "below the active model" in r for r in uncapped["reasons"])
     assert registry.active() == first
 
-    # The default cap: the flood is cut to at most half of what is kept, and the report says so.
+    # The default cap: the flood is cut to at most half of what is kept; what it kept trains only where
+    # another moderator backs it.  The honest moderators never labelled the campaign, so the flipped
+    # campaign labels (which the active model, publishing the campaign, "agrees" with) are set aside.
     capped = retrain_cli(redis_server.url)
     mods = capped["labels"]["moderators"]
-    kept = sum(m["kept"] for m in mods.values())
-    assert mods["mod-mallory"]["given"] == 5000 and mods["mod-mallory"]["kept"] <= 0.5 * kept
-    guard = [r for r in capped["reasons"] if r.startswith("poisoning guard: dropped")]
-    assert guard and "of mod-mallory" in guard[0]
+    mallory = mods["mod-mallory"]
+    assert mallory["given"] == 5000 and mallory["over_cap"] == 4600
+    assert mallory["kept"] == 400 - mallory["set_aside"] and mallory["kept"] <= 5  # a flipped label is rarely backed
+    honest_mods = {name: m for name, m in mods.items() if name != "mod-mallory"}
+    assert honest_mods and all(m == {"given": m["given"], "kept": m["given"]} for m in honest_mods.values())
+    assert capped["labels"]["set_aside"] == mallory["set_aside"]
+    guard = [r for r in capped["reasons"] if r.startswith("poisoning guard: ")]
+    assert guard == [next(r for r in capped["reasons"] if r.startswith("poisoning guard: mod-mallory supplied 5000 "
+                                                                       "of 5400 new labels (cap 50%"))]
+    assert "dropped 4600 over the cap" in guard[0] and f"set aside {mallory['set_aside']} that no other" in guard[0]
     serving = registry.load()
     before = evaluate([c.label for c in test], registry.load(first).predict_proba_many([c.text for c in test]))
     after = evaluate([c.label for c in test], serving.predict_proba_many([c.text for c in test]))
     print("faults:", json.dumps({"test": "poisoned_feedback", "contrary_labels": 5000,
                                  "uncapped": uncapped["decision"], "capped": capped["decision"],
-                                 "mallory_kept": mods["mod-mallory"]["kept"],
+                                 "mallory_kept": mallory["kept"], "mallory_set_aside": mallory["set_aside"],
+                                 "gate_auc": {name: {side: round(fig["roc_auc"], 4) for side, fig in pair.items()}
+                                              for name, pair in capped.get("gate", {}).get("sets", {}).items()},
+                                 "guard": guard[0],
                                  "auc_before": round(before["roc_auc"], 4), "auc_after": round(after["roc_auc"], 4)}))
     assert after["roc_auc"] >= before["roc_auc"] - 0.005  # retrain.auc_tolerance: not worse
     if capped["decision"] == "refused":
