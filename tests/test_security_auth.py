@@ -79,6 +79,7 @@ def test_requirepass_worker_works_and_a_wrong_password_is_a_clear_error(redis_fa
     assert set(verdict_ids(admin)) == set(ids)
     lines = [line for line in bad.output().splitlines() if "invalid username-password pair" in line]
     assert "AuthenticationError" in lines[0] and "retrying in" in lines[0]
+    assert "refused the credentials" in lines[0]  # says what is wrong, not "lost connection"
     assert "wrong-pw" not in bad.output()  # the password never reaches a log
 
     # One-shot commands: one line, exit 2, no traceback, no password echoed.

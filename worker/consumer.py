@@ -192,8 +192,10 @@ class StreamConsumer:
                 failures += 1
                 self._ready = False
                 delay = self.backoff(failures)
-                log.warning("lost connection to Redis (%s: %s); retrying in %.2fs (attempt %d)",
-                            type(exc).__name__, exc, delay, failures)
+                what = ("Redis refused the credentials; check the user and password in the URL"
+                        if isinstance(exc, redis.AuthenticationError) else "lost connection to Redis")
+                log.warning("%s (%s: %s); retrying in %.2fs (attempt %d)",
+                            what, type(exc).__name__, exc, delay, failures)
                 self._sleep(delay)
                 continue
             except redis.ResponseError as exc:
