@@ -236,6 +236,40 @@ def test_a_flood_of_contrary_labels_is_capped_and_refused_by_the_gate(redis_clie
 
 
 @pytest.mark.redis_server
+def test_a_trimmed_honest_moderator_still_teaches_the_campaign_where_others_back_her(redis_client):
+    r = redis_client
+    registry, first = bootstrap(r)
+    old = registry.load()
+    comments = stream()
+    window, test = comments[:2500], comments[2500:]
+    # One busy moderator labels four comments in five; two others the rest. She is over the cap, so
+    # what she kept trains only where the others labelled the same kind of comment the same way: the
+    # campaign (near-duplicates) and repeated background spam, not her one-off ham labels.
+    busy = [c for i, c in enumerate(window) if i % 5]
+    others = window[::5]
+    send_feedback(r, busy, moderators=("mod-ana",))
+    send_feedback(r, others, moderators=("mod-bo", "mod-cy"))
+    report = retrain(r, KEYS, SETTINGS)
+
+    ana = report["labels"]["moderators"]["mod-ana"]
+    assert ana["given"] == len(busy) and ana["over_cap"] > 0
+    assert ana["kept"] > 0 and ana["set_aside"] > 0
+    assert ana["contradicted"] == 0  # honest moderators do not contradict each other
+    assert report["labels"]["moderators"]["mod-bo"] == {"given": 250, "kept": 250}
+    assert report["decision"] == "promoted", report["reasons"]
+    new = registry.load()
+    wave = [c for c in test if c.kind == "wave"]
+    ham = [c for c in test if c.label == 0]
+
+    def above_ham(model):
+        h = model.predict_proba_many([c.text for c in ham])
+        w = model.predict_proba_many([c.text for c in wave])
+        return float((w[:, None] > h[None, :]).mean())
+    assert above_ham(new) > above_ham(old)
+    assert quality(new, test)["roc_auc"] > quality(old, test)["roc_auc"]
+
+
+@pytest.mark.redis_server
 def test_two_retrains_never_run_at_once(redis_server, redis_client, capsys):
     bootstrap(redis_client)
     send_feedback(redis_client, stream()[:100])
