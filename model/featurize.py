@@ -23,6 +23,7 @@ from dataclasses import dataclass
 from itertools import chain, repeat
 
 import numpy as np
+import scipy.sparse as sp
 
 from .hashing import TokenHasher, _hash_many
 from .tokens import BIGRAM_JOINER, DOC_SEPARATOR, DOMAIN_PREFIX, Tokenizer
@@ -144,14 +145,16 @@ class BatchFeaturizer:
         out = np.fromiter(map(pairs.get, codes, repeat(-1)), dtype=np.int64, count=len(codes))
         missing = np.flatnonzero(out < 0)
         if missing.size:
-            fresh = list(dict.fromkeys([codes[i] for i in missing.tolist()]))
+            # Every missing occurrence is spelled and hashed (a repeat within the
+            # batch costs less than de-duplicating first).
+            new = [codes[i] for i in missing.tolist()]
             vocab = self._vocab
             low = (1 << _PAIR_SHIFT) - 1
-            names = [vocab[c >> _PAIR_SHIFT] + BIGRAM_JOINER + vocab[c & low] for c in fresh]
-            buckets = _hash_many(names, self.hasher.seed, self.hasher.n_buckets - 1).tolist()
-            pairs.update(zip(fresh, buckets))
-            out[missing] = np.fromiter(map(pairs.__getitem__, [codes[i] for i in missing.tolist()]),
-                                       dtype=np.int64, count=missing.size)
+            joiner = BIGRAM_JOINER
+            names = [vocab[c >> _PAIR_SHIFT] + joiner + vocab[c & low] for c in new]
+            buckets = _hash_many(names, self.hasher.seed, self.hasher.n_buckets - 1)
+            out[missing] = buckets
+            pairs.update(zip(new, buckets.tolist()))
         return out
 
     # -- the batch ---------------------------------------------------------- #
@@ -216,3 +219,18 @@ class BatchFeaturizer:
         names_first = np.concatenate((ids, first))[order]
         names_second = np.concatenate((np.full(ids.size, -1, dtype=np.int64), second))[order]
         return Featurized(n, ulen + blen, buckets, TokenNames(self._vocab, names_first, names_second))
+
+    def matrix(self, texts: list[str]) -> sp.csr_matrix:
+        """``hasher.matrix(map(tokenizer.features, texts))``, built from one batch pass.
+
+        Rows are the mean over token occurrences (float32, canonical CSR, an
+        empty comment is a zero row), bit for bit what :meth:`TokenHasher.matrix` gives.
+        """
+        f = self.featurize(texts)
+        indptr = np.zeros(f.n + 1, dtype=np.int32)
+        np.cumsum(f.lengths, out=indptr[1:])
+        out = sp.csr_matrix((np.ones(f.buckets.size, dtype=np.float32), f.buckets.astype(np.int32), indptr),
+                            shape=(f.n, self.hasher.n_buckets))
+        out.sum_duplicates()  # as TokenHasher.matrix: sorts each row, adds up repeats and collisions
+        out.data /= np.repeat(f.lengths.astype(np.float32), np.diff(out.indptr))
+        return out

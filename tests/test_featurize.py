@@ -34,6 +34,10 @@ def check_same(tok, hasher, featurizer, texts):
     assert got.lengths.tolist() == [len(f) for f in feats]
     assert list(got.tokens) == flat
     assert got.buckets.tolist() == buckets
+    want, have = hasher.matrix(feats), featurizer.matrix(texts)
+    assert have.shape == want.shape and have.dtype == want.dtype and have.has_canonical_format
+    assert have.indptr.tolist() == want.indptr.tolist() and have.indices.tolist() == want.indices.tolist()
+    assert have.data.tobytes() == want.data.tobytes()
 
 
 @pytest.mark.parametrize("params", [{}, {"bigrams": False}, {"join_spaced": False}, {"char_ngrams": (3, 4)}],
