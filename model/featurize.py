@@ -50,9 +50,9 @@ class TokenNames:
         return int(self._first.size)
 
     def __getitem__(self, i):
-        i = int(i)
-        name = self._vocab[int(self._first[i])]
-        second = int(self._second[i])
+        # numpy integers index a list directly (__index__); no int() round trips.
+        name = self._vocab[self._first[i]]
+        second = self._second[i]
         if second < 0:
             return name
         return name + BIGRAM_JOINER + self._vocab[second]
