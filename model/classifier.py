@@ -31,7 +31,6 @@ from model.calibration import DEFAULT_HOLD_FPR, DEFAULT_REJECT_FPR, DEFAULT_THRE
 from model.errors import ArtifactError, DataError
 from model.evaluation import evaluate
 from model.explain import top_contributions
-from model.featurize import BatchFeaturizer
 from model.hashing import TokenHasher
 from model.tokens import Tokenizer
 
@@ -195,8 +194,6 @@ class EmbeddingClassifier:
             self._tokenizer = Tokenizer(**tokenizer_params)
         seed = 0 if hashing is None else int(hashing.get("seed", 0))
         self._hasher = TokenHasher(n_buckets=self.buckets, seed=seed)
-        # Whole batches: the same buckets as _features + the hasher, in one pass.
-        self._featurizer = BatchFeaturizer(tokenizer=self._tokenizer, hasher=self._hasher)
 
     def _features(self, texts: list[str]) -> list[list[str]]:
         features = self._tokenizer.features
@@ -207,14 +204,6 @@ class EmbeddingClassifier:
         lengths = np.fromiter(map(len, feature_lists), dtype=np.int64, count=n)
         tokens = list(chain.from_iterable(feature_lists))
         buckets = np.asarray(self._hasher.buckets(tokens), dtype=np.int64)
-        return self._bag_of(n, lengths, buckets, tokens)
-
-    def _bag_texts(self, texts: list[str]) -> _Bag:
-        """``_bag(_features(texts))`` through the batch featurizer (token names stay lazy)."""
-        f = self._featurizer.featurize(texts)
-        return self._bag_of(f.n, f.lengths, f.buckets, f.tokens)
-
-    def _bag_of(self, n: int, lengths: np.ndarray, buckets: np.ndarray, tokens) -> _Bag:
         key_type = np.int32 if n * self.buckets < 2**31 else np.int64
         doc = np.repeat(np.arange(n, dtype=key_type), lengths)
         keys = doc * key_type(self.buckets) + buckets.astype(key_type, copy=False)
@@ -241,11 +230,9 @@ class EmbeddingClassifier:
         chunk's token strings are alive at a time; ``seen`` collects distinct tokens."""
         parts = []
         for start in range(0, len(texts), chunk):
-            if seen is None:
-                parts.append(self._bag_texts(texts[start:start + chunk]).matrix(self.buckets))
-                continue
             feats = self._features(texts[start:start + chunk])
-            seen.update(chain.from_iterable(feats))
+            if seen is not None:
+                seen.update(chain.from_iterable(feats))
             parts.append(self._bag(feats).matrix(self.buckets))
         if len(parts) == 1:
             return parts[0]
@@ -554,9 +541,7 @@ class EmbeddingClassifier:
         """
         self._require_fitted("score")
         texts = self._texts(texts, "score")
-        if len(texts) <= FEW and self.hidden == 0:
-            return self.score_features(self._features(texts), top_k=top_k)
-        return self._score_bag(self._bag_texts(texts), top_k)
+        return self.score_features(self._features(texts), top_k=top_k)
 
     def score_features(self, feature_lists: list[list[str]], *, top_k: int = 5):
         """:meth:`score_many` for comments already cut into feature tokens.
@@ -568,9 +553,7 @@ class EmbeddingClassifier:
             table = self._bucket_logits()
             if table is not None:
                 return self._score_few(feature_lists, top_k, table)
-        return self._score_bag(self._bag(feature_lists), top_k)
-
-    def _score_bag(self, bag: _Bag, top_k: int):
+        bag = self._bag(feature_lists)
         logits, contrib = self._logits_and_contributions(bag, top_k > 0)
         scores = network.sigmoid(logits)
         if top_k <= 0:
@@ -580,7 +563,7 @@ class EmbeddingClassifier:
     def logits_many(self, texts: Iterable[str]) -> np.ndarray:
         """Log-odds of spam per text (the sigmoid's input), shape (n,)."""
         self._require_fitted("score")
-        bag = self._bag_texts(self._texts(texts, "score"))
+        bag = self._bag(self._features(self._texts(texts, "score")))
         return self._logits_and_contributions(bag, False)[0]
 
     def predict_proba_many(self, texts: Iterable[str]) -> np.ndarray:

@@ -27,8 +27,6 @@ import unicodedata
 from itertools import chain, islice
 from numbers import Integral
 
-import numpy as np
-
 __all__ = [
     "Tokenizer",
     "fold_text",
@@ -584,30 +582,21 @@ class _ChunkCache(dict):
     the regex work runs once per distinct chunk and a hit is a C dict lookup.
     """
 
-    __slots__ = ("_rewrite", "_cap", "_pinned")
+    __slots__ = ("_rewrite", "_cap")
 
-    def __init__(self, rewrite, cap, pinned=None):
+    def __init__(self, rewrite, cap):
         super().__init__()
         self._rewrite = rewrite
         self._cap = cap
-        self._pinned = dict(pinned or {})  # entries that survive eviction
-        self.update(self._pinned)
 
     def __missing__(self, chunk):
         tokens = self._rewrite(chunk)
         if len(self) >= self._cap:
             for key in list(islice(self, len(self) // 2)):
                 del self[key]
-            self.update(self._pinned)
         self[chunk] = tokens
         return tokens
 
-
-#: Stands between comments in :meth:`Tokenizer.unigram_stream`.  A private-use
-#: character: it has no tokens of its own, and a batch whose text contains it
-#: is not joined.
-DOC_SEPARATOR = "\ue000"
-_SEPARATOR_JOIN = f" {DOC_SEPARATOR} "
 
 _DIGITS = "0123456789"
 _SINGLE_DIGITS = frozenset(_DIGITS)
@@ -654,10 +643,6 @@ class Tokenizer:
         for name, (_, check) in _PARAMS.items():
             setattr(self, name, check(name, given[name]))
         self._chunks = _ChunkCache(self._rewrite_chunk, _CHUNK_CACHE_SIZE)
-        # The batch path's own cache: the separator chunk stands for itself
-        # there, while a comment's own lone U+E000 has no tokens.
-        self._stream_chunks = _ChunkCache(self._rewrite_chunk, _CHUNK_CACHE_SIZE,
-                                          pinned={DOC_SEPARATOR: (DOC_SEPARATOR,)})
 
     def params(self) -> dict:
         """JSON-safe parameters; ``Tokenizer(**tok.params())`` rebuilds this tokenizer."""
@@ -719,75 +704,6 @@ class Tokenizer:
             return self._finish(tokens)
         return tokens
 
-    def unigram_stream(self, texts: list[str]) -> list[str] | None:
-        """Unigrams of many comments in one pass, separated by :data:`DOC_SEPARATOR`.
-
-        The result is ``_unigrams(texts[0]) + [DOC_SEPARATOR] + _unigrams(texts[1]) + ...``
-        (exactly ``len(texts) - 1`` separators), or None when a text contains the
-        separator character itself (the caller then goes text by text).  The
-        texts are joined once, so the spaced-phone scan, the split and the
-        chunk lookups run over the whole batch in C; only the rare tokens of
-        length 1 (spaced-out words, single digits) get Python-level work.
-        """
-        n = len(texts)
-        if not n:
-            return []
-        parts = [t.lower() if t.isascii() else t for t in texts]
-        joined = _SEPARATOR_JOIN.join(parts)
-        if joined.count(DOC_SEPARATOR) != n - 1:
-            return None
-        hints = [m.start() for m in _SPACED_PHONE_HINT_RE.finditer(joined)]
-        if hints:
-            # The few comments with a possible spaced phone number get the
-            # per-comment pass, exactly as in _unigrams (a hint never spans the
-            # separator: it holds no digit and no single space).
-            ends = np.cumsum(np.fromiter(map(len, parts), dtype=np.int64, count=n) + len(_SEPARATOR_JOIN))
-            for d in set(np.searchsorted(ends, hints, side="right").tolist()):
-                parts[d] = mark_spaced_phones(parts[d])
-            joined = _SEPARATOR_JOIN.join(parts)
-        flat = list(chain.from_iterable(map(self._stream_chunks.__getitem__, joined.split())))
-        return self._finish_stream(flat)
-
-    def _finish_stream(self, flat: list[str]) -> list[str]:
-        """:meth:`_finish` of every comment at once.
-
-        A spaced-out run is a stretch of one-character tokens; the separator is
-        one character but not alphanumeric, so it ends a run exactly as the
-        end of a comment does.  Each maximal stretch of three or more
-        one-character tokens goes through :func:`join_spaced` on its own, which
-        gives what a pass over the whole list gives, since runs never include
-        longer tokens.
-        """
-        lengths = np.fromiter(map(len, flat), dtype=np.int64, count=len(flat))
-        singles = np.flatnonzero(lengths == 1)
-        if not singles.size:
-            return flat
-        digits = _SINGLE_DIGITS
-        if self.join_spaced and singles.size >= 3:
-            # Stretches of consecutive indices: split where the gap is not 1.
-            breaks = np.flatnonzero(np.diff(singles) != 1) + 1
-            starts = np.concatenate(([0], breaks))
-            ends = np.concatenate((breaks, [singles.size]))
-            long = (ends - starts) >= 3
-            if long.any():
-                in_long = np.repeat(long, ends - starts)
-                for i in singles[~in_long].tolist():
-                    if flat[i] in digits:
-                        flat[i] = "<num>"
-                out: list[str] = []
-                at = 0
-                rewrite = self._rewrite_word
-                for a, b in zip(singles[starts[long]].tolist(), (singles[ends[long] - 1] + 1).tolist()):
-                    out.extend(flat[at:a])
-                    out.extend(["<num>" if t in digits else t for t in join_spaced(flat[a:b], rewrite)])
-                    at = b
-                out.extend(flat[at:])
-                return out
-        for i in singles.tolist():
-            if flat[i] in digits:
-                flat[i] = "<num>"
-        return flat
-
     def normalize(self, text: str) -> str:
         """The normalized text: unigram and marker tokens joined by single spaces.
 
@@ -815,9 +731,7 @@ class Tokenizer:
         """
         if not isinstance(text, str):
             raise TypeError(f"Tokenizer.features: text must be str, got {type(text).__name__}")
-        return self._with_ngrams(self._unigrams(text))
-
-    def _with_ngrams(self, words: list[str]) -> list[str]:
+        words = self._unigrams(text)
         if not self.bigrams and self.char_ngrams[0] == 0:
             return words
         seq = words
@@ -831,23 +745,6 @@ class Tokenizer:
         return out
 
     def features_many(self, texts):
-        """``[features(t) for t in texts]``; accepts any iterable of str.
-
-        Unigrams come from one :meth:`unigram_stream` pass over the batch.
-        """
-        texts = list(texts)
-        for t in texts:
-            if not isinstance(t, str):
-                raise TypeError(f"Tokenizer.features_many: texts must be str, got {type(t).__name__}")
-        flat = self.unigram_stream(texts) if len(texts) > 1 else None
-        if flat is None:
-            features = self.features
-            return [features(t) for t in texts]
-        out = []
-        start = 0
-        for _ in range(len(texts) - 1):
-            end = flat.index(DOC_SEPARATOR, start)
-            out.append(self._with_ngrams(flat[start:end]))
-            start = end + 1
-        out.append(self._with_ngrams(flat[start:]))
-        return out
+        """``[features(t) for t in texts]``; accepts any iterable of str."""
+        features = self.features
+        return [features(t) for t in texts]
