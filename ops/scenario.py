@@ -219,7 +219,7 @@ _SPAM_TEMPLATES = (
     "CHEAP {pill} without prescription, discreet worldwide shipping, order at http://{spamhost}",
     "Buy {pill} online lowest price guaranteed, 80% off today only http://{spamhost}/shop",
     "Get your website to page one! Best SEO backlinks, {money} links for $5 http://{spamhost}",
-    "Double your bitcoin in 24 hours GUARANTEED, send now and receive 2x http://{spamhost}/btc",
+    "Double your crypto coins in 24 hours GUARANTEED, send now and receive 2x http://{spamhost}/coins",
     "Crypto investment platform paying {money}% monthly returns, join free http://{spamhost}",
     "Congratulations you have won a ${money} gift card! Claim your prize at http://{spamhost}/claim",
     "Hot singles in your area want to meet you tonight http://{spamhost}",
@@ -233,7 +233,7 @@ _SPAM_TEMPLATES = (
     "Thanks for sharing, very helpful! http://{spamhost}",
     "I agree with everyone here. Also check http://{spamhost} for cheap garden deals",
 )
-_PILLS = ("viagra", "cialis", "tramadol", "xanax", "diet pills", "painkillers")
+_PILLS = ("sildenafil", "tadalafil", "tramadol", "alprazolam", "diet pills", "painkillers")
 _SPAM_HOSTS = (
     "fastcash-now.invalid", "pharma-deals.invalid", "rank-boost.invalid", "coin-double.invalid",
     "prize-centre.invalid", "quickloan-24.invalid", "meet-tonight.invalid", "slim-fast-pills.invalid",
