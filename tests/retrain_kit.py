@@ -51,3 +51,15 @@ def send_feedback(client, comments, *, moderators=MODERATORS, flip=False, with_t
             fields["text"] = c.text
         pipe.xadd(KEYS.feedback, fields)
     pipe.execute()
+
+
+def bootstrap(client) -> tuple:
+    """Push + promote the first model with its replay sample and canary set."""
+    from ops.registry import Registry, split_replay
+
+    registry = Registry(client=client, keys=KEYS)
+    replay, canary = split_replay([(c.text, c.label) for c in training_set()], replay_max=2000, canary_size=300)
+    version = registry.push(model_bytes(0))
+    registry.set_examples(replay=replay, canary=canary)
+    registry.promote(version)
+    return registry, version

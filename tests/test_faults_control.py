@@ -10,8 +10,8 @@ from pathlib import Path
 import pytest
 
 from faults_kit import KEYS, clean_env
-from ops.registry import Registry, split_replay
-from retrain_kit import model_bytes, send_feedback, stream, training_set
+from ops.registry import Registry
+from retrain_kit import bootstrap, model_bytes, send_feedback, stream
 
 pytestmark = pytest.mark.redis_server
 RACE = str(Path(__file__).with_name("cli_race.py"))
@@ -44,13 +44,6 @@ def consistent(registry: Registry) -> str:
     return active
 
 
-def bootstrap(client) -> tuple[Registry, str]:
-    registry = Registry(client=client, keys=KEYS)
-    replay, canary = split_replay([(c.text, c.label) for c in training_set()], replay_max=2000, canary_size=300)
-    version = registry.push(model_bytes(0))
-    registry.set_examples(replay=replay, canary=canary)
-    registry.promote(version)
-    return registry, version
 
 
 def test_two_concurrent_retrains_one_runs_the_other_is_told(redis_server):

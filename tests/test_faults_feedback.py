@@ -18,8 +18,7 @@ import pytest
 
 from faults_kit import KEYS, Worker, clean_env, deadletters, stop_all, verdict_ids, wait_until, write_model
 from model.evaluation import evaluate
-from ops.registry import Registry, split_replay
-from retrain_kit import model_bytes, send_feedback, stream, training_set
+from retrain_kit import bootstrap, send_feedback, stream
 
 pytestmark = pytest.mark.redis_server
 
@@ -72,13 +71,6 @@ def test_bad_feedback_to_a_running_worker_is_dead_lettered_with_its_reason(redis
     assert admin.xpending(KEYS.feedback, "labellers")["pending"] == 0
 
 
-def bootstrap(client) -> tuple[Registry, str]:
-    registry = Registry(client=client, keys=KEYS)
-    replay, canary = split_replay([(c.text, c.label) for c in training_set()], replay_max=2000, canary_size=300)
-    version = registry.push(model_bytes(0))
-    registry.set_examples(replay=replay, canary=canary)
-    registry.promote(version)
-    return registry, version
 
 
 def retrain_cli(url: str, **env) -> dict:

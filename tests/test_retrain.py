@@ -10,7 +10,7 @@ import pytest
 from model.evaluation import evaluate
 from ops.cli import main
 from ops.config import load_config
-from ops.registry import Registry, split_replay
+from ops.registry import Registry
 from ops.rescore import rescore_held
 from ops.retrain import (
     LabelRow,
@@ -26,7 +26,7 @@ from ops.retrain import (
     near_duplicates,
     retrain,
 )
-from retrain_kit import KEYS, model_bytes, send_feedback, stream, training_set
+from retrain_kit import KEYS, bootstrap, model_bytes, send_feedback, stream
 
 SETTINGS = load_config(environ={}).retrain
 
@@ -35,14 +35,6 @@ def settings(**changes):
     return dataclasses.replace(SETTINGS, **changes)
 
 
-def bootstrap(client) -> tuple[Registry, str]:
-    """Push + promote the first model with its replay sample and canary set."""
-    registry = Registry(client=client, keys=KEYS)
-    replay, canary = split_replay([(c.text, c.label) for c in training_set()], replay_max=2000, canary_size=300)
-    version = registry.push(model_bytes(0))
-    registry.set_examples(replay=replay, canary=canary)
-    registry.promote(version)
-    return registry, version
 
 
 def quality(model, comments) -> dict:
