@@ -37,6 +37,14 @@ def settings(**changes):
 
 
 
+def rank_above_ham(model, wave, ham) -> float:
+    """Share of (wave, ham) pairs the model ranks the right way round; the campaign's
+    words were never in the training set, so feedback must raise it."""
+    h = model.predict_proba_many([c.text for c in ham])
+    w = model.predict_proba_many([c.text for c in wave])
+    return float((w[:, None] > h[None, :]).mean())
+
+
 def quality(model, comments) -> dict:
     return evaluate([c.label for c in comments], model.predict_proba_many([c.text for c in comments]))
 
@@ -177,13 +185,7 @@ def test_retrain_promotes_a_better_model_and_records_why(redis_client):
     wave = [c for c in test if c.kind == "wave"]
     ham = [c for c in test if c.label == 0]
     assert wave, "the invented stream has campaign comments after the feedback window"
-    # The campaign's words were never in the training set: after feedback its comments
-    # rank above more of the ham than before.
-    def above_ham(model):
-        h = model.predict_proba_many([c.text for c in ham])
-        w = model.predict_proba_many([c.text for c in wave])
-        return float((w[:, None] > h[None, :]).mean())
-    assert above_ham(new) > above_ham(old)
+    assert rank_above_ham(new, wave, ham) > rank_above_ham(old, wave, ham)
     assert quality(new, test)["roc_auc"] > quality(old, test)["roc_auc"]
 
 
@@ -253,11 +255,7 @@ def test_a_trimmed_honest_moderator_still_teaches_the_campaign_where_others_back
     wave = [c for c in test if c.kind == "wave"]
     ham = [c for c in test if c.label == 0]
 
-    def above_ham(model):
-        h = model.predict_proba_many([c.text for c in ham])
-        w = model.predict_proba_many([c.text for c in wave])
-        return float((w[:, None] > h[None, :]).mean())
-    assert above_ham(new) > above_ham(old)
+    assert rank_above_ham(new, wave, ham) > rank_above_ham(old, wave, ham)
     assert quality(new, test)["roc_auc"] > quality(old, test)["roc_auc"]
 
 

@@ -37,3 +37,12 @@ def report(title: str, rows: dict, *, as_json: bool) -> None:
     for k, v in rows.items():
         shown = f"{v:,.3f}" if isinstance(v, float) else str(v)
         print(f"  {k:<{width}}  {shown}")
+
+
+def add_harness_arguments(parser, *, comments: int) -> None:
+    """The options every worker-throughput benchmark takes (stream, campaigns)."""
+    parser.add_argument("--redis", metavar="URL", help="Redis to use (default: start a redis-server on a free port)")
+    parser.add_argument("--json", action="store_true", help="print one JSON object")
+    parser.add_argument("--comments", type=int, default=comments, help="comments per throughput run")
+    parser.add_argument("--batch", type=int, default=256, help="worker batch size")
+    parser.add_argument("--block-ms", type=int, default=100, help="worker XREADGROUP block time")

@@ -31,7 +31,7 @@ import time
 
 import numpy as np
 
-from ops.bench import report
+from ops.bench import add_harness_arguments, report
 from ops.bench.servers import LocalRedis
 from ops.bench.stream import Harness, NoopScorer, invented_comments, own_peak_rss_mb, train_model
 
@@ -203,11 +203,7 @@ def _measure(url, model_path, bench, varied, args, overrides) -> dict:
 
 def register(sub) -> None:
     parser = sub.add_parser("campaigns", help="worker comments/s with and without the campaign policy, and the ceiling")
-    parser.add_argument("--redis", metavar="URL", help="Redis to use (default: start a redis-server on a free port)")
-    parser.add_argument("--json", action="store_true", help="print one JSON object")
-    parser.add_argument("--comments", type=int, default=30_000, help="comments per throughput run")
-    parser.add_argument("--batch", type=int, default=256, help="worker batch size")
-    parser.add_argument("--block-ms", type=int, default=100, help="worker XREADGROUP block time")
+    add_harness_arguments(parser, comments=30_000)
     parser.add_argument("--bands", type=int, default=0, help="override [waves] campaign_bands (0: the default)")
     parser.add_argument("--perm", type=int, default=0, help="override [waves] campaign_perm (0: the default)")
     parser.set_defaults(func=run)

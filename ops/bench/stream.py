@@ -33,7 +33,7 @@ import time
 
 import numpy as np
 
-from ops.bench import peak_rss_mb, report
+from ops.bench import add_harness_arguments, peak_rss_mb, report
 from ops.bench.servers import LocalRedis
 
 TARGETS = {"real_per_s": 20_000, "ratio_to_ceiling": 0.30, "latency_p99_ms": 50.0, "worker_peak_rss_mb": 150.0}
@@ -345,11 +345,7 @@ def _measure(url: str, model_path: str, comments, args) -> dict:
 
 def register(sub) -> None:
     parser = sub.add_parser("stream", help="end-to-end comments/s, transport ceiling, latency, RSS, 1->2 processes")
-    parser.add_argument("--redis", metavar="URL", help="Redis to use (default: start a redis-server on a free port)")
-    parser.add_argument("--json", action="store_true", help="print one JSON object")
-    parser.add_argument("--comments", type=int, default=50_000, help="comments per throughput run")
-    parser.add_argument("--batch", type=int, default=256, help="worker batch size")
-    parser.add_argument("--block-ms", type=int, default=100, help="worker XREADGROUP block time")
+    add_harness_arguments(parser, comments=50_000)
     parser.add_argument("--rate", type=float, default=2000.0, help="offered comments/s for the latency run")
     parser.add_argument("--seconds", type=float, default=5.0, help="length of the latency run")
     parser.set_defaults(func=run)

@@ -17,12 +17,9 @@ def _dim(value: str):
     if value == "auto":
         return value
     try:
-        number = int(value)
-    except ValueError:
+        return _positive(value)
+    except argparse.ArgumentTypeError:
         raise argparse.ArgumentTypeError(f"must be 'auto' or a positive integer, got {value!r}") from None
-    if number < 1:
-        raise argparse.ArgumentTypeError(f"must be 'auto' or a positive integer, got {value!r}")
-    return number
 
 
 def _positive(value: str) -> int:
