@@ -25,35 +25,13 @@ from __future__ import annotations
 
 import os
 import random
-import signal
 import tempfile
-import time
 
 import numpy as np
 
 from ops.bench import add_harness_arguments, report
 from ops.bench.servers import LocalRedis
-from ops.bench.stream import Harness, NoopScorer, invented_comments, own_peak_rss_mb, train_model
-
-
-def _worker_main(overrides: dict, model_path: str, noop: bool, campaigns: bool, name: str, ready, results) -> None:
-    """One worker process (spawned): the consumer `seawall serve` builds, with or without the campaign policy."""
-    from ops.config import load_config
-    from ops.monitor import campaign_policy
-    from ops.serving import build_consumer
-    from worker.loader import FileModelSource, StaticModelSource
-
-    config = load_config(overrides, environ={})
-    source = StaticModelSource(model=NoopScorer()) if noop else FileModelSource(path=model_path)
-    policies = (campaign_policy(config),) if campaigns else ()
-    consumer = build_consumer(config, source=source, consumer=name, policies=policies)
-    signal.signal(signal.SIGTERM, lambda *_: consumer.stop())
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    consumer.prepare()
-    ready.set()
-    cpu0 = time.process_time()
-    consumer.run()
-    results.put({"name": name, "peak_rss_mb": own_peak_rss_mb(), "cpu_s": time.process_time() - cpu0})
+from ops.bench.stream import Harness, invented_comments, run_worker, train_model
 
 
 class PolicyHarness(Harness):
@@ -68,7 +46,7 @@ class PolicyHarness(Harness):
         if n != 1:
             raise ValueError("bench campaigns: one worker process per run")
         ready = self.ctx.Event()
-        proc = self.ctx.Process(target=_worker_main, daemon=True,
+        proc = self.ctx.Process(target=run_worker, daemon=True,
                                 args=(self.overrides, self.model_path, noop, self.campaigns, "bench-0", ready,
                                       self.results))
         proc.start()

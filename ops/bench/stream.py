@@ -112,15 +112,18 @@ class NoopScorer:
         return np.zeros(len(texts)), [[] for _ in texts]
 
 
-def _worker_main(overrides: dict, model_path: str, noop: bool, name: str, ready, results) -> None:
-    """One worker process (spawned): build the consumer like `seawall serve`, run until SIGTERM."""
+def run_worker(overrides: dict, model_path: str, noop: bool, campaigns: bool, name: str, ready, results) -> None:
+    """One worker process (spawned): the consumer `seawall serve` builds, optionally with the campaign
+    policy; runs until SIGTERM and reports its peak RSS and CPU time."""
     from ops.config import load_config
+    from ops.monitor import campaign_policy
     from ops.serving import build_consumer
     from worker.loader import FileModelSource, StaticModelSource
 
     config = load_config(overrides, environ={})
     source = StaticModelSource(model=NoopScorer()) if noop else FileModelSource(path=model_path)
-    consumer = build_consumer(config, source=source, consumer=name)
+    policies = (campaign_policy(config),) if campaigns else ()
+    consumer = build_consumer(config, source=source, consumer=name, policies=policies)
     signal.signal(signal.SIGTERM, lambda *_: consumer.stop())
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     consumer.prepare()
@@ -177,8 +180,9 @@ class Harness:
         events = []
         for i in range(n):
             ready = self.ctx.Event()
-            proc = self.ctx.Process(target=_worker_main, daemon=True,
-                                    args=(self.overrides, self.model_path, noop, f"bench-{i}", ready, self.results))
+            proc = self.ctx.Process(target=run_worker, daemon=True,
+                                    args=(self.overrides, self.model_path, noop, False, f"bench-{i}", ready,
+                                          self.results))
             proc.start()
             self.procs.append(proc)
             events.append(ready)
