@@ -1,7 +1,8 @@
 """``EmbeddingClassifier``: the averaged-embedding spam scorer.
 
-Text → tokens (:mod:`model.tokens`) → MurmurHash3 buckets
-(:mod:`model.hashing`) → the pooled mean of the buckets' embedding rows →
+Text → tokens (:mod:`model.tokens`) → MurmurHash3 buckets, word pairs
+hashed from their words' hashes (:mod:`model.features`, :mod:`model.hashing`)
+→ the pooled mean of the buckets' embedding rows →
 a small dense head → a spam probability.  Training is mini-batch Adam with
 sparse updates (:mod:`model.training`); the model saves to one checksummed
 int8 file (:mod:`model.artifact`) and carries its own hold and reject
@@ -21,7 +22,8 @@ import time
 from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass
-from itertools import chain
+from itertools import repeat
+from operator import mul, truediv
 
 import numpy as np
 import scipy.sparse as sp
@@ -31,7 +33,8 @@ from model.calibration import DEFAULT_HOLD_FPR, DEFAULT_REJECT_FPR, DEFAULT_THRE
 from model.errors import ArtifactError, DataError
 from model.evaluation import evaluate
 from model.explain import top_contributions
-from model.hashing import TokenHasher
+from model.features import FeatureEncoder, Features
+from model.hashing import PAIR_SCHEME, TokenHasher
 from model.tokens import Tokenizer
 
 #: Up to this many comments per call are scored by the pure-Python path.
@@ -124,7 +127,7 @@ class _Bag:
     bucket: np.ndarray
     weight: np.ndarray
     first: np.ndarray
-    tokens: list[str]
+    names: object
     indptr: np.ndarray
 
     def matrix(self, n_buckets: int) -> sp.csr_matrix:
@@ -193,27 +196,30 @@ class EmbeddingClassifier:
         else:
             self._tokenizer = Tokenizer(**tokenizer_params)
         seed = 0 if hashing is None else int(hashing.get("seed", 0))
+        if hashing is not None and hashing.get("pairs") != PAIR_SCHEME:
+            raise ArtifactError(
+                f"load model: word pairs were hashed as {hashing.get('pairs')!r}, this Seawall hashes them as "
+                f"{PAIR_SCHEME!r}; retrain the model with this version"
+            )
         self._hasher = TokenHasher(n_buckets=self.buckets, seed=seed)
+        self._encoder = FeatureEncoder(self._tokenizer, self._hasher)
 
-    def _features(self, texts: list[str]) -> list[list[str]]:
-        features = self._tokenizer.features
-        return [features(t) for t in texts]
+    def _features(self, texts: list[str]) -> Features:
+        return self._encoder.texts(texts)
 
-    def _bag(self, feature_lists: list[list[str]]) -> _Bag:
-        n = len(feature_lists)
-        lengths = np.fromiter(map(len, feature_lists), dtype=np.int64, count=n)
-        tokens = list(chain.from_iterable(feature_lists))
-        buckets = np.asarray(self._hasher.buckets(tokens), dtype=np.int64)
+    def _bag(self, features: Features) -> _Bag:
+        n = features.n
+        lengths = features.lengths
+        buckets = features.bucket
         key_type = np.int32 if n * self.buckets < 2**31 else np.int64
-        doc = np.repeat(np.arange(n, dtype=key_type), lengths)
-        keys = doc * key_type(self.buckets) + buckets.astype(key_type, copy=False)
-        # Group token occurrences into (comment, bucket) pairs.  Any occurrence
-        # names its bucket in an explanation, so an unstable sort will do.
+        keys = features.doc.astype(key_type) * key_type(self.buckets) + buckets.astype(key_type, copy=False)
+        # Group token occurrences into (comment, bucket) pairs; the earliest
+        # occurrence of each pair names its bucket in an explanation.
         order = np.argsort(keys)
         sorted_keys = keys[order]
         starts = np.flatnonzero(np.concatenate(([True], sorted_keys[1:] != sorted_keys[:-1]))) if keys.size else order
         keys = sorted_keys[starts]
-        first = order[starts]
+        first = np.minimum.reduceat(order, starts) if keys.size else order
         counts = np.diff(np.append(starts, sorted_keys.size)).astype(np.float64)
         pair_doc = (keys // self.buckets).astype(np.int64)
         if self.pooling == "l2":
@@ -223,16 +229,17 @@ class EmbeddingClassifier:
         weight = counts / norm[pair_doc] if keys.size else counts
         indptr = np.zeros(n + 1, dtype=np.int64)
         np.cumsum(np.bincount(pair_doc, minlength=n), out=indptr[1:])
-        return _Bag(n, pair_doc, (keys % self.buckets).astype(np.int64), weight, first, tokens, indptr)
+        return _Bag(n, pair_doc, (keys % self.buckets).astype(np.int64), weight, first, features.names, indptr)
 
-    def _matrix(self, texts: list[str], seen: set[str] | None = None, chunk: int = 8192) -> sp.csr_matrix:
+    def _matrix(self, texts: list[str], seen: list | None = None, chunk: int = 8192) -> sp.csr_matrix:
         """Pooling-weight rows of many texts, built in chunks so that only one
-        chunk's token strings are alive at a time; ``seen`` collects distinct tokens."""
+        chunk's token strings are alive at a time; ``seen`` collects each
+        chunk's distinct feature hashes (see :meth:`_distinct`)."""
         parts = []
         for start in range(0, len(texts), chunk):
             feats = self._features(texts[start:start + chunk])
             if seen is not None:
-                seen.update(chain.from_iterable(feats))
+                seen.append(np.unique(feats.hashes))
             parts.append(self._bag(feats).matrix(self.buckets))
         if len(parts) == 1:
             return parts[0]
@@ -325,9 +332,9 @@ class EmbeddingClassifier:
         started = time.perf_counter()
         rng = np.random.default_rng(self.seed)
         self._make_featurizers()
-        seen: set[str] = set()
+        seen: list[np.ndarray] = []
         matrix = self._matrix(texts, seen)
-        distinct = len(seen)
+        distinct = self._distinct(seen)
         del seen
         self.dim_ = auto_dim(distinct) if self.dim == "auto" else int(self.dim)
         self._class_weights = self._resolve_class_weight(y)
@@ -376,6 +383,15 @@ class EmbeddingClassifier:
         self.created_at = time.time()
         self._manifest = None
         return self
+
+    @staticmethod
+    def _distinct(seen: list[np.ndarray]) -> int:
+        """Distinct tokens (words, word pairs, n-grams) of the training texts,
+        counted by their full 32-bit hashes: a pair has no string to count, and
+        two tokens share a hash about once in 2**32 pairs."""
+        if not seen:
+            return 0
+        return int(np.unique(np.concatenate(seen)).size)
 
     @staticmethod
     def _restrict(matrix: sp.csr_matrix, allowed: np.ndarray) -> sp.csr_matrix:
@@ -454,40 +470,56 @@ class EmbeddingClassifier:
             self._bucket_logit = dict(zip(buckets.tolist(), row_logit[index[buckets]].tolist()))
         return self._bucket_logit
 
-    def _score_few(self, feature_lists, top_k: int, table: dict[int, float]):
+    def _score_few(self, docs, top_k: int, table: dict[int, float]):
         """Pure-Python scoring for a handful of comments.
 
+        ``docs`` holds one ``(buckets, names)`` per comment: its feature
+        buckets as a list of ints and an indexable naming each position.
         Same arithmetic as the vectorised path; for one comment the dozen numpy
         calls of that path cost more than the whole comment, so a single
         comment (the latency case) is scored with plain dicts.
         """
-        buckets_of = self._hasher.buckets
         bias = float(self._scoring_tables()[3]["b2"][0])
         l2 = self.pooling == "l2"
-        scores = np.empty(len(feature_lists))
+        scores = np.empty(len(docs))
         reasons = []
         get = table.get
-        for i, tokens in enumerate(feature_lists):
-            buckets = buckets_of(tokens).tolist()
+        for i, (buckets, names) in enumerate(docs):
             counts = Counter(buckets)  # insertion order = order of first appearance
-            norm = math.sqrt(sum(c * c for c in counts.values())) if l2 else float(len(tokens))
-            terms = []
-            logit = bias
-            if norm:
-                names = dict(zip(reversed(buckets), reversed(tokens)))  # the first occurrence wins
-                for b, c in counts.items():
-                    value = get(b)
-                    if value:
-                        term = c / norm * value
-                        logit += term
-                        terms.append((names[b], term))
-            scores[i] = logit
-            if top_k > 0:
-                terms.sort(key=lambda t: -abs(t[1]))
-                reasons.append(terms[:top_k])
+            if l2:
+                values = counts.values()
+                norm = math.sqrt(sum(map(mul, values, values)))
             else:
+                norm = float(len(buckets))
+            if not norm:
+                scores[i] = bias
                 reasons.append([])
+                continue
+            unique = list(counts)
+            weights = map(truediv, counts.values(), repeat(norm))
+            terms = list(map(mul, weights, map(get, unique, repeat(0.0))))
+            scores[i] = bias + sum(terms)
+            if top_k <= 0:
+                reasons.append([])
+                continue
+            # Largest magnitude first; a stable sort keeps ties in the order the
+            # tokens appear.  Buckets without a row contribute 0 and are left out.
+            magnitude = list(map(abs, terms))
+            ranked = sorted(range(len(terms)), key=magnitude.__getitem__, reverse=True)[:top_k]
+            index = buckets.index
+            reasons.append([(names[index(unique[j])], terms[j]) for j in ranked if terms[j]])
         return network.sigmoid(scores), reasons
+
+    def _few_from_features(self, features: Features):
+        """Per-comment ``(buckets, names)`` of a small :class:`Features` batch."""
+        if features.n == 1:
+            return [(features.bucket.tolist(), features.names)]
+        out = []
+        for i in range(features.n):
+            at = np.flatnonzero(features.doc == i).tolist()
+            names = features.names
+            out.append((features.bucket[at].tolist(), [names[j] for j in at]))
+        return out
 
     def _scoring_tables(self):
         """Compact scoring tables: bucket → row index (0 = no row), rows, per-row linear logit."""
@@ -541,24 +573,32 @@ class EmbeddingClassifier:
         """
         self._require_fitted("score")
         texts = self._texts(texts, "score")
-        return self.score_features(self._features(texts), top_k=top_k)
+        if len(texts) <= FEW and self.hidden == 0:
+            table = self._bucket_logits()
+            if table is not None:
+                return self._score_few([self._encoder.one(t) for t in texts], top_k, table)
+        return self._score(self._features(texts), top_k)
 
     def score_features(self, feature_lists: list[list[str]], *, top_k: int = 5):
         """:meth:`score_many` for comments already cut into feature tokens.
 
-        Lets a caller (or a test) score a comment with some tokens removed.
+        Lets a caller (or a test) score a comment with some tokens removed; a
+        token ``a_b`` is the word pair (a, b), as :meth:`Tokenizer.features` writes it.
         """
         self._require_fitted("score")
-        if len(feature_lists) <= FEW and self.hidden == 0:
+        return self._score(self._encoder.tokens(feature_lists), top_k)
+
+    def _score(self, features: Features, top_k: int):
+        if features.n <= FEW and self.hidden == 0:
             table = self._bucket_logits()
             if table is not None:
-                return self._score_few(feature_lists, top_k, table)
-        bag = self._bag(feature_lists)
+                return self._score_few(self._few_from_features(features), top_k, table)
+        bag = self._bag(features)
         logits, contrib = self._logits_and_contributions(bag, top_k > 0)
         scores = network.sigmoid(logits)
         if top_k <= 0:
             return scores, [[] for _ in range(bag.n)]
-        return scores, top_contributions(bag.doc, contrib, bag.first, bag.tokens, bag.n, top_k)
+        return scores, top_contributions(bag.doc, contrib, bag.first, bag.names, bag.n, top_k)
 
     def logits_many(self, texts: Iterable[str]) -> np.ndarray:
         """Log-odds of spam per text (the sigmoid's input), shape (n,)."""
@@ -609,7 +649,10 @@ class EmbeddingClassifier:
             "created_at": self.created_at,
             "params": self.get_params(),
             "tokenizer": self._tokenizer.params(),
-            "hashing": {"scheme": "murmurhash3_x86_32", "n_buckets": self.buckets, "seed": self._hasher_seed()},
+            "hashing": {
+                "scheme": "murmurhash3_x86_32", "pairs": PAIR_SCHEME,
+                "n_buckets": self.buckets, "seed": self._hasher_seed(),
+            },
             "dim": self.dim_,
             "quantization": {"scheme": "affine-int8", "block": self.quant_block},
             "thresholds": self.thresholds.to_dict(),

@@ -30,7 +30,7 @@ def top_contributions(
     contribution : np.ndarray (m,), the pair's signed contribution to the logit.
     first : np.ndarray (m,), index into ``tokens`` of the pair's first token
         occurrence, which names the bucket in the explanation.
-    tokens : the comments' tokens, concatenated.
+    tokens : indexable; ``tokens[f]`` names the feature occurrence ``f``.
     n_docs : number of comments.
     top_k : how many per comment; pairs contributing exactly 0 (unknown
         buckets) are left out.
@@ -45,25 +45,62 @@ def top_contributions(
     ...                   np.array([0, 1, 2]), ["a", "b", "c"], 2, 1)
     [[('b', -2.0)], [('c', 0.1)]]
     """
-    out: list[list[tuple[str, float]]] = [[] for _ in range(n_docs)]
     if top_k <= 0 or doc.size == 0:
-        return out
+        return [[] for _ in range(n_docs)]
     keep = np.flatnonzero(contribution)
+    if keep.size == 0:
+        return [[] for _ in range(n_docs)]
     doc, contribution, first = doc[keep], contribution[keep], first[keep]
-    if doc.size == 0:
-        return out
-    # Pairs in order of first appearance (which also groups them by comment),
-    # then one stable sort on a composite key: the comment, then magnitude
-    # descending as a fraction in [0, 0.5].  Equal contributions keep the order
-    # the tokens appear in, so the ranking is the same whichever path scored.
-    by_position = np.argsort(first)
-    magnitude = np.abs(contribution[by_position])
-    key = doc[by_position] + 0.5 * (1.0 - magnitude / magnitude.max())
-    order = by_position[np.argsort(key, kind="stable")]
+    magnitude = np.abs(contribution)
+    # Only pairs at or above their comment's top_k-th magnitude can be chosen;
+    # the exact ranking then runs on those few.
+    candidates = _at_least_kth(doc, magnitude, n_docs, top_k)
+    if candidates is not None:
+        doc, contribution, first, magnitude = doc[candidates], contribution[candidates], first[candidates], magnitude[candidates]
+    # By comment, then magnitude descending, then position: equal
+    # contributions keep the order the tokens appear in, so the ranking is the
+    # same whichever path scored.
+    order = np.lexsort((first, -magnitude, doc))
     sorted_doc = doc[order]
-    starts = np.searchsorted(sorted_doc, np.arange(n_docs))
+    starts = np.searchsorted(sorted_doc, np.arange(n_docs + 1))
     rank = np.arange(sorted_doc.size) - starts[sorted_doc]
     chosen = order[rank < top_k]
-    for d, f, c in zip(doc[chosen].tolist(), first[chosen].tolist(), contribution[chosen].tolist()):
-        out[d].append((tokens[f], c))
-    return out
+    take = getattr(tokens, "take", None)
+    names = take(first[chosen]) if take is not None else [tokens[f] for f in first[chosen].tolist()]
+    pairs = list(zip(names, contribution[chosen].tolist()))
+    per_doc = np.bincount(doc[chosen], minlength=n_docs)
+    ends = np.cumsum(per_doc).tolist()
+    begins = [0] + ends[:-1]
+    return [pairs[a:b] for a, b in zip(begins, ends)]
+
+
+#: Above this many scored pairs in one comment, its pairs skip the pre-filter
+#: (they all go to the exact ranking) so the scratch matrix stays small.
+_WIDE = 256
+
+
+def _at_least_kth(doc: np.ndarray, magnitude: np.ndarray, n_docs: int, top_k: int) -> np.ndarray | None:
+    """Indices of the pairs whose magnitude is at least their comment's ``top_k``-th largest.
+
+    ``None`` when every pair qualifies.  Comments with more than :data:`_WIDE`
+    pairs keep all of theirs.
+    """
+    counts = np.bincount(doc, minlength=n_docs)
+    if counts.max() <= top_k:
+        return None
+    order = None
+    if doc.size > 1 and np.any(doc[1:] < doc[:-1]):
+        order = np.argsort(doc, kind="stable")
+        doc, magnitude = doc[order], magnitude[order]
+    starts = np.concatenate(([0], np.cumsum(counts)[:-1]))
+    rank = np.arange(doc.size) - starts[doc]
+    narrow = counts[doc] <= _WIDE
+    width = int(min(counts.max(), _WIDE))
+    scratch = np.full((n_docs, width), -1.0)
+    scratch[doc[narrow], rank[narrow]] = magnitude[narrow]
+    if width > top_k:
+        kth = np.partition(scratch, width - top_k, axis=1)[:, width - top_k]
+    else:
+        kth = np.full(n_docs, -1.0)
+    picked = np.flatnonzero((magnitude >= kth[doc]) | ~narrow)
+    return picked if order is None else np.sort(order[picked])

@@ -25,14 +25,15 @@ try:  # scikit-learn's C loop behind FeatureHasher: the same MurmurHash3, withou
 except ImportError:  # pragma: no cover - private module moved; the per-token path still works
     _sklearn_hash_loop = None
 
-__all__ = ["murmur_bucket", "TokenHasher", "MAX_BUCKETS"]
+__all__ = ["murmur_bucket", "pair_hashes", "pair_hash", "TokenHasher", "MAX_BUCKETS", "PAIR_SCHEME"]
 
 #: Largest bucket count: bucket ids must fit the int32 index arrays of the CSR matrix.
 MAX_BUCKETS = 2**30
 _MAX_SEED = 2**32 - 1
-# From this many tokens in one call, hashing everything in C beats the cache
-# (measured: a 2**18-entry dict lookup costs more than one MurmurHash3 in C).
-_BULK_TOKENS = 4096
+#: How a word pair (bigram) gets its hash; the model manifest records it, and a
+#: model whose pairs were hashed another way is refused rather than mis-read.
+PAIR_SCHEME = "murmurhash3-x86-32-of-rotl16-xor"
+_U32 = np.uint32
 
 
 def _hash(token: str, seed: int) -> int:
@@ -109,26 +110,83 @@ _PARAMS = {
 }
 
 
-def _hash_many(tokens: list[str], seed: int, mask: int) -> np.ndarray:
-    """Buckets of many tokens at once; equal to ``_hash(t, seed) & mask`` for each.
+def _hash_many(tokens: list[str], seed: int) -> np.ndarray:
+    """Full 32-bit hashes of many tokens at once; equal to ``_hash(t, seed)`` for each.
 
-    scikit-learn's loop returns ``abs(h) % n`` with the sign of the signed hash
-    ``h`` as the value; for ``n`` a power of two the unsigned hash's low bits
-    are ``abs(h) % n`` when ``h >= 0`` and ``-(abs(h) % n) % n`` otherwise.
-    ``n = mask + 1``; tests check this against :func:`murmur_bucket`.
+    scikit-learn's loop returns ``abs(h) % n`` for the signed hash ``h``, with
+    the sign as the value.  With ``n = 2**31`` that is ``abs(h)`` itself (and 0
+    for ``h = -2**31``), so the unsigned hash is ``abs(h)`` when ``h >= 0`` and
+    ``2**32 - abs(h)`` otherwise; tests check this against :func:`murmur_bucket`.
     """
     if _sklearn_hash_loop is not None:
         try:
-            index, _, sign = _sklearn_hash_loop([zip(tokens, repeat(1))], mask + 1, np.float32, True, seed)
+            index, _, sign = _sklearn_hash_loop([zip(tokens, repeat(1))], 2**31, np.float32, True, seed)
         except (UnicodeEncodeError, TypeError):
             pass  # lone surrogates or a non-str token: the per-token path handles or names it
         else:
-            index = index.astype(np.int64)
-            return np.where(sign > 0, index, -index & mask).astype(np.int32)
+            return _unsigned(index, sign)
     for token in tokens:
         if not isinstance(token, str):
             raise TypeError(f"TokenHasher: tokens must be str, got {type(token).__name__}")
-    return np.fromiter((_hash(t, seed) & mask for t in tokens), dtype=np.int32, count=len(tokens))
+    return np.fromiter((_hash(t, seed) for t in tokens), dtype=_U32, count=len(tokens))
+
+
+def _unsigned(index: np.ndarray, sign: np.ndarray) -> np.ndarray:
+    """Unsigned 32-bit hashes from scikit-learn's ``(abs(h) % 2**31, sign of h)``."""
+    index = np.asarray(index, dtype=np.int64)
+    unsigned = np.where(np.asarray(sign) > 0, index, np.where(index == 0, 2**31, 2**32 - index))
+    return unsigned.astype(_U32)
+
+
+def pair_hashes(left: np.ndarray, right: np.ndarray, seed: int = 0) -> np.ndarray:
+    """Hashes of word pairs from the hashes of their two words.
+
+    The pair ``(a, b)`` hashes to MurmurHash3 (x86, 32-bit, ``seed``) of the
+    4-byte little-endian key ``rotl32(h(a), 16) xor h(b)``.  The rotation
+    keeps ``(a, b)`` and ``(b, a)`` apart; MurmurHash3 of a 4-byte key is a
+    bijection, so two pairs share a hash only when their keys collide (about
+    one in 2**32 for distinct pairs).  No pair string is built or hashed,
+    which makes bigrams nearly free: one vectorised call per batch.
+
+    Parameters
+    ----------
+    left, right : array-like of uint32, the full 32-bit hashes of the words.
+    seed : MurmurHash3 seed.
+
+    Returns
+    -------
+    numpy.ndarray
+        uint32, one hash per pair.
+
+    Examples
+    --------
+    >>> import struct
+    >>> a, b = murmurhash3_32("free", positive=True), murmurhash3_32("casino", positive=True)
+    >>> key = ((a << 16 | a >> 16) & 0xFFFFFFFF) ^ b
+    >>> int(pair_hashes([a], [b])[0]) == murmurhash3_32(struct.pack("<I", key), positive=True)
+    True
+    """
+    left = np.asarray(left, dtype=_U32)
+    right = np.asarray(right, dtype=_U32)
+    if left.size == 0:
+        return np.empty(0, dtype=_U32)
+    key = np.ascontiguousarray(((left << _U32(16)) | (left >> _U32(16))) ^ right)
+    return np.asarray(murmurhash3_32(key.view(np.int32), seed=int(seed), positive=True), dtype=_U32)
+
+
+def pair_hash(left: int, right: int, seed: int = 0) -> int:
+    """:func:`pair_hashes` of one pair, in plain Python ints (for a handful of comments).
+
+    Examples
+    --------
+    >>> a, b = murmurhash3_32("free", positive=True), murmurhash3_32("casino", positive=True)
+    >>> pair_hash(a, b) == int(pair_hashes([a], [b])[0])
+    True
+    """
+    key = (((left << 16) | (left >> 16)) & 0xFFFFFFFF) ^ right
+    if key >= 0x80000000:
+        key -= 0x100000000  # the int form of MurmurHash3 takes the key as a signed 32-bit int
+    return murmurhash3_32(key, seed=seed, positive=True)
 
 
 class TokenHasher:
@@ -157,7 +215,7 @@ class TokenHasher:
         given = dict(n_buckets=n_buckets, seed=seed, cache_size=cache_size)
         for name, (_, check) in _PARAMS.items():
             setattr(self, name, check("TokenHasher", name, given[name]))
-        # token -> bucket; a plain dict so a hit is one C lookup.  Misses are
+        # token -> full 32-bit hash; a plain dict so a hit is one C lookup.  Misses are
         # hashed in bulk per call and added; the size never exceeds cache_size.
         self._cache: dict[str, int] = {}
 
@@ -182,7 +240,7 @@ class TokenHasher:
 
     @property
     def cached(self) -> int:
-        """How many token -> bucket results the cache holds now (<= cache_size)."""
+        """How many token -> hash results the cache holds now (<= cache_size)."""
         return len(self._cache)
 
     def buckets(self, tokens) -> np.ndarray:
@@ -195,31 +253,50 @@ class TokenHasher:
         Returns
         -------
         numpy.ndarray
-            int32, one bucket per token.
+            int32, one bucket per token: the low bits of :meth:`hashes`.
         """
         if isinstance(tokens, str):
             raise TypeError("TokenHasher.buckets: tokens must be an iterable of str, not one str")
-        return self._lookup(list(tokens))
+        return (self.hashes(list(tokens)) & _U32(self.n_buckets - 1)).astype(np.int32)
 
-    def _lookup(self, tokens: list) -> np.ndarray:
-        if len(tokens) >= _BULK_TOKENS and _sklearn_hash_loop is not None:
-            # A big batch hashes faster in scikit-learn's C loop than it looks
-            # up in a large dict (random memory access), so it skips the cache.
-            return _hash_many(tokens, self.seed, self.n_buckets - 1)
+    def hashes(self, tokens: list) -> np.ndarray:
+        """Full 32-bit MurmurHash3 of each token (a list of str), as uint32; cached."""
         cache = self._cache
-        ids = np.fromiter(map(cache.get, tokens, repeat(-1)), dtype=np.int32, count=len(tokens))
-        missing = np.flatnonzero(ids < 0)
+        full = np.fromiter(map(cache.get, tokens, repeat(-1)), dtype=np.int64, count=len(tokens))
+        missing = np.flatnonzero(full < 0)
         if missing.size:
             if missing.size == 1:
                 missed = [tokens[missing[0]]]
             else:
                 missed = list(itemgetter(*missing.tolist())(tokens))
             distinct = list(dict.fromkeys(missed))
-            found = _hash_many(distinct, self.seed, self.n_buckets - 1).tolist()
+            found = _hash_many(distinct, self.seed).tolist()
             fresh = dict(zip(distinct, found))
-            ids[missing] = list(map(fresh.__getitem__, missed))
+            full[missing] = list(map(fresh.__getitem__, missed))
             self._remember(fresh)
-        return ids
+        return full.astype(_U32)
+
+    def hash_list(self, tokens: list) -> list[int]:
+        """:meth:`hashes` as a list of ints, without numpy (for a handful of tokens)."""
+        cache = self._cache
+        out = list(map(cache.get, tokens))
+        if None in out:
+            fresh = {}
+            for i, value in enumerate(out):
+                if value is None:
+                    token = tokens[i]
+                    if not isinstance(token, str):
+                        raise TypeError(f"TokenHasher: tokens must be str, got {type(token).__name__}")
+                    value = fresh.get(token)
+                    if value is None:
+                        value = fresh[token] = _hash(token, self.seed)
+                    out[i] = value
+            self._remember(fresh)
+        return out
+
+    def pairs(self, left: np.ndarray, right: np.ndarray) -> np.ndarray:
+        """:func:`pair_hashes` with this hasher's seed."""
+        return pair_hashes(left, right, self.seed)
 
     def _remember(self, fresh: dict) -> None:
         cap = self.cache_size
@@ -265,7 +342,7 @@ class TokenHasher:
             mark(len(flat))
         if len(flat) > 2**31 - 1:
             raise ValueError("TokenHasher.matrix: more than 2**31 - 1 tokens in one call; pass fewer documents")
-        indices = self._lookup(flat)
+        indices = self.buckets(flat)
         indptr = np.array(ends, dtype=np.int32)
         lengths = np.diff(indptr).astype(np.float32)
         data = np.ones(len(flat), dtype=np.float32)

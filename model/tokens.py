@@ -580,14 +580,19 @@ class _ChunkCache(dict):
 
     Comments reuse the same few thousand chunks ("the", "great,", "free!"), so
     the regex work runs once per distinct chunk and a hit is a C dict lookup.
+    :attr:`short` holds the cached chunks that yield a one-character token,
+    the only ones the token-list pass (:meth:`Tokenizer._finish`) can change.
+    It may also hold evicted chunks (which only costs that pass a run) and is
+    pruned between comments, never while one is being cut.
     """
 
-    __slots__ = ("_rewrite", "_cap")
+    __slots__ = ("_rewrite", "_cap", "short")
 
     def __init__(self, rewrite, cap):
         super().__init__()
         self._rewrite = rewrite
         self._cap = cap
+        self.short: set[str] = set()
 
     def __missing__(self, chunk):
         tokens = self._rewrite(chunk)
@@ -595,6 +600,8 @@ class _ChunkCache(dict):
             for key in list(islice(self, len(self) // 2)):
                 del self[key]
         self[chunk] = tokens
+        if 1 in map(len, tokens):
+            self.short.add(chunk)
         return tokens
 
 
@@ -695,14 +702,38 @@ class Tokenizer:
         return ["<num>" if t in _SINGLE_DIGITS else t for t in tokens]
 
     def _unigrams(self, text: str) -> list[str]:
-        if text.isascii():
-            text = text.lower()
-        if any(map(text.__contains__, _DIGITS)) and _SPACED_PHONE_HINT_RE.search(text):
-            text = mark_spaced_phones(text)
-        tokens = list(chain.from_iterable(map(self._chunks.__getitem__, text.split())))
-        if 1 in map(len, tokens):
-            return self._finish(tokens)
-        return tokens
+        return self.words_many((text,))[0]
+
+    def words_many(self, texts) -> tuple[list[str], list[int]]:
+        """Words of many comments at once: all of them in one flat list, and
+        how many each comment has.  Equal to :meth:`words` per comment; one
+        pass, with no list per comment unless one needs the token-list pass.
+        """
+        flat: list[str] = []
+        counts: list[int] = []
+        extend, count = flat.extend, counts.append
+        cache = self._chunks
+        getitem, short = cache.__getitem__, cache.short
+        hint = _SPACED_PHONE_HINT_RE.search
+        finish = self._finish
+        before = 0
+        for text in texts:
+            if text.isascii():
+                text = text.lower()
+            if any(map(text.__contains__, _DIGITS)) and hint(text):
+                text = mark_spaced_phones(text)
+            chunks = text.split()
+            extend(chain.from_iterable(map(getitem, chunks)))
+            if not short.isdisjoint(chunks):  # checked after the lookups, which may add to it
+                tokens = flat[before:]
+                del flat[before:]
+                extend(finish(tokens))
+            size = len(flat)
+            count(size - before)
+            before = size
+        if len(short) > _CHUNK_CACHE_SIZE:
+            short.intersection_update(cache)
+        return flat, counts
 
     def normalize(self, text: str) -> str:
         """The normalized text: unigram and marker tokens joined by single spaces.
@@ -718,10 +749,25 @@ class Tokenizer:
             raise TypeError(f"Tokenizer.normalize: text must be str, got {type(text).__name__}")
         return " ".join(self._unigrams(text))
 
+    def words(self, text: str) -> list[str]:
+        """Word and marker tokens of one comment, the unigrams of :meth:`features`.
+
+        Never raises on a ``str``.
+
+        Examples
+        --------
+        >>> Tokenizer().words("Visit casino.example NOW")
+        ['visit', '<url>', 'domain:casino.example', 'now']
+        """
+        if not isinstance(text, str):
+            raise TypeError(f"Tokenizer.words: text must be str, got {type(text).__name__}")
+        return self._unigrams(text)
+
     def features(self, text: str) -> list[str]:
         """Feature tokens of one comment: unigrams, markers, bigrams, char n-grams.
 
-        Domain tokens are unigrams only; bigrams run over words and markers.
+        A link's domain token (the one right after its ``<url>`` marker) is a
+        unigram only; bigrams run over words and markers.
         Never raises on a ``str``.
 
         Examples
@@ -735,8 +781,9 @@ class Tokenizer:
         if not self.bigrams and self.char_ngrams[0] == 0:
             return words
         seq = words
-        if "<url>" in words:
-            seq = [w for w in words if not w.startswith(DOMAIN_PREFIX)]
+        if "<url>" in words:  # a link's domain token follows its marker and sits out
+            seq = [w for i, w in enumerate(words)
+                   if not (i and words[i - 1] == "<url>" and w.startswith(DOMAIN_PREFIX))]
         out = list(words)
         if self.bigrams:
             out.extend(bigrams(seq))

@@ -85,7 +85,7 @@ def test_only_touched_rows_are_stored(trained, blob):
     texts, _ = small_corpus(1)
     buckets = set()
     for t in texts:
-        buckets.update(trained._hasher.buckets(trained._tokenizer.features(t)).tolist())
+        buckets.update(trained._encoder.tokens([trained._tokenizer.features(t)]).bucket.tolist())
     assert set(rows.tolist()) == buckets
     assert arrays["table_q"].shape == (len(buckets), 5)
 

@@ -42,7 +42,7 @@ def test_contributions_add_up_to_the_logit_minus_active_biases_with_a_hidden_lay
     _, reasons = hidden.score_many(texts, top_k=10_000)
     head = hidden._weights.head
     feats = [hidden._tokenizer.features(t) for t in texts]
-    bag = hidden._bag(feats)
+    bag = hidden._bag(hidden._encoder.tokens(feats))
     index, table, _, _ = hidden._scoring_tables()
     pooled = bag.matrix(hidden.buckets) @ hidden._weights.table
     pre = pooled @ head["w1"] + head["b1"]

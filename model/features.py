@@ -1,0 +1,241 @@
+"""Comments to feature buckets: words hashed once, word pairs from the words' hashes.
+
+A comment's features are its words (unigrams and marker tokens), each pair of
+adjacent words (bigrams; a link's ``domain:`` token sits out, as in
+:meth:`model.tokens.Tokenizer.features`) and, when switched on, character
+n-grams.  Words and n-grams are hashed as strings with MurmurHash3; a pair
+``(a, b)`` is hashed from the two words' hashes (:func:`model.hashing.pair_hashes`),
+so no pair string is built on the scoring path and a batch's bigrams cost one
+vectorised call.  The bucket of a feature is the low bits of its hash.
+
+:class:`FeatureEncoder` has two entry points that give the same buckets for
+the same comment: :meth:`~FeatureEncoder.texts` (the hot path) and
+:meth:`~FeatureEncoder.tokens`, for comments already cut into feature strings
+(``"free_casino"`` is the pair ``free``, ``casino``), which lets a caller score
+a comment with some tokens removed.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from itertools import chain
+from operator import itemgetter
+
+import numpy as np
+
+from model.hashing import TokenHasher, pair_hash
+from model.tokens import BIGRAM_JOINER, DOMAIN_PREFIX, Tokenizer, char_ngrams
+
+__all__ = ["Features", "FeatureEncoder", "FeatureNames"]
+
+
+class FeatureNames:
+    """The token string of each feature occurrence, built only when asked for.
+
+    Occurrences are laid out as all words, then all pairs, then all extra
+    (character n-gram) tokens; a pair is named ``left_right``.
+    """
+
+    __slots__ = ("words", "left", "right", "extra")
+
+    def __init__(self, words: list[str], left=(), right=(), extra: list[str] | tuple = ()):
+        self.words = words
+        self.left = left
+        self.right = right
+        self.extra = extra
+
+    def __len__(self) -> int:
+        return len(self.words) + len(self.left) + len(self.extra)
+
+    def __getitem__(self, i: int) -> str:
+        n_words = len(self.words)
+        if i < n_words:
+            return self.words[i]
+        i -= n_words
+        n_pairs = len(self.left)
+        if i < n_pairs:
+            return self.words[int(self.left[i])] + BIGRAM_JOINER + self.words[int(self.right[i])]
+        return self.extra[i - n_pairs]
+
+    def take(self, positions: np.ndarray) -> list[str]:
+        """``[self[i] for i in positions]``, without a Python call per position."""
+        positions = np.asarray(positions, dtype=np.int64)
+        out = np.empty(positions.size, dtype=object)
+        n_words, n_pairs = len(self.words), len(self.left)
+        kind = (positions >= n_words).astype(np.int8) + (positions >= n_words + n_pairs)
+        at = np.flatnonzero(kind == 0)
+        if at.size:
+            out[at] = _pick(self.words, positions[at])
+        at = np.flatnonzero(kind == 1)
+        if at.size:
+            offset = positions[at] - n_words
+            lefts = _pick(self.words, np.asarray(self.left)[offset])
+            rights = _pick(self.words, np.asarray(self.right)[offset])
+            out[at] = list(map(BIGRAM_JOINER.join, zip(lefts, rights)))
+        at = np.flatnonzero(kind == 2)
+        if at.size:
+            out[at] = _pick(self.extra, positions[at] - n_words - n_pairs)
+        return out.tolist()
+
+
+def _pick(items: list, positions: np.ndarray) -> list:
+    """``[items[i] for i in positions]`` in C (operator.itemgetter)."""
+    index = positions.tolist()
+    if len(index) == 1:
+        return [items[index[0]]]
+    return list(itemgetter(*index)(items))
+
+
+@dataclass
+class Features:
+    """A batch of comments as flat feature occurrences.
+
+    Attributes
+    ----------
+    n : number of comments.
+    doc : int64 (m,), the comment of each occurrence.
+    bucket : int64 (m,), its bucket.
+    lengths : int64 (n,), occurrences per comment.
+    names : indexable, ``names[i]`` is occurrence ``i``'s token string.
+    hashes : uint32 (m,), the full 32-bit hash of each occurrence.
+    """
+
+    n: int
+    doc: np.ndarray
+    bucket: np.ndarray
+    lengths: np.ndarray
+    names: FeatureNames | list[str]
+    hashes: np.ndarray
+
+
+_EMPTY = np.empty(0, dtype=np.int64)
+#: From this many word pairs in one comment, one vectorised call beats a Python call per pair.
+_FEW_PAIRS = 8
+
+
+class FeatureEncoder:
+    """Turn comments into :class:`Features` with one tokenizer and one hasher.
+
+    Examples
+    --------
+    >>> enc = FeatureEncoder(Tokenizer(), TokenHasher(n_buckets=2**18))
+    >>> a = enc.texts(["Free casino!"])
+    >>> b = enc.tokens([["free", "casino", "free_casino"]])
+    >>> a.bucket.tolist() == b.bucket.tolist(), [a.names[i] for i in range(3)]
+    (True, ['free', 'casino', 'free_casino'])
+    """
+
+    def __init__(self, tokenizer: Tokenizer, hasher: TokenHasher):
+        self.tokenizer = tokenizer
+        self.hasher = hasher
+        self._mask = np.uint32(hasher.n_buckets - 1)
+
+    def texts(self, texts: list[str]) -> Features:
+        """Features of raw comment texts (each a str)."""
+        flat, counts = self.tokenizer.words_many(texts)
+        n = len(counts)
+        counts = np.array(counts, dtype=np.int64)
+        hashes = self.hasher.hashes(flat)
+        doc = np.repeat(np.arange(n, dtype=np.int64), counts)
+        tok = self.tokenizer
+        if not tok.bigrams and not tok.char_ngrams[0]:
+            return self._finish(n, [hashes], [doc], FeatureNames(flat))
+        seq = self._sequence(flat, doc)
+        hash_parts, doc_parts = [hashes], [doc]
+        left = right = _EMPTY
+        if tok.bigrams and seq.size > 1:
+            same = doc[seq[:-1]] == doc[seq[1:]]
+            left, right = seq[:-1][same], seq[1:][same]
+            hash_parts.append(self.hasher.pairs(hashes[left], hashes[right]))
+            doc_parts.append(doc[left])
+        extra: list[str] = []
+        if tok.char_ngrams[0]:
+            low, high = tok.char_ngrams
+            ends = np.cumsum(counts).tolist()
+            per_doc = [char_ngrams(flat[a:b], low, high)  # they skip markers and domains
+                       for a, b in zip([0] + ends[:-1], ends)]
+            extra = list(chain.from_iterable(per_doc))
+            hash_parts.append(self.hasher.hashes(extra))
+            doc_parts.append(np.repeat(np.arange(n, dtype=np.int64), list(map(len, per_doc))))
+        return self._finish(n, hash_parts, doc_parts, FeatureNames(flat, left, right, extra))
+
+    def one(self, text: str) -> tuple[list[int], FeatureNames]:
+        """Buckets of one comment's features as a list, and their names; no numpy.
+
+        The same buckets, in the same order, as :meth:`texts` gives for the
+        comment; for a handful of comments plain Python is faster than a
+        dozen numpy calls on tiny arrays.
+        """
+        words, _ = self.tokenizer.words_many((text,))
+        hasher = self.hasher
+        hashes = hasher.hash_list(words)
+        tok = self.tokenizer
+        left: list[int] = []
+        right: list[int] = []
+        extra: list[str] = []
+        if tok.bigrams or tok.char_ngrams[0]:
+            seq = list(range(len(words)))
+            if "<url>" in words:
+                seq = [i for i in seq if not (i and words[i - 1] == "<url>" and words[i].startswith(DOMAIN_PREFIX))]
+            if tok.bigrams and len(seq) > 1:
+                left, right = seq[:-1], seq[1:]
+                if len(left) < _FEW_PAIRS:
+                    seed = hasher.seed
+                    hashes.extend([pair_hash(hashes[a], hashes[b], seed) for a, b in zip(left, right)])
+                else:
+                    in_seq = np.array(hashes if len(seq) == len(hashes) else [hashes[i] for i in seq], dtype=np.uint32)
+                    hashes.extend(hasher.pairs(in_seq[:-1], in_seq[1:]).tolist())
+            if tok.char_ngrams[0]:
+                extra = char_ngrams(words, *tok.char_ngrams)
+                hashes.extend(hasher.hash_list(extra))
+        mask = hasher.n_buckets - 1
+        return [h & mask for h in hashes], FeatureNames(words, left, right, extra)
+
+    @staticmethod
+    def _sequence(flat: list[str], doc: np.ndarray) -> np.ndarray:
+        """Flat positions of the words that pairs and n-grams run over: all but
+        the ``domain:`` token right after each ``<url>`` marker."""
+        skip: list[int] = []
+        find = flat.index
+        last = len(flat) - 1
+        at = -1
+        while True:
+            try:
+                at = find("<url>", at + 1)  # a scan in C; links are few
+            except ValueError:
+                break
+            if at < last and flat[at + 1].startswith(DOMAIN_PREFIX):
+                skip.append(at + 1)
+        seq = np.arange(len(flat), dtype=np.int64)
+        if not skip:
+            return seq
+        skip_at = np.array(skip, dtype=np.int64)
+        skip_at = skip_at[doc[skip_at] == doc[skip_at - 1]]  # the marker is in the same comment
+        return np.delete(seq, skip_at)
+
+    def tokens(self, feature_lists: list[list[str]]) -> Features:
+        """Features of comments given as feature strings; ``a_b`` is the pair (a, b)."""
+        n = len(feature_lists)
+        counts = np.fromiter(map(len, feature_lists), dtype=np.int64, count=n)
+        flat = list(chain.from_iterable(feature_lists))
+        doc = np.repeat(np.arange(n, dtype=np.int64), counts)
+        pair_at = [i for i, t in enumerate(flat) if BIGRAM_JOINER in t]
+        if not pair_at:
+            hashes = self.hasher.hashes(flat)
+        else:
+            hashes = np.empty(len(flat), dtype=np.uint32)
+            is_pair = np.zeros(len(flat), dtype=bool)
+            is_pair[pair_at] = True
+            single_at = np.flatnonzero(~is_pair)
+            hashes[single_at] = self.hasher.hashes([flat[i] for i in single_at.tolist()])
+            halves = [flat[i].partition(BIGRAM_JOINER) for i in pair_at]
+            left = self.hasher.hashes([h[0] for h in halves])
+            right = self.hasher.hashes([h[2] for h in halves])
+            hashes[pair_at] = self.hasher.pairs(left, right)
+        return self._finish(n, [hashes], [doc], flat)
+
+    def _finish(self, n, hash_parts, doc_parts, names) -> Features:
+        hashes = hash_parts[0] if len(hash_parts) == 1 else np.concatenate(hash_parts)
+        doc = doc_parts[0] if len(doc_parts) == 1 else np.concatenate(doc_parts)
+        bucket = (hashes & self._mask).astype(np.int64)
+        lengths = np.bincount(doc, minlength=n).astype(np.int64) if doc.size else np.zeros(n, dtype=np.int64)
+        return Features(n, doc, bucket, lengths, names, hashes)

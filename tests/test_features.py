@@ -1,0 +1,192 @@
+"""Feature buckets: word pairs hashed from their words' hashes, both entry points
+agree, the few-comments path equals the vectorised one, and explanations pick
+exactly the largest contributions."""
+from __future__ import annotations
+
+import doctest
+import struct
+
+import numpy as np
+import pytest
+from hypothesis import given, settings, strategies as st
+from sklearn.utils import murmurhash3_32
+
+import model.explain
+import model.features
+from model import artifact
+from model.classifier import FEW, EmbeddingClassifier
+from model.errors import ArtifactError
+from model.explain import top_contributions
+from model.features import FeatureEncoder, FeatureNames
+from model.hashing import TokenHasher, _hash, _hash_many, _unsigned, pair_hash, pair_hashes
+from model.tokens import Tokenizer
+
+from test_network import HAM, SPAM, small_corpus
+
+EDGE = [0, 1, 0x7FFFFFFF, 0x80000000, 0xFFFFFFFF, 0x12345678]
+
+
+def test_pair_hash_is_murmurhash3_of_the_rotated_xor_key():
+    # Reference: scikit-learn's MurmurHash3 (x86, 32-bit) of the 4-byte little-endian key.
+    rng = np.random.default_rng(0)
+    left = np.concatenate([rng.integers(0, 2**32, 500, dtype=np.uint64), EDGE]).astype(np.uint32)
+    right = np.concatenate([rng.integers(0, 2**32, 500, dtype=np.uint64), EDGE[::-1]]).astype(np.uint32)
+    for seed in (0, 7, 2**32 - 1):
+        got = pair_hashes(left, right, seed).tolist()
+        for a, b, h in zip(left.tolist(), right.tolist(), got):
+            key = (((a << 16) | (a >> 16)) & 0xFFFFFFFF) ^ b
+            assert h == murmurhash3_32(struct.pack("<I", key), seed=seed, positive=True)
+            assert h == pair_hash(a, b, seed)
+
+
+def test_pair_hash_depends_on_order():
+    a, b = _hash("free", 0), _hash("casino", 0)
+    assert pair_hash(a, b) != pair_hash(b, a)
+    assert pair_hashes([], []).size == 0
+
+
+def test_bulk_hashes_equal_one_at_a_time():
+    tokens = [f"w{i}" for i in range(3000)] + ["", "é", "🎰", "domain:prize.example"]
+    for seed in (0, 123):
+        assert _hash_many(tokens, seed).tolist() == [_hash(t, seed) for t in tokens]
+    hasher = TokenHasher(seed=5)
+    assert hasher.hash_list(tokens[:50]) == hasher.hashes(tokens[:50]).tolist() == [_hash(t, 5) for t in tokens[:50]]
+
+
+@pytest.mark.parametrize("signed", [-(2**31), -1, 0, 5, 2**31 - 1])
+def test_unsigned_from_sklearns_abs_and_sign(signed):
+    # scikit-learn's loop gives abs(h) % n (0 for h = -2**31 when n = 2**31) and the sign of h.
+    index = 0 if signed == -(2**31) else abs(signed)
+    assert _unsigned(np.array([index]), np.array([1.0 if signed >= 0 else -1.0])).tolist() == [signed % 2**32]
+
+
+def test_lone_surrogates_and_non_strings():
+    hasher = TokenHasher()
+    assert hasher.hash_list(["\ud800x"]) == hasher.hashes(["\ud800x"]).tolist()
+    with pytest.raises(TypeError, match="must be str"):
+        hasher.hash_list([3])
+    with pytest.raises(TypeError, match="must be str"):
+        hasher.hashes([3])
+
+
+TEXTS = [
+    "Free casino spins at https://www.Prize.example/x and casino.example now",
+    "c a s i n o 4 u, call +1 555 010 9999 or mail win@prize.example",
+    "literal domain:fake.example then <url> domain:prize.example done",
+    "a b c i am a big fan of the council notes",
+    "<url>",
+    "",
+    "!!! ???",
+    "ᴄᴀꜱɪɴᴏ саsinо fr33 freeeee $ave 1,299.99 2 3",
+    "ends with a link prize.example",
+]
+
+
+def _check_same(enc: FeatureEncoder, tok: Tokenizer, texts: list[str]) -> None:
+    batch = enc.texts(texts)
+    strings = enc.tokens([tok.features(t) for t in texts])
+    for i, text in enumerate(texts):
+        mine = np.flatnonzero(batch.doc == i)
+        theirs = np.flatnonzero(strings.doc == i)
+        assert batch.bucket[mine].tolist() == strings.bucket[theirs].tolist(), text
+        assert [batch.names[j] for j in mine] == tok.features(text), text
+        assert batch.names.take(mine) == tok.features(text)
+        one_buckets, one_names = enc.one(text)
+        assert one_buckets == batch.bucket[mine].tolist(), text
+        assert [one_names[j] for j in range(len(one_buckets))] == tok.features(text)
+    assert batch.lengths.tolist() == [len(tok.features(t)) for t in texts]
+
+
+@pytest.mark.parametrize("params", [{}, {"bigrams": False}, {"char_ngrams": (3, 5)}], ids=["default", "no-bigrams", "char-ngrams"])
+def test_text_path_equals_feature_string_path(params):
+    tok = Tokenizer(**params)
+    enc = FeatureEncoder(tok, TokenHasher(n_buckets=2**18, seed=3))
+    _check_same(enc, tok, TEXTS)
+    _check_same(enc, tok, TEXTS[:1])
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.lists(st.text(alphabet="ab c1.:/<>@$_ \u200bé\n", max_size=40)
+                | st.text(alphabet=st.characters(min_codepoint=0, max_codepoint=0x10FFFF), max_size=30), max_size=6))
+def test_text_path_equals_feature_string_path_on_any_text(texts):
+    tok = Tokenizer()
+    _check_same(FeatureEncoder(tok, TokenHasher(n_buckets=2**12)), tok, texts)
+
+
+def test_names_take_matches_indexing():
+    names = FeatureNames(["free", "casino", "now"], np.array([0, 1]), np.array([1, 2]), ["#fre"])
+    every = list(range(len(names)))
+    assert names.take(every) == [names[i] for i in every] == ["free", "casino", "now", "free_casino", "casino_now", "#fre"]
+    assert names.take([4]) == ["casino_now"] and names.take([]) == []
+
+
+def _brute_force(doc, contribution, first, tokens, n_docs, top_k):
+    out = []
+    for d in range(n_docs):
+        rows = [i for i in range(doc.size) if doc[i] == d and contribution[i] != 0]
+        rows.sort(key=lambda i: (-abs(contribution[i]), first[i]))
+        out.append([(tokens[first[i]], float(contribution[i])) for i in rows[:top_k]])
+    return out
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_top_contributions_equal_a_brute_force_ranking(seed):
+    rng = np.random.default_rng(seed)
+    n_docs = int(rng.integers(1, 40))
+    sizes = rng.integers(0, 30, n_docs)
+    sizes[rng.integers(n_docs)] = 300  # one comment wider than the pre-filter's scratch matrix
+    doc = np.repeat(np.arange(n_docs), sizes)
+    if seed % 2:
+        doc = rng.permutation(doc)  # the function must not rely on the order
+    m = doc.size
+    contribution = rng.choice([-2.0, -0.5, 0.0, 0.5, 1.0, 2.0], m) if seed < 3 else rng.normal(size=m)
+    first = rng.permutation(m)
+    tokens = [f"t{i}" for i in range(m)]
+    for k in (1, 5, 50):
+        got = top_contributions(doc, contribution, first, tokens, n_docs, k)
+        assert got == _brute_force(doc, contribution, first, tokens, n_docs, k)
+
+
+@pytest.fixture(scope="module")
+def trained() -> EmbeddingClassifier:
+    texts, labels = small_corpus(4)
+    return EmbeddingClassifier(dim=4, min_df=1, validation_share=0.0, seed=1).fit(texts, labels)
+
+
+def test_few_comments_path_equals_the_vectorised_path(trained):
+    texts = SPAM + HAM + TEXTS
+    scores, reasons = trained.score_many(texts, top_k=5)
+    assert len(texts) > FEW
+    for i in range(0, len(texts), FEW):
+        few_scores, few_reasons = trained.score_many(texts[i:i + FEW], top_k=5)
+        np.testing.assert_allclose(few_scores, scores[i:i + FEW], rtol=0, atol=1e-12)
+        for got, want in zip(few_reasons, reasons[i:i + FEW]):
+            assert [t for t, _ in got] == [t for t, _ in want]
+            np.testing.assert_allclose([c for _, c in got], [c for _, c in want], rtol=0, atol=1e-12)
+    # and through the feature-string entry point
+    feats = [trained._tokenizer.features(t) for t in texts[:2]]
+    again, _ = trained.score_features(feats, top_k=5)
+    np.testing.assert_allclose(again, scores[:2], rtol=0, atol=1e-12)
+
+
+def test_a_model_with_other_pair_hashing_is_refused(trained):
+    arrays, manifest = artifact.loads(trained.to_bytes())
+    manifest = {k: v for k, v in manifest.items() if k not in ("sha256", "format", "format_version")}
+    manifest["hashing"] = {k: v for k, v in manifest["hashing"].items() if k != "pairs"}
+    data, _ = artifact.dumps(arrays, manifest)
+    with pytest.raises(ArtifactError, match="retrain"):
+        EmbeddingClassifier.from_bytes(data)
+
+
+def test_docstring_examples():
+    assert doctest.testmod(model.features).failed == 0
+    assert doctest.testmod(model.explain).failed == 0
+
+
+def test_distinct_tokens_counted_by_hash_equal_distinct_feature_strings():
+    texts, labels = small_corpus(3)
+    texts = texts + TEXTS
+    labels = labels + [0] * len(TEXTS)
+    clf = EmbeddingClassifier(dim=2, min_df=1, validation_share=0.0, epochs=1).fit(texts, labels)
+    strings = {t for text in texts for t in clf._tokenizer.features(text)}
+    assert clf.summary_["distinct_tokens"] == len(strings)
