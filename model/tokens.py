@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import re
 import unicodedata
-from itertools import chain, islice
+from itertools import chain, islice, repeat
 from numbers import Integral
 
 __all__ = [
@@ -694,8 +694,11 @@ class Tokenizer:
     def _finish(self, tokens: list[str]) -> list[str]:
         """Token-list pass: join spaced-out runs, then single digits become ``<num>``."""
         if self.join_spaced:
-            lengths = list(map(len, tokens))
-            if lengths.count(1) >= 3 and b"\x01\x01\x01" in bytes(map((1).__eq__, lengths)):
+            try:
+                lengths = bytes(map(len, tokens))  # one byte per token; a run of singles is a byte search
+            except ValueError:  # a token of 256 characters or more
+                lengths = bytes(map(min, map(len, tokens), repeat(2)))
+            if b"\x01\x01\x01" in lengths:
                 tokens = join_spaced(tokens, self._rewrite_word)
         if _SINGLE_DIGITS.isdisjoint(tokens):
             return tokens

@@ -290,7 +290,9 @@ def test_verdicts_stream_is_capped(client):
 
 
 def test_reasons_json_is_compact_and_rounded():
-    assert format_reasons([("<url>", 0.123456), ("free", -0.5)]) == '[["<url>",0.1235],["free",-0.5]]'
+    assert format_reasons([("<url>", 0.123456), ("free", -0.5)]) == '[["<url>",0.1235],["free",-0.5000]]'
+    odd = format_reasons([('say "hi"\n', float("nan")), ("é", float("-inf")), ("x", 1e-9)])
+    assert json.loads(odd) == [['say "hi"\n', 0.0], ["é", 0.0], ["x", 0.0]] and odd.isascii()
 
 
 def test_an_empty_read_does_nothing(client):

@@ -76,3 +76,8 @@ def test_never_raises(text):
 
 def test_docstring_examples():
     assert doctest.testmod(tokens_module).failed == 0
+
+
+def test_spaced_words_are_joined_beside_a_token_of_256_characters_or_more():
+    host = "ab" * 150 + ".example"
+    assert TOK.normalize(f"c a s h at https://{host}/x") == f"cash at <url> domain:{host}"

@@ -67,16 +67,15 @@ def format_reasons(reasons) -> str:
     """``[[token, contribution], ...]`` as compact JSON, contributions to 4 decimals.
 
     Built by hand because it runs once per comment on the hot path; the
-    token goes through the json module's own string escaper.
+    token goes through the json module's own string escaper, and NaN or an
+    infinity (not JSON) is written as 0.
     """
     if not reasons:
         return "[]"
-    return "[" + ",".join(f"[{_json_string(str(t))},{_contribution(c)!r}]" for t, c in reasons) + "]"
-
-
-def _contribution(value) -> float:
-    value = round(float(value), 4)
-    return value if -1e300 < value < 1e300 else 0.0  # NaN and infinities are not JSON
+    return "[" + ",".join([
+        f"[{_json_string(str(t))},{c:.4f}]" if -1e300 < c < 1e300 else f"[{_json_string(str(t))},0.0]"
+        for t, c in reasons
+    ]) + "]"
 
 
 class StreamConsumer:

@@ -9,16 +9,21 @@ import time
 from collections.abc import Callable
 
 
-def median_seconds(fn: Callable[[], object], *, repeats: int = 5, warmup: int = 1) -> float:
-    """Median wall time of ``fn()`` over ``repeats`` runs after ``warmup`` runs."""
-    for _ in range(warmup):
-        fn()
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
+def interleaved_medians(fns: dict[str, Callable[[int], object]], *, repeats: int = 5, warmup: int = 1) -> dict[str, float]:
+    """Median wall time of each ``fn(round)``, the functions taking turns in every round.
+
+    Side by side in one loop, so a slow spell of a shared machine hits every
+    contender alike and their ratio stays put even when absolute times drift.
+    Warm-up rounds (numbered before the timed ones) are not counted.
+    """
+    times: dict[str, list[float]] = {name: [] for name in fns}
+    for round_ in range(warmup + repeats):
+        for name, fn in fns.items():
+            t0 = time.perf_counter()
+            fn(round_)
+            if round_ >= warmup:
+                times[name].append(time.perf_counter() - t0)
+    return {name: statistics.median(values) for name, values in times.items()}
 
 
 def peak_rss_mb() -> float:

@@ -19,7 +19,7 @@ import time
 
 import numpy as np
 
-from ops.bench import median_seconds, peak_rss_mb, report
+from ops.bench import interleaved_medians, peak_rss_mb, report
 
 #: The settings of the corpus check (d = 8, buckets in fewer than 5 training
 #: comments get no row); with ``dim="auto"`` 100k comments of uni+bigrams give
@@ -83,7 +83,7 @@ def register(sub) -> None:
     )
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.add_argument("--train", type=int, default=100_000, help="training comments (default 100,000)")
-    parser.add_argument("--repeats", type=int, default=5, help="timed repeats per figure (median)")
+    parser.add_argument("--repeats", type=int, default=15, help="timed rounds of batch-1024 scoring (median)")
     parser.add_argument("--seed", type=int, default=0, help="seed of the invented comments")
     parser.set_defaults(func=run)
 
@@ -128,30 +128,26 @@ def measure(*, n_train: int, repeats: int, seed: int) -> dict:
     seawall_auc = evaluate(test_y, clf.predict_proba_many(test_x))["roc_auc"]
     reference_auc = evaluate(test_y, sgd.predict_proba(vectorizer.transform(test_x))[:, 1])["roc_auc"]
 
-    # Fresh comments for every timed call: one pool per figure, consumed in order.
+    # Fresh comments for every round; in each round Seawall and the reference
+    # take turns on the same pool, so a slow spell of the machine hits both.
     big = [maker.batch(1024)[0] for _ in range(repeats + 1)]
+    times = interleaved_medians({
+        "seawall": lambda r: clf.score_many(big[r], top_k=5),
+        "reference": lambda r: sgd.predict_proba(vectorizer.transform(big[r]))[:, 1],
+    }, repeats=repeats, warmup=1)
+    seawall_1024, reference_1024 = times["seawall"], times["reference"]
+
     singles = maker.batch(400)[0]
-
-    def cycling(pool):
-        it = iter(pool * 1000)
-        return lambda: next(it)
-
-    next_big = cycling(big)
-    seawall_1024 = median_seconds(lambda: clf.score_many(next_big(), top_k=5), repeats=repeats)
-    next_big = cycling(big)
-    reference_1024 = median_seconds(
-        lambda: sgd.predict_proba(vectorizer.transform(next_big()))[:, 1], repeats=repeats)
-
-    def per_single(score_one) -> float:
-        times = []
-        for text in singles:
-            t = time.perf_counter()
-            score_one(text)
-            times.append(time.perf_counter() - t)
-        return float(np.median(times[20:]))  # the first calls warm up
-
-    seawall_1 = per_single(lambda t: clf.score_many([t], top_k=5))
-    reference_1 = per_single(lambda t: sgd.predict_proba(vectorizer.transform([t]))[:, 1])
+    ours, theirs = [], []
+    for text in singles:  # one comment at a time, taking turns
+        t = time.perf_counter()
+        clf.score_many([text], top_k=5)
+        ours.append(time.perf_counter() - t)
+        t = time.perf_counter()
+        sgd.predict_proba(vectorizer.transform([text]))[:, 1]
+        theirs.append(time.perf_counter() - t)
+    seawall_1 = float(np.median(ours[20:]))  # the first calls warm up
+    reference_1 = float(np.median(theirs[20:]))
 
     return {
         "train_comments": n_train,

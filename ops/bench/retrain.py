@@ -16,7 +16,7 @@ from __future__ import annotations
 import itertools
 import time
 
-from ops.bench import median_seconds, peak_rss_mb, report
+from ops.bench import interleaved_medians, peak_rss_mb, report
 
 TARGET_S = 5.0
 
@@ -83,8 +83,9 @@ def measure(n: int, replay_n: int, repeats: int) -> dict:
         rows = original + update
         return EmbeddingClassifier().fit([t for t, _ in rows], [y for _, y in rows])
 
-    update_s = median_seconds(one_update, repeats=repeats, warmup=0)
-    scratch_s = median_seconds(from_scratch, repeats=repeats, warmup=0)
+    times = interleaved_medians({"update": lambda _: one_update(), "scratch": lambda _: from_scratch()},
+                                repeats=repeats, warmup=0)
+    update_s, scratch_s = times["update"], times["scratch"]
 
     client = fakeredis.FakeRedis()
     keys = Keys()
