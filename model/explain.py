@@ -59,8 +59,11 @@ def top_contributions(
         doc, contribution, first, magnitude = doc[candidates], contribution[candidates], first[candidates], magnitude[candidates]
     # By comment, then magnitude descending, then position: equal
     # contributions keep the order the tokens appear in, so the ranking is the
-    # same whichever path scored.
-    order = np.lexsort((first, -magnitude, doc))
+    # same whichever path scored.  In order of position first, then one stable
+    # sort on the comment plus a fraction in [0, 0.5] that falls with magnitude.
+    by_position = np.argsort(first)
+    fraction = 0.5 * (1.0 - magnitude[by_position] / magnitude.max())
+    order = by_position[np.argsort(doc[by_position] + fraction, kind="stable")]
     sorted_doc = doc[order]
     starts = np.searchsorted(sorted_doc, np.arange(n_docs + 1))
     rank = np.arange(sorted_doc.size) - starts[sorted_doc]
@@ -77,6 +80,8 @@ def top_contributions(
 #: Above this many scored pairs in one comment, its pairs skip the pre-filter
 #: (they all go to the exact ranking) so the scratch matrix stays small.
 _WIDE = 256
+#: Up to this top_k, the k-th largest is found by k rounds of row maxima.
+_FEW_ROUNDS = 16
 
 
 def _at_least_kth(doc: np.ndarray, magnitude: np.ndarray, n_docs: int, top_k: int) -> np.ndarray | None:
@@ -92,15 +97,29 @@ def _at_least_kth(doc: np.ndarray, magnitude: np.ndarray, n_docs: int, top_k: in
     if doc.size > 1 and np.any(doc[1:] < doc[:-1]):
         order = np.argsort(doc, kind="stable")
         doc, magnitude = doc[order], magnitude[order]
-    starts = np.concatenate(([0], np.cumsum(counts)[:-1]))
+    starts = np.cumsum(counts) - counts
     rank = np.arange(doc.size) - starts[doc]
-    narrow = counts[doc] <= _WIDE
-    width = int(min(counts.max(), _WIDE))
+    widest = int(counts.max())
+    width = min(widest, _WIDE)
     scratch = np.full((n_docs, width), -1.0)
-    scratch[doc[narrow], rank[narrow]] = magnitude[narrow]
+    if widest <= _WIDE:
+        scratch[doc, rank] = magnitude
+    else:
+        narrow = counts[doc] <= _WIDE
+        scratch[doc[narrow], rank[narrow]] = magnitude[narrow]
     if width > top_k:
-        kth = np.partition(scratch, width - top_k, axis=1)[:, width - top_k]
+        if top_k <= _FEW_ROUNDS:
+            # The k-th largest per row: take the row maxima out k times
+            # (np.partition along rows pays a setup per row).
+            rows = np.arange(n_docs)
+            for _ in range(top_k):
+                at = scratch.argmax(axis=1)
+                kth = scratch[rows, at]
+                scratch[rows, at] = -1.0
+        else:
+            kth = np.partition(scratch, width - top_k, axis=1)[:, width - top_k]
+        kth[counts > _WIDE] = -1.0  # wide comments keep all their pairs
     else:
         kth = np.full(n_docs, -1.0)
-    picked = np.flatnonzero((magnitude >= kth[doc]) | ~narrow)
+    picked = np.flatnonzero(magnitude >= kth[doc])
     return picked if order is None else np.sort(order[picked])

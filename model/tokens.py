@@ -576,36 +576,56 @@ _PARAMS = {
 
 
 class _ChunkCache(dict):
-    """Whitespace chunk -> its tokens; bounded (the oldest half goes when full).
+    """Whitespace chunk -> its tokens; bounded, and only for chunks seen twice.
 
     Comments reuse the same few thousand chunks ("the", "great,", "free!"), so
     the regex work runs once per distinct chunk and a hit is a C dict lookup.
-    :attr:`short` holds the cached chunks that yield a one-character token,
-    the only ones the token-list pass (:meth:`Tokenizer._finish`) can change.
-    It may also hold evicted chunks (which only costs that pass a run) and is
+    A chunk seen for the first time waits in a smaller first-sighting table
+    and moves into the cache on its second sighting: the one-off chunks of a
+    stream (links with ids, phone numbers, typos) then never push the common
+    vocabulary out.  Either table drops its oldest half when full.
+
+    :attr:`short` holds the chunks that yield a one-character token, the only
+    ones the token-list pass (:meth:`Tokenizer._finish`) can change.  It may
+    also hold forgotten chunks (which only costs that pass a run) and is
     pruned between comments, never while one is being cut.
     """
 
-    __slots__ = ("_rewrite", "_cap", "short")
+    __slots__ = ("_rewrite", "_cap", "_once", "short")
 
     def __init__(self, rewrite, cap):
         super().__init__()
         self._rewrite = rewrite
         self._cap = cap
+        self._once: dict[str, tuple[str, ...]] = {}
         self.short: set[str] = set()
 
     def __missing__(self, chunk):
-        tokens = self._rewrite(chunk)
-        if len(self) >= self._cap:
-            for key in list(islice(self, len(self) // 2)):
-                del self[key]
-        self[chunk] = tokens
+        once = self._once
+        tokens = once.pop(chunk, None)
+        if tokens is None:
+            tokens = self._rewrite(chunk)
+            _remember(once, chunk, tokens, max(1, self._cap // 4))
+        else:
+            _remember(self, chunk, tokens, self._cap)
         if 1 in map(len, tokens):
             self.short.add(chunk)
         return tokens
 
+    def prune_short(self) -> None:
+        """Forget :attr:`short` entries of chunks neither table holds any more."""
+        self.short.intersection_update([c for c in self.short if c in self or c in self._once])
+
+
+def _remember(table: dict, key, value, cap: int) -> None:
+    if len(table) >= cap:
+        for old in list(islice(table, len(table) // 2 or 1)):
+            del table[old]
+    dict.__setitem__(table, key, value)
+
 
 _DIGITS = "0123456789"
+_DIGIT_BYTES = _DIGITS.encode()
 _SINGLE_DIGITS = frozenset(_DIGITS)
 
 
@@ -723,7 +743,10 @@ class Tokenizer:
         for text in texts:
             if text.isascii():
                 text = text.lower()
-            if any(map(text.__contains__, _DIGITS)) and hint(text):
+                digits = len(text.encode().translate(None, _DIGIT_BYTES)) != len(text)
+            else:
+                digits = any(map(text.__contains__, _DIGITS))
+            if digits and hint(text):
                 text = mark_spaced_phones(text)
             chunks = text.split()
             extend(chain.from_iterable(map(getitem, chunks)))
@@ -735,7 +758,7 @@ class Tokenizer:
             count(size - before)
             before = size
         if len(short) > _CHUNK_CACHE_SIZE:
-            short.intersection_update(cache)
+            cache.prune_short()
         return flat, counts
 
     def normalize(self, text: str) -> str:
