@@ -460,33 +460,23 @@ class EmbeddingClassifier:
 
     def _invalidate(self) -> None:
         self._scoring = None
-        self._bucket_logit = None
 
-    def _bucket_logits(self) -> dict[int, float] | None:
-        """bucket → its row's logit term, for the few-comments path (linear head only)."""
-        if getattr(self, "_bucket_logit", None) is None:
-            index, _, row_logit, _ = self._scoring_tables()
-            if row_logit is None:
-                return None
-            buckets = np.flatnonzero(index)
-            self._bucket_logit = dict(zip(buckets.tolist(), row_logit[index[buckets]].tolist()))
-        return self._bucket_logit
-
-    def _score_few(self, docs, top_k: int, table: dict[int, float]):
-        """Pure-Python scoring for a handful of comments.
+    def _score_few(self, docs, top_k: int):
+        """Plain-Python scoring for a handful of comments (linear head only).
 
         ``docs`` holds one ``(buckets, names)`` per comment: its feature
         buckets as a list of ints and an indexable naming each position.
         Same arithmetic as the vectorised path; for one comment the dozen numpy
         calls of that path cost more than the whole comment, so a single
-        comment (the latency case) is scored with plain dicts.
+        comment (the latency case) is scored with lists and one lookup of its
+        distinct buckets' logit terms.
         """
-        bias = float(self._scoring_tables()[3]["b2"][0])
+        index, _, row_logit, head = self._scoring_tables()
+        bias = float(head["b2"][0])
         l2 = self.pooling == "l2"
-        scores = np.empty(len(docs))
+        scores = []
         reasons = []
-        get = table.get
-        for i, (buckets, names) in enumerate(docs):
+        for buckets, names in docs:
             counts = Counter(buckets)  # insertion order = order of first appearance
             if l2:
                 values = counts.values()
@@ -494,13 +484,13 @@ class EmbeddingClassifier:
             else:
                 norm = float(len(buckets))
             if not norm:
-                scores[i] = bias
+                scores.append(bias)
                 reasons.append([])
                 continue
             unique = list(counts)
             weights = map(truediv, counts.values(), repeat(norm))
-            terms = list(map(mul, weights, map(get, unique, repeat(0.0))))
-            scores[i] = bias + sum(terms)
+            terms = list(map(mul, weights, row_logit[index[unique]].tolist()))
+            scores.append(bias + sum(terms))
             if top_k <= 0:
                 reasons.append([])
                 continue
@@ -508,9 +498,9 @@ class EmbeddingClassifier:
             # tokens appear.  Buckets without a row contribute 0 and are left out.
             magnitude = list(map(abs, terms))
             ranked = sorted(range(len(terms)), key=magnitude.__getitem__, reverse=True)[:top_k]
-            index = buckets.index
-            reasons.append([(names[index(unique[j])], terms[j]) for j in ranked if terms[j]])
-        return network.sigmoid(scores), reasons
+            at = buckets.index
+            reasons.append([(names[at(unique[j])], terms[j]) for j in ranked if terms[j]])
+        return network.sigmoid(np.array(scores)), reasons
 
     def _few_from_features(self, features: Features):
         """Per-comment ``(buckets, names)`` of a small :class:`Features` batch."""
@@ -575,10 +565,8 @@ class EmbeddingClassifier:
         """
         self._require_fitted("score")
         texts = self._texts(texts, "score")
-        if len(texts) <= FEW and self.hidden == 0:
-            table = self._bucket_logits()
-            if table is not None:
-                return self._score_few([self._encoder.one(t) for t in texts], top_k, table)
+        if len(texts) <= FEW and self._scoring_tables()[2] is not None:
+            return self._score_few([self._encoder.one(t) for t in texts], top_k)
         return self._score(self._features(texts), top_k)
 
     def score_features(self, feature_lists: list[list[str]], *, top_k: int = 5):
@@ -591,10 +579,8 @@ class EmbeddingClassifier:
         return self._score(self._encoder.tokens(feature_lists), top_k)
 
     def _score(self, features: Features, top_k: int):
-        if features.n <= FEW and self.hidden == 0:
-            table = self._bucket_logits()
-            if table is not None:
-                return self._score_few(self._few_from_features(features), top_k, table)
+        if features.n <= FEW and self._scoring_tables()[2] is not None:
+            return self._score_few(self._few_from_features(features), top_k)
         bag = self._bag(features)
         logits, contrib = self._logits_and_contributions(bag, top_k > 0)
         scores = network.sigmoid(logits)
