@@ -139,12 +139,11 @@ class FeatureEncoder:
         tok = self.tokenizer
         if not tok.bigrams and not tok.char_ngrams[0]:
             return self._finish(n, [hashes], [doc], FeatureNames(flat))
-        seq = self._sequence(flat, doc)
         hash_parts, doc_parts = [hashes], [doc]
         left = right = _EMPTY
-        if tok.bigrams and seq.size > 1:
-            same = doc[seq[:-1]] == doc[seq[1:]]
-            left, right = seq[:-1][same], seq[1:][same]
+        if tok.bigrams:
+            left, right = self._pairs(flat, doc)
+        if left.size:
             hash_parts.append(self.hasher.pairs(hashes[left], hashes[right]))
             doc_parts.append(doc[left])
         extra: list[str] = []
@@ -191,26 +190,39 @@ class FeatureEncoder:
         return [h & mask for h in hashes], FeatureNames(words, left, right, extra)
 
     @staticmethod
-    def _sequence(flat: list[str], doc: np.ndarray) -> np.ndarray:
-        """Flat positions of the words that pairs and n-grams run over: all but
-        the ``domain:`` token right after each ``<url>`` marker."""
+    def _pairs(flat: list[str], doc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Flat positions (left, right) of each word pair, in order.
+
+        Neighbours in the same comment pair up, except that the ``domain:``
+        token right after a ``<url>`` marker sits out: the marker pairs with
+        the word after the domain instead.
+        """
+        size = len(flat)
+        if size < 2:
+            return _EMPTY, _EMPTY
+        valid = doc[:-1] == doc[1:]
+        right = np.arange(1, size, dtype=np.int64)
         skip: list[int] = []
         find = flat.index
-        last = len(flat) - 1
         at = -1
         while True:
             try:
                 at = find("<url>", at + 1)  # a scan in C; links are few
             except ValueError:
                 break
-            if at < last and flat[at + 1].startswith(DOMAIN_PREFIX):
+            if at < size - 1 and flat[at + 1].startswith(DOMAIN_PREFIX) and doc[at] == doc[at + 1]:
                 skip.append(at + 1)
-        seq = np.arange(len(flat), dtype=np.int64)
-        if not skip:
-            return seq
-        skip_at = np.array(skip, dtype=np.int64)
-        skip_at = skip_at[doc[skip_at] == doc[skip_at - 1]]  # the marker is in the same comment
-        return np.delete(seq, skip_at)
+        if skip:
+            skipped = np.array(skip, dtype=np.int64)  # never two in a row: each follows its marker
+            marker = skipped - 1
+            valid[marker] = False
+            valid[skipped[skipped < size - 1]] = False
+            bridge = skipped + 1 < size
+            marker, after = marker[bridge], skipped[bridge] + 1
+            right[marker] = after
+            valid[marker] = doc[marker] == doc[after]
+        left = np.flatnonzero(valid)
+        return left, right[left]
 
     def tokens(self, feature_lists: list[list[str]]) -> Features:
         """Features of comments given as feature strings; ``a_b`` is the pair (a, b)."""

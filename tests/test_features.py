@@ -79,6 +79,8 @@ TEXTS = [
     "!!! ???",
     "ᴄᴀꜱɪɴᴏ саsinо fr33 freeeee $ave 1,299.99 2 3",
     "ends with a link prize.example",
+    "domain:literal.example starts the next comment",
+    "<url> domain:a.example domain:b.example then words",
 ]
 
 
