@@ -213,7 +213,7 @@ class EmbeddingClassifier:
         buckets = features.bucket
         key_type = np.int32 if n * self.buckets < 2**31 else np.int64
         shift = key_type(self.buckets.bit_length() - 1)  # buckets is a power of two
-        keys = (features.doc.astype(key_type) << shift) | buckets.astype(key_type)
+        keys = (features.doc.astype(key_type, copy=False) << shift) | buckets.astype(key_type, copy=False)
         # Group token occurrences into (comment, bucket) pairs; the earliest
         # occurrence of each pair names its bucket in an explanation.
         order = np.argsort(keys)
@@ -222,7 +222,7 @@ class EmbeddingClassifier:
         keys = sorted_keys[starts]
         first = np.minimum.reduceat(order, starts) if keys.size else order
         counts = np.diff(np.append(starts, sorted_keys.size)).astype(np.float64)
-        pair_doc = (keys >> shift).astype(np.int64)
+        pair_doc = keys >> shift
         if self.pooling == "l2":
             norm = np.sqrt(np.bincount(pair_doc, weights=counts * counts, minlength=n))
         else:
@@ -230,7 +230,7 @@ class EmbeddingClassifier:
         weight = counts / norm[pair_doc] if keys.size else counts
         indptr = np.zeros(n + 1, dtype=np.int64)
         np.cumsum(np.bincount(pair_doc, minlength=n), out=indptr[1:])
-        bucket = (keys & key_type(self.buckets - 1)).astype(np.int64)
+        bucket = keys & key_type(self.buckets - 1)
         return _Bag(n, pair_doc, bucket, weight, first, features.names, indptr)
 
     def _matrix(self, texts: list[str], seen: list | None = None, chunk: int = 8192) -> sp.csr_matrix:

@@ -92,8 +92,8 @@ class Features:
     Attributes
     ----------
     n : number of comments.
-    doc : int64 (m,), the comment of each occurrence.
-    bucket : int64 (m,), its bucket.
+    doc : int32 (m,), the comment of each occurrence.
+    bucket : int32 (m,), its bucket.
     lengths : int64 (n,), occurrences per comment.
     names : indexable, ``names[i]`` is occurrence ``i``'s token string.
     hashes : uint32 (m,), the full 32-bit hash of each occurrence.
@@ -135,7 +135,7 @@ class FeatureEncoder:
         n = len(counts)
         counts = np.array(counts, dtype=np.int64)
         hashes = self.hasher.hashes(flat)
-        doc = np.repeat(np.arange(n, dtype=np.int64), counts)
+        doc = np.repeat(np.arange(n, dtype=np.int32), counts)
         tok = self.tokenizer
         if not tok.bigrams and not tok.char_ngrams[0]:
             return self._finish(n, [hashes], [doc], FeatureNames(flat))
@@ -154,7 +154,7 @@ class FeatureEncoder:
                        for a, b in zip([0] + ends[:-1], ends)]
             extra = list(chain.from_iterable(per_doc))
             hash_parts.append(self.hasher.hashes(extra))
-            doc_parts.append(np.repeat(np.arange(n, dtype=np.int64), list(map(len, per_doc))))
+            doc_parts.append(np.repeat(np.arange(n, dtype=np.int32), list(map(len, per_doc))))
         return self._finish(n, hash_parts, doc_parts, FeatureNames(flat, left, right, extra))
 
     def one(self, text: str) -> tuple[list[int], FeatureNames]:
@@ -229,7 +229,7 @@ class FeatureEncoder:
         n = len(feature_lists)
         counts = np.fromiter(map(len, feature_lists), dtype=np.int64, count=n)
         flat = list(chain.from_iterable(feature_lists))
-        doc = np.repeat(np.arange(n, dtype=np.int64), counts)
+        doc = np.repeat(np.arange(n, dtype=np.int32), counts)
         pair_at = [i for i, t in enumerate(flat) if BIGRAM_JOINER in t]
         if not pair_at:
             hashes = self.hasher.hashes(flat)
@@ -248,6 +248,6 @@ class FeatureEncoder:
     def _finish(self, n, hash_parts, doc_parts, names) -> Features:
         hashes = hash_parts[0] if len(hash_parts) == 1 else np.concatenate(hash_parts)
         doc = doc_parts[0] if len(doc_parts) == 1 else np.concatenate(doc_parts)
-        bucket = (hashes & self._mask).astype(np.int64)
+        bucket = (hashes & self._mask).astype(np.int32)  # buckets are below 2**30
         lengths = np.bincount(doc, minlength=n).astype(np.int64) if doc.size else np.zeros(n, dtype=np.int64)
         return Features(n, doc, bucket, lengths, names, hashes)
