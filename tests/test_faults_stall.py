@@ -53,6 +53,9 @@ def test_stalled_workers_past_the_reclaim_time_write_no_duplicate_verdicts(redis
             held = 0
             for _attempt in range(200):  # freeze it at a moment when it holds a batch
                 slow.signal(signal.SIGSTOP)
+                # A commit the worker sent just before the stop still lands: look again
+                # once it has, so that only a batch nobody but a takeover can finish counts.
+                time.sleep(0.05)
                 held = consumer_pending(admin, slow.name)
                 if held:
                     break
