@@ -23,7 +23,7 @@ from operator import itemgetter
 import numpy as np
 
 from model.hashing import TokenHasher, pair_hash
-from model.tokens import BIGRAM_JOINER, DOMAIN_PREFIX, Tokenizer, char_ngrams
+from model.tokens import BIGRAM_JOINER, DOMAIN_PREFIX, Tokenizer, char_ngrams, pair_positions
 
 __all__ = ["Features", "FeatureEncoder", "FeatureNames"]
 
@@ -137,8 +137,6 @@ class FeatureEncoder:
         hashes = self.hasher.hashes(flat)
         doc = np.repeat(np.arange(n, dtype=np.int32), counts)
         tok = self.tokenizer
-        if not tok.bigrams and not tok.char_ngrams[0]:
-            return self._finish(n, [hashes], [doc], FeatureNames(flat))
         hash_parts, doc_parts = [hashes], [doc]
         left = right = _EMPTY
         if tok.bigrams:
@@ -172,9 +170,7 @@ class FeatureEncoder:
         right: list[int] = []
         extra: list[str] = []
         if tok.bigrams or tok.char_ngrams[0]:
-            seq = list(range(len(words)))
-            if "<url>" in words:
-                seq = [i for i in seq if not (i and words[i - 1] == "<url>" and words[i].startswith(DOMAIN_PREFIX))]
+            seq = pair_positions(words) if "<url>" in words else list(range(len(words)))
             if tok.bigrams and len(seq) > 1:
                 left, right = seq[:-1], seq[1:]
                 if len(left) < _FEW_PAIRS:

@@ -41,6 +41,7 @@ __all__ = [
     "squash_repeats",
     "mark_number",
     "bigrams",
+    "pair_positions",
     "char_ngrams",
     "MARKERS",
 ]
@@ -506,6 +507,19 @@ def bigrams(words: list[str]) -> list[str]:
     return list(map(BIGRAM_JOINER.join, zip(words, islice(words, 1, None))))
 
 
+def pair_positions(words: list[str]) -> list[int]:
+    """Positions of the words that bigrams run over: all but a link's domain
+    token, the ``domain:`` token right after its ``<url>`` marker.
+
+    Examples
+    --------
+    >>> pair_positions(["see", "<url>", "domain:prize.example", "now"])
+    [0, 1, 3]
+    """
+    return [i for i, w in enumerate(words)
+            if not (i and words[i - 1] == "<url>" and w.startswith(DOMAIN_PREFIX))]
+
+
 def char_ngrams(words: list[str], low: int, high: int) -> list[str]:
     """Character n-grams of each word padded as ``<word>``, prefixed ``#``.
 
@@ -806,10 +820,7 @@ class Tokenizer:
         words = self._unigrams(text)
         if not self.bigrams and self.char_ngrams[0] == 0:
             return words
-        seq = words
-        if "<url>" in words:  # a link's domain token follows its marker and sits out
-            seq = [w for i, w in enumerate(words)
-                   if not (i and words[i - 1] == "<url>" and w.startswith(DOMAIN_PREFIX))]
+        seq = words if "<url>" not in words else [words[i] for i in pair_positions(words)]
         out = list(words)
         if self.bigrams:
             out.extend(bigrams(seq))
