@@ -22,8 +22,10 @@ from operator import itemgetter
 
 import numpy as np
 
+from model.chunks import ChunkStore
 from model.hashing import TokenHasher, pair_hash
-from model.tokens import BIGRAM_JOINER, DOMAIN_PREFIX, Tokenizer, char_ngrams, pair_positions
+from model.tokens import (BIGRAM_JOINER, CHUNK_NUMERIC_END, CHUNK_NUMERIC_START, CHUNK_SEPARATOR, DOMAIN_PREFIX,
+                          MARK_DOMAIN, MARK_SINGLE, MARK_URL, Tokenizer, char_ngrams, pair_positions)
 
 __all__ = ["Features", "FeatureEncoder", "FeatureNames"]
 
@@ -77,12 +79,64 @@ class FeatureNames:
         return out.tolist()
 
 
-def _pick(items: list, positions: np.ndarray) -> list:
+def _pick(items, positions: np.ndarray) -> list:
     """``[items[i] for i in positions]`` in C (operator.itemgetter)."""
+    if isinstance(items, _Picked):
+        items, positions = items.items, items.pos[np.asarray(positions, dtype=np.int64)]
     index = positions.tolist()
+    if not index:
+        return []
     if len(index) == 1:
         return [items[index[0]]]
     return list(itemgetter(*index)(items))
+
+
+class _Picked:
+    """``items[pos[i]]`` as a read-only sequence: a batch's words, read from a
+    :class:`~model.chunks.ChunkStore` only when one is named."""
+
+    __slots__ = ("items", "pos")
+
+    def __init__(self, items: list, pos: np.ndarray):
+        self.items = items
+        self.pos = pos
+
+    def __len__(self) -> int:
+        return len(self.pos)
+
+    def __getitem__(self, i: int):
+        return self.items[self.pos[i]]
+
+
+def _word_marks(word: str) -> int:
+    """:meth:`Tokenizer.chunk_entry`'s marks of a finished word."""
+    return (MARK_SINGLE if len(word) == 1 else 0) | (MARK_URL if word == "<url>" else 0) | (
+        MARK_DOMAIN if word.startswith(DOMAIN_PREFIX) else 0)
+
+
+def _pairs(doc: np.ndarray, skip: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Flat positions (left, right) of each word pair, in order.
+
+    Neighbours in the same comment pair up, except the positions in ``skip``
+    (a ``domain:`` token right after its ``<url>`` marker, never two in a
+    row): the marker pairs with the word after the domain instead.
+    """
+    size = doc.size
+    if size < 2:
+        return _EMPTY, _EMPTY
+    valid = doc[:-1] == doc[1:]
+    right = np.arange(1, size, dtype=np.int64)
+    if skip.size:
+        skipped = skip.astype(np.int64)
+        marker = skipped - 1
+        valid[marker] = False
+        valid[skipped[skipped < size - 1]] = False
+        bridge = skipped + 1 < size
+        marker, after = marker[bridge], skipped[bridge] + 1
+        right[marker] = after
+        valid[marker] = doc[marker] == doc[after]
+    left = np.flatnonzero(valid)
+    return left, right[left]
 
 
 @dataclass
@@ -128,32 +182,87 @@ class FeatureEncoder:
         self.tokenizer = tokenizer
         self.hasher = hasher
         self._mask = np.uint32(hasher.n_buckets - 1)
+        self._store = ChunkStore(tokenizer.chunk_entry, hasher.hash_list)
 
     def texts(self, texts: list[str]) -> Features:
         """Features of raw comment texts (each a str)."""
-        flat, counts = self.tokenizer.words_many(texts)
-        n = len(counts)
-        counts = np.array(counts, dtype=np.int64)
-        hashes = self.hasher.hashes(flat)
-        doc = np.repeat(np.arange(n, dtype=np.int32), counts)
         tok = self.tokenizer
+        n = len(texts)
+        ids, chunk_doc = self._chunk_ids(texts)
+        pos, size = self._store.expand(ids)
+        doc = np.repeat(chunk_doc, size)
+        marks = self._store.marks[pos]
+        redo = self._needs_whole_pipeline(ids, chunk_doc, marks, doc)
+        if redo is not None:
+            ids, chunk_doc = self._replace(texts, redo, ids, chunk_doc)
+            pos, size = self._store.expand(ids)
+            doc = np.repeat(chunk_doc, size)
+            marks = self._store.marks[pos]
+        hashes = self._store.hashes[pos]
         hash_parts, doc_parts = [hashes], [doc]
         left = right = _EMPTY
         if tok.bigrams:
-            left, right = self._pairs(flat, doc)
+            after_url = np.flatnonzero(marks[:-1] & MARK_URL) + 1
+            skip = after_url[(marks[after_url] & MARK_DOMAIN).astype(bool) & (doc[after_url] == doc[after_url - 1])]
+            left, right = _pairs(doc, skip)
         if left.size:
             hash_parts.append(self.hasher.pairs(hashes[left], hashes[right]))
             doc_parts.append(doc[left])
+        words = _Picked(self._store.tokens, pos)
         extra: list[str] = []
         if tok.char_ngrams[0]:
             low, high = tok.char_ngrams
-            ends = np.cumsum(counts).tolist()
+            flat = _pick(words, np.arange(len(pos)))
+            ends = np.cumsum(np.bincount(doc, minlength=n)).tolist()
             per_doc = [char_ngrams(flat[a:b], low, high)  # they skip markers and domains
                        for a, b in zip([0] + ends[:-1], ends)]
             extra = list(chain.from_iterable(per_doc))
             hash_parts.append(self.hasher.hashes(extra))
             doc_parts.append(np.repeat(np.arange(n, dtype=np.int32), list(map(len, per_doc))))
-        return self._finish(n, hash_parts, doc_parts, FeatureNames(flat, left, right, extra))
+        return self._finish(n, hash_parts, doc_parts, FeatureNames(words, left, right, extra))
+
+    def _chunk_ids(self, texts: list[str]) -> tuple[np.ndarray, np.ndarray]:
+        """Store ids of the comments' chunks in order, and the comment of each."""
+        chunks, per_text = self.tokenizer.chunks_many(texts)
+        ids = self._store.lookup(chunks)
+        if per_text is not None:
+            return ids, np.repeat(np.arange(len(texts), dtype=np.int32), per_text)
+        # One separator chunk stands between two comments (it has no tokens).
+        separator = self._store.ids[CHUNK_SEPARATOR.strip(" ")]
+        return ids, np.cumsum(ids == separator, dtype=np.int32)
+
+    def _needs_whole_pipeline(self, ids, chunk_doc, marks, doc) -> np.ndarray | None:
+        """Comments whose words are not just their chunks' tokens (see
+        :meth:`Tokenizer.chunk_entry`): a possible spaced-out phone number
+        across two chunks, or three one-character tokens in a row."""
+        found = []
+        if ids.size > 1:
+            cm = self._store.chunk_marks[ids]
+            across = ((cm[:-1] & CHUNK_NUMERIC_END) & ((cm[1:] & CHUNK_NUMERIC_START) >> 1)).astype(bool)
+            across &= chunk_doc[:-1] == chunk_doc[1:]
+            if across.any():
+                found.append(chunk_doc[:-1][across])
+        if self.tokenizer.join_spaced and doc.size > 2:
+            single = (marks & MARK_SINGLE).astype(bool)
+            if np.count_nonzero(single) >= 3:
+                run = single[:-2] & single[1:-1] & single[2:] & (doc[:-2] == doc[2:])
+                if run.any():
+                    found.append(doc[:-2][run])
+        return np.unique(np.concatenate(found)) if found else None
+
+    def _replace(self, texts, redo: np.ndarray, ids: np.ndarray, chunk_doc: np.ndarray):
+        """The chunks of each comment in ``redo`` replaced by one store entry
+        that holds the tokenizer's whole-pipeline words of the comment."""
+        flat, counts = self.tokenizer.words_many([texts[d] for d in redo.tolist()])
+        ends = np.cumsum(counts).tolist()
+        entries = [self._store.add_unheld(flat[b - c:b], [_word_marks(w) for w in flat[b - c:b]])
+                   for b, c in zip(ends, counts)]
+        ids = ids.copy()
+        first = np.searchsorted(chunk_doc, redo)  # chunk_doc is sorted; each comment has a chunk
+        ids[first] = entries
+        keep = ~np.isin(chunk_doc, redo)
+        keep[first] = True
+        return ids[keep], chunk_doc[keep]
 
     def one(self, text: str) -> tuple[list[int], FeatureNames]:
         """Buckets of one comment's features as a list, and their names; no numpy.
@@ -184,41 +293,6 @@ class FeatureEncoder:
                 hashes.extend(hasher.hash_list(extra))
         mask = hasher.n_buckets - 1
         return [h & mask for h in hashes], FeatureNames(words, left, right, extra)
-
-    @staticmethod
-    def _pairs(flat: list[str], doc: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Flat positions (left, right) of each word pair, in order.
-
-        Neighbours in the same comment pair up, except that the ``domain:``
-        token right after a ``<url>`` marker sits out: the marker pairs with
-        the word after the domain instead.
-        """
-        size = len(flat)
-        if size < 2:
-            return _EMPTY, _EMPTY
-        valid = doc[:-1] == doc[1:]
-        right = np.arange(1, size, dtype=np.int64)
-        skip: list[int] = []
-        find = flat.index
-        at = -1
-        while True:
-            try:
-                at = find("<url>", at + 1)  # a scan in C; links are few
-            except ValueError:
-                break
-            if at < size - 1 and flat[at + 1].startswith(DOMAIN_PREFIX) and doc[at] == doc[at + 1]:
-                skip.append(at + 1)
-        if skip:
-            skipped = np.array(skip, dtype=np.int64)  # never two in a row: each follows its marker
-            marker = skipped - 1
-            valid[marker] = False
-            valid[skipped[skipped < size - 1]] = False
-            bridge = skipped + 1 < size
-            marker, after = marker[bridge], skipped[bridge] + 1
-            right[marker] = after
-            valid[marker] = doc[marker] == doc[after]
-        left = np.flatnonzero(valid)
-        return left, right[left]
 
     def tokens(self, feature_lists: list[list[str]]) -> Features:
         """Features of comments given as feature strings; ``a_b`` is the pair (a, b)."""

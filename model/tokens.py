@@ -24,7 +24,8 @@ from __future__ import annotations
 
 import re
 import unicodedata
-from itertools import chain, islice, repeat
+from bisect import bisect_right
+from itertools import accumulate, chain, islice, repeat
 from numbers import Integral
 
 __all__ = [
@@ -44,6 +45,12 @@ __all__ = [
     "pair_positions",
     "char_ngrams",
     "MARKERS",
+    "MARK_SINGLE",
+    "MARK_URL",
+    "MARK_DOMAIN",
+    "CHUNK_NUMERIC_END",
+    "CHUNK_NUMERIC_START",
+    "CHUNK_SEPARATOR",
 ]
 
 #: Marker tokens that stand in for a whole class of strings.
@@ -56,6 +63,20 @@ CHAR_NGRAM_PREFIX = "#"  # keeps the n-gram "win" apart from the word "win"
 # what a text turns into must bump it, so an old artifact is refused rather than
 # silently fed different tokens.
 NORMALIZATION_VERSION = 1
+
+#: Bit marks of a token in :meth:`Tokenizer.chunk_entry`: it was one character
+#: before the token-list pass (which only looks at those), it is the ``<url>``
+#: marker, it is a ``domain:`` token.
+MARK_SINGLE, MARK_URL, MARK_DOMAIN = 1, 2, 4
+#: Chunk marks of :meth:`Tokenizer.chunk_entry`: the chunk may end, or start,
+#: a phone number written with spaces.
+CHUNK_NUMERIC_END, CHUNK_NUMERIC_START = 1, 2
+#: Stands between two comments in a joined batch (:meth:`Tokenizer.chunks_many`):
+#: a chunk of its own, which turns into no token ("\\x00" is a control character).
+CHUNK_SEPARATOR = " \x00 "
+
+# t[:7] is "<url>" only for the marker itself, and "domain:" for every domain token.
+_PREFIX_MARKS = {"<url>": MARK_URL, DOMAIN_PREFIX: MARK_DOMAIN}
 
 _CHUNK_CACHE_SIZE = 1 << 16  # distinct whitespace chunks remembered per tokenizer; bounded
 
@@ -307,9 +328,15 @@ def fold_text(text: str, *, homoglyphs: bool = True, accents: bool = True) -> st
     return unicodedata.normalize("NFC", text.casefold())
 
 
+_HOST_END_RE = re.compile(r"[/?#\\]")
+_NOT_IN_LINK_RE = re.compile("[<>\"'`]")  # what ends a link in mark_specials' pattern, besides whitespace
+
+
 def _link_host(url: str) -> str:
-    rest = url.split("://", 1)[1] if "://" in url else url
-    host = re.split(r"[/?#\\]", rest, maxsplit=1)[0]
+    rest = url.partition("://")[2] if "://" in url else url
+    host = rest.split("/", 1)[0]
+    if "?" in host or "#" in host or "\\" in host:
+        host = _HOST_END_RE.split(host, 1)[0]
     host = host.rpartition("@")[2]
     if host.startswith("["):  # IPv6 literal
         host = host.partition("]")[0] + "]"
@@ -381,6 +408,30 @@ def _special(match: re.Match) -> str:
     stripped = text.rstrip(_TRAILING_PUNCT)
     host = _link_host(stripped)
     return f" <url> {DOMAIN_PREFIX}{host} " if host else " <url> "
+
+
+_LINK_STARTS = ("http://", "https://", "ftp://", "ftps://", "www.")
+
+
+def _whole_link(chunk: str) -> tuple[str, ...] | None:
+    """The tokens of a folded chunk that is one link and nothing else, exactly
+    as :func:`mark_specials` and :func:`word_tokens` would cut it; None when
+    the chunk is not that simple (then the regular expressions decide).
+
+    A stream's links mostly differ only in their paths, so most are chunks
+    seen once; this skips the regular expressions for them.
+
+    Examples
+    --------
+    >>> _whole_link("https://www.prize.example/claim?id=77"), _whole_link("www.a_b.example")
+    (('<url>', 'domain:prize.example'), None)
+    """
+    if chunk in _LINK_STARTS or not (chunk.isascii() and chunk.isprintable()) or _NOT_IN_LINK_RE.search(chunk):
+        return None  # a bare prefix is no link; the others are cut by the regexes
+    host = _link_host(chunk.rstrip(_TRAILING_PUNCT))
+    if "_" in host:  # word_tokens would split the domain token at it
+        return None
+    return ("<url>", DOMAIN_PREFIX + host) if host else ("<url>",)
 
 
 def mark_specials(text: str) -> str:
@@ -643,6 +694,29 @@ _DIGIT_BYTES = _DIGITS.encode()
 _SINGLE_DIGITS = frozenset(_DIGITS)
 
 
+def _mark_phones_if_hinted(text: str) -> str:
+    """:func:`mark_spaced_phones` for a text that has an ASCII digit and a hint of one."""
+    if text.isascii():
+        digits = len(text.encode().translate(None, _DIGIT_BYTES)) != len(text)
+    else:
+        digits = any(map(text.__contains__, _DIGITS))
+    return mark_spaced_phones(text) if digits and _SPACED_PHONE_HINT_RE.search(text) else text
+
+
+def _chunk_marks(chunk: str) -> int:
+    """Whether a chunk may end or start a phone number written with spaces:
+    supersets of where the hint ``_SPACED_PHONE_HINT_RE`` can end and start
+    (``str.isdigit`` covers the regular expressions' digits)."""
+    if not chunk:
+        return 0
+    last = chunk[-1]
+    end = CHUNK_NUMERIC_END if last.isdigit() or last in "().-" else 0
+    return end | (CHUNK_NUMERIC_START if chunk[0].isdigit() or chunk[0] == "(" else 0)
+
+
+_LINK_MARKS = ([MARK_URL], [MARK_URL, MARK_DOMAIN])
+
+
 class Tokenizer:
     """Normalize comments and turn them into hashed-model features.
 
@@ -723,6 +797,10 @@ class Tokenizer:
         folded = fold_text(chunk, homoglyphs=self.homoglyphs, accents=self.accents)
         if folded.isalpha() and folded.isascii():
             return (squash_repeats(folded) if self.squash_repeats else folded,)
+        if folded.startswith(_LINK_STARTS):
+            link = _whole_link(folded)
+            if link is not None:
+                return link
         return tuple(map(self._rewrite_word, word_tokens(mark_specials(folded))))
 
     def _finish(self, tokens: list[str]) -> list[str]:
@@ -738,6 +816,56 @@ class Tokenizer:
             return tokens
         return ["<num>" if t in _SINGLE_DIGITS else t for t in tokens]
 
+    def chunk_entry(self, chunk: str) -> tuple[tuple[str, ...], list[int], int]:
+        """One whitespace chunk's tokens as they stand when no pass across
+        chunks changes them, a bit mark per token, and the chunk's own marks.
+
+        The token marks are :data:`MARK_SINGLE` (one character before the
+        token-list pass), :data:`MARK_URL` and :data:`MARK_DOMAIN`; the chunk
+        marks :data:`CHUNK_NUMERIC_END` and :data:`CHUNK_NUMERIC_START` tell
+        where a spaced-out phone number could run across it.  A comment's
+        :meth:`words` are exactly the concatenation of its chunks' tokens
+        (chunks as :meth:`chunks_many` cuts them) unless
+
+        - two neighbouring chunks, the first marked numeric at its end and the
+          second at its start, may be one spaced-out phone number, or
+        - three one-character tokens stand in a row (a spaced-out word);
+
+        such a comment needs the whole pipeline (:meth:`words_many`).
+
+        Examples
+        --------
+        >>> Tokenizer().chunk_entry("5x,7")
+        (('5x', '<num>'), [0, 1], 3)
+        """
+        if chunk.startswith(_LINK_STARTS):  # the common one-off chunk: a link with an id
+            link = _whole_link(chunk)  # the same for the chunk and its folded form (ASCII)
+            if link is not None:
+                return link, _LINK_MARKS[len(link) - 1], _chunk_marks(chunk)
+        raw = self._rewrite_chunk(chunk)
+        marks = [MARK_SINGLE if len(t) == 1 else _PREFIX_MARKS.get(t[:7], 0) for t in raw]
+        if not _SINGLE_DIGITS.isdisjoint(raw):
+            raw = tuple("<num>" if t in _SINGLE_DIGITS else t for t in raw)
+        return raw, marks, _chunk_marks(chunk)
+
+    def chunks_many(self, texts: list[str]) -> tuple[list[str], list[int] | None]:
+        """The whitespace chunks of many comments, as :meth:`words_many` cuts
+        them before any pass across chunks (ASCII comments lowercased).
+
+        Returns the chunks of all comments in one flat list, and how many each
+        comment has; or, when no comment holds :data:`CHUNK_SEPARATOR`, the
+        chunks with one separator chunk between every two comments, and None
+        (one split of the joined batch, the fast way).
+        """
+        if all(map(str.isascii, texts)):
+            joined = CHUNK_SEPARATOR.join(texts).lower()
+        else:
+            joined = CHUNK_SEPARATOR.join([t.lower() if t.isascii() else t for t in texts])
+        if joined.count(CHUNK_SEPARATOR[1]) == max(0, len(texts) - 1):
+            return joined.split(), None
+        lists = [(t.lower() if t.isascii() else t).split() for t in texts]
+        return list(chain.from_iterable(lists)), list(map(len, lists))
+
     def _unigrams(self, text: str) -> list[str]:
         return self.words_many((text,))[0]
 
@@ -751,18 +879,11 @@ class Tokenizer:
         extend, count = flat.extend, counts.append
         cache = self._chunks
         getitem, short = cache.__getitem__, cache.short
-        hint = _SPACED_PHONE_HINT_RE.search
+        prepare = _mark_phones_if_hinted
         finish = self._finish
         before = 0
         for text in texts:
-            if text.isascii():
-                text = text.lower()
-                digits = len(text.encode().translate(None, _DIGIT_BYTES)) != len(text)
-            else:
-                digits = any(map(text.__contains__, _DIGITS))
-            if digits and hint(text):
-                text = mark_spaced_phones(text)
-            chunks = text.split()
+            chunks = prepare(text.lower() if text.isascii() else text).split()
             extend(chain.from_iterable(map(getitem, chunks)))
             if not short.isdisjoint(chunks):  # checked after the lookups, which may add to it
                 tokens = flat[before:]

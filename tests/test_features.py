@@ -13,6 +13,7 @@ from sklearn.utils import murmurhash3_32
 
 import model.explain
 import model.features
+import model.tokens
 from model import artifact
 from model.classifier import FEW, EmbeddingClassifier
 from model.errors import ArtifactError
@@ -81,6 +82,14 @@ TEXTS = [
     "ends with a link prize.example",
     "domain:literal.example starts the next comment",
     "<url> domain:a.example domain:b.example then words",
+    # Cases for the chunk store: passes across chunks, the separator, links cut without the regexes.
+    "call 555 010 9999 now, or (555) 010-9999; dates 2024-05-01 3 4",
+    "tabs\t5\t6 7 and  double  8  9 spaces",
+    "f r 3 3 s p i n s and 1 2 3",
+    "a nul\x00inside, and a lone \x00 chunk",
+    "HTTPS://Prize.Example/a). www.a_b.example/x http:// www. https://x.example/<b> ftp://files.example:21/",
+    "ПРИВЕТ HTTPS://WWW.Prize.Example/Ok 5 5 5",
+    "https://user@host.example:8080/p?q=1#f https://[::1]/x www.prize.example.",
 ]
 
 
@@ -99,7 +108,8 @@ def _check_same(enc: FeatureEncoder, tok: Tokenizer, texts: list[str]) -> None:
     assert batch.lengths.tolist() == [len(tok.features(t)) for t in texts]
 
 
-@pytest.mark.parametrize("params", [{}, {"bigrams": False}, {"char_ngrams": (3, 5)}], ids=["default", "no-bigrams", "char-ngrams"])
+@pytest.mark.parametrize("params", [{}, {"bigrams": False}, {"char_ngrams": (3, 5)}, {"join_spaced": False}],
+                         ids=["default", "no-bigrams", "char-ngrams", "no-join-spaced"])
 def test_text_path_equals_feature_string_path(params):
     tok = Tokenizer(**params)
     enc = FeatureEncoder(tok, TokenHasher(n_buckets=2**18, seed=3))
@@ -113,6 +123,37 @@ def test_text_path_equals_feature_string_path(params):
 def test_text_path_equals_feature_string_path_on_any_text(texts):
     tok = Tokenizer()
     _check_same(FeatureEncoder(tok, TokenHasher(n_buckets=2**12)), tok, texts)
+
+
+def test_text_path_stays_equal_while_the_chunk_store_sheds_entries():
+    # A tiny store sheds its least used half again and again between batches;
+    # features of earlier batches keep naming their tokens.
+    tok = Tokenizer()
+    enc = FeatureEncoder(tok, TokenHasher(n_buckets=2**14))
+    enc._store.cap = 16
+    rng = np.random.default_rng(0)
+    words = ["win", "free", "casino", "the", "notes", "https://p.example/1", "555", "a", "5", "c a s h"]
+    kept = []
+    for _ in range(30):
+        texts = [" ".join(rng.choice(words, size=rng.integers(0, 12))) for _ in range(rng.integers(1, 6))]
+        _check_same(enc, tok, texts)
+        kept.append((enc.texts(texts), texts))
+        assert len(enc._store) <= 16 + sum(len(t.split()) for t in texts) + len(texts)
+    for batch, texts in kept:
+        for i, text in enumerate(texts):
+            assert batch.names.take(np.flatnonzero(batch.doc == i)) == tok.features(text)
+
+
+def test_whole_link_chunks_equal_the_regex_route():
+    # Links with a scheme or www. skip the regular expressions; the result must not differ.
+    tok = Tokenizer()
+    chunks = ["https://www.prize.example/claim?id=77", "http://a.example).", "www.x", "www.", "https://",
+              "https://a.example/<b>", "https://a_b.example", "ftps://h.example:990/f", "https://u:p@h.example/",
+              "https://[2001:db8::1]:443/x", "www.prize.example.", "https://h.example/\x01", "https://é.example"]
+    for chunk in chunks:
+        folded = model.tokens.fold_text(chunk)
+        slow = tuple(map(tok._rewrite_word, model.tokens.word_tokens(model.tokens.mark_specials(folded))))
+        assert tok._rewrite_chunk(chunk) == slow, chunk
 
 
 def test_names_take_matches_indexing():
