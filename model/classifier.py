@@ -215,12 +215,18 @@ class EmbeddingClassifier:
         shift = key_type(self.buckets.bit_length() - 1)  # buckets is a power of two
         keys = (features.doc.astype(key_type, copy=False) << shift) | buckets.astype(key_type, copy=False)
         # Group token occurrences into (comment, bucket) pairs; the earliest
-        # occurrence of each pair names its bucket in an explanation.
-        order = np.argsort(keys)
+        # occurrence of each pair names its bucket in an explanation.  A stable
+        # sort puts it first in its run (and beats quicksort here: the keys come
+        # in two runs already sorted by comment, words then pairs).
+        order = np.argsort(keys, kind="stable")
         sorted_keys = keys[order]
-        starts = np.flatnonzero(np.concatenate(([True], sorted_keys[1:] != sorted_keys[:-1]))) if keys.size else order
+        edge = np.empty(sorted_keys.size, dtype=bool)
+        if sorted_keys.size:
+            edge[0] = True
+            np.not_equal(sorted_keys[1:], sorted_keys[:-1], out=edge[1:])
+        starts = np.flatnonzero(edge)
         keys = sorted_keys[starts]
-        first = np.minimum.reduceat(order, starts) if keys.size else order
+        first = order[starts]
         counts = np.diff(np.append(starts, sorted_keys.size)).astype(np.float64)
         pair_doc = keys >> shift
         if self.pooling == "l2":
@@ -471,7 +477,7 @@ class EmbeddingClassifier:
         comment (the latency case) is scored with lists and one lookup of its
         distinct buckets' logit terms.
         """
-        index, _, row_logit, head = self._scoring_tables()
+        _, _, _, head, bucket_logit = self._scoring_tables()
         bias = float(head["b2"][0])
         l2 = self.pooling == "l2"
         scores = []
@@ -489,7 +495,7 @@ class EmbeddingClassifier:
                 continue
             unique = list(counts)
             weights = map(truediv, counts.values(), repeat(norm))
-            terms = list(map(mul, weights, row_logit[index[unique]].tolist()))
+            terms = list(map(mul, weights, bucket_logit[unique].tolist()))
             scores.append(bias + sum(terms))
             if top_k <= 0:
                 reasons.append([])
@@ -514,7 +520,9 @@ class EmbeddingClassifier:
         return out
 
     def _scoring_tables(self):
-        """Compact scoring tables: bucket → row index (0 = no row), rows, per-row linear logit."""
+        """Compact scoring tables: bucket → row index (0 = no row), rows, per-row
+        linear logit, the head, and with a linear head bucket → logit term
+        (one gather instead of two on the hot paths)."""
         if self._scoring is None:
             if getattr(self, "_weights", None) is not None:
                 rows = np.flatnonzero(self._touched)
@@ -527,16 +535,17 @@ class EmbeddingClassifier:
             table = np.zeros((rows.size + 1, self.dim_), dtype=np.float32)
             table[1:] = values
             row_logit = table @ head["w2"] if "w1" not in head else None
-            self._scoring = (index, table, row_logit, {k: v.copy() for k, v in head.items()})
+            bucket_logit = row_logit[index] if row_logit is not None else None
+            self._scoring = (index, table, row_logit, {k: v.copy() for k, v in head.items()}, bucket_logit)
         return self._scoring
 
     def _logits_and_contributions(self, bag: _Bag, want_contributions: bool):
-        index, table, row_logit, head = self._scoring_tables()
-        rows = index[bag.bucket]
+        index, table, row_logit, head, bucket_logit = self._scoring_tables()
         if row_logit is not None:
-            contrib = bag.weight * row_logit[rows]
+            contrib = bag.weight * bucket_logit[bag.bucket]
             logits = np.bincount(bag.doc, weights=contrib, minlength=bag.n) + float(head["b2"][0])
             return logits, contrib
+        rows = index[bag.bucket]
         local = sp.csr_matrix((bag.weight.astype(np.float32), rows, bag.indptr), shape=(bag.n, table.shape[0]))
         h = np.asarray(local @ table, dtype=np.float32)
         logits, _ = network.head_forward(h, head)
@@ -623,7 +632,7 @@ class EmbeddingClassifier:
             # (re-quantizing dequantized values need not give the same bytes).
             arrays = self._stored_arrays
         else:
-            index, table, _, head = self._scoring_tables()
+            index, table, _, head, _ = self._scoring_tables()
             rows = np.flatnonzero(index)
             q, scale, zero = artifact.quantize(table[1:], self.quant_block)
             arrays = {
