@@ -67,6 +67,12 @@ class _Column:
         return self.data[:self.n]
 
 
+def _entry_tuple(tokens, hashes, marks) -> tuple:
+    """``(tokens, hashes, singles)``: ``singles`` has one byte per token, 1 where
+    the token was one character (:data:`model.tokens.MARK_SINGLE`), else 0."""
+    return tuple(tokens), tuple(hashes), bytes(m & 1 for m in marks)
+
+
 class ChunkStore:
     """Ids for whitespace chunks, and each chunk's tokens as flat columns.
 
@@ -107,6 +113,7 @@ class ChunkStore:
         self.ids.update(zip(chunks, range(len(chunks))))
         self._chunk = list(chunks)
         self.tokens = list(tokens)  # a new list: names of earlier batches keep the old one
+        self.entries: list[tuple] = []  # per id: (tokens, hashes, lengths) as Python objects, for one comment
         sizes = np.asarray(sizes, dtype=np.int64)
         starts = np.cumsum(sizes) - sizes
         self._start = _Column(np.int64, starts)
@@ -120,6 +127,12 @@ class ChunkStore:
         self._new_hash: list[int] = []
         self._new_mark: list[int] = []
         self._new_chunk_mark: list[int] = []
+        at = 0
+        hashes = np.asarray(hashes).tolist()
+        marks = np.asarray(marks).tolist()
+        for size in sizes.tolist():
+            self.entries.append(_entry_tuple(self.tokens[at:at + size], hashes[at:at + size], marks[at:at + size]))
+            at += size
 
     def __len__(self) -> int:
         """How many chunks the lookup table holds."""
@@ -155,8 +168,10 @@ class ChunkStore:
         self._new_start.append(len(self.tokens))
         self._new_size.append(len(tokens))
         self.tokens.extend(tokens)
-        self._new_hash.extend(self._hash_list(tokens))
+        hashes = self._hash_list(tokens)
+        self._new_hash.extend(hashes)
         self._new_mark.extend(marks)
+        self.entries.append(_entry_tuple(tokens, hashes, marks))
         self._new_chunk_mark.append(chunk_marks)
         return at
 
@@ -179,10 +194,15 @@ class ChunkStore:
 
     # -- the batch path --------------------------------------------------------
 
+    def fit_cap(self) -> None:
+        """Shed the least used half if the store is over its bounds (ids change)."""
+        if len(self._chunk) > self.cap or len(self.tokens) > 4 * self.cap:
+            self._flush()
+            self._shrink()
+
     def lookup(self, chunks: list[str]) -> np.ndarray:
         """int32 ids of ``chunks``, adding the ones not held yet."""
-        if len(self._chunk) > self.cap or len(self.tokens) > 4 * self.cap:
-            self._shrink()
+        self.fit_cap()
         ids = np.fromiter(map(self.ids.__getitem__, chunks), dtype=np.int32, count=len(chunks))
         self._flush()
         hits = self._hits.view()

@@ -271,10 +271,17 @@ class FeatureEncoder:
         comment; for a handful of comments plain Python is faster than a
         dozen numpy calls on tiny arrays.
         """
-        words, _ = self.tokenizer.words_many((text,))
-        hasher = self.hasher
-        hashes = hasher.hash_list(words)
         tok = self.tokenizer
+        hasher = self.hasher
+        store = self._store
+        store.fit_cap()
+        entries = list(map(store.entries.__getitem__, map(store.ids.__getitem__, tok.prepare(text).split())))
+        words = list(chain.from_iterable(map(itemgetter(0), entries)))
+        if tok.join_spaced and b"\x01\x01\x01" in b"".join(map(itemgetter(2), entries)):
+            words, _ = tok.words_many((text,))  # a possible spaced-out word: the token-list pass decides
+            hashes = hasher.hash_list(words)
+        else:
+            hashes = list(chain.from_iterable(map(itemgetter(1), entries)))
         left: list[int] = []
         right: list[int] = []
         extra: list[str] = []

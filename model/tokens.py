@@ -866,6 +866,12 @@ class Tokenizer:
         lists = [(t.lower() if t.isascii() else t).split() for t in texts]
         return list(chain.from_iterable(lists)), list(map(len, lists))
 
+    @staticmethod
+    def prepare(text: str) -> str:
+        """One comment as :meth:`words_many` splits it: lowercased if ASCII,
+        spaced-out phone numbers marked."""
+        return _mark_phones_if_hinted(text.lower() if text.isascii() else text)
+
     def _unigrams(self, text: str) -> list[str]:
         return self.words_many((text,))[0]
 
@@ -879,11 +885,11 @@ class Tokenizer:
         extend, count = flat.extend, counts.append
         cache = self._chunks
         getitem, short = cache.__getitem__, cache.short
-        prepare = _mark_phones_if_hinted
+        prepare = self.prepare
         finish = self._finish
         before = 0
         for text in texts:
-            chunks = prepare(text.lower() if text.isascii() else text).split()
+            chunks = prepare(text).split()
             extend(chain.from_iterable(map(getitem, chunks)))
             if not short.isdisjoint(chunks):  # checked after the lookups, which may add to it
                 tokens = flat[before:]
