@@ -61,22 +61,25 @@ class FeatureNames:
     def take(self, positions: np.ndarray) -> list[str]:
         """``[self[i] for i in positions]``, without a Python call per position."""
         positions = np.asarray(positions, dtype=np.int64)
-        out = np.empty(positions.size, dtype=object)
         n_words, n_pairs = len(self.words), len(self.left)
         kind = (positions >= n_words).astype(np.int8) + (positions >= n_words + n_pairs)
-        at = np.flatnonzero(kind == 0)
-        if at.size:
-            out[at] = _pick(self.words, positions[at])
-        at = np.flatnonzero(kind == 1)
-        if at.size:
-            offset = positions[at] - n_words
-            lefts = _pick(self.words, np.asarray(self.left)[offset])
-            rights = _pick(self.words, np.asarray(self.right)[offset])
-            out[at] = list(map(BIGRAM_JOINER.join, zip(lefts, rights)))
-        at = np.flatnonzero(kind == 2)
-        if at.size:
-            out[at] = _pick(self.extra, positions[at] - n_words - n_pairs)
-        return out.tolist()
+        parts: list[str] = []
+        where = np.empty(positions.size, dtype=np.int64)  # position of each answer in ``parts``
+        for k in range(3):
+            at = np.flatnonzero(kind == k)
+            if not at.size:
+                continue
+            where[at] = np.arange(len(parts), len(parts) + at.size)
+            if k == 0:
+                parts.extend(_pick(self.words, positions[at]))
+            elif k == 1:
+                offset = positions[at] - n_words
+                lefts = _pick(self.words, np.asarray(self.left)[offset])
+                rights = _pick(self.words, np.asarray(self.right)[offset])
+                parts.extend(map(BIGRAM_JOINER.join, zip(lefts, rights)))
+            else:
+                parts.extend(_pick(self.extra, positions[at] - n_words - n_pairs))
+        return _pick(parts, where)
 
 
 def _pick(items, positions: np.ndarray) -> list:
