@@ -84,6 +84,10 @@ class ChunkStore:
         chunk's own.
     hash_list : callable
         ``hash_list(tokens) -> list[int]``: the full 32-bit hash of each token.
+    alias : callable, optional
+        ``alias(chunk) -> key or None``: a key with the same entry as the
+        chunk (a string that is never a chunk); many one-off chunks then share
+        one held entry.
     cap : int
         Chunks held before the least used half is dropped.
     max_tokens : int
@@ -98,8 +102,10 @@ class ChunkStore:
     (['a', 'bb', 'ccc', 'a', 'bb'], [2, 1, 2], [1, 2, 3, 1, 2])
     """
 
-    def __init__(self, entry: Callable, hash_list: Callable, *, cap: int = 1 << 16, max_tokens: int = 64):
+    def __init__(self, entry: Callable, hash_list: Callable, *, alias: Callable | None = None,
+                 cap: int = 1 << 16, max_tokens: int = 64):
         self._entry = entry
+        self._alias = alias
         self._hash_list = hash_list
         self.cap = int(cap)
         self._max_tokens = int(max_tokens)
@@ -156,6 +162,10 @@ class ChunkStore:
     # -- adding ----------------------------------------------------------------
 
     def _add(self, chunk: str) -> int:
+        if self._alias is not None:
+            alias = self._alias(chunk)
+            if alias is not None:  # shares an entry; the chunk itself is not held
+                return self.ids[alias]
         tokens, marks, chunk_marks = self._entry(chunk)
         held = len(tokens) <= self._max_tokens and len(chunk) <= _MAX_KEY_CHARS
         return self._append(tokens, marks, chunk_marks, chunk if held else None)

@@ -185,7 +185,7 @@ class FeatureEncoder:
         self.tokenizer = tokenizer
         self.hasher = hasher
         self._mask = np.uint32(hasher.n_buckets - 1)
-        self._store = ChunkStore(tokenizer.chunk_entry, hasher.hash_list)
+        self._store = ChunkStore(tokenizer.chunk_entry, hasher.hash_list, alias=tokenizer.chunk_alias)
 
     def texts(self, texts: list[str]) -> Features:
         """Features of raw comment texts (each a str)."""

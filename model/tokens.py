@@ -410,7 +410,8 @@ def _special(match: re.Match) -> str:
     return f" <url> {DOMAIN_PREFIX}{host} " if host else " <url> "
 
 
-_LINK_STARTS = ("http://", "https://", "ftp://", "ftps://", "www.")
+_SCHEMES = ("http://", "https://", "ftp://", "ftps://")
+_LINK_STARTS = _SCHEMES + ("www.",)
 
 
 def _whole_link(chunk: str) -> tuple[str, ...] | None:
@@ -838,6 +839,9 @@ class Tokenizer:
         >>> Tokenizer().chunk_entry("5x,7")
         (('5x', '<num>'), [0, 1], 3)
         """
+        if " " in chunk:  # a key of chunk_alias: the link's host part and the chunk marks
+            link, marks = chunk.rsplit(" ", 1)
+            return _whole_link(link), _LINK_MARKS[1], int(marks)
         if chunk.startswith(_LINK_STARTS):  # the common one-off chunk: a link with an id
             link = _whole_link(chunk)  # the same for the chunk and its folded form (ASCII)
             if link is not None:
@@ -847,6 +851,33 @@ class Tokenizer:
         if not _SINGLE_DIGITS.isdisjoint(raw):
             raw = tuple("<num>" if t in _SINGLE_DIGITS else t for t in raw)
         return raw, marks, _chunk_marks(chunk)
+
+    @staticmethod
+    def chunk_alias(chunk: str) -> str | None:
+        """A key whose :meth:`chunk_entry` equals this chunk's, shared by every
+        link to the same host with the same chunk marks, or None.
+
+        Links with a scheme that differ only after the host (``/claim?id=77``)
+        have the same tokens, so a store can hold one entry for all of them
+        instead of one per link.  The key holds a space, so it is never a
+        chunk itself.
+
+        Examples
+        --------
+        >>> Tokenizer.chunk_alias("https://prize.example/claim/77"), Tokenizer.chunk_alias("casino")
+        ('https://prize.example 1', None)
+        """
+        if not chunk.startswith(_SCHEMES):
+            return None
+        start = chunk.index("://") + 3
+        end = chunk.find("/", start)
+        # A host must be there, end in no character that rstrip would take, and
+        # hold no "_" (which word_tokens would split it at).
+        if end <= start or chunk[end - 1] in _TRAILING_PUNCT or "_" in chunk[:end]:
+            return None
+        if not (chunk.isascii() and chunk.isprintable()) or _NOT_IN_LINK_RE.search(chunk):
+            return None
+        return f"{chunk[:end]} {_chunk_marks(chunk)}"
 
     def chunks_many(self, texts: list[str]) -> tuple[list[str], list[int] | None]:
         """The whitespace chunks of many comments, as :meth:`words_many` cuts

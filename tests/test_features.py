@@ -156,6 +156,24 @@ def test_whole_link_chunks_equal_the_regex_route():
         assert tok._rewrite_chunk(chunk) == slow, chunk
 
 
+def test_links_to_one_host_share_an_entry_with_the_same_tokens():
+    tok = Tokenizer()
+    chunks = ["https://prize.example/claim?id=77", "https://prize.example/1234", "http://a.example).x/",
+              "https://prize.example./x", "https://Prize.Example/Up", "ftp://h.example:21/f", "https:///x",
+              "https://a_b.example/x", "https://u@h.example/x", "https://h.example?q=/x", "https://h.example/<b>"]
+    shared = 0
+    for chunk in chunks:
+        alias = tok.chunk_alias(chunk)
+        if alias is not None:
+            shared += 1
+            assert tok.chunk_entry(alias) == tok.chunk_entry(chunk), chunk
+    assert shared >= 6
+    enc = FeatureEncoder(tok, TokenHasher())
+    before = len(enc._store)
+    _check_same(enc, tok, [" ".join(chunks), "see https://prize.example/9 555 010 9999 now"])
+    assert len(enc._store) - before < len(chunks) + 8
+
+
 def test_names_take_matches_indexing():
     names = FeatureNames(["free", "casino", "now"], np.array([0, 1]), np.array([1, 2]), ["#fre"])
     every = list(range(len(names)))
