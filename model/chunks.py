@@ -30,6 +30,12 @@ __all__ = ["ChunkStore"]
 _MAX_KEY_CHARS = 200
 
 
+def _take(items: list, positions: np.ndarray) -> list:
+    """``[items[i] for i in positions]`` in C."""
+    index = positions.tolist()
+    return [items[i] for i in index] if len(index) < 2 else list(itemgetter(*index)(items))
+
+
 class _Ids(dict):
     """chunk -> id; a chunk not yet held is added on first lookup."""
 
@@ -239,7 +245,5 @@ class ChunkStore:
             top = np.argpartition(-hits.astype(np.int64), self.cap // 2)[: self.cap // 2]
             keep = np.sort(held[top])
         pos, sizes = self.expand(keep)
-        tokens = list(itemgetter(*pos.tolist())(self.tokens)) if pos.size > 1 else [self.tokens[p] for p in pos.tolist()]
-        chunks = list(itemgetter(*keep.tolist())(self._chunk)) if keep.size > 1 else [self._chunk[k] for k in keep.tolist()]
-        self._rebuild(chunks, tokens, sizes, self._hash.view()[pos], self._mark.view()[pos],
+        self._rebuild(_take(self._chunk, keep), _take(self.tokens, pos), sizes, self._hash.view()[pos], self._mark.view()[pos],
                       self._chunk_mark.view()[keep], self._hits.view()[keep] // 2)

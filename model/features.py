@@ -24,8 +24,8 @@ import numpy as np
 
 from model.chunks import ChunkStore
 from model.hashing import TokenHasher, pair_hash
-from model.tokens import (BIGRAM_JOINER, CHUNK_NUMERIC_END, CHUNK_NUMERIC_START, CHUNK_SEPARATOR, DOMAIN_PREFIX,
-                          MARK_DOMAIN, MARK_SINGLE, MARK_URL, Tokenizer, char_ngrams, pair_positions)
+from model.tokens import (BIGRAM_JOINER, CHUNK_NUMERIC_END, CHUNK_NUMERIC_START, CHUNK_SEPARATOR, MARK_DOMAIN,
+                          MARK_SINGLE, MARK_URL, Tokenizer, char_ngrams, pair_positions, token_marks)
 
 __all__ = ["Features", "FeatureEncoder", "FeatureNames"]
 
@@ -111,12 +111,6 @@ class _Picked:
         return self.items[self.pos[i]]
 
 
-def _word_marks(word: str) -> int:
-    """:meth:`Tokenizer.chunk_entry`'s marks of a finished word."""
-    return (MARK_SINGLE if len(word) == 1 else 0) | (MARK_URL if word == "<url>" else 0) | (
-        MARK_DOMAIN if word.startswith(DOMAIN_PREFIX) else 0)
-
-
 def _pairs(doc: np.ndarray, skip: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Flat positions (left, right) of each word pair, in order.
 
@@ -192,15 +186,10 @@ class FeatureEncoder:
         tok = self.tokenizer
         n = len(texts)
         ids, chunk_doc = self._chunk_ids(texts)
-        pos, size = self._store.expand(ids)
-        doc = np.repeat(chunk_doc, size)
-        marks = self._store.marks[pos]
+        pos, doc, marks = self._tokens_of(ids, chunk_doc)
         redo = self._needs_whole_pipeline(ids, chunk_doc, marks, doc)
         if redo is not None:
-            ids, chunk_doc = self._replace(texts, redo, ids, chunk_doc)
-            pos, size = self._store.expand(ids)
-            doc = np.repeat(chunk_doc, size)
-            marks = self._store.marks[pos]
+            pos, doc, marks = self._tokens_of(*self._replace(texts, redo, ids, chunk_doc))
         hashes = self._store.hashes[pos]
         hash_parts, doc_parts = [hashes], [doc]
         left = right = _EMPTY
@@ -234,6 +223,11 @@ class FeatureEncoder:
         separator = self._store.ids[CHUNK_SEPARATOR.strip(" ")]
         return ids, np.cumsum(ids == separator, dtype=np.int32)
 
+    def _tokens_of(self, ids: np.ndarray, chunk_doc: np.ndarray):
+        """Store positions of the chunks' tokens, each token's comment, and its marks."""
+        pos, size = self._store.expand(ids)
+        return pos, np.repeat(chunk_doc, size), self._store.marks[pos]
+
     def _needs_whole_pipeline(self, ids, chunk_doc, marks, doc) -> np.ndarray | None:
         """Comments whose words are not just their chunks' tokens (see
         :meth:`Tokenizer.chunk_entry`): a possible spaced-out phone number
@@ -258,8 +252,7 @@ class FeatureEncoder:
         that holds the tokenizer's whole-pipeline words of the comment."""
         flat, counts = self.tokenizer.words_many([texts[d] for d in redo.tolist()])
         ends = np.cumsum(counts).tolist()
-        entries = [self._store.add_unheld(flat[b - c:b], [_word_marks(w) for w in flat[b - c:b]])
-                   for b, c in zip(ends, counts)]
+        entries = [self._store.add_unheld(flat[b - c:b], token_marks(flat[b - c:b])) for b, c in zip(ends, counts)]
         ids = ids.copy()
         first = np.searchsorted(chunk_doc, redo)  # chunk_doc is sorted; each comment has a chunk
         ids[first] = entries

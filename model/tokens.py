@@ -48,6 +48,7 @@ __all__ = [
     "MARK_SINGLE",
     "MARK_URL",
     "MARK_DOMAIN",
+    "token_marks",
     "CHUNK_NUMERIC_END",
     "CHUNK_NUMERIC_START",
     "CHUNK_SEPARATOR",
@@ -715,7 +716,15 @@ def _chunk_marks(chunk: str) -> int:
     return end | (CHUNK_NUMERIC_START if chunk[0].isdigit() or chunk[0] == "(" else 0)
 
 
-_LINK_MARKS = ([MARK_URL], [MARK_URL, MARK_DOMAIN])
+def token_marks(tokens) -> list[int]:
+    """The bit marks of each finished token (see :meth:`Tokenizer.chunk_entry`).
+
+    Examples
+    --------
+    >>> token_marks(["a", "<url>", "domain:prize.example", "win"])
+    [1, 2, 4, 0]
+    """
+    return [MARK_SINGLE if len(t) == 1 else _PREFIX_MARKS.get(t[:7], 0) for t in tokens]
 
 
 class Tokenizer:
@@ -841,13 +850,10 @@ class Tokenizer:
         """
         if " " in chunk:  # a key of chunk_alias: the link's host part and the chunk marks
             link, marks = chunk.rsplit(" ", 1)
-            return _whole_link(link), _LINK_MARKS[1], int(marks)
-        if chunk.startswith(_LINK_STARTS):  # the common one-off chunk: a link with an id
-            link = _whole_link(chunk)  # the same for the chunk and its folded form (ASCII)
-            if link is not None:
-                return link, _LINK_MARKS[len(link) - 1], _chunk_marks(chunk)
+            raw = _whole_link(link)
+            return raw, token_marks(raw), int(marks)
         raw = self._rewrite_chunk(chunk)
-        marks = [MARK_SINGLE if len(t) == 1 else _PREFIX_MARKS.get(t[:7], 0) for t in raw]
+        marks = token_marks(raw)
         if not _SINGLE_DIGITS.isdisjoint(raw):
             raw = tuple("<num>" if t in _SINGLE_DIGITS else t for t in raw)
         return raw, marks, _chunk_marks(chunk)
