@@ -9,7 +9,6 @@ import json
 
 from model.errors import SeawallError
 from ops.connection import add_connection_args, config_from_args, connect
-from worker.feedback import Rejected, parse_feedback
 
 
 def register(sub) -> None:
@@ -34,6 +33,8 @@ def feedback_fields(args) -> dict[str, str]:
 
 
 def run(args) -> int:
+    from worker.feedback import Rejected, parse_feedback
+
     config = config_from_args(args)
     fields = feedback_fields(args)
     checked = parse_feedback("0-0", fields, text_max_bytes=config.retrain.feedback_text_max_bytes)

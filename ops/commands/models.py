@@ -16,7 +16,6 @@ from pathlib import Path
 
 from model.errors import DataError
 from ops.connection import add_connection_args, config_from_args, connect
-from ops.registry import Registry, read_examples, split_replay
 
 
 def register(sub) -> None:
@@ -75,6 +74,8 @@ def rescore_after_switch(mode: str, client, config, version: str) -> dict:
 
 
 def _registry(args):
+    from ops.registry import Registry
+
     config = config_from_args(args)
     client = connect(config)
     return config, client, Registry(client=client, keys=config.keys)
@@ -111,6 +112,8 @@ def run_show(args) -> int:
 
 
 def run_push(args) -> int:
+    from ops.registry import Registry, read_examples, split_replay
+
     config = config_from_args(args)
     try:
         data = Path(args.model_file).read_bytes()

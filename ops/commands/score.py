@@ -9,7 +9,6 @@ from __future__ import annotations
 import json
 import sys
 
-from model.classifier import EmbeddingClassifier
 from model.errors import DataError
 
 CHUNK = 1024
@@ -56,6 +55,8 @@ def _chunks(items, size):
 
 
 def run(args) -> int:
+    from model.classifier import EmbeddingClassifier
+
     clf = EmbeddingClassifier.load(args.model)
     try:
         thresholds = clf.thresholds.with_overrides(hold=args.hold, reject=args.reject)

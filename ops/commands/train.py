@@ -9,7 +9,6 @@ import argparse
 import os
 import sys
 
-from model.classifier import EmbeddingClassifier
 from ops.datafiles import read_examples, require_both_classes
 
 
@@ -61,6 +60,8 @@ def _progress(epochs: int):
 
 
 def run(args) -> int:
+    from model.classifier import EmbeddingClassifier
+
     examples = read_examples(args.data, op="train")
     require_both_classes(examples, args.data, op="train")
     try:

@@ -11,10 +11,7 @@ import argparse
 import sys
 import time
 
-from redis.exceptions import RedisError
-
 from ops.connection import add_connection_args, config_from_args, connect
-from ops.watchview import collect, render
 
 CLEAR = "\x1b[H\x1b[2J"
 
@@ -34,6 +31,10 @@ def run(args) -> int:
         from model.errors import SeawallError
 
         raise SeawallError(f"watch: --interval must be > 0 seconds, got {args.interval}")
+    from redis.exceptions import RedisError
+
+    from ops.watchview import collect, render
+
     config = config_from_args(args)
     client = connect(config, socket_timeout=5.0)
     title = f"prefix {config.keys.prefix}"
