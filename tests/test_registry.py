@@ -59,7 +59,7 @@ def test_models_commands_bootstrap_list_show_pull_promote_rollback(redis_server,
     b = json_out(capsys)["version"]
     assert main(["models", "promote", b, "--redis", url, "--json"]) == 0
     promoted = json_out(capsys)
-    assert promoted["previous"] == a and promoted["rescore_job"]
+    assert promoted["previous"] == a and promoted["rescore_mode"] == "now" and promoted["rescore"]["held"] == 0
 
     assert main(["models", "list", "--redis", url, "--json"]) == 0
     listing = json_out(capsys)

@@ -5,7 +5,9 @@ A first model is bootstrapped with ``push`` then ``promote``.  ``push
 training data and, unless ``--canary`` names a file, carves the fixed canary
 set the retrain gate evaluates on from it.  ``promote`` and ``rollback``
 switch the active model atomically, tell every worker over pub/sub, and
-queue the hold-queue re-score (``--rescore now`` runs it in-process, ``off`` skips it).
+re-score the hold queue with the new model in this process (``--rescore
+queue`` hands it to an RQ worker when one listens, ``off`` skips it); they
+print which happened and how many held comments were re-scored.
 """
 from __future__ import annotations
 
@@ -51,26 +53,10 @@ def register(sub) -> None:
 
 
 def add_rescore_arg(parser) -> None:
-    parser.add_argument("--rescore", choices=("queue", "now", "off"), default="queue",
-                        help="re-score the hold queue with the new model: as an RQ job (default), "
-                             "now in this process (no RQ worker needed), or not at all")
-
-
-def rescore_after_switch(mode: str, client, config, version: str) -> dict:
-    """Run or queue the hold-queue re-score after the active model changed."""
-    if mode == "off":
-        return {}
-    if mode == "queue":
-        from ops.jobs import enqueue_rescore
-
-        return {"rescore_job": enqueue_rescore(client, config, version).id}
-    from ops.registry import Registry
-    from ops.rescore import rescore_held
-
-    model = Registry(client=client, keys=config.keys).load(version)
-    return {"rescore": rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
-                                    site_overrides=config.worker.site_thresholds,
-                                    verdicts_maxlen=config.worker.verdicts_maxlen)}
+    parser.add_argument("--rescore", choices=("now", "queue", "off"), default="now",
+                        help="re-score the held comments with the new model: now, in this process (default); "
+                             "queue, as an RQ job when an RQ worker listens on retrain.queue (else now); "
+                             "or off")
 
 
 def _registry(args):
@@ -158,13 +144,11 @@ def run_pull(args) -> int:
 
 
 def _after_switch(args, config, client, result: dict, kind: str) -> int:
+    from ops.rescore import describe_rescore, rescore_after_switch
+
     result = dict(result, **rescore_after_switch(args.rescore, client, config, result["version"]))
-    text = f"models {kind}: {result['version']} is active (was {result['previous'] or 'none'})"
-    if "rescore_job" in result:
-        text += f"; hold-queue re-score queued on RQ queue {config.retrain.queue!r}"
-    if "rescore" in result:
-        done = result["rescore"]
-        text += f"; re-scored {done['rescored']} held comments, {done['released']} left the hold queue"
+    text = (f"models {kind}: {result['version']} is active (was {result['previous'] or 'none'}); "
+            + describe_rescore(result, queue=config.retrain.queue))
     _print(args, result, text)
     return 0
 

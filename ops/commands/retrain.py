@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import json
 
-from ops.commands.models import add_rescore_arg, rescore_after_switch
+from ops.commands.models import add_rescore_arg
 from ops.connection import add_connection_args, config_from_args, connect
 
 
@@ -22,6 +22,7 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
+    from ops.rescore import describe_rescore, rescore_after_switch
     from ops.retrain import retrain
 
     config = config_from_args(args)
@@ -44,4 +45,6 @@ def run(args) -> int:
           f"{labels.get('holdout', 0)} held out, {labels.get('canary', 0)} canary; {report['seconds']:.1f}s")
     for reason in report["reasons"]:
         print(f"  - {reason}")
+    if report["decision"] == "promoted":
+        print(f"  {describe_rescore(report, queue=config.retrain.queue)}")
     return 0
