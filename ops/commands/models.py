@@ -14,10 +14,15 @@ from __future__ import annotations
 import json
 import os
 import sys
+import time
 from pathlib import Path
 
 from model.errors import DataError
 from ops.connection import add_connection_args, config_from_args, connect
+
+
+# Metadata fields that hold epoch seconds: shown to people as UTC times with their age (--json keeps the numbers).
+TIMES = ("created_at", "pushed_at", "promoted_at")
 
 
 def register(sub) -> None:
@@ -81,19 +86,27 @@ def run_list(args) -> int:
     if not rows:
         print("models: the registry is empty; push a model with `seawall models push MODEL_FILE`")
         return 0
-    print(f"  {'VERSION':<14} {'SOURCE':<8} {'PARENT':<14} {'SIZE':>9}  PUSHED_AT")
+    from ops.times import moment
+
+    now = time.time()
+    print(f"  {'VERSION':<14} {'SOURCE':<8} {'PARENT':<14} {'SIZE':>9}  {'TRAINED':<30}  LAST PROMOTED")
     for row in rows:
         mark = "*" if row["active"] == "1" else " "
         print(f"{mark} {row['version']:<14} {row.get('source', ''):<8} {row.get('parent', '') or '-':<14} "
-              f"{int(row.get('size', 0)):>9}  {row.get('pushed_at', '')}")
+              f"{int(row.get('size', 0)):>9,}  {moment(row.get('created_at'), now):<30}  "
+              f"{moment(row.get('promoted_at'), now)}")
     return 0
 
 
 def run_show(args) -> int:
     _config, _client, registry = _registry(args)
+    from ops.times import moment
+
     meta = registry.meta(args.version)
     meta["active"] = "1" if registry.active() == args.version else "0"
-    _print(args, meta, "\n".join(f"{k}: {v}" for k, v in sorted(meta.items())))
+    now = time.time()
+    shown = {k: moment(v, now) if k in TIMES else v for k, v in meta.items()}
+    _print(args, meta, "\n".join(f"{k}: {v}" for k, v in sorted(shown.items())))
     return 0
 
 
