@@ -24,6 +24,7 @@ from model.errors import SeawallError
 from ops.config import ConfigError
 
 COMMANDS = (
+    "sample",
     "train",
     "evaluate",
     "score",

@@ -141,8 +141,9 @@ def describe_rescore(result: dict, *, queue: str) -> str:
              if result.get("rq_workers") == 0 else "")
     if not done.get("held"):
         return where + "no held comments to re-score"
-    text = (f"{where}re-scored {done.get('rescored', 0)} held comments: {done.get('released', 0)} published or "
-            f"rejected by the new model, {done.get('still_held', 0)} still held")
+    rescored = done.get("rescored", 0)
+    text = (f"{where}re-scored {rescored} held comment{'s' if rescored != 1 else ''}: {done.get('released', 0)} "
+            f"published or rejected by the new model, {done.get('still_held', 0)} still held")
     if done.get("no_text"):
         text += f", {done['no_text']} without cached text left for a moderator"
     return text

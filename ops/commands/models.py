@@ -40,6 +40,8 @@ def register(sub) -> None:
                    help="original training data ({text, label} lines): a bounded replay sample is kept")
     p.add_argument("--canary", metavar="CANARY.jsonl", default=None,
                    help="fixed canary set for the retrain gate (default: carved from --replay)")
+    p.add_argument("--promote", action="store_true", help="make the pushed version active at once (as `promote`)")
+    add_rescore_arg(p)
     p.set_defaults(func=run_push)
     p = inner.add_parser("pull", help="write a version's artifact to a file")
     p.add_argument("version", nargs="?", default=None, help="default: the active version")
@@ -134,9 +136,15 @@ def run_push(args) -> int:
     pipe.execute()
     out = {"version": version, "size": len(data), "replay": len(replay or ()), "canary": len(canary or ())}
     extra = f", replay {out['replay']} rows, canary {out['canary']} rows" if (replay or canary) else ""
-    _print(args, out, f"models push: {version} ({len(data)} bytes{extra}); "
-                      f"make it active with `seawall models promote {version}`")
-    return 0
+    text = f"models push: {version} ({len(data):,} bytes{extra})"
+    if not args.promote:
+        _print(args, out, f"{text}; make it active with `seawall models promote {version}`")
+        return 0
+    if registry.active() == version:
+        _print(args, dict(out, previous=version), f"{text}; it was already the active model")
+        return 0
+    result = registry.promote(version, actor=os.environ.get("USER", ""), reason="seawall models push --promote")
+    return _after_switch(args, config, client, dict(out, **result), "push", head=text)
 
 
 def run_pull(args) -> int:
@@ -156,12 +164,13 @@ def run_pull(args) -> int:
     return 0
 
 
-def _after_switch(args, config, client, result: dict, kind: str) -> int:
+def _after_switch(args, config, client, result: dict, kind: str, *, head: str = "") -> int:
     from ops.rescore import describe_rescore, rescore_after_switch
 
     result = dict(result, **rescore_after_switch(args.rescore, client, config, result["version"]))
-    text = (f"models {kind}: {result['version']} is active (was {result['previous'] or 'none'}); "
-            + describe_rescore(result, queue=config.retrain.queue))
+    switched = f"is active (was {result['previous'] or 'none'})"
+    text = (f"{head}; it {switched}" if head else f"models {kind}: {result['version']} {switched}")
+    text += "; " + describe_rescore(result, queue=config.retrain.queue)
     _print(args, result, text)
     return 0
 
