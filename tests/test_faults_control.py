@@ -9,7 +9,8 @@ from pathlib import Path
 
 import pytest
 
-from faults_kit import KEYS, clean_env
+from faults_kit import KEYS
+from kit import clean_env
 from ops.registry import Registry
 from retrain_kit import bootstrap, model_bytes, send_feedback, stream
 

@@ -20,13 +20,13 @@ import shutil
 import signal
 import subprocess
 import sys
-import time
 import urllib.error
 import urllib.parse
 import urllib.request
 
 import pytest
 
+from kit import wait_until
 from ops.bench.stream import invented_comments
 from servers import free_port, require, wait_for_port
 from worker.events import parse_event
@@ -42,16 +42,6 @@ def fetch(url: str) -> tuple[int, str]:
             return resp.status, resp.read().decode()
     except urllib.error.HTTPError as err:
         return err.code, err.read().decode()
-
-
-def wait_until(check, *, timeout: float, what: str):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        value = check()
-        if value:
-            return value
-        time.sleep(0.1)
-    raise AssertionError(f"timed out after {timeout}s waiting for {what}")
 
 
 @pytest.fixture(scope="module")

@@ -13,7 +13,7 @@ import fakeredis
 import pytest
 from rq.cron import CronScheduler
 
-from kit import rq_worker_argv
+from kit import rq_worker_argv, wait_until
 from ops.retrain import last_reports
 from retrain_kit import KEYS, send_feedback, stream
 from test_retrain import bootstrap
@@ -134,11 +134,7 @@ def test_rq_cron_command_starts_with_the_schedule_module(redis_server, redis_cli
     proc = subprocess.Popen([sys.executable, "-m", "rq.cli", "cron", "ops.schedule"], cwd=ROOT, env=env,
                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     try:
-        deadline = time.monotonic() + 30
-        schedulers = []
-        while time.monotonic() < deadline and not schedulers:
-            schedulers = CronScheduler.all(redis_client)
-            time.sleep(0.1)
+        schedulers = wait_until(lambda: CronScheduler.all(redis_client), timeout=60, interval=0.1)
     finally:
         proc.send_signal(signal.SIGTERM)
         err = proc.communicate(timeout=20)[1]

@@ -14,7 +14,8 @@ import sys
 import pytest
 import redis
 
-from faults_kit import KEYS, Worker, clean_env, comment_text, stop_all, verdict_ids, wait_until
+from faults_kit import KEYS, comment_text, verdict_ids
+from kit import Worker, clean_env, stop_all, wait_until
 from ops.registry import Registry
 from retrain_kit import model_bytes
 from servers import free_port

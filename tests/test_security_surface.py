@@ -14,8 +14,8 @@ import urllib.request
 import pytest
 import redis
 
-from faults_kit import KEYS, Worker, stop_all, verdict_ids, wait_until, write_model
-from kit import run_rq_burst
+from faults_kit import KEYS, verdict_ids, write_model
+from kit import Worker, run_rq_burst, stop_all, wait_until
 from ops.jobs import job_queue
 from ops.registry import Registry
 from retrain_kit import model_bytes

@@ -5,7 +5,8 @@ from __future__ import annotations
 import pytest
 import redis
 
-from faults_kit import KEYS, Worker, comment_text, stop_all, verdict_ids, wait_until, write_model
+from faults_kit import KEYS, comment_text, verdict_ids, write_model
+from kit import Worker, stop_all, wait_until
 from tlscerts import make_ca
 from worker.connection import connect
 
