@@ -219,6 +219,7 @@ def drain(consumer: StreamConsumer) -> int:
             return total
 
 
+@pytest.mark.slow
 def test_ten_thousand_fuzzed_entries_through_the_batch_processing(redis_server, tmp_path):
     client = connect(redis_server.url)
     model = write_model(tmp_path / "model.bin")

@@ -106,6 +106,7 @@ def sample(body: str, name: str, **labels) -> float | None:
     return None
 
 
+@pytest.mark.slow
 def test_real_worker_metrics_scraped_by_real_prometheus_without_leaking_text(worker, redis_client, tmp_path):
     require(shutil.which("prometheus") is not None, "prometheus binary not on PATH (Debian package prometheus)")
     marker = "mk" + secrets.token_hex(6)
@@ -194,6 +195,7 @@ def free_port_pair() -> int:
     raise RuntimeError("no two consecutive free loopback ports")
 
 
+@pytest.mark.slow
 def test_processes_each_serve_their_own_endpoint(redis_server, model_file, tmp_path):
     """`--processes 2 --metrics-port P`: process i serves on P + i, each with its own counts."""
     port = free_port_pair()

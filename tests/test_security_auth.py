@@ -57,6 +57,7 @@ def cli(*argv) -> subprocess.CompletedProcess:
                           env=clean_env())
 
 
+@pytest.mark.slow
 def test_requirepass_worker_works_and_a_wrong_password_is_a_clear_error(redis_factory, tmp_path):
     server = redis_factory("auth", extra=["--requirepass", "right-pw-3"])
     admin = redis.Redis(host="127.0.0.1", port=server.port, password="right-pw-3")

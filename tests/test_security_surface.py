@@ -46,6 +46,7 @@ def _address(hex_address: str) -> str:
     return "::" if set(hex_address) == {"0"} else hex_address
 
 
+@pytest.mark.slow
 def test_metrics_listen_on_loopback_unless_configured_otherwise_and_no_text_leaks(redis_server, tmp_path):
     admin = redis_server.client()
     marker = "leak" + secrets.token_hex(5)

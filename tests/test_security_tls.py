@@ -13,6 +13,7 @@ from worker.connection import connect
 pytestmark = pytest.mark.redis_server
 
 
+@pytest.mark.slow
 def test_worker_processes_comments_over_tls_with_the_certificate_verified(redis_factory, tmp_path):
     certs = make_ca(tmp_path / "pki")
     server = redis_factory("tls", tls={"ca": certs["ca"], "cert": certs["cert"], "key": certs["key"]})

@@ -37,6 +37,7 @@ def test_no_model_anywhere_is_one_line_and_exit_2(redis_server, capsys, monkeypa
     assert err[-1].startswith("seawall serve: error: ") and "model" in err[-1]
 
 
+@pytest.mark.slow
 @pytest.mark.redis_server
 def test_processes_runs_named_consumers_and_forwards_sigterm(redis_server, tmp_path):
     client = redis_server.client()

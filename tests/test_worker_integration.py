@@ -184,6 +184,7 @@ def test_sigterm_finishes_and_acks_the_batch_then_exits_0(redis_server, model_fi
     assert "stopped" in w.output()
 
 
+@pytest.mark.slow
 def test_redis_restart_mid_stream_loses_nothing_the_server_kept(redis_factory, model_files, tmp_path, workers):
     server = redis_factory("aof", appendonly=True)
     client = server.client()
