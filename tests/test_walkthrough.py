@@ -125,3 +125,25 @@ def test_your_own_redis_in_five_commands(redis_server, tmp_path):
     assert "re-scored" in retrain or "no held comments" in retrain
     assert "retrain   promoted" in outputs["seawall watch"]
     assert (tmp_path / "model.npz").is_file() and (tmp_path / "sample.jsonl").is_file()
+
+
+def _help_texts(parser) -> list[str]:
+    """Every help text of ``parser`` and its subcommands (argparse's own formatting)."""
+    import argparse
+
+    texts = [parser.format_help()]
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for sub in action.choices.values():
+                texts += _help_texts(sub)
+    return texts
+
+
+def test_one_model_file_name_throughout_the_readme_and_the_help():
+    from ops.cli import build_parser
+
+    other_names = re.compile(r"\b[\w-]+\.(bin|model|pkl|joblib)\b")
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    helps = "\n".join(_help_texts(build_parser()))
+    assert other_names.findall(readme) == [] and other_names.findall(helps) == []
+    assert "model.npz" in readme
