@@ -21,6 +21,7 @@ from kit import run_rq_burst
 from ops.cli import main
 from ops.jobs import job_queue
 from retrain_kit import KEYS, bootstrap, model_bytes
+from test_schedule import keep_time_zone, load_schedule  # noqa: F401 - keep_time_zone is a fixture
 
 pytestmark = pytest.mark.redis_server
 
@@ -57,8 +58,6 @@ def test_the_rescore_job_a_promote_queues_is_json(redis_server, redis_client, mo
 
 
 def test_the_nightly_retrain_the_scheduler_enqueues_is_json(redis_client, keep_time_zone):
-    from test_schedule import load_schedule
-
     (cron_job,) = load_schedule(redis_client)._cron_jobs
     job = cron_job.enqueue(redis_client)  # what `rq cron ops.schedule` does at 03:00
     assert raw_job(redis_client, job.id) == ["ops.jobs.retrain_job", None, [], {}]
@@ -85,18 +84,3 @@ def test_a_forged_pickled_job_cannot_run_code_in_seawalls_rq_worker(redis_client
     run_rq_burst(r)  # Seawall's worker: JSON only
     assert not marker.exists()
     assert Queue("seawall", connection=r).count == 0  # taken off the queue, not left to a pickle worker
-
-
-@pytest.fixture
-def keep_time_zone():
-    """ops.schedule sets the process's time zone to UTC; undo it afterwards."""
-    import os
-    import time
-
-    before = os.environ.get("TZ")
-    yield
-    if before is None:
-        os.environ.pop("TZ", None)
-    else:
-        os.environ["TZ"] = before
-    time.tzset()
