@@ -41,3 +41,14 @@ def test_models_list_and_show_print_times_not_epoch_seconds(redis_server, redis_
     assert not EPOCH.search(shown)
     assert main(["models", "show", first, "--redis", redis_server.url, "--json"]) == 0
     assert EPOCH.search(capsys.readouterr().out)  # scripts keep the numbers
+
+
+def test_a_busy_retrain_says_since_when_in_utc(fake_redis):
+    from ops.retrain import RetrainBusy, RetrainLock
+    from worker.settings import Keys
+
+    with RetrainLock(client=fake_redis, keys=Keys(), ttl_s=60):
+        with pytest.raises(RetrainBusy, match=r"lock held by .*:\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ, expires in") as busy:
+            with RetrainLock(client=fake_redis, keys=Keys(), ttl_s=60):
+                pass
+    assert not EPOCH.search(str(busy.value))
