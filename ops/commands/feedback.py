@@ -50,7 +50,8 @@ def run(args) -> int:
         raise SeawallError(f"feedback: {checked.reason.removeprefix('feedback_').replace('_', ' ')}; "
                            "give a non-empty id, spam or ham, and a text within retrain.feedback_text_max_bytes")
     client = connect(config)
-    if "text" not in fields and not client.hexists(config.keys.text(args.id), "text"):
+    # EXISTS is in the README's least-privilege ACL rule, so a script may run this as the worker's user.
+    if "text" not in fields and not client.exists(config.keys.text(args.id)):
         raise SeawallError(f"feedback: no cached text for comment {args.id!r} (Seawall never scored that id, or its "
                            "text expired after worker.text_cache_ttl_s); nothing sent; check the id, or pass "
                            "--text with the comment's text")
