@@ -322,6 +322,12 @@ CANDIDATES = ("warm_start", "scratch")
 _NAMES = {"warm_start": "the warm start", "scratch": "the scratch fit"}
 
 
+def judgeable(labels) -> bool:
+    """Whether a set can be compared on: the paired tests need two spam and two ham rows at least (pure)."""
+    spam = sum(labels)
+    return min(spam, len(labels) - spam) >= 2
+
+
 def gate_rule(settings: RetrainSettings) -> str:
     """What "not worse" means, in one sentence for the report (pure)."""
     return (f"a candidate is not worse than the active model on a set when the one-sided "
@@ -362,8 +368,7 @@ def choose_candidate(candidates: dict, scratch_vs_warm: dict | None) -> tuple[st
     """The candidate to promote and why (pure).
 
     ``candidates`` maps a name of :data:`CANDIDATES` to its gate entry
-    (``{"not_worse": bool, ...}``, or ``{"error": ...}`` when it could not be
-    built); ``scratch_vs_warm`` is the paired ROC-AUC comparison (a
+    (``{"not_worse": bool, ...}``, or ``{"not_built": why}``); ``scratch_vs_warm`` is the paired ROC-AUC comparison (a
     :class:`model.comparison.PairedDifference` dict) of the scratch fit with
     the warm start on the recent holdout.  Only candidates not worse than the
     active model on every judged set are eligible.  When both are, the
@@ -372,7 +377,7 @@ def choose_candidate(candidates: dict, scratch_vs_warm: dict | None) -> tuple[st
     smaller change, is promoted.  The canary set does not decide between
     them: the active model, and so the warm start, has usually seen its rows.
     """
-    built = [n for n in CANDIDATES if n in candidates and "error" not in candidates[n]]
+    built = [n for n in CANDIDATES if n in candidates and "not_built" not in candidates[n]]
     eligible = [n for n in built if candidates[n].get("not_worse")]
     if not built:
         return None, "refused: no candidate could be built"
@@ -552,7 +557,7 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
     # Every label left is from an untrimmed source or backed by one (step 3b), so all judge.
     labels["holdout_judging"] = len(holdout)
     holdout_y = [r.y for r in holdout]
-    if len(holdout) < settings.min_holdout or min(sum(holdout_y), len(holdout_y) - sum(holdout_y)) < 2:
+    if len(holdout) < settings.min_holdout or not judgeable(holdout_y):
         report["decision"] = "refused"
         report["reasons"].append(
             f"the recent holdout has {len(holdout)} rows ({sum(holdout_y)} spam); the gate needs >= "
@@ -563,7 +568,12 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
     active = load_model(active_bytes)
     models, entries = {}, {}
     models["warm_start"], entries["warm_start"] = _warm_start(active_bytes, train, settings)
-    if settings.scratch:
+    if settings.scratch and not judgeable([y for _, y in canary]):
+        # The holdout only shows recent comments; what a new model forgot of older ones only the
+        # canary set can show (a scratch fit on a few recent labels looked perfect on the holdout).
+        entries["scratch"] = {"not_built": "no canary set with both classes to show what it forgot of older "
+                                           "comments; push one with `seawall models push ... --replay` or --canary"}
+    elif settings.scratch:
         scratch_rows = [(r.text, r.y) for r in train_new + older_pool] + list(original)
         random.Random(settings.seed).shuffle(scratch_rows)
         models["scratch"], entries["scratch"] = _scratch_fit(active, scratch_rows)
@@ -571,8 +581,8 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
     report["candidates"] = entries
     report["train_seconds"] = round(sum(e.get("train_seconds", 0.0) for e in entries.values()), 3)
     for name, entry in entries.items():
-        if "error" in entry:
-            report["reasons"].append(f"{_NAMES[name]} could not be built: {entry['error']}")
+        if "not_built" in entry:
+            report["reasons"].append(f"{_NAMES[name]} not built: {entry['not_built']}")
 
     t_gate = time.perf_counter()
     chosen, why = _gate(active, models, entries, holdout, canary, settings, report)
@@ -610,7 +620,7 @@ def _scratch_fit(active, rows: list):
         model = type(active)._from_params(active.get_params())
         model.fit([t for t, _ in rows], [y for _, y in rows])
     except DataError as exc:
-        return None, {"error": str(exc), "train_rows": len(rows)}
+        return None, {"not_built": f"the fit failed: {exc}", "train_rows": len(rows)}
     return model, {"train_rows": len(rows), "train_seconds": round(time.perf_counter() - t0, 3)}
 
 
@@ -622,8 +632,7 @@ def _gate(active, models: dict, entries: dict, holdout: list[LabelRow], canary: 
     gate_rows = [(r.text, r.y) for r in holdout] + list(canary)
     texts, y_all = [t for t, _ in gate_rows], [y for _, y in gate_rows]
     sets = {"holdout": slice(0, len(holdout))}
-    canary_spam = sum(y for _, y in canary)
-    if min(canary_spam, len(canary) - canary_spam) >= 2:
+    if judgeable([y for _, y in canary]):
         sets["canary"] = slice(len(holdout), len(gate_rows))
     else:
         report["reasons"].append("no canary set with both classes: the gate judges the recent holdout only; "

@@ -180,7 +180,7 @@ def test_gate_refuses_a_warm_start_the_flat_allowance_let_through():
     chosen, why = choose_candidate(entries, None)
     assert chosen == "scratch" and why == ("chose the scratch fit, the only candidate not worse than the active "
                                            "model; the warm start may be below it")
-    assert choose_candidate({"warm_start": entries["warm_start"], "scratch": {"error": "fit: one class"}}, None) == (
+    assert choose_candidate({"warm_start": entries["warm_start"], "scratch": {"not_built": "the fit failed"}}, None) == (
         None, "refused: the warm start may be below the active model beyond the tolerance")
 
 

@@ -55,8 +55,8 @@ def render(report: dict) -> str:
     gate = report.get("gate")
     candidates = report.get("candidates", {})
     for name, entry in candidates.items():
-        if "error" in entry:
-            lines.append(f"  {_LABELS[name]}: not built ({entry['error']})")
+        if "not_built" in entry:
+            lines.append(f"  {_LABELS[name]}: not built ({entry['not_built']})")
             continue
         t = entry.get("thresholds") or {}
         lines.append(f"  {_LABELS[name]}: {entry.get('version', '-')}, {entry['train_rows']} rows in "
