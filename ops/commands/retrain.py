@@ -79,7 +79,7 @@ def render(report: dict) -> str:
                     auc, rec = comparison["roc_auc"], comparison["recall_at_gate_fpr"]
                     row += (f"{auc['difference']:>+8.4f} {auc['lower']:>+8.4f}  {rec['candidate']:>7.4f} "
                             f"{rec['difference']:>+8.4f} {rec['lower']:>+8.4f}  "
-                            + ("not worse" if comparison["not_worse"] else "WORSE"))
+                            + ("not worse" if comparison["not_worse"] else "may be worse"))
                 lines.append(row.rstrip())
     sets = tuple(gate["sets"]) if gate else ()
     lines += [f"  - {reason}" for reason in report.get("reasons", [])
