@@ -368,7 +368,8 @@ def choose_candidate(candidates: dict, scratch_vs_warm: dict | None) -> tuple[st
     """The candidate to promote and why (pure).
 
     ``candidates`` maps a name of :data:`CANDIDATES` to its gate entry
-    (``{"not_worse": bool, ...}``, or ``{"not_built": why}``); ``scratch_vs_warm`` is the paired ROC-AUC comparison (a
+    (``{"not_worse": bool, ...}``, or ``{"not_built": why}``);
+    ``scratch_vs_warm`` is the paired ROC-AUC comparison (a
     :class:`model.comparison.PairedDifference` dict) of the scratch fit with
     the warm start on the recent holdout.  Only candidates not worse than the
     active model on every judged set are eligible.  When both are, the
@@ -395,7 +396,8 @@ def choose_candidate(candidates: dict, scratch_vs_warm: dict | None) -> tuple[st
     figures = (f"holdout ROC-AUC {d['candidate']:.4f} against {d['reference']:.4f} "
                f"({d['difference']:+.4f}, lower bound {d['lower']:+.4f})")
     if d["lower"] > 0:
-        return "scratch", f"chose the scratch fit: both candidates are not worse, and it is better than the warm start: {figures}"
+        return "scratch", ("chose the scratch fit: both candidates are not worse, and it is better than the warm "
+                           f"start: {figures}")
     return "warm_start", ("chose the warm start: both candidates are not worse, and the holdout does not show "
                           f"the scratch fit better, so the smaller change wins: {figures}")
 

@@ -59,8 +59,9 @@ def render(report: dict) -> str:
             lines.append(f"  {_LABELS[name]}: not built ({entry['not_built']})")
             continue
         t = entry.get("thresholds") or {}
+        thresholds = f", hold {t['hold']:.4f}, reject {t['reject']:.4f}" if t else ""
         lines.append(f"  {_LABELS[name]}: {entry.get('version', '-')}, {entry['train_rows']} rows in "
-                     f"{entry['train_seconds']:.1f}s" + (f", hold {t['hold']:.4f}, reject {t['reject']:.4f}" if t else ""))
+                     f"{entry['train_seconds']:.1f}s{thresholds}")
     if gate:
         lines.append(f"  gate: {gate['rule']}")
         lines.append(f"    {'set':<8} {'rows':>5} {'spam':>5}  {'model':<11} {'ROC-AUC':>8} {'diff':>8} {'bound':>8}"
