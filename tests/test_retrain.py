@@ -283,6 +283,9 @@ def test_a_worse_warm_start_is_refused_and_the_scratch_fit_promoted(redis_client
     assert alone["candidates"]["warm_start"]["not_worse"] is False
     assert alone["reasons"][-1] == "refused: the warm start may be below the active model beyond the tolerance"
     assert registry.active() == first
+    text = render(alone).splitlines()
+    assert text[0] == f"retrain: kept {first}; the gate refused the candidates"
+    assert sum(line.endswith("  may be worse") for line in text) == 2 and "scratch fit" not in "\n".join(text)
 
     report = retrain(r, KEYS, SETTINGS)  # the refused labels are still new
     assert report["labels"]["new"] == 2500
