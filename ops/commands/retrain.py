@@ -33,15 +33,56 @@ def run(args) -> int:
     if args.json:
         print(json.dumps(report, sort_keys=True))
         return 0
-    labels = report.get("labels", {})
-    head = {
-        "promoted": f"retrain: promoted {report.get('candidate')} (was {report.get('active')})",
-        "refused": f"retrain: kept {report.get('active')}; candidate {report.get('candidate') or '-'} refused",
-        "skipped": f"retrain: nothing to do; {report.get('active') or 'no model'} stays active",
-    }[report["decision"]]
-    print(head)
-    print(f"  labels: {labels.get('new', 0)} new, {labels.get('trained_new', 0)} trained, "
-          f"{labels.get('holdout', 0)} held out, {labels.get('canary', 0)} canary; {report['seconds']:.1f}s")
-    for reason in report["reasons"]:
-        print(f"  - {reason}")
+    print(render(report))
     return 0
+
+
+_LABELS = {"active": "active", "warm_start": "warm start", "scratch": "scratch fit"}
+
+
+def render(report: dict) -> str:
+    """The report as text: the decision, both candidates' figures on each gate set, and why (pure)."""
+    labels = report.get("labels", {})
+    chosen = _LABELS.get(report.get("chosen") or "", "")
+    head = {
+        "promoted": f"retrain: promoted {report.get('candidate')}, the {chosen} (was {report.get('active')})",
+        "refused": f"retrain: kept {report.get('active')}; the gate refused the candidates",
+        "skipped": f"retrain: nothing to do; {report.get('active') or 'no model'} stays active",
+        "failed": f"retrain: failed: {report.get('error')}",
+    }[report["decision"]]
+    lines = [head, f"  labels: {labels.get('new', 0)} new, {labels.get('trained_new', 0)} trained, "
+                   f"{labels.get('holdout', 0)} held out, {labels.get('canary', 0)} canary; {report['seconds']:.1f}s"]
+    gate = report.get("gate")
+    candidates = report.get("candidates", {})
+    for name, entry in candidates.items():
+        if "not_built" in entry:
+            lines.append(f"  {_LABELS[name]}: not built ({entry['not_built']})")
+            continue
+        t = entry.get("thresholds") or {}
+        thresholds = f", hold {t['hold']:.4f}, reject {t['reject']:.4f}" if t else ""
+        lines.append(f"  {_LABELS[name]}: {entry.get('version', '-')}, {entry['train_rows']} rows in "
+                     f"{entry['train_seconds']:.1f}s{thresholds}")
+    if gate:
+        lines.append(f"  gate: {gate['rule']}")
+        lines.append(f"    {'set':<8} {'rows':>5} {'spam':>5}  {'model':<11} {'ROC-AUC':>8} {'diff':>8} {'bound':>8}"
+                     f"  {'recall':>7} {'diff':>8} {'bound':>8}  verdict")
+        for set_name, figures in gate["sets"].items():
+            first = f"    {set_name:<8} {figures['rows']:>5} {figures['spam']:>5}"
+            for name in ("active", *candidates):
+                if name not in figures:
+                    continue
+                row = f"{first if name == 'active' else ' ' * len(first)}  {_LABELS[name]:<11} " \
+                      f"{figures[name]['roc_auc']:>8.5f} "
+                comparison = candidates.get(name, {}).get("sets", {}).get(set_name)
+                if comparison is None:
+                    row += f"{'':>8} {'':>8}  {figures[name]['recall_at_gate_fpr']:>7.4f}"
+                else:
+                    auc, rec = comparison["roc_auc"], comparison["recall_at_gate_fpr"]
+                    row += (f"{auc['difference']:>+8.4f} {auc['lower']:>+8.4f}  {rec['candidate']:>7.4f} "
+                            f"{rec['difference']:>+8.4f} {rec['lower']:>+8.4f}  "
+                            + ("not worse" if comparison["not_worse"] else "may be worse"))
+                lines.append(row.rstrip())
+    sets = tuple(gate["sets"]) if gate else ()
+    lines += [f"  - {reason}" for reason in report.get("reasons", [])
+              if not reason.startswith(tuple(f"{s}: " for s in sets))]
+    return "\n".join(lines)
