@@ -489,13 +489,15 @@ class ThresholdChoice:
                        "its stored thresholds stand in for the false-positive-rate targets; retrain to measure them")
         for c in (self.hold, self.reject):
             if self.n_ham is not None and not c.measurable:
+                where = (f"it sits at its floor {c.floor:.4f}" if c.at_floor else
+                         f"the target alone puts it just above every held-out ham, at {c.value:.4f}")
                 out.append(f"{c.name} threshold: {self.n_ham} held-out hams are too few to measure a "
-                           f"{c.target_fpr:.2%} false-positive rate (that needs {math.ceil(1 / c.target_fpr - 1e-9)}); "
-                           f"the target alone puts it just above every held-out ham")
-            if c.at_floor:
+                           f"{c.target_fpr:.2%} false-positive rate (that needs "
+                           f"{math.ceil(1 / c.target_fpr - 1e-9)}); {where}")
+            elif c.at_floor:
                 out.append(f"{c.name} threshold sits at its floor {c.floor:.4f}: the {c.target_fpr:.2%} "
-                           f"false-positive-rate target alone gives {c.from_target:.4f}, so held-out spam and ham "
-                           f"barely overlap and comments unlike the training data are judged by the floor")
+                           f"false-positive-rate target alone would put it at {c.from_target:.4f} (held-out spam and "
+                           f"ham barely overlap); comments unlike the training data are judged by the floor")
         return out
 
     def to_dict(self) -> dict:

@@ -491,9 +491,10 @@ class EmbeddingClassifier:
         l2 = self.pooling == "l2"
         calibration = self.calibration_
         scale = calibration.contribution_scale
-        scores = []
+        logits = []
         reasons = []
-        for i, (buckets, names) in enumerate(docs):
+        explain = []  # (comment, buckets, names, distinct buckets, their terms), ranked once scores are known
+        for buckets, names in docs:
             counts = Counter(buckets)  # insertion order = order of first appearance
             if l2:
                 values = counts.values()
@@ -501,26 +502,35 @@ class EmbeddingClassifier:
             else:
                 norm = float(len(buckets))
             if not norm:
-                scores.append(bias)
+                logits.append(bias)
                 reasons.append([])
                 continue
             unique = list(counts)
             weights = map(truediv, counts.values(), repeat(norm))
             terms = list(map(mul, weights, bucket_logit[unique].tolist()))
-            scores.append(bias + sum(terms))
-            if top_k <= 0:
-                reasons.append([])
-                continue
+            logits.append(bias + sum(terms))
+            reasons.append([])
+            if top_k > 0:
+                explain.append((len(reasons) - 1, buckets, names, unique, terms))
+        if calibration.method == "identity":
+            scores = network.sigmoid(np.array(logits))
+        elif calibration.method == "isotonic":
+            scores = calibration.probability(np.array(logits))
+        else:  # the affine maps, with the batch path's arithmetic: sigmoid(slope * z + intercept)
+            shift = calibration.calibrated_intercept
+            scores = network.sigmoid(np.array([z * scale + shift for z in logits]))
+        single = isinstance(spamward_from, (int, float))
+        for i, buckets, names, unique, terms in explain:
             # Largest magnitude first; a stable sort keeps ties in the order the
             # tokens appear.  Buckets without a row contribute 0 and are left out.
             magnitude = list(map(abs, terms))
-            if spamward_from is not None and _spamward(calibration, scores[-1], spamward_from, i):
+            if spamward_from is not None and scores[i] >= (spamward_from if single else spamward_from[i]):
                 lift = max(magnitude) + 1.0  # spam-ward tokens first, then the rest by magnitude
                 magnitude = [m + lift if t > 0 else m for m, t in zip(magnitude, terms)]
             ranked = sorted(range(len(terms)), key=magnitude.__getitem__, reverse=True)[:top_k]
             at = buckets.index
-            reasons.append([(names[at(unique[j])], terms[j] * scale) for j in ranked if terms[j]])
-        return calibration.probability(np.array(scores)), reasons
+            reasons[i] = [(names[at(unique[j])], terms[j] * scale) for j in ranked if terms[j]]
+        return scores, reasons
 
     def _few_from_features(self, features: Features):
         """Per-comment ``(buckets, names)`` of a small :class:`Features` batch."""
@@ -823,9 +833,3 @@ class EmbeddingClassifier:
     def version(self) -> str:
         """Short content id: the first 12 hex digits of the artifact's sha256."""
         return self.manifest["sha256"][:12]
-
-
-def _spamward(calibration: ProbabilityMap, logit: float, spamward_from, i: int) -> bool:
-    """Whether comment ``i`` of a few-comment call (raw log-odds ``logit``) lists spam-ward tokens first."""
-    cutoff = spamward_from if isinstance(spamward_from, (int, float)) else spamward_from[i]
-    return float(calibration.probability(np.array([logit]))[0]) >= cutoff

@@ -59,18 +59,25 @@ local function count(field)
   counts[field] = counts[field] + 1
 end
 for i = 1, n do
-  local sid, id, score, action, reasons, site, text, author, ts =
-      ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4], ARGV[a + 5], ARGV[a + 6], ARGV[a + 7], ARGV[a + 8]
-  a = a + 9
+  local sid, id, score, action, reasons, site, text, author, ts, rule, campaign =
+      ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4], ARGV[a + 5], ARGV[a + 6], ARGV[a + 7], ARGV[a + 8],
+      ARGV[a + 9], ARGV[a + 10]
+  a = a + 11
   local done, cache = KEYS[4 + 2 * i], KEYS[5 + 2 * i]
   out[i] = 0
   if still_pending(sid) then
     if redis.call('EXISTS', done) == 0 then
-      redis.call('XADD', verdicts, 'MAXLEN', '~', vmax, '*', 'id', id, 'score', score, 'action', action,
-                 'model', model, 'reasons', reasons, 'site', site, 'stream_id', sid)
+      if campaign == '' then
+        redis.call('XADD', verdicts, 'MAXLEN', '~', vmax, '*', 'id', id, 'score', score, 'action', action,
+                   'rule', rule, 'model', model, 'reasons', reasons, 'site', site, 'stream_id', sid)
+      else
+        redis.call('XADD', verdicts, 'MAXLEN', '~', vmax, '*', 'id', id, 'score', score, 'action', action,
+                   'rule', rule, 'campaign', campaign, 'model', model, 'reasons', reasons, 'site', site,
+                   'stream_id', sid)
+      end
       redis.call('SET', done, sid, 'EX', done_ttl)
       redis.call('HSET', cache, 'text', text, 'site', site, 'author', author, 'ts', ts, 'stream_id', sid,
-                 'score', score, 'action', action, 'model', model)
+                 'score', score, 'action', action, 'rule', rule, 'model', model)
       redis.call('EXPIRE', cache, text_ttl)
       if action == 'hold' then holds[#holds + 1] = now; holds[#holds + 1] = id end
       count(site .. ':total')
@@ -108,12 +115,14 @@ return out
 
 @dataclass(frozen=True, slots=True)
 class Scored:
-    """One comment ready to commit: its score, action and reasons already formatted."""
+    """One comment ready to commit: its score, action and reasons already formatted, and the rule that decided."""
 
     comment: Comment
     score: str
     action: str
     reasons: str
+    rule: str = "model"
+    campaign: str = ""
 
 
 @dataclass(frozen=True, slots=True)
@@ -160,7 +169,8 @@ class BatchCommitter:
             c = s.comment
             keys.append(k.done(c.id))
             keys.append(k.text(c.id))
-            args += (c.stream_id, c.id, s.score, s.action, s.reasons, c.site, c.text, c.author, c.ts)
+            args += (c.stream_id, c.id, s.score, s.action, s.reasons, c.site, c.text, c.author, c.ts, s.rule,
+                     s.campaign)
         args.append(len(dead))
         source = k.comments
         for d in dead:
