@@ -3,7 +3,6 @@ from __future__ import annotations
 
 import json
 import random
-import signal
 import time
 from collections import Counter, defaultdict
 
@@ -13,9 +12,9 @@ from faults_kit import (
     KEYS,
     Worker,
     comment_text,
-    consumer_pending,
     deadletters,
     group_pending,
+    kill_mid_batch,
     read_stream,
     stop_all,
     wait_until,
@@ -84,14 +83,7 @@ def test_sigkills_while_comments_are_edited_give_one_verdict_per_version(redis_s
             due = (k + 1) * expected // (KILLS + 2)
             wait_until(lambda: client.xlen(KEYS.verdicts) >= due, timeout=max(0.0, deadline - time.monotonic()))
             time.sleep(rng.uniform(0.0, 0.2))
-            busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name)],
-                              timeout=5, interval=0.01)
-            victim = rng.choice(busy or workers)
-            held = consumer_pending(client, victim.name)
-            assert victim.kill() == -signal.SIGKILL
-            kills.append(held)
-            base = victim.name.split(".")[0]
-            victim.start(name=victim.name if len(kills) % 2 == 0 else f"{base}.{len(kills)}")
+            kills.append(kill_mid_batch(client, workers, rng, len(kills) + 1)[1])
         finished = wait_until(lambda: client.xlen(KEYS.verdicts) >= expected and group_pending(client) == 0,
                               timeout=max(10.0, deadline - time.monotonic()), interval=0.2)
         assert finished, f"{client.xlen(KEYS.verdicts)} of {expected} verdicts, {group_pending(client)} pending"
