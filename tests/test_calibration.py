@@ -399,3 +399,18 @@ def test_classifier_calibrate_refits_the_map_and_the_thresholds(trained, held):
     with pytest.raises(DataError, match="both spam and ham"):
         model.calibrate([held[0][i] for i, y in enumerate(held[1]) if y == 1][:20], [1] * 20)
     assert model.calibration_.method == "platt"  # a refused calibration changes nothing
+
+
+def test_bench_calibration_compares_the_maps_beside_scikit_learn(capsys):
+    import json
+
+    from ops.cli import main
+
+    assert main(["bench", "calibration", "--train", "300", "--held-out", "80", "--judge", "150", "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert rows["pairs"] == 12
+    assert rows["sklearn_sigmoid_max_abs_difference"] < 1e-9  # scikit-learn's Platt scaling, same model and rows
+    for method in ("identity", "platt", "temperature", "isotonic"):
+        r = rows[method]
+        assert 0 < r["log_loss"] <= r["log_loss_worst"] and 0 <= r["ordinary_flagged"] <= r["ordinary_flagged_worst"]
+        assert r["ordinary_flagged_worst"] <= 0.10  # the floors keep other communities' ordinary comments published

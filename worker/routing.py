@@ -29,8 +29,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from types import MappingProxyType
 
-from model.calibration import (DEFAULT_HOLD_FLOOR, DEFAULT_HOLD_FPR, DEFAULT_REJECT_FLOOR, DEFAULT_REJECT_FPR,
-                               ThresholdChoice, Thresholds, ThresholdTargets, choose_thresholds)
+from model.calibration import ThresholdChoice, Thresholds, ThresholdTargets, choose_thresholds
 
 PUBLISH = "publish"
 HOLD = "hold"
@@ -147,17 +146,13 @@ def _fixed(fixed: Mapping) -> dict[str, float]:
 
 
 @dataclass(frozen=True)
-class RoutingSettings:
+class RoutingSettings(ThresholdTargets):
     """The deployment's targets and floors, and its per-site table (``worker.*`` settings)."""
 
-    hold_fpr: float = DEFAULT_HOLD_FPR
-    reject_fpr: float = DEFAULT_REJECT_FPR
-    hold_floor: float = DEFAULT_HOLD_FLOOR
-    reject_floor: float = DEFAULT_REJECT_FLOOR
     site_thresholds: Mapping = field(default_factory=lambda: MappingProxyType({}))
 
     def __post_init__(self):
-        self.targets()  # refuse bad values at start-up, naming the field
+        super().__post_init__()  # refuse bad values at start-up, naming the field
         parse_site_overrides(self.site_thresholds)
 
     @classmethod

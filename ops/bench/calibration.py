@@ -138,8 +138,22 @@ def measure(n_train: int, n_held: int, n_judge: int) -> dict:
             "spam_flagged": round(float(v[:, 4].mean()), 4), "spam_flagged_worst": round(float(v[:, 4].min()), 4),
         }
     rows["pairs"] = len(figures["identity"])
-    rows["sklearn_sigmoid_max_abs_difference"] = float(f"{sk_gap:.2g}")
+    rows["sklearn_sigmoid_max_abs_difference"] = sk_gap
     return rows
+
+
+def as_text(rows: dict) -> dict:
+    """One readable line per method (worst pair in brackets)."""
+    out = {}
+    for method in METHOD_ORDER:
+        r = rows[method]
+        out[method] = (f"log loss {r['log_loss']:.3f} ({r['log_loss_worst']:.3f})  Brier {r['brier']:.3f}  "
+                       f"ECE {r['ece']:.3f}  ordinary comments flagged {r['ordinary_flagged']:.2%} "
+                       f"({r['ordinary_flagged_worst']:.1%})  spam flagged {r['spam_flagged']:.1%} "
+                       f"({r['spam_flagged_worst']:.1%})")
+    out["pairs"] = rows["pairs"]
+    out["scikit-learn sigmoid vs platt"] = f"largest difference {rows['sklearn_sigmoid_max_abs_difference']:.1e}"
+    return out
 
 
 def run(args) -> int:
@@ -147,6 +161,7 @@ def run(args) -> int:
         from model.errors import DataError
 
         raise DataError("bench calibration: --train must be >= 100, --held-out >= 50 and --judge >= 100")
-    report("seawall bench calibration (means over train/other community pairs)",
-           measure(args.train, args.held_out, args.judge), as_json=args.json)
+    rows = measure(args.train, args.held_out, args.judge)
+    report("seawall bench calibration (means over train/other community pairs; worst pair in brackets)",
+           rows if args.json else as_text(rows), as_json=args.json)
     return 0
