@@ -260,3 +260,66 @@ def test_serve_score_and_the_rq_job_decide_alike_with_the_same_settings(redis_se
     assert any(r == "site" and a == "publish" for a, r, _s, _ in quiet)
     assert any(r == "site" and a == "publish" and 0.3 <= s < 0.6 for a, r, s, _ in careful)
     assert all(a != "hold" or s >= 0.6 for a, _r, s, _ in careful)
+
+
+# --- train, retrain and promote say how the thresholds were set ------------------------------------------------------
+
+def write_jsonl(path, rows) -> str:
+    with open(path, "w", encoding="utf-8") as fh:
+        for c in rows:
+            fh.write(json.dumps({"text": c.text, "label": "spam" if c.label else "ham"}) + "\n")
+    return str(path)
+
+
+def test_train_prints_the_deployments_thresholds_and_warns_at_the_floor(tmp_path, capsys, monkeypatch):
+    from ops.cli import main
+
+    for name in list(os.environ):
+        if name.startswith("SEAWALL_WORKER_") or name == "SEAWALL_CONFIG":
+            monkeypatch.delenv(name)
+    data = write_jsonl(tmp_path / "quay.jsonl", labelled("sq", 1, 800))
+    assert main(["train", data, "--out", str(tmp_path / "a.model"), "--quiet"]) == 0
+    out, err = capsys.readouterr()
+    assert "calibration: temperature" in out and "thresholds: hold 0.5000  reject 0.9000" in out
+    assert "train: warning: hold threshold sits at its floor 0.5000" in err
+    assert "train: warning: reject threshold:" in err and "too few to measure a 0.10% false-positive rate" in err
+    # The deployment's own floor (the setting serve reads) reaches train and the stored thresholds.
+    monkeypatch.setenv("SEAWALL_WORKER_HOLD_FLOOR", "0.7")
+    assert main(["train", data, "--out", str(tmp_path / "b.model"), "--quiet", "--calibration", "platt"]) == 0
+    out, err = capsys.readouterr()
+    assert "calibration: platt" in out and "thresholds: hold 0.7000  reject 0.9000" in out
+    assert "sits at its floor 0.7000" in err
+    stored = EmbeddingClassifier.load(tmp_path / "b.model")
+    assert stored.thresholds.hold == 0.7 and stored.calibration_.method == "platt"
+
+
+@pytest.mark.redis_server
+def test_promote_and_retrain_warn_when_a_threshold_sits_at_its_floor(redis_server, tmp_path, capsys):
+    from ops.cli import main
+    from retrain_kit import send_feedback, stream, training_set
+
+    url = redis_server.url
+    first = tmp_path / "first.model"
+    EmbeddingClassifier(seed=0, epochs=4).fit([c.text for c in training_set()],
+                                              [c.label for c in training_set()]).save(first)
+    replay = write_jsonl(tmp_path / "replay.jsonl", training_set())
+    assert main(["models", "push", str(first), "--replay", replay, "--redis", url, "--json"]) == 0
+    version = json.loads(capsys.readouterr().out)["version"]
+    assert main(["models", "promote", version, "--redis", url, "--rescore", "off"]) == 0
+    out, err = capsys.readouterr()
+    assert "hold 0.5000  reject 0.9000" in out
+    assert "models promote: warning: hold threshold sits at its floor 0.5000" in err
+    second = tmp_path / "second.model"
+    EmbeddingClassifier(seed=1, epochs=4).fit([c.text for c in training_set()],
+                                              [c.label for c in training_set()]).save(second)
+    assert main(["models", "push", str(second), "--redis", url, "--json"]) == 0
+    other = json.loads(capsys.readouterr().out)["version"]
+    assert main(["models", "promote", other, "--redis", url, "--rescore", "off", "--json"]) == 0
+    shown = json.loads(capsys.readouterr().out)["thresholds"]
+    assert shown["hold"] == 0.5 and any("sits at its floor" in w for w in shown["warnings"])
+
+    send_feedback(redis_server.client(), stream()[:400])
+    assert main(["retrain", "--redis", url, "--rescore", "off"]) == 0
+    out, err = capsys.readouterr()
+    assert "thresholds of the active model: hold 0.5000  reject 0.9000" in out
+    assert "retrain: warning: hold threshold sits at its floor 0.5000" in err
