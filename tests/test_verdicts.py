@@ -323,3 +323,17 @@ def test_promote_and_retrain_warn_when_a_threshold_sits_at_its_floor(redis_serve
     out, err = capsys.readouterr()
     assert "thresholds of the active model: hold 0.5000  reject 0.9000" in out
     assert "retrain: warning: hold threshold sits at its floor 0.5000" in err
+
+
+def test_an_app_that_embeds_the_rq_job_passes_its_own_settings(quay_model, monkeypatch):
+    import worker.jobs as jobs
+    from worker.loader import StaticModelSource
+
+    monkeypatch.setattr(jobs, "_PROCESS", jobs._Process())
+    texts = [c.text for c in CommunityScenario("lc", seed=5).labelled(300) if c.label == 1][:5]
+    jobs.set_model_source(StaticModelSource(model=quay_model), settings=RoutingSettings(reject_floor=1.0),
+                          site_thresholds={"strict.example": {"hold": 0.0}})
+    got = jobs.score_batch([{"id": f"s{i}", "text": t} for i, t in enumerate(texts)]
+                           + [{"id": "o1", "text": "See you at the meeting", "site": "strict.example"}])
+    assert [v["action"] for v in got[:-1]] == ["hold"] * 5          # reject_floor 1.0: nothing is rejected
+    assert (got[-1]["action"], got[-1]["rule"]) == ("hold", "site")  # the site's fixed hold 0.0

@@ -29,6 +29,7 @@ the job has no access to the operator's Config.
 """
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import threading
@@ -44,7 +45,6 @@ from worker.streams import Entry
 from worker.validation import Comment, Limits, validate
 
 MODEL_PATH_ENV = "SEAWALL_MODEL_PATH"
-SITE_THRESHOLDS_ENV = "SEAWALL_WORKER_SITE_THRESHOLDS"
 RELOAD_POLL_S = 2.0
 PLAIN_VALUES = (str, int, float)
 MAX_COMMENTS = 10_000
@@ -81,7 +81,7 @@ def set_model_source(source: ModelSource, *, site_thresholds: Mapping | None = N
         _PROCESS.settings = settings
         if site_thresholds is not None:
             base = settings if settings is not None else _settings_from_environment()
-            _PROCESS.settings = RoutingSettings(**{**base.__dict__, "site_thresholds": dict(site_thresholds)})
+            _PROCESS.settings = dataclasses.replace(base, site_thresholds=dict(site_thresholds))
         _PROCESS.model = None
 
 
