@@ -337,3 +337,31 @@ def test_an_app_that_embeds_the_rq_job_passes_its_own_settings(quay_model, monke
                            + [{"id": "o1", "text": "See you at the meeting", "site": "strict.example"}])
     assert [v["action"] for v in got[:-1]] == ["hold"] * 5          # reject_floor 1.0: nothing is rejected
     assert (got[-1]["action"], got[-1]["rule"]) == ("hold", "site")  # the site's fixed hold 0.0
+
+
+def test_one_text_on_two_sites_is_explained_for_each_sites_action(fake_redis, quay_model):
+    # The worker scores a text once per batch; here it is held on one site and published on a
+    # site that only holds from 0.95: each verdict's reasons must explain its own action.
+    from worker.connection import raw_stream_replies
+    from worker.consumer import StreamConsumer
+    from worker.loader import StaticModelSource
+    from worker.settings import WorkerSettings
+
+    rows = CommunityScenario("lc", seed=5).labelled(300)
+    scores, strongest = quay_model.score_many([c.text for c in rows], top_k=5)
+    text, magnitude_order = next((c.text, why) for c, s, why in zip(rows, scores, strongest)
+                                 if 0.5 <= s < 0.9 and any(x < 0 for _, x in why[:3]))
+    client = raw_stream_replies(fake_redis)
+    client.xadd(KEYS.comments, {"id": "busy", "text": text, "site": "busy.example"})
+    client.xadd(KEYS.comments, {"id": "calm", "text": text, "site": "calm.example"})
+    settings = WorkerSettings(block_ms=5, overlap_commit=False, site_thresholds={"calm.example": {"hold": 0.95}})
+    consumer = StreamConsumer(client=client, keys=KEYS, settings=settings,
+                              model_source=StaticModelSource(model=quay_model), consumer="w")
+    consumer.prepare()
+    consumer.step()
+    got = {f[b"id"].decode(): f for _sid, f in client.xrange(KEYS.verdicts)}
+    busy, calm = (json.loads(got[i][b"reasons"]) for i in ("busy", "calm"))
+    assert (got["busy"][b"action"], got["calm"][b"action"], got["calm"][b"rule"]) == (b"hold", b"publish", b"site")
+    signs = [c > 0 for _, c in busy]
+    assert signs == sorted(signs, reverse=True) and signs[0]
+    assert [t for t, _ in calm] == [t for t, _ in magnitude_order]

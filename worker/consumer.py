@@ -426,10 +426,14 @@ class StreamConsumer:
         index = [slots.setdefault(c.text, len(slots)) for c in comments]
         cutoffs = self._router.hold_cutoffs([c.site for c in comments])
         if len(slots) < len(comments):
-            first: dict[int, float] = {}
+            # One text on sites with different hold cutoffs is ranked for the highest of them;
+            # a comment held below it is explained again in _route.
+            highest = [1.0] * len(slots)
+            seen = [False] * len(slots)
             for slot, cutoff in zip(index, cutoffs):
-                first.setdefault(slot, cutoff)
-            cutoffs = [first[i] for i in range(len(slots))]
+                highest[slot] = cutoff if not seen[slot] else max(highest[slot], cutoff)
+                seen[slot] = True
+            cutoffs = highest
         try:
             scores, reasons = model.score_many(list(slots), top_k=TOP_K, spamward_from=cutoffs)
             scores = [float(s) for s in scores]
@@ -441,23 +445,28 @@ class StreamConsumer:
         if len(slots) < len(comments):
             scores = [scores[i] for i in index]
             reasons = [reasons[i] for i in index]
-        return self._route(comments, scores, reasons)
+            cutoffs = [cutoffs[i] for i in index]
+        return self._route(comments, scores, reasons, cutoffs)
 
     def _score_each(self, comments: list[Comment]) -> tuple[list[Scored], list[DeadLetter]]:
-        good, scores, reasons, dead = [], [], [], []
+        good, scores, reasons, cutoffs, dead = [], [], [], [], []
         for c in comments:
             try:
-                s, r = self._model.score_many([c.text], top_k=TOP_K, spamward_from=self._router.hold_cutoffs([c.site]))
+                cutoff = self._router.hold_cutoffs([c.site])
+                s, r = self._model.score_many([c.text], top_k=TOP_K, spamward_from=cutoff)
                 good.append(c)
                 scores.append(float(s[0]))
                 reasons.append(r[0])
+                cutoffs.append(cutoff[0])
             except Exception as exc:  # noqa: BLE001 - reported as a dead letter, never swallowed
                 dead.append(comment_dead_letter(c, "score_error", f"{type(exc).__name__} in the model",
                                                 self._input_limits))
-        scored, bad = self._route(good, scores, reasons)
+        scored, bad = self._route(good, scores, reasons, cutoffs)
         return scored, dead + bad
 
-    def _route(self, comments, scores, reasons) -> tuple[list[Scored], list[DeadLetter]]:
+    def _route(self, comments, scores, reasons, ranked_from) -> tuple[list[Scored], list[DeadLetter]]:
+        """Decide, let the policies adjust, and explain each final action (``ranked_from``: the
+        cutoff each comment's reasons were ranked for; see :func:`worker.routing.explain_decisions`)."""
         dead = []
         if not all(0.0 <= s <= 1.0 for s in scores):  # NaN fails both comparisons
             keep = [i for i, s in enumerate(scores) if 0.0 <= s <= 1.0]
@@ -467,15 +476,15 @@ class StreamConsumer:
             comments = [comments[i] for i in keep]
             scores = [scores[i] for i in keep]
             reasons = [reasons[i] for i in keep]
-        sites = [c.site for c in comments]
-        decisions = self._router.decide_many(scores, sites)
+            ranked_from = [ranked_from[i] for i in keep]
+        decisions = self._router.decide_many(scores, [c.site for c in comments])
         if self.policies:
             decisions = apply_policies(self.policies, self.client, comments, scores, decisions)
-            try:
-                reasons = explain_decisions(self._model, [c.text for c in comments], scores, decisions, list(reasons),
-                                            self._router.hold_cutoffs(sites), top_k=TOP_K)
-            except Exception:  # noqa: BLE001 - the scores stand; only the order of the reasons is lost
-                log.exception("explaining the policies' holds failed; their reasons keep the model's order")
+        try:
+            reasons = explain_decisions(self._model, [c.text for c in comments], scores, decisions, list(reasons),
+                                        ranked_from, top_k=TOP_K)
+        except Exception:  # noqa: BLE001 - the scores stand; only the order of the reasons is lost
+            log.exception("explaining held comments again failed; their reasons keep the model's order")
         scored = [Scored(c, f"{s:.4f}", d.action, format_reasons(r), d.rule, d.campaign)
                   for c, s, d, r in zip(comments, scores, decisions, reasons)]
         return scored, dead

@@ -301,15 +301,16 @@ class Router:
 
 
 def explain_decisions(model, texts: Sequence[str], scores: Sequence[float], decisions: Sequence[Decision],
-                      reasons: list, hold_cutoffs: Sequence[float], *, top_k: int) -> list:
+                      reasons: list, ranked_from: Sequence[float], *, top_k: int) -> list:
     """Reasons that explain each final action.
 
     The scoring call lists spam-ward tokens first for comments at or above
-    their hold cutoff (``spamward_from``); a comment a policy held or rejected
-    below it (a campaign member the model would publish) is explained again
-    here, spam-ward tokens first.  ``reasons`` is returned, fixed in place.
+    ``ranked_from`` (its ``spamward_from``, normally each comment's hold
+    cutoff); a comment held or rejected below it (a campaign member the model
+    would publish, or one text scored once for several sites) is explained
+    again here, spam-ward tokens first.  ``reasons`` is returned, fixed in place.
     """
-    again = [i for i, (d, s, c) in enumerate(zip(decisions, scores, hold_cutoffs)) if d.action != PUBLISH and s < c]
+    again = [i for i, (d, s, c) in enumerate(zip(decisions, scores, ranked_from)) if d.action != PUBLISH and s < c]
     if again and top_k > 0:
         _, fixed = model.score_many([texts[i] for i in again], top_k=top_k, spamward_from=0.0)
         for i, why in zip(again, fixed):
