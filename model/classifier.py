@@ -30,7 +30,7 @@ import scipy.sparse as sp
 
 from model import artifact, network, training
 from model.calibration import (DEFAULT_HOLD_FLOOR, DEFAULT_HOLD_FPR, DEFAULT_METHOD, DEFAULT_REJECT_FLOOR,
-                               DEFAULT_REJECT_FPR, DEFAULT_TARGETS, DEFAULT_THRESHOLDS, IDENTITY, METHODS, HeldOutHam,
+                               DEFAULT_REJECT_FPR, DEFAULT_TARGETS, IDENTITY, METHODS, HeldOutHam,
                                ProbabilityMap, ThresholdChoice, Thresholds, ThresholdTargets, choose_thresholds,
                                fit_probability_map)
 from model.errors import ArtifactError, DataError
