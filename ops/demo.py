@@ -460,7 +460,7 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
              f"{gate.get(report.get('chosen'), {}).get('roc_auc', float('nan')):.3f}; promoted {version} "
              f"({report.get('chosen', '').replace('_', ' ')})")
     result.rescore = rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
-                                  site_overrides=config.worker.site_thresholds,
+                                  settings=config.worker,
                                   verdicts_maxlen=config.worker.verdicts_maxlen)
     progress(f"{stamp(clock.now)} re-scored the hold queue: {result.rescore.get('held', 0)} held, "
              f"{result.rescore.get('released', 0)} released by the new model")

@@ -62,5 +62,5 @@ def rescore_job(version: str | None = None, config_file: str | None = None) -> d
     if version is not None and active != version:
         return {"skipped": f"model {version} is no longer active (active is {active})"}
     return rescore_held(client, config.keys, registry.load(active), batch=config.retrain.rescore_batch,
-                        site_overrides=config.worker.site_thresholds,
+                        settings=config.worker,
                         verdicts_maxlen=config.worker.verdicts_maxlen)

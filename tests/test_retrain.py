@@ -451,9 +451,9 @@ def test_rescore_releases_held_comments_the_new_model_is_sure_about(redis_client
     decided = held[0].id
     original = model.score_many
 
-    def score_while_a_moderator_decides(texts, top_k=5):
+    def score_while_a_moderator_decides(texts, top_k=5, **kwargs):
         r.zrem(KEYS.held, decided)  # feedback lands while the batch is scored
-        return original(texts, top_k=top_k)
+        return original(texts, top_k=top_k, **kwargs)
 
     model.score_many = score_while_a_moderator_decides
     counts = rescore_held(r, KEYS, model, batch=150)

@@ -1,6 +1,8 @@
 """``seawall retrain``: run the gated retrain now (the scheduled job runs the same code).
 
-Prints what was decided and why; ``--json`` prints the whole report, which is
+Prints what was decided and why, and the thresholds the active model then
+serves with (with a warning when one sits at its floor or the held-out ham is
+too few to measure its target); ``--json`` prints the whole report, which is
 also stored in Redis (``retrain:reports``, newest first).  Exit 0 when the
 retrain ran (promoted, refused by the gate, or nothing to do); 2 when it
 could not run (another retrain holds the lock, no active model).
@@ -11,6 +13,7 @@ import json
 
 from ops.commands.models import add_rescore_arg, rescore_after_switch
 from ops.connection import add_connection_args, config_from_args, connect
+from ops.thresholds import print_warnings
 
 
 def register(sub) -> None:
@@ -30,10 +33,12 @@ def run(args) -> int:
     report = retrain(client, config.keys, config.retrain,
                      on_promoted=lambda version: after.update(rescore_after_switch(args.rescore, client, config, version)))
     report.update(after)
+    warnings = _active_thresholds(client, config, report)
     if args.json:
         print(json.dumps(report, sort_keys=True))
         return 0
     print(render(report))
+    print_warnings(warnings, op="retrain")
     return 0
 
 
@@ -85,4 +90,19 @@ def render(report: dict) -> str:
     sets = tuple(gate["sets"]) if gate else ()
     lines += [f"  - {reason}" for reason in report.get("reasons", [])
               if not reason.startswith(tuple(f"{s}: " for s in sets))]
+    if "serving_thresholds" in report:
+        lines.append(f"  thresholds of the active model: {report['serving_thresholds']['text']}")
     return "\n".join(lines)
+
+
+def _active_thresholds(client, config, report: dict) -> list[str]:
+    """The active model's thresholds under the deployment's settings, added to the report; their warnings."""
+    from ops.registry import Registry
+    from ops.thresholds import describe, model_router
+
+    if not report.get("active") and not report.get("promoted"):
+        return []
+    router = model_router(Registry(client=client, keys=config.keys).load(), config.worker)
+    report["serving_thresholds"] = {"hold": router.cutoffs("").hold, "reject": router.cutoffs("").reject,
+                                    "warnings": router.warnings(), "text": describe(router)}
+    return router.warnings()
