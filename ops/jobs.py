@@ -69,7 +69,8 @@ def retrain_job(config_file: str | None = None) -> dict:
     after = {}
     report = retrain(client, config.keys, config.retrain,
                      on_promoted=lambda version: after.update(rescore_after_switch("now", client, config, version)))
-    summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "reasons", "seconds")}
+    summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "chosen", "reasons",
+                                          "seconds")}
     summary.update(after)
     return summary
 
@@ -87,5 +88,5 @@ def rescore_job(version: str | None = None, config_file: str | None = None) -> d
     if version is not None and active != version:
         return {"skipped": f"model {version} is no longer active (active is {active})"}
     return rescore_held(client, config.keys, registry.load(active), batch=config.retrain.rescore_batch,
-                        site_overrides=config.worker.site_thresholds,
+                        settings=config.worker,
                         verdicts_maxlen=config.worker.verdicts_maxlen)

@@ -3,7 +3,6 @@ from __future__ import annotations
 
 import json
 import random
-import signal
 import time
 
 import pytest
@@ -11,10 +10,10 @@ import pytest
 from faults_kit import (
     KEYS,
     Producer,
-    consumer_pending,
     deadletters,
     group_lag,
     group_pending,
+    kill_mid_batch,
     verdict_ids,
     write_model,
 )
@@ -47,17 +46,10 @@ def test_twenty_sigkills_during_a_20000_comment_run_lose_and_double_nothing(redi
             wait_for_progress(lambda: client.xlen(KEYS.verdicts) >= due, lambda: client.xlen(KEYS.verdicts),
                               stall_s=STALL_S, what=f"{due} verdicts before kill {k + 1}")
             time.sleep(rng.uniform(0.0, 0.2))
-            # Aim at a worker holding unacknowledged entries, so the kill lands mid-batch.
-            busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name)],
-                              timeout=5, interval=0.01)
-            victim = rng.choice(busy or workers)
-            held = consumer_pending(client, victim.name)
-            assert victim.kill() == -signal.SIGKILL
-            kills.append({"worker": victim.name, "pending_at_kill": held})
-            # Even kills: restart under the same name (it reads its own backlog first);
-            # odd kills: a new name, so the others must reclaim what the dead one held.
-            base = victim.name.split(".")[0]
-            victim.start(name=victim.name if len(kills) % 2 == 0 else f"{base}.{len(kills)}")
+            # Aim at a worker holding unacknowledged entries, so the kill lands mid-batch; restart it
+            # under the same name or a new one, in turns.
+            name, held = kill_mid_batch(client, workers, rng, len(kills) + 1)
+            kills.append({"worker": name, "pending_at_kill": held})
         wait_for_progress(lambda: client.xlen(KEYS.verdicts) >= COMMENTS and group_pending(client) == 0,
                           lambda: (client.xlen(KEYS.verdicts), group_pending(client)), stall_s=STALL_S,
                           interval=0.2, what="every verdict, nothing pending (progress: verdicts, pending)")

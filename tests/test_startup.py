@@ -76,3 +76,13 @@ def test_bench_startup_prints_medians_beside_the_interpreter_floor(redis_server,
         assert rows[f"seawall: {name} median_s"] > rows["python -c pass median_s"]
     assert rows["seawall: help imports"] == "-"
     assert "sklearn" not in rows["seawall: feedback imports"]
+
+
+def test_train_names_the_calibration_default_without_importing_the_model(capsys):
+    from model.calibration import DEFAULT_METHOD, METHODS
+    from ops.commands.train import DEFAULT_CALIBRATION, _CalibrationMethods
+
+    assert DEFAULT_CALIBRATION == DEFAULT_METHOD and tuple(_CalibrationMethods()) == METHODS
+    with pytest.raises(SystemExit):
+        main(["train", "x.jsonl", "--out", "model.npz", "--calibration", "guesswork"])
+    assert "invalid choice: 'guesswork'" in capsys.readouterr().err

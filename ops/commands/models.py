@@ -165,13 +165,19 @@ def run_pull(args) -> int:
 
 
 def _after_switch(args, config, client, result: dict, kind: str, *, head: str = "") -> int:
+    from ops.registry import Registry
     from ops.rescore import describe_rescore, rescore_after_switch
+    from ops.thresholds import describe, model_router, print_warnings
 
     result = dict(result, **rescore_after_switch(args.rescore, client, config, result["version"]))
+    router = model_router(Registry(client=client, keys=config.keys).load(result["version"]), config.worker)
+    result["thresholds"] = {"hold": router.cutoffs("").hold, "reject": router.cutoffs("").reject,
+                            "warnings": router.warnings()}
     switched = f"is active (was {result['previous'] or 'none'})"
     text = (f"{head}; it {switched}" if head else f"models {kind}: {result['version']} {switched}")
-    text += "; " + describe_rescore(result, queue=config.retrain.queue)
+    text += f"; {describe(router)}; " + describe_rescore(result, queue=config.retrain.queue)
     _print(args, result, text)
+    print_warnings(router.warnings(), op=f"models {kind}")
     return 0
 
 
