@@ -23,7 +23,7 @@ from operator import itemgetter
 import numpy as np
 
 from model.chunks import ChunkStore
-from model.hashing import TokenHasher, pair_hash
+from model.hashing import TokenHasher
 from model.tokens import (BIGRAM_JOINER, CHUNK_NUMERIC_END, CHUNK_NUMERIC_START, CHUNK_SEPARATOR, MARK_DOMAIN,
                           MARK_SINGLE, MARK_URL, Tokenizer, char_ngrams, pair_positions, token_marks)
 
@@ -159,8 +159,6 @@ class Features:
 
 
 _EMPTY = np.empty(0, dtype=np.int64)
-#: From this many word pairs in one comment, one vectorised call beats a Python call per pair.
-_FEW_PAIRS = 8
 
 
 class FeatureEncoder:
@@ -278,22 +276,20 @@ class FeatureEncoder:
             hashes = hasher.hash_list(words)
         else:
             hashes = list(chain.from_iterable(map(itemgetter(1), entries)))
-        left: list[int] = []
-        right: list[int] = []
+        left = right = ()
         extra: list[str] = []
-        if tok.bigrams or tok.char_ngrams[0]:
-            seq = pair_positions(words) if "<url>" in words else list(range(len(words)))
-            if tok.bigrams and len(seq) > 1:
+        if tok.bigrams and len(words) > 1:
+            if "<url>" in words:
+                seq = pair_positions(words)
+                in_seq = [hashes[i] for i in seq]
                 left, right = seq[:-1], seq[1:]
-                if len(left) < _FEW_PAIRS:
-                    seed = hasher.seed
-                    hashes.extend([pair_hash(hashes[a], hashes[b], seed) for a, b in zip(left, right)])
-                else:
-                    in_seq = np.array(hashes if len(seq) == len(hashes) else [hashes[i] for i in seq], dtype=np.uint32)
-                    hashes.extend(hasher.pairs(in_seq[:-1], in_seq[1:]).tolist())
-            if tok.char_ngrams[0]:
-                extra = char_ngrams(words, *tok.char_ngrams)
-                hashes.extend(hasher.hash_list(extra))
+            else:
+                in_seq = hashes
+                left, right = range(len(words) - 1), range(1, len(words))
+            hashes.extend(hasher.pair_list(in_seq, in_seq[1:]))
+        if tok.char_ngrams[0]:
+            extra = char_ngrams(words, *tok.char_ngrams)
+            hashes.extend(hasher.hash_list(extra))
         mask = hasher.n_buckets - 1
         return [h & mask for h in hashes], FeatureNames(words, left, right, extra)
 

@@ -19,7 +19,7 @@ from model.classifier import FEW, EmbeddingClassifier
 from model.errors import ArtifactError
 from model.explain import top_contributions
 from model.features import FeatureEncoder, FeatureNames
-from model.hashing import TokenHasher, _hash, _hash_many, _unsigned, pair_hash, pair_hashes
+from model.hashing import TokenHasher, _hash, _hash_many, murmur_u32, pair_hash, pair_hashes
 from model.tokens import Tokenizer
 
 from test_network import HAM, SPAM, small_corpus
@@ -54,11 +54,13 @@ def test_bulk_hashes_equal_one_at_a_time():
     assert hasher.hash_list(tokens[:50]) == hasher.hashes(tokens[:50]).tolist() == [_hash(t, 5) for t in tokens[:50]]
 
 
-@pytest.mark.parametrize("signed", [-(2**31), -1, 0, 5, 2**31 - 1])
-def test_unsigned_from_sklearns_abs_and_sign(signed):
-    # scikit-learn's loop gives abs(h) % n (0 for h = -2**31 when n = 2**31) and the sign of h.
-    index = 0 if signed == -(2**31) else abs(signed)
-    assert _unsigned(np.array([index]), np.array([1.0 if signed >= 0 else -1.0])).tolist() == [signed % 2**32]
+def test_integer_key_murmur_matches_sklearn_on_random_and_edge_keys():
+    # Reference: scikit-learn's MurmurHash3 (x86, 32-bit) of the 4-byte little-endian key.
+    rng = np.random.default_rng(1)
+    keys = np.concatenate([rng.integers(0, 2**32, 2000, dtype=np.uint64), EDGE]).astype(np.uint32)
+    for seed in (0, 1, 0x9747B28C, 2**32 - 1):
+        expected = [murmurhash3_32(struct.pack("<I", k), seed=seed, positive=True) for k in keys.tolist()]
+        assert murmur_u32(keys, seed).tolist() == expected
 
 
 def test_lone_surrogates_and_non_strings():
