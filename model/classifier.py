@@ -26,7 +26,6 @@ from itertools import repeat
 from operator import mul, truediv
 
 import numpy as np
-import scipy.sparse as sp
 
 from model import artifact, budget, network, training
 from model.calibration import DEFAULT_HOLD_FPR, DEFAULT_REJECT_FPR, DEFAULT_THRESHOLDS, Thresholds, calibrate
@@ -138,7 +137,9 @@ class _Bag:
     names: object
     indptr: np.ndarray
 
-    def matrix(self, n_buckets: int) -> sp.csr_matrix:
+    def matrix(self, n_buckets: int) -> "sp.csr_matrix":
+        import scipy.sparse as sp  # training only; scoring needs numpy alone
+
         return sp.csr_matrix(
             (self.weight.astype(np.float32), self.bucket.astype(np.int32), self.indptr),
             shape=(self.n, n_buckets),
@@ -284,6 +285,8 @@ class EmbeddingClassifier:
         """Pooling-weight rows of many texts, built in chunks so that only one
         chunk's token strings are alive at a time; ``seen`` collects each
         chunk's distinct feature hashes (see :meth:`_distinct`)."""
+        import scipy.sparse as sp
+
         parts = []
         for start in range(0, len(texts), chunk):
             feats = self._features(texts[start:start + chunk])
@@ -604,6 +607,8 @@ class EmbeddingClassifier:
             contrib = bag.weight * bucket_logit[bag.bucket]
             logits = np.bincount(bag.doc, weights=contrib, minlength=bag.n) + float(head["b2"][0])
             return logits, contrib
+        import scipy.sparse as sp  # a hidden layer is scored through a sparse product
+
         rows = index[bag.bucket]
         local = sp.csr_matrix((bag.weight.astype(np.float32), rows, bag.indptr), shape=(bag.n, table.shape[0]))
         h = np.asarray(local @ table, dtype=np.float32)

@@ -8,7 +8,6 @@ thresholds are passed.  Label 1 is spam (the positive class), 0 ham.
 from __future__ import annotations
 
 import numpy as np
-from sklearn import metrics
 
 from model.calibration import Thresholds
 from model.errors import DataError
@@ -20,6 +19,8 @@ def recall_at_fpr(labels: np.ndarray, scores: np.ndarray, fpr: float) -> float:
     Read off ``sklearn.metrics.roc_curve``; a comment is flagged when its score
     is >= the threshold, so tied scores are flagged together.
     """
+    from sklearn import metrics  # imported when needed: scoring never pays for scikit-learn
+
     fprs, tprs, _ = metrics.roc_curve(labels, scores, drop_intermediate=False)
     ok = fprs <= fpr + 1e-12
     return float(tprs[ok].max()) if ok.any() else 0.0
@@ -27,6 +28,8 @@ def recall_at_fpr(labels: np.ndarray, scores: np.ndarray, fpr: float) -> float:
 
 def at_threshold(labels: np.ndarray, scores: np.ndarray, threshold: float) -> dict:
     """Precision, recall, F1, false-positive rate and confusion matrix for ``score >= threshold``."""
+    from sklearn import metrics
+
     predicted = (scores >= threshold).astype(np.int64)
     tn, fp, fn, tp = metrics.confusion_matrix(labels, predicted, labels=[0, 1]).ravel()
     n_ham = tn + fp
@@ -81,6 +84,8 @@ def evaluate(labels, scores, thresholds: Thresholds | None = None) -> dict:
     n_spam = int(labels.sum())
     if n_spam == 0 or n_spam == labels.size:
         raise DataError("evaluate: the data hold a single class; ranking figures need both spam and ham")
+    from sklearn import metrics
+
     out = {
         "n": int(labels.size),
         "n_spam": n_spam,

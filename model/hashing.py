@@ -223,9 +223,6 @@ class TokenHasher:
         # token -> full 32-bit hash; a plain dict so a hit is one C lookup.  Misses are
         # hashed in bulk per call and added; the size never exceeds cache_size.
         self._cache: dict[str, int] = {}
-        # (left hash, right hash) -> word-pair hash, for the one-comment path; an
-        # entry costs about three times a token's, so it holds an eighth as many.
-        self._pair_cache: dict[tuple[int, int], int] = {}
 
     def params(self) -> dict:
         """JSON-safe parameters; ``TokenHasher(**h.params())`` rebuilds this hasher."""
@@ -307,30 +304,22 @@ class TokenHasher:
         return pair_hashes(left, right, self.seed)
 
     def pair_list(self, left: list[int], right: list[int]) -> list[int]:
-        """:meth:`pairs` as a list of ints, without numpy (for a handful of pairs); cached.
+        """:meth:`pairs` as a list of ints, without numpy (for a handful of pairs).
 
         Pairs are taken up to the shorter of ``left`` and ``right``, so
-        ``pair_list(h, h[1:])`` gives the pairs of neighbours in ``h``.
+        ``pair_list(h, h[1:])`` gives the pairs of neighbours in ``h``.  Not
+        cached: a miss in a big table of pairs costs more than the hash.
         """
-        cache = self._pair_cache
-        keys = list(zip(left, right))
-        out = list(map(cache.get, keys))
-        if None in out:
-            missed = dict.fromkeys(key for key, value in zip(keys, out) if value is None)
-            seed = self.seed
-            murmur = mmh3.hash
-            for key in missed:
-                a, b = key
-                missed[key] = murmur(((((a << 16) | (a >> 16)) & 0xFFFFFFFF) ^ b).to_bytes(4, "little"), seed, False)
-            self._remember(missed, cache, self.cache_size // 8)
-            out = list(map(missed.get, keys, out))
-        return out
+        seed = self.seed
+        murmur = mmh3.hash
+        return [murmur(((((a << 16) | (a >> 16)) & 0xFFFFFFFF) ^ b).to_bytes(4, "little"), seed, False)
+                for a, b in zip(left, right)]
 
-    def _remember(self, fresh: dict, cache: dict | None = None, cap: int | None = None) -> None:
-        if cache is None:
-            cache, cap = self._cache, self.cache_size
+    def _remember(self, fresh: dict) -> None:
+        cap = self.cache_size
         if not cap:
             return
+        cache = self._cache
         if len(cache) + len(fresh) > cap:
             # Drop the oldest entries (insertion order) down to half the cap,
             # or all of them when this batch alone fills the cache.

@@ -20,15 +20,20 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.sparse as sp
-from scipy.special import expit
 
 HEAD_KEYS = ("w1", "b1", "w2", "b2")
 
 
 def sigmoid(z: np.ndarray) -> np.ndarray:
-    """Logistic function (``scipy.special.expit``: stable for any ``z``), float64."""
-    return expit(np.asarray(z, dtype=np.float64))
+    """Logistic function, float64: ``exp(-log(1 + exp(-z)))``, stable for any ``z``.
+
+    Examples
+    --------
+    >>> sigmoid(np.array([-800.0, 0.0, 800.0])).tolist()
+    [0.0, 0.5, 1.0]
+    """
+    z = np.asarray(z, dtype=np.float64)
+    return np.exp(-np.logaddexp(0.0, -z))
 
 
 def localize(batch: sp.csr_matrix) -> tuple[np.ndarray, sp.csr_matrix]:
@@ -50,6 +55,8 @@ def localize(batch: sp.csr_matrix) -> tuple[np.ndarray, sp.csr_matrix]:
         rows = ordered[np.concatenate(([True], ordered[1:] != ordered[:-1]))]
     else:
         rows = ordered
+    import scipy.sparse as sp  # training only; scoring needs numpy alone
+
     inverse = np.searchsorted(rows, batch.indices).astype(np.int32, copy=False)
     local = sp.csr_matrix((batch.data, inverse, batch.indptr), shape=(batch.shape[0], rows.size))
     return rows.astype(np.int64, copy=False), local
