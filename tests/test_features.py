@@ -232,6 +232,24 @@ def test_few_comments_path_equals_the_vectorised_path(trained):
     np.testing.assert_allclose(again, scores[:2], rtol=0, atol=1e-12)
 
 
+def test_one_comment_and_batch_paths_share_the_last_step(trained, monkeypatch):
+    # Whatever turns logits into probabilities (a calibration, say) must be
+    # applied by the one-comment path exactly as by the batch path: both go
+    # through _probabilities.  A stand-in that is not a plain sigmoid shows it.
+    from model import network
+
+    texts = SPAM + HAM + TEXTS
+    monkeypatch.setattr(trained, "_probabilities", lambda z: network.sigmoid(0.5 * np.asarray(z) - 1.0))
+    batch, batch_reasons = trained.score_many(texts, top_k=3)
+    expected = network.sigmoid(0.5 * trained.logits_many(texts) - 1.0)
+    np.testing.assert_allclose(batch, expected, rtol=0, atol=1e-12)
+    for text, want, want_reasons in zip(texts, batch, batch_reasons):
+        (got,), (got_reasons,) = trained.score_many([text], top_k=3)
+        assert got == pytest.approx(want, abs=1e-12)
+        assert [t for t, _ in got_reasons] == [t for t, _ in want_reasons]
+        assert trained.predict_proba_one(text) == pytest.approx(want, abs=1e-12)
+
+
 def test_a_model_with_other_pair_hashing_is_refused(trained):
     arrays, manifest = artifact.loads(trained.to_bytes())
     manifest = {k: v for k, v in manifest.items() if k not in ("sha256", "format", "format_version")}
