@@ -731,7 +731,8 @@ class EmbeddingClassifier:
             (``learn_many``) always prunes instead, unless nothing fits at all.
         """
         rows = np.flatnonzero(self._touched)
-        record = {"rows_trained": int(rows.size), "rows_kept": int(rows.size), "pruned_by": None}
+        record = {"max_bytes": self.max_bytes, "dim": self.dim_, "min_df": self.min_df_,
+                  "rows_trained": int(rows.size), "rows_kept": int(rows.size), "pruned_by": None}
         if self.max_bytes is not None:
             limit = self.max_bytes - budget.HEADROOM
             table, head = self._weights.table, self._weights.head
