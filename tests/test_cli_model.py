@@ -287,3 +287,29 @@ def test_score_imports_neither_scikit_learn_nor_scipy(model_file, tmp_path):
     done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
     assert done.stderr.strip().splitlines()[-1] == "[]"
     assert json.loads(done.stdout)["action"] in ("publish", "hold", "reject")
+
+
+def test_train_prints_what_the_size_budget_chose(tmp_path, data, capsys):
+    out_file = tmp_path / "m.npz"
+    assert main(["train", str(data), "--out", str(out_file), "--quiet", "--max-bytes", "200000"]) == 0
+    line = next(x for x in capsys.readouterr().out.splitlines() if x.startswith("size budget"))
+    assert line.startswith("size budget 200,000 bytes: d=") and "min_df=" in line and "4th-root rule" in line
+    assert out_file.stat().st_size <= 200_000
+    assert main(["train", str(data), "--out", str(out_file), "--quiet", "--max-bytes", "none"]) == 0
+    assert "size budget: none" in capsys.readouterr().out
+
+
+def test_train_that_cannot_fit_the_budget_says_what_to_change(tmp_path, data, capsys):
+    assert main(["train", str(data), "--out", str(tmp_path / "m.npz"), "--quiet", "--max-bytes", "3000"]) == 2
+    assert "raise max_bytes (seawall train --max-bytes)" in one_error_line(capsys, "train")
+    assert not (tmp_path / "m.npz").exists()
+
+
+@pytest.mark.parametrize("argv, expected", [
+    (["--max-bytes", "lots"], "--max-bytes: must be a positive number of bytes or 'none'"),
+    (["--min-df", "0"], "--min-df: must be 'auto' or a positive integer"),
+], ids=["max-bytes-not-a-number", "min-df-zero"])
+def test_train_rejects_bad_budget_arguments(tmp_path, data, capsys, argv, expected):
+    with pytest.raises(SystemExit) as exit_:
+        main(["train", str(data), "--out", str(tmp_path / "m.npz"), "--quiet", *argv])
+    assert exit_.value.code == 2 and expected in capsys.readouterr().err
