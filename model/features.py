@@ -159,6 +159,24 @@ class Features:
 
 
 _EMPTY = np.empty(0, dtype=np.int64)
+#: In a comment's token marks: three one-character tokens in a row, and a
+#: ``<url>`` marker followed by its ``domain:`` token.
+_SINGLES = bytes([MARK_SINGLE] * 3)
+_URL_DOMAIN = bytes([MARK_URL, MARK_DOMAIN])
+
+
+def _pair_sequence(marks: bytes) -> list[int]:
+    """:func:`model.tokens.pair_positions` read off the token marks: every
+    position but a ``domain:`` token right after its ``<url>`` marker."""
+    seq: list[int] = []
+    start = 0
+    at = marks.find(_URL_DOMAIN)
+    while at >= 0:
+        seq.extend(range(start, at + 1))
+        start = at + 2
+        at = marks.find(_URL_DOMAIN, start)
+    seq.extend(range(start, len(marks)))
+    return seq
 
 
 class FeatureEncoder:
@@ -271,21 +289,23 @@ class FeatureEncoder:
         store.fit_cap()
         entries = list(map(store.entries.__getitem__, map(store.ids.__getitem__, tok.prepare(text).split())))
         words = list(chain.from_iterable(map(itemgetter(0), entries)))
-        if tok.join_spaced and b"\x01\x01\x01" in b"".join(map(itemgetter(2), entries)):
+        marks = b"".join(map(itemgetter(2), entries))
+        if tok.join_spaced and _SINGLES in marks:
             words, _ = tok.words_many((text,))  # a possible spaced-out word: the token-list pass decides
             hashes = hasher.hash_list(words)
+            seq = pair_positions(words) if "<url>" in words else None
         else:
             hashes = list(chain.from_iterable(map(itemgetter(1), entries)))
+            seq = _pair_sequence(marks) if _URL_DOMAIN in marks else None
         left = right = ()
         extra: list[str] = []
         if tok.bigrams and len(words) > 1:
-            if "<url>" in words:
-                seq = pair_positions(words)
-                in_seq = [hashes[i] for i in seq]
-                left, right = seq[:-1], seq[1:]
-            else:
+            if seq is None:
                 in_seq = hashes
                 left, right = range(len(words) - 1), range(1, len(words))
+            else:
+                in_seq = list(map(hashes.__getitem__, seq))
+                left, right = seq[:-1], seq[1:]
             hashes.extend(hasher.pair_list(in_seq, in_seq[1:]))
         if tok.char_ngrams[0]:
             extra = char_ngrams(words, *tok.char_ngrams)
