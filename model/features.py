@@ -294,9 +294,11 @@ class FeatureEncoder:
             words, _ = tok.words_many((text,))  # a possible spaced-out word: the token-list pass decides
             hashes = hasher.hash_list(words)
             seq = pair_positions(words) if "<url>" in words else None
+            from_store = False
         else:
             hashes = list(chain.from_iterable(map(itemgetter(1), entries)))
             seq = _pair_sequence(marks) if _URL_DOMAIN in marks else None
+            from_store = True
         left = right = ()
         extra: list[str] = []
         if tok.bigrams and len(words) > 1:
@@ -306,7 +308,14 @@ class FeatureEncoder:
             else:
                 in_seq = list(map(hashes.__getitem__, seq))
                 left, right = seq[:-1], seq[1:]
-            hashes.extend(hasher.pair_list(in_seq, in_seq[1:]))
+            if not from_store:
+                pairs = hasher.pair_list(in_seq, in_seq[1:])
+            else:  # the store holds each word's rotated hash, the left half of a pair key
+                rotated = list(chain.from_iterable(map(itemgetter(3), entries)))
+                if seq is not None:
+                    rotated = list(map(rotated.__getitem__, seq))
+                pairs = hasher.rotated_pair_list(rotated, in_seq[1:])
+            hashes.extend(pairs)
         if tok.char_ngrams[0]:
             extra = char_ngrams(words, *tok.char_ngrams)
             hashes.extend(hasher.hash_list(extra))

@@ -13,6 +13,7 @@ collision rate, and training only ever touches and stores the rows it sees.
 """
 from __future__ import annotations
 
+import struct
 from itertools import islice, repeat
 from operator import itemgetter
 from numbers import Integral
@@ -20,7 +21,7 @@ from numbers import Integral
 import mmh3
 import numpy as np
 
-__all__ = ["murmur_bucket", "murmur_u32", "pair_hashes", "pair_hash", "TokenHasher", "MAX_BUCKETS", "PAIR_SCHEME"]
+__all__ = ["murmur_bucket", "murmur_u32", "pair_hashes", "pair_hash", "rotl16", "TokenHasher", "MAX_BUCKETS", "PAIR_SCHEME"]
 
 #: Largest bucket count: bucket ids must fit the int32 index arrays of the CSR matrix.
 MAX_BUCKETS = 2**30
@@ -181,6 +182,20 @@ def pair_hashes(left: np.ndarray, right: np.ndarray, seed: int = 0) -> np.ndarra
     return murmur_u32(((left << _U32(16)) | (left >> _U32(16))) ^ right, int(seed))
 
 
+_PACK_U32 = struct.Struct("<I").pack
+
+
+def rotl16(h: int) -> int:
+    """A 32-bit hash rotated left by 16 bits: the left word's part of a pair key.
+
+    Examples
+    --------
+    >>> hex(rotl16(0x12345678))
+    '0x56781234'
+    """
+    return ((h << 16) | (h >> 16)) & 0xFFFFFFFF
+
+
 def pair_hash(left: int, right: int, seed: int = 0) -> int:
     """:func:`pair_hashes` of one pair, in plain Python ints (for a handful of comments).
 
@@ -310,10 +325,14 @@ class TokenHasher:
         ``pair_list(h, h[1:])`` gives the pairs of neighbours in ``h``.  Not
         cached: a miss in a big table of pairs costs more than the hash.
         """
+        return self.rotated_pair_list(list(map(rotl16, left)), right)
+
+    def rotated_pair_list(self, rotated_left: list[int], right: list[int]) -> list[int]:
+        """:meth:`pair_list` with each left hash already rotated (:func:`rotl16`)."""
         seed = self.seed
         murmur = mmh3.hash
-        return [murmur(((((a << 16) | (a >> 16)) & 0xFFFFFFFF) ^ b).to_bytes(4, "little"), seed, False)
-                for a, b in zip(left, right)]
+        pack = _PACK_U32
+        return [murmur(pack(a ^ b), seed, False) for a, b in zip(rotated_left, right)]
 
     def _remember(self, fresh: dict) -> None:
         cap = self.cache_size
