@@ -162,21 +162,6 @@ class _Tables:
     head: dict
     bucket_logit: np.ndarray | None
     bias: float
-    _logit_list: list | None = None
-
-    def logit_list(self) -> list[float]:
-        """``bucket_logit`` as a plain list (one-comment scoring), built on first use.
-
-        Buckets without a row share one ``0.0`` object, so the list costs
-        little more than its pointers.
-        """
-        if self._logit_list is None:
-            values = [0.0] * self.bucket_logit.size
-            buckets = np.flatnonzero(self.index)
-            for bucket, value in zip(buckets.tolist(), self.bucket_logit[buckets].tolist()):
-                values[bucket] = value
-            self._logit_list = values
-        return self._logit_list
 
 
 class EmbeddingClassifier:
@@ -525,12 +510,14 @@ class EmbeddingClassifier:
         buckets as a list of ints and an indexable naming each position.
         Same arithmetic as the vectorised path; for one comment the dozen numpy
         calls of that path cost more than the whole comment, so a single
-        comment (the latency case) is scored with lists: its buckets' logit
-        terms come from a plain list, and the probability from the same
-        :meth:`_probabilities` as every other path.
+        comment (the latency case) is scored with lists and one numpy gather of
+        its distinct buckets' logit terms (a compact array: cheaper than a list
+        of floats when other work has pushed the table out of the CPU caches),
+        and the probability comes from the same :meth:`_probabilities` as on
+        every other path.
         """
         tables = self._scoring_tables()
-        logit_of = tables.logit_list().__getitem__
+        bucket_logit = tables.bucket_logit
         bias = tables.bias
         l2 = self.pooling == "l2"
         logits = []
@@ -545,14 +532,14 @@ class EmbeddingClassifier:
                     logits.append(bias)
                     reasons.append([])
                     continue
-                terms = list(map((1.0 / norm).__mul__, map(logit_of, unique)))
+                terms = list(map((1.0 / norm).__mul__, bucket_logit[unique].tolist()))
             else:
                 if l2:
                     values = counts.values()
                     norm = math.sqrt(sum(map(mul, values, values)))
                 else:
                     norm = float(n)
-                terms = list(map(mul, map(truediv, counts.values(), repeat(norm)), map(logit_of, unique)))
+                terms = list(map(mul, map(truediv, counts.values(), repeat(norm)), bucket_logit[unique].tolist()))
             logits.append(bias + sum(terms))
             if top_k <= 0:
                 reasons.append([])
