@@ -257,7 +257,8 @@ def test_score_batches_of_stdin_give_the_same_rows_as_one_call_each(model_file, 
     (['{"text": "a"}', '{"id": 1}', '{"text": "c"}'], "stdin:6: a JSON line needs a string \"text\" field"),
     (['{"text": "a"}', '{"text": null}', '{"text": "c"}'], "stdin:6: a JSON line needs a string \"text\" field"),
     (['{"text": "a"}', '{"text": "b"', '{"text": "c"}'], "stdin:6: malformed JSON"),
-], ids=["text-not-string", "no-text", "null-text", "malformed"])
+    (['{"text": "a"}', '{"text": "b"}, {"text": "b2"}', '{"text": "c"}'], "stdin:6: malformed JSON"),
+], ids=["text-not-string", "no-text", "null-text", "malformed", "two-objects-on-a-line"])
 def test_score_names_the_bad_line_in_a_later_batch(model_file, capsys, monkeypatch, lines, expected):
     import ops.commands.score as score_command
 

@@ -69,7 +69,8 @@ def parse_lines(lines: list[bytes], first_number: int) -> tuple[list, list[str]]
             pass  # find the bad line below
         else:
             texts = [record.get("text") if type(record) is dict else None for record in records]
-            if all(type(text) is str for text in texts):
+            # One record per line (a line "{...}, {...}" would parse as two) and every text a string.
+            if len(records) == len(lines) and all(type(text) is str for text in texts):
                 return [record.get("id") for record in records], texts
     ids: list = []
     texts: list[str] = []
