@@ -38,6 +38,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from model.errors import DataError
+from model.network import sigmoid  # the scoring paths' own logistic: numpy only, fast on a few values
 
 ACTIONS = ("publish", "hold", "reject")
 DEFAULT_REJECT_FPR = 0.001
@@ -175,10 +176,10 @@ class ProbabilityMap:
         """Calibrated spam probabilities, float64, for raw log-odds ``logits``."""
         z = np.asarray(logits, dtype=np.float64)
         if self.method == "identity":
-            return _expit(z)
+            return sigmoid(z)
         if self.method == "isotonic":
             return np.interp(z, self.knots_z, self.knots_p)
-        return _expit(self.slope * z + self.intercept)
+        return sigmoid(self.slope * z + self.intercept)
 
     def to_dict(self) -> dict:
         out = {"method": self.method, "slope": self.slope, "intercept": self.intercept,

@@ -23,6 +23,8 @@ from typing import Callable
 
 import numpy as np
 
+from model.hashing import rotl16
+
 __all__ = ["ChunkStore"]
 
 #: Chunks longer than this, or with more tokens than ``max_tokens``, get an id
@@ -74,9 +76,11 @@ class _Column:
 
 
 def _entry_tuple(tokens, hashes, marks) -> tuple:
-    """``(tokens, hashes, singles)``: ``singles`` has one byte per token, 1 where
-    the token was one character (:data:`model.tokens.MARK_SINGLE`), else 0."""
-    return tuple(tokens), tuple(hashes), bytes(m & 1 for m in marks)
+    """``(tokens, hashes, marks, rotated)``: ``marks`` has one byte per token, its
+    :data:`model.tokens.MARK_SINGLE` / ``MARK_URL`` / ``MARK_DOMAIN`` bits;
+    ``rotated`` each hash rotated by 16 bits, the left half of a word-pair key
+    (:func:`model.hashing.rotl16`)."""
+    return tuple(tokens), tuple(hashes), bytes(marks), tuple(map(rotl16, hashes))
 
 
 class ChunkStore:
@@ -125,7 +129,7 @@ class ChunkStore:
         self.ids.update(zip(chunks, range(len(chunks))))
         self._chunk = list(chunks)
         self.tokens = list(tokens)  # a new list: names of earlier batches keep the old one
-        self.entries: list[tuple] = []  # per id: (tokens, hashes, lengths) as Python objects, for one comment
+        self.entries: list[tuple] = []  # per id: (tokens, hashes, marks, rotated) as Python objects, for one comment
         sizes = np.asarray(sizes, dtype=np.int64)
         starts = np.cumsum(sizes) - sizes
         self._start = _Column(np.int64, starts)

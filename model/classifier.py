@@ -26,14 +26,13 @@ from itertools import repeat
 from operator import mul, truediv
 
 import numpy as np
-import scipy.sparse as sp
 
-from model import artifact, network, training
+from model import artifact, budget, network, training
 from model.calibration import (DEFAULT_HOLD_FLOOR, DEFAULT_HOLD_FPR, DEFAULT_METHOD, DEFAULT_REJECT_FLOOR,
                                DEFAULT_REJECT_FPR, DEFAULT_TARGETS, IDENTITY, METHODS, HeldOutHam,
                                ProbabilityMap, ThresholdChoice, Thresholds, ThresholdTargets, choose_thresholds,
                                fit_probability_map)
-from model.errors import ArtifactError, DataError
+from model.errors import ArtifactError, BudgetError, DataError
 from model.evaluation import evaluate
 from model.explain import top_contributions
 from model.features import FeatureEncoder, Features
@@ -67,8 +66,12 @@ def _power_of_two(v):
     return isinstance(v, int) and not isinstance(v, bool) and v >= 1 and v & (v - 1) == 0
 
 
-def _dim(v):
+def _auto_or_positive(v):
     return v == "auto" or (isinstance(v, int) and not isinstance(v, bool) and v >= 1)
+
+
+def _max_bytes(v):
+    return v is None or (isinstance(v, int) and not isinstance(v, bool) and v >= 1)
 
 
 def _positive_float(v):
@@ -102,7 +105,8 @@ def _char_ngrams(v):
 PARAMS = {
     # name: (default, check, what it must be, what it means)
     "buckets": (2**18, _power_of_two, "a power of two", "hash buckets B (rows of the embedding table)"),
-    "dim": ("auto", _dim, "'auto' or an int >= 1", "embedding width d; auto = round(distinct tokens ** 0.25)"),
+    "dim": ("auto", _auto_or_positive, "'auto' or an int >= 1",
+            "embedding width d; auto = round(distinct tokens ** 0.25), narrowed if the size budget needs it"),
     "hidden": (0, *_int_at_least(0), "units of the head's hidden ReLU layer; 0 = a linear head"),
     "pooling": ("l2", lambda v: v in ("l2", "mean"), "'l2' or 'mean'", "bucket weights c/‖c‖₂ or c/‖c‖₁"),
     "bigrams": (True, lambda v: isinstance(v, bool), "a bool", "word bigrams as features"),
@@ -114,7 +118,10 @@ PARAMS = {
     "class_weight": ("balanced", _class_weight, "None, 'balanced' or {0: w, 1: w}", "loss weight per class"),
     "validation_share": (0.1, _share, "a float in [0, 0.5)", "share held out for early stopping and thresholds"),
     "patience": (2, *_int_at_least(1), "epochs without validation improvement before stopping"),
-    "min_df": (2, *_int_at_least(1), "buckets in fewer training comments get no row"),
+    "min_df": ("auto", _auto_or_positive, "'auto' or an int >= 1",
+               "buckets in fewer training comments get no row; auto = 2, raised if the size budget needs it"),
+    "max_bytes": (2**20, _max_bytes, "None or an int >= 1",
+                  "size budget of the model file in bytes (None = no budget); see model.budget"),
     "quant_block": (1, *_int_at_least(1), "rows sharing one int8 scale and zero point (1 = per row)"),
     "shuffle": (True, lambda v: isinstance(v, bool), "a bool", "shuffle the order of examples each epoch"),
     "seed": (0, *_int_at_least(0), "seed of the initialisation, shuffling and validation split"),
@@ -135,11 +142,31 @@ class _Bag:
     names: object
     indptr: np.ndarray
 
-    def matrix(self, n_buckets: int) -> sp.csr_matrix:
+    def matrix(self, n_buckets: int) -> "sp.csr_matrix":
+        import scipy.sparse as sp  # training only; scoring needs numpy alone
+
         return sp.csr_matrix(
             (self.weight.astype(np.float32), self.bucket.astype(np.int32), self.indptr),
             shape=(self.n, n_buckets),
         )
+
+
+@dataclass
+class _Tables:
+    """A fitted model's scoring tables.
+
+    ``index`` maps bucket → row (0 = no row), ``table`` holds the rows (row 0
+    is zeros), ``head`` the dense head; with a linear head ``row_logit`` is each
+    row's logit term and ``bucket_logit`` each bucket's (one gather instead of
+    two on the hot paths), else both are ``None``.
+    """
+
+    index: np.ndarray
+    table: np.ndarray
+    row_logit: np.ndarray | None
+    head: dict
+    bucket_logit: np.ndarray | None
+    bias: float
 
 
 class EmbeddingClassifier:
@@ -248,6 +275,8 @@ class EmbeddingClassifier:
         """Pooling-weight rows of many texts, built in chunks so that only one
         chunk's token strings are alive at a time; ``seen`` collects each
         chunk's distinct feature hashes (see :meth:`_distinct`)."""
+        import scipy.sparse as sp
+
         parts = []
         for start in range(0, len(texts), chunk):
             feats = self._features(texts[start:start + chunk])
@@ -349,12 +378,14 @@ class EmbeddingClassifier:
         matrix = self._matrix(texts, seen)
         distinct = self._distinct(seen)
         del seen
-        self.dim_ = auto_dim(distinct) if self.dim == "auto" else int(self.dim)
         self._class_weights = self._resolve_class_weight(y)
         train_idx, val_idx = self._split(y, rng)
         train_m = matrix[train_idx]
         df = np.bincount(train_m.indices, minlength=self.buckets)
-        train_m = self._restrict(train_m, df >= self.min_df)
+        chosen = budget.plan(budget.rows_by_cut(df), rule_dim=auto_dim(distinct), dim=self.dim, min_df=self.min_df,
+                             max_bytes=self.max_bytes)
+        self.dim_, self.min_df_ = chosen.dim, chosen.min_df
+        train_m = self._restrict(train_m, df >= self.min_df_)
         self._weights = training.Weights(
             np.zeros((self.buckets, self.dim_), dtype=np.float32),
             network.init_head(self.dim_, self.hidden, rng),
@@ -373,15 +404,18 @@ class EmbeddingClassifier:
         )
         self._fitted = True
         self._invalidate()
+        self.budget_ = {"max_bytes": self.max_bytes, "dim": self.dim_, "rule_dim": auto_dim(distinct),
+                        "min_df": self.min_df_, "steps": list(chosen.steps)}
+        val_m = matrix[val_idx] if validation is not None else None
+        # The calibration is part of the file, so the budget is fitted with it in place; pruning changes
+        # the scores a little, so the calibration is then fitted again on the rows that were kept.
+        self._calibrate_on(val_m, y[val_idx])
+        self._fit_budget("fit")
         metrics = {}
-        self._set_calibration(IDENTITY, None, choose_thresholds(None, DEFAULT_TARGETS))
-        if validation is not None:
-            val_logits = training.predict_logits(self._weights, matrix[val_idx])
-            try:
-                fitted = self._fit_calibration(val_logits, y[val_idx], DEFAULT_TARGETS, self.calibration)
-            except DataError:  # a model that ranks its own held-out data backwards keeps raw scores
-                fitted = self._fit_calibration(val_logits, y[val_idx], DEFAULT_TARGETS, "identity")
-            self._set_calibration(*fitted)
+        if self.budget_.get("pruned_by"):
+            self._calibrate_on(val_m, y[val_idx])
+        if val_m is not None:
+            val_logits = training.predict_logits(self._weights, val_m)
             metrics["validation"] = evaluate(y[val_idx], self.calibration_.probability(val_logits), self.thresholds)
         self.summary_ = {
             "n_train": int(train_idx.size),
@@ -452,21 +486,23 @@ class EmbeddingClassifier:
             epochs=epochs, batch_size=self.batch_size, rng=self._rng, shuffle=self.shuffle,
         )
         self._touched |= np.bincount(m.indices, minlength=self.buckets) > 0
+        self._invalidate()
+        self._fit_budget(op)
         self.summary_["updates"] = self.summary_.get("updates", 0) + len(texts)
         self.summary_["rows"] = int(self._touched.sum())
         self.created_at = time.time()  # the weights changed: this is a new model
-        self._invalidate()
         self._manifest = None
         return self
 
     def learn_many(self, texts: Iterable[str], labels: Iterable[int], *, epochs: int | None = None) -> "EmbeddingClassifier":
         """Warm-start training on more labelled texts (same update routine as :meth:`fit`).
 
-        Buckets seen in at least ``min_df`` of these texts get rows if they had
-        none.  No validation split, no early stopping: the caller gates the
+        Buckets seen in at least ``min_df_`` (the cut the model was trained
+        with) of these texts get rows if they had none; rows with the smallest
+        norm are then dropped if the file would be over ``max_bytes``.  No validation split, no early stopping: the caller gates the
         result (the nightly retrain checks it on a holdout).
         """
-        return self._learn(texts, labels, epochs=epochs or self.epochs, min_df=self.min_df, op="learn_many")
+        return self._learn(texts, labels, epochs=epochs or self.epochs, min_df=self.min_df_, op="learn_many")
 
     def learn_one(self, text: str, label: int) -> "EmbeddingClassifier":
         """One Adam step on one labelled text; every one of its buckets may get a row."""
@@ -484,42 +520,43 @@ class EmbeddingClassifier:
         buckets as a list of ints and an indexable naming each position.
         Same arithmetic as the vectorised path; for one comment the dozen numpy
         calls of that path cost more than the whole comment, so a single
-        comment (the latency case) is scored with lists and one lookup of its
-        distinct buckets' logit terms.
+        comment (the latency case) is scored with lists and one numpy gather of
+        its distinct buckets' logit terms (a compact array: cheaper than a list
+        of floats when other work has pushed the table out of the CPU caches),
+        and the probability comes from the same :meth:`_probabilities` as on
+        every other path.
         """
-        _, _, _, head, bucket_logit = self._scoring_tables()
-        bias = float(head["b2"][0])
+        tables = self._scoring_tables()
+        bucket_logit = tables.bucket_logit
+        bias = tables.bias
         l2 = self.pooling == "l2"
-        calibration = self.calibration_
-        scale = calibration.contribution_scale
+        scale = self.calibration_.contribution_scale
         logits = []
         reasons = []
         explain = []  # (comment, buckets, names, distinct buckets, their terms), ranked once scores are known
         for buckets, names in docs:
+            n = len(buckets)
             counts = Counter(buckets)  # insertion order = order of first appearance
-            if l2:
-                values = counts.values()
-                norm = math.sqrt(sum(map(mul, values, values)))
-            else:
-                norm = float(len(buckets))
-            if not norm:
-                logits.append(bias)
-                reasons.append([])
-                continue
             unique = list(counts)
-            weights = map(truediv, counts.values(), repeat(norm))
-            terms = list(map(mul, weights, bucket_logit[unique].tolist()))
+            if len(unique) == n:  # no bucket twice: every count is 1
+                norm = math.sqrt(n) if l2 else float(n)
+                if not norm:
+                    logits.append(bias)
+                    reasons.append([])
+                    continue
+                terms = list(map((1.0 / norm).__mul__, bucket_logit[unique].tolist()))
+            else:
+                if l2:
+                    values = counts.values()
+                    norm = math.sqrt(sum(map(mul, values, values)))
+                else:
+                    norm = float(n)
+                terms = list(map(mul, map(truediv, counts.values(), repeat(norm)), bucket_logit[unique].tolist()))
             logits.append(bias + sum(terms))
             reasons.append([])
             if top_k > 0:
                 explain.append((len(reasons) - 1, buckets, names, unique, terms))
-        if calibration.method == "identity":
-            scores = network.sigmoid(np.array(logits))
-        elif calibration.method == "isotonic":
-            scores = calibration.probability(np.array(logits))
-        else:  # the affine maps, with the batch path's arithmetic: sigmoid(slope * z + intercept)
-            shift = calibration.calibrated_intercept
-            scores = network.sigmoid(np.array([z * scale + shift for z in logits]))
+        scores = self._probabilities(np.array(logits))
         single = isinstance(spamward_from, (int, float))
         for i, buckets, names, unique, terms in explain:
             # Largest magnitude first; a stable sort keeps ties in the order the
@@ -533,6 +570,11 @@ class EmbeddingClassifier:
             reasons[i] = [(names[at(unique[j])], terms[j] * scale) for j in ranked if terms[j]]
         return scores, reasons
 
+    def _probabilities(self, logits: np.ndarray) -> np.ndarray:
+        """Spam probabilities from raw logits through the fitted calibration: the one last step of every
+        scoring path."""
+        return self.calibration_.probability(logits)
+
     def _few_from_features(self, features: Features):
         """Per-comment ``(buckets, names)`` of a small :class:`Features` batch."""
         if features.n == 1:
@@ -544,10 +586,8 @@ class EmbeddingClassifier:
             out.append((features.bucket[at].tolist(), [names[j] for j in at]))
         return out
 
-    def _scoring_tables(self):
-        """Compact scoring tables: bucket → row index (0 = no row), rows, per-row
-        linear logit, the head, and with a linear head bucket → logit term
-        (one gather instead of two on the hot paths)."""
+    def _scoring_tables(self) -> "_Tables":
+        """Compact scoring tables (see :class:`_Tables`), built once per model state."""
         if self._scoring is None:
             if getattr(self, "_weights", None) is not None:
                 rows = np.flatnonzero(self._touched)
@@ -561,15 +601,20 @@ class EmbeddingClassifier:
             table[1:] = values
             row_logit = table @ head["w2"] if "w1" not in head else None
             bucket_logit = row_logit[index] if row_logit is not None else None
-            self._scoring = (index, table, row_logit, {k: v.copy() for k, v in head.items()}, bucket_logit)
+            self._scoring = _Tables(index, table, row_logit, {k: v.copy() for k, v in head.items()}, bucket_logit,
+                                    float(head["b2"][0]))
         return self._scoring
 
     def _logits_and_contributions(self, bag: _Bag, want_contributions: bool):
-        index, table, row_logit, head, bucket_logit = self._scoring_tables()
+        tables = self._scoring_tables()
+        index, table, row_logit, head, bucket_logit = (tables.index, tables.table, tables.row_logit, tables.head,
+                                                       tables.bucket_logit)
         if row_logit is not None:
             contrib = bag.weight * bucket_logit[bag.bucket]
             logits = np.bincount(bag.doc, weights=contrib, minlength=bag.n) + float(head["b2"][0])
             return logits, contrib
+        import scipy.sparse as sp  # a hidden layer is scored through a sparse product
+
         rows = index[bag.bucket]
         local = sp.csr_matrix((bag.weight.astype(np.float32), rows, bag.indptr), shape=(bag.n, table.shape[0]))
         h = np.asarray(local @ table, dtype=np.float32)
@@ -601,7 +646,7 @@ class EmbeddingClassifier:
         """
         self._require_fitted("score")
         texts = self._texts(texts, "score")
-        if len(texts) <= FEW and self._scoring_tables()[2] is not None:
+        if len(texts) <= FEW and self._scoring_tables().row_logit is not None:
             return self._score_few([self._encoder.one(t) for t in texts], top_k, spamward_from)
         return self._score(self._features(texts), top_k, spamward_from)
 
@@ -615,11 +660,11 @@ class EmbeddingClassifier:
         return self._score(self._encoder.tokens(feature_lists), top_k)
 
     def _score(self, features: Features, top_k: int, spamward_from=None):
-        if features.n <= FEW and self._scoring_tables()[2] is not None:
+        if features.n <= FEW and self._scoring_tables().row_logit is not None:
             return self._score_few(self._few_from_features(features), top_k, spamward_from)
         bag = self._bag(features)
         logits, contrib = self._logits_and_contributions(bag, top_k > 0)
-        scores = self.calibration_.probability(logits)
+        scores = self._probabilities(logits)
         if top_k <= 0:
             return scores, [[] for _ in range(bag.n)]
         scale = self.calibration_.contribution_scale
@@ -677,6 +722,18 @@ class EmbeddingClassifier:
         self._set_calibration(*self._fit_calibration(self.logits_many(texts), y, targets, method or self.calibration))
         return self.thresholds
 
+    def _calibrate_on(self, matrix, y: np.ndarray) -> None:
+        """Fit the probability map and thresholds on held-out rows (``None``: identity, default thresholds)."""
+        if matrix is None:
+            self._set_calibration(IDENTITY, None, choose_thresholds(None, DEFAULT_TARGETS))
+            return
+        logits = training.predict_logits(self._weights, matrix)
+        try:
+            fitted = self._fit_calibration(logits, y, DEFAULT_TARGETS, self.calibration)
+        except DataError:  # a model that ranks its own held-out data backwards keeps raw scores
+            fitted = self._fit_calibration(logits, y, DEFAULT_TARGETS, "identity")
+        self._set_calibration(*fitted)
+
     @staticmethod
     def _fit_calibration(logits: np.ndarray, y: np.ndarray, targets: ThresholdTargets, method: str):
         calibration = fit_probability_map(logits, y, method)
@@ -696,24 +753,18 @@ class EmbeddingClassifier:
 
     # --- artifact -------------------------------------------------------------
 
-    def _arrays_and_manifest(self) -> tuple[dict, dict]:
-        if getattr(self, "_weights", None) is None:
+    def _arrays_and_manifest(self, *, arrays: bool = True) -> tuple[dict | None, dict]:
+        if not arrays:
+            stored = None
+        elif getattr(self, "_weights", None) is None:
             # Loaded and not trained since: keep the stored arrays bit for bit
             # (re-quantizing dequantized values need not give the same bytes).
-            arrays = self._stored_arrays
+            stored = self._stored_arrays
         else:
-            index, table, _, head, _ = self._scoring_tables()
-            rows = np.flatnonzero(index)
-            q, scale, zero = artifact.quantize(table[1:], self.quant_block)
-            arrays = {
-                "row_delta": artifact.encode_rows(rows),
-                "table_q": q,
-                "table_scale": scale,
-                "table_zero": zero,
-                **{f"head_{k}": v.astype(np.float32) for k, v in head.items()},
-            }
+            tables = self._scoring_tables()
+            stored = self._row_arrays(np.flatnonzero(tables.index), tables.table[1:], tables.head)
         manifest = {
-            "created_at": self.created_at,
+            "created_at": getattr(self, "created_at", 0.0),
             "params": self.get_params(),
             "tokenizer": self._tokenizer.params(),
             "hashing": {
@@ -721,16 +772,80 @@ class EmbeddingClassifier:
                 "n_buckets": self.buckets, "seed": self._hasher_seed(),
             },
             "dim": self.dim_,
+            "min_df": self.min_df_,
+            "budget": getattr(self, "budget_", {}),
             "quantization": {"scheme": "affine-int8", "block": self.quant_block},
             "thresholds": self.thresholds.to_dict(),
             "calibration": {
                 "probability": self.calibration_.to_dict(),
                 "held_out_ham": None if self.held_out_ham_ is None else self.held_out_ham_.to_dict(),
             },
-            "training": self.summary_,
-            "metrics": self.metrics_,
+            "training": getattr(self, "summary_", {}),
+            "metrics": getattr(self, "metrics_", {}),
         }
-        return arrays, manifest
+        return stored, manifest
+
+    def _fit_budget(self, op: str) -> None:
+        """Drop the rows with the smallest L2 norm until the file fits ``max_bytes``
+        (less :data:`model.budget.HEADROOM`); record what was kept in ``budget_``.
+
+        Raises
+        ------
+        BudgetError
+            In ``fit``, when the manifest and head alone are over the budget or
+            fewer than :data:`model.budget.MIN_KEPT_SHARE` of the rows would
+            fit; the message names the settings to change.  A warm start
+            (``learn_many``) always prunes instead, unless nothing fits at all.
+        """
+        rows = np.flatnonzero(self._touched)
+        record = {"max_bytes": self.max_bytes, "dim": self.dim_, "min_df": self.min_df_,
+                  "rows_trained": int(rows.size), "rows_kept": int(rows.size), "pruned_by": None}
+        if self.max_bytes is not None:
+            limit = self.max_bytes - budget.HEADROOM
+            table, head = self._weights.table, self._weights.head
+            order = rows[np.argsort(-np.linalg.norm(table[rows], axis=1), kind="stable")]  # strongest first
+            _, manifest = self._arrays_and_manifest(arrays=False)
+
+            def size_of(k: int) -> int:
+                keep = np.sort(order[:k])
+                return len(artifact.dumps(self._row_arrays(keep, table[keep], head), manifest)[0])
+
+            try:
+                kept = budget.largest_fit(size_of, rows.size, limit)
+            except BudgetError:
+                raise BudgetError(
+                    f"{op}: even with no embedding rows the model file is over max_bytes={self.max_bytes} "
+                    f"(the manifest and a head of hidden={self.hidden}, d={self.dim_} take more); "
+                    f"raise max_bytes (seawall train --max-bytes) or lower hidden"
+                ) from None
+            if op == "fit" and kept < budget.MIN_KEPT_SHARE * rows.size:
+                raise BudgetError(
+                    f"fit: only {kept} of {rows.size} trained rows fit in max_bytes={self.max_bytes} at d={self.dim_}, "
+                    f"min_df={self.min_df_}; raise max_bytes (seawall train --max-bytes), lower dim (--dim) "
+                    f"or raise min_df (--min-df), or leave dim and min_df at 'auto'"
+                )
+            if kept < rows.size:
+                dropped = order[kept:]
+                self._touched[dropped] = False
+                table[dropped] = 0.0
+                if self._opt is not None and self._opt.m_table is not None:
+                    self._opt.m_table[dropped] = 0.0
+                    self._opt.v_table[dropped] = 0.0
+                self._invalidate()
+                record.update(rows_kept=int(kept), pruned_by="row_norm")
+        self.budget_ = {**getattr(self, "budget_", {}), **record}
+        self._manifest = None
+
+    def _row_arrays(self, rows: np.ndarray, values: np.ndarray, head: dict) -> dict:
+        """The stored arrays of ``rows`` (sorted bucket ids) with embedding ``values``."""
+        q, scale, zero = artifact.quantize(values, self.quant_block)
+        return {
+            "row_delta": artifact.encode_rows(rows),
+            "table_q": q,
+            "table_scale": scale,
+            "table_zero": zero,
+            **{f"head_{k}": np.asarray(v, dtype=np.float32) for k, v in head.items()},
+        }
 
     def _hasher_seed(self) -> int:
         return int(getattr(self._hasher, "seed", 0))
@@ -740,6 +855,11 @@ class EmbeddingClassifier:
         self._require_fitted("save model")
         arrays, manifest = self._arrays_and_manifest()
         data, self._manifest = artifact.dumps(arrays, manifest)
+        if self.max_bytes is not None and len(data) > self.max_bytes and getattr(self, "_weights", None) is not None:
+            # Training fitted the rows with budget.HEADROOM to spare; only a
+            # manifest grown past that (huge metrics) can get here.
+            raise BudgetError(f"save model: the file would be {len(data)} bytes, over max_bytes={self.max_bytes}; "
+                              f"raise max_bytes or retrain (training fits the rows to the budget)")
         return data
 
     @classmethod
@@ -757,6 +877,9 @@ class EmbeddingClassifier:
             clf = cls._from_params(manifest["params"])
             clf._make_featurizers(manifest["tokenizer"], manifest["hashing"])
             clf.dim_ = int(manifest["dim"])
+            # Files from before the size budget have an int min_df parameter and no "min_df" entry.
+            clf.min_df_ = int(manifest.get("min_df", manifest["params"]["min_df"]))
+            clf.budget_ = dict(manifest.get("budget", {}))
             rows = artifact.decode_rows(arrays["row_delta"])
             block = int(manifest["quantization"]["block"])
             values = artifact.dequantize(arrays["table_q"], arrays["table_scale"], arrays["table_zero"], block)

@@ -17,3 +17,7 @@ class DataError(SeawallError, ValueError):
 
 class ArtifactError(SeawallError, ValueError):
     """A model file is corrupt, tampered with, or of an unknown format."""
+
+
+class BudgetError(SeawallError, ValueError):
+    """A model cannot be made to fit its size budget (``max_bytes``) with the settings given."""

@@ -23,7 +23,7 @@ from operator import itemgetter
 import numpy as np
 
 from model.chunks import ChunkStore
-from model.hashing import TokenHasher, pair_hash
+from model.hashing import TokenHasher
 from model.tokens import (BIGRAM_JOINER, CHUNK_NUMERIC_END, CHUNK_NUMERIC_START, CHUNK_SEPARATOR, MARK_DOMAIN,
                           MARK_SINGLE, MARK_URL, Tokenizer, char_ngrams, pair_positions, token_marks)
 
@@ -159,8 +159,24 @@ class Features:
 
 
 _EMPTY = np.empty(0, dtype=np.int64)
-#: From this many word pairs in one comment, one vectorised call beats a Python call per pair.
-_FEW_PAIRS = 8
+#: In a comment's token marks: three one-character tokens in a row, and a
+#: ``<url>`` marker followed by its ``domain:`` token.
+_SINGLES = bytes([MARK_SINGLE] * 3)
+_URL_DOMAIN = bytes([MARK_URL, MARK_DOMAIN])
+
+
+def _pair_sequence(marks: bytes) -> list[int]:
+    """:func:`model.tokens.pair_positions` read off the token marks: every
+    position but a ``domain:`` token right after its ``<url>`` marker."""
+    seq: list[int] = []
+    start = 0
+    at = marks.find(_URL_DOMAIN)
+    while at >= 0:
+        seq.extend(range(start, at + 1))
+        start = at + 2
+        at = marks.find(_URL_DOMAIN, start)
+    seq.extend(range(start, len(marks)))
+    return seq
 
 
 class FeatureEncoder:
@@ -273,27 +289,36 @@ class FeatureEncoder:
         store.fit_cap()
         entries = list(map(store.entries.__getitem__, map(store.ids.__getitem__, tok.prepare(text).split())))
         words = list(chain.from_iterable(map(itemgetter(0), entries)))
-        if tok.join_spaced and b"\x01\x01\x01" in b"".join(map(itemgetter(2), entries)):
+        marks = b"".join(map(itemgetter(2), entries))
+        if tok.join_spaced and _SINGLES in marks:
             words, _ = tok.words_many((text,))  # a possible spaced-out word: the token-list pass decides
             hashes = hasher.hash_list(words)
+            seq = pair_positions(words) if "<url>" in words else None
+            from_store = False
         else:
             hashes = list(chain.from_iterable(map(itemgetter(1), entries)))
-        left: list[int] = []
-        right: list[int] = []
+            seq = _pair_sequence(marks) if _URL_DOMAIN in marks else None
+            from_store = True
+        left = right = ()
         extra: list[str] = []
-        if tok.bigrams or tok.char_ngrams[0]:
-            seq = pair_positions(words) if "<url>" in words else list(range(len(words)))
-            if tok.bigrams and len(seq) > 1:
+        if tok.bigrams and len(words) > 1:
+            if seq is None:
+                in_seq = hashes
+                left, right = range(len(words) - 1), range(1, len(words))
+            else:
+                in_seq = list(map(hashes.__getitem__, seq))
                 left, right = seq[:-1], seq[1:]
-                if len(left) < _FEW_PAIRS:
-                    seed = hasher.seed
-                    hashes.extend([pair_hash(hashes[a], hashes[b], seed) for a, b in zip(left, right)])
-                else:
-                    in_seq = np.array(hashes if len(seq) == len(hashes) else [hashes[i] for i in seq], dtype=np.uint32)
-                    hashes.extend(hasher.pairs(in_seq[:-1], in_seq[1:]).tolist())
-            if tok.char_ngrams[0]:
-                extra = char_ngrams(words, *tok.char_ngrams)
-                hashes.extend(hasher.hash_list(extra))
+            if not from_store:
+                pairs = hasher.pair_list(in_seq, in_seq[1:])
+            else:  # the store holds each word's rotated hash, the left half of a pair key
+                rotated = list(chain.from_iterable(map(itemgetter(3), entries)))
+                if seq is not None:
+                    rotated = list(map(rotated.__getitem__, seq))
+                pairs = hasher.rotated_pair_list(rotated, in_seq[1:])
+            hashes.extend(pairs)
+        if tok.char_ngrams[0]:
+            extra = char_ngrams(words, *tok.char_ngrams)
+            hashes.extend(hasher.hash_list(extra))
         mask = hasher.n_buckets - 1
         return [h & mask for h in hashes], FeatureNames(words, left, right, extra)
 

@@ -1,7 +1,8 @@
 """Tokens to buckets: MurmurHash3 feature hashing and the averaged document matrix.
 
 Every token is hashed with MurmurHash3 (x86, 32-bit; Appleby's SMHasher
-reference, computed by :func:`sklearn.utils.murmurhash3_32`) into one of ``B``
+reference, computed by the ``mmh3`` package for strings and by a numpy
+transcription of the same rounds for 4-byte integer keys) into one of ``B``
 buckets.  A never-seen word of a new spam wave therefore still lands in a bucket
 the model can learn overnight, with no vocabulary to grow or ship.
 
@@ -12,20 +13,15 @@ collision rate, and training only ever touches and stores the rows it sees.
 """
 from __future__ import annotations
 
+import struct
 from itertools import islice, repeat
 from operator import itemgetter
 from numbers import Integral
 
+import mmh3
 import numpy as np
-import scipy.sparse as sp
-from sklearn.utils import murmurhash3_32
 
-try:  # scikit-learn's C loop behind FeatureHasher: the same MurmurHash3, without a Python call per token
-    from sklearn.feature_extraction._hashing_fast import transform as _sklearn_hash_loop
-except ImportError:  # pragma: no cover - private module moved; the per-token path still works
-    _sklearn_hash_loop = None
-
-__all__ = ["murmur_bucket", "pair_hashes", "pair_hash", "TokenHasher", "MAX_BUCKETS", "PAIR_SCHEME"]
+__all__ = ["murmur_bucket", "murmur_u32", "pair_hashes", "pair_hash", "rotl16", "TokenHasher", "MAX_BUCKETS", "PAIR_SCHEME"]
 
 #: Largest bucket count: bucket ids must fit the int32 index arrays of the CSR matrix.
 MAX_BUCKETS = 2**30
@@ -37,15 +33,13 @@ _U32 = np.uint32
 
 
 def _hash(token: str, seed: int) -> int:
-    try:
-        return murmurhash3_32(token, seed=seed, positive=True)
-    except UnicodeEncodeError:
-        # Lone surrogates cannot be UTF-8 encoded; hash their code units instead of failing.
-        return murmurhash3_32(token.encode("utf-8", "surrogatepass"), seed=seed, positive=True)
+    # Always bytes: a lone surrogate cannot be UTF-8 encoded strictly, so its
+    # code units are hashed instead of failing (and never handed to mmh3 as str).
+    return mmh3.hash(token.encode("utf-8", "surrogatepass"), seed, False)
 
 
 def murmur_bucket(token: str, n_buckets: int, seed: int = 0) -> int:
-    """Bucket of one token: ``murmurhash3_32(token, seed, positive=True) % n_buckets``.
+    """Bucket of one token: its unsigned MurmurHash3 (x86, 32-bit) modulo ``n_buckets``.
 
     Parameters
     ----------
@@ -111,31 +105,47 @@ _PARAMS = {
 
 
 def _hash_many(tokens: list[str], seed: int) -> np.ndarray:
-    """Full 32-bit hashes of many tokens at once; equal to ``_hash(t, seed)`` for each.
+    """Full 32-bit hashes of many tokens at once; equal to ``_hash(t, seed)`` for each."""
+    try:
+        found = list(map(mmh3.hash, map(str.encode, tokens), repeat(seed), repeat(False)))
+    except (UnicodeEncodeError, TypeError):
+        # A lone surrogate (hashed by its code units) or a non-str token (named here).
+        for token in tokens:
+            if not isinstance(token, str):
+                raise TypeError(f"TokenHasher: tokens must be str, got {type(token).__name__}") from None
+        found = [_hash(t, seed) for t in tokens]
+    return np.array(found, dtype=_U32)
 
-    scikit-learn's loop returns ``abs(h) % n`` for the signed hash ``h``, with
-    the sign as the value.  With ``n = 2**31`` that is ``abs(h)`` itself (and 0
-    for ``h = -2**31``), so the unsigned hash is ``abs(h)`` when ``h >= 0`` and
-    ``2**32 - abs(h)`` otherwise; tests check this against :func:`murmur_bucket`.
+
+_C1, _C2 = _U32(0xCC9E2D51), _U32(0x1B873593)
+_F1, _F2 = _U32(0x85EBCA6B), _U32(0xC2B2AE35)
+
+
+def murmur_u32(keys: np.ndarray, seed: int = 0) -> np.ndarray:
+    """MurmurHash3 (x86, 32-bit) of each uint32 taken as its 4 little-endian bytes.
+
+    The reference algorithm's one block, tail-free, then the finaliser, in
+    uint32 arithmetic (numpy wraps products modulo 2**32, as the C code does).
+
+    Examples
+    --------
+    >>> int(murmur_u32(np.array([0x64636261], dtype=np.uint32))[0]) == mmh3.hash(b"abcd", 0, False)
+    True
     """
-    if _sklearn_hash_loop is not None:
-        try:
-            index, _, sign = _sklearn_hash_loop([zip(tokens, repeat(1))], 2**31, np.float32, True, seed)
-        except (UnicodeEncodeError, TypeError):
-            pass  # lone surrogates or a non-str token: the per-token path handles or names it
-        else:
-            return _unsigned(index, sign)
-    for token in tokens:
-        if not isinstance(token, str):
-            raise TypeError(f"TokenHasher: tokens must be str, got {type(token).__name__}")
-    return np.fromiter((_hash(t, seed) for t in tokens), dtype=_U32, count=len(tokens))
-
-
-def _unsigned(index: np.ndarray, sign: np.ndarray) -> np.ndarray:
-    """Unsigned 32-bit hashes from scikit-learn's ``(abs(h) % 2**31, sign of h)``."""
-    index = np.asarray(index, dtype=np.int64)
-    unsigned = np.where(np.asarray(sign) > 0, index, np.where(index == 0, 2**31, 2**32 - index))
-    return unsigned.astype(_U32)
+    k = np.asarray(keys, dtype=_U32) * _C1
+    k = (k << _U32(15)) | (k >> _U32(17))
+    k *= _C2
+    h = k ^ _U32(seed)
+    h = (h << _U32(13)) | (h >> _U32(19))
+    h *= _U32(5)
+    h += _U32(0xE6546B64)
+    h ^= _U32(4)  # the key length in bytes
+    h ^= h >> _U32(16)
+    h *= _F1
+    h ^= h >> _U32(13)
+    h *= _F2
+    h ^= h >> _U32(16)
+    return h
 
 
 def pair_hashes(left: np.ndarray, right: np.ndarray, seed: int = 0) -> np.ndarray:
@@ -160,18 +170,30 @@ def pair_hashes(left: np.ndarray, right: np.ndarray, seed: int = 0) -> np.ndarra
 
     Examples
     --------
-    >>> import struct
-    >>> a, b = murmurhash3_32("free", positive=True), murmurhash3_32("casino", positive=True)
+    >>> a, b = mmh3.hash("free", 0, False), mmh3.hash("casino", 0, False)
     >>> key = ((a << 16 | a >> 16) & 0xFFFFFFFF) ^ b
-    >>> int(pair_hashes([a], [b])[0]) == murmurhash3_32(struct.pack("<I", key), positive=True)
+    >>> int(pair_hashes([a], [b])[0]) == mmh3.hash(key.to_bytes(4, "little"), 0, False)
     True
     """
     left = np.asarray(left, dtype=_U32)
     right = np.asarray(right, dtype=_U32)
     if left.size == 0:
         return np.empty(0, dtype=_U32)
-    key = np.ascontiguousarray(((left << _U32(16)) | (left >> _U32(16))) ^ right)
-    return np.asarray(murmurhash3_32(key.view(np.int32), seed=int(seed), positive=True), dtype=_U32)
+    return murmur_u32(((left << _U32(16)) | (left >> _U32(16))) ^ right, int(seed))
+
+
+_PACK_U32 = struct.Struct("<I").pack
+
+
+def rotl16(h: int) -> int:
+    """A 32-bit hash rotated left by 16 bits: the left word's part of a pair key.
+
+    Examples
+    --------
+    >>> hex(rotl16(0x12345678))
+    '0x56781234'
+    """
+    return ((h << 16) | (h >> 16)) & 0xFFFFFFFF
 
 
 def pair_hash(left: int, right: int, seed: int = 0) -> int:
@@ -179,14 +201,12 @@ def pair_hash(left: int, right: int, seed: int = 0) -> int:
 
     Examples
     --------
-    >>> a, b = murmurhash3_32("free", positive=True), murmurhash3_32("casino", positive=True)
+    >>> a, b = mmh3.hash("free", 0, False), mmh3.hash("casino", 0, False)
     >>> pair_hash(a, b) == int(pair_hashes([a], [b])[0])
     True
     """
     key = (((left << 16) | (left >> 16)) & 0xFFFFFFFF) ^ right
-    if key >= 0x80000000:
-        key -= 0x100000000  # the int form of MurmurHash3 takes the key as a signed 32-bit int
-    return murmurhash3_32(key, seed=seed, positive=True)
+    return mmh3.hash(key.to_bytes(4, "little"), seed, False)
 
 
 class TokenHasher:
@@ -298,6 +318,22 @@ class TokenHasher:
         """:func:`pair_hashes` with this hasher's seed."""
         return pair_hashes(left, right, self.seed)
 
+    def pair_list(self, left: list[int], right: list[int]) -> list[int]:
+        """:meth:`pairs` as a list of ints, without numpy (for a handful of pairs).
+
+        Pairs are taken up to the shorter of ``left`` and ``right``, so
+        ``pair_list(h, h[1:])`` gives the pairs of neighbours in ``h``.  Not
+        cached: a miss in a big table of pairs costs more than the hash.
+        """
+        return self.rotated_pair_list(list(map(rotl16, left)), right)
+
+    def rotated_pair_list(self, rotated_left: list[int], right: list[int]) -> list[int]:
+        """:meth:`pair_list` with each left hash already rotated (:func:`rotl16`)."""
+        seed = self.seed
+        murmur = mmh3.hash
+        pack = _PACK_U32
+        return [murmur(pack(a ^ b), seed, False) for a, b in zip(rotated_left, right)]
+
     def _remember(self, fresh: dict) -> None:
         cap = self.cache_size
         if not cap:
@@ -313,7 +349,7 @@ class TokenHasher:
                 fresh = dict(islice(fresh.items(), cap))
         cache.update(fresh)
 
-    def matrix(self, token_lists) -> sp.csr_matrix:
+    def matrix(self, token_lists) -> "sp.csr_matrix":
         """Documents as rows of bucket frequencies: the mean over token occurrences.
 
         Entry ``(i, b)`` is (occurrences in document ``i`` of tokens in bucket
@@ -331,6 +367,8 @@ class TokenHasher:
             float32, shape ``(n_docs, n_buckets)``, canonical (sorted indices,
             no duplicates), int32 indices.
         """
+        import scipy.sparse as sp  # only this reference helper needs scipy
+
         flat: list[str] = []
         extend = flat.extend
         ends = [0]

@@ -16,7 +16,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-import scipy.sparse as sp
 
 from model import network
 
@@ -133,6 +132,8 @@ def _adam_dense(param, m, v, grad, lr) -> None:
 
 def row_slice(matrix: sp.csr_matrix, start: int, stop: int) -> sp.csr_matrix:
     """Rows ``start:stop`` of a canonical CSR matrix, as views of its arrays (no checks, no copies)."""
+    import scipy.sparse as sp  # only training needs scipy; importing the model for scoring does not
+
     lo, hi = matrix.indptr[start], matrix.indptr[stop]
     out = sp.csr_matrix((stop - start, matrix.shape[1]), dtype=matrix.dtype)
     out.data = matrix.data[lo:hi]

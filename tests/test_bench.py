@@ -26,3 +26,14 @@ def test_bench_model_runs_and_reports_ratios(capsys):
     assert rows["ratio_batch1024"] == pytest.approx(rate_ratio, abs=0.01)
     assert rows["ratio_batch1"] > 0 and rows["artifact_bytes"] > 0
     assert 0.5 < rows["seawall_test_roc_auc"] <= 1.0
+
+
+def test_bench_score_runs_both_scripts_and_reports_rates(capsys):
+    # Small and once: the harness, not the speed (benchmarks are never timed tests).
+    assert main(["bench", "score", "--comments", "300", "--repeats", "1", "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert rows["comments"] == 300 and rows["repeats"] == 1
+    assert rows["seawall_startup_cpu_s"] > 0 and rows["reference_startup_cpu_s"] > 0
+    assert rows["seawall_total_cpu_s"] > 0 and rows["reference_total_cpu_s"] > 0
+    if rows["ratio"] is not None:  # None when 300 comments finish within the start-up's noise
+        assert rows["ratio"] == pytest.approx(rows["seawall_per_cpu_s"] / rows["reference_per_cpu_s"], rel=0.01)

@@ -227,3 +227,90 @@ def test_bad_threshold_override_is_a_user_error(model_file, capsys):
 def test_bad_buckets_is_a_user_error(tmp_path, data, capsys):
     assert main(["train", str(data), "--out", str(tmp_path / "m.npz"), "--buckets", "1000"]) == 2
     assert "buckets must be a power of two" in one_error_line(capsys, "train")
+
+
+def test_score_batches_of_stdin_give_the_same_rows_as_one_call_each(model_file, capsys, monkeypatch):
+    # More lines than one batch, JSON and plain text mixed in the first batch
+    # only: the batch paths (one orjson call, line by line) agree with scoring
+    # each comment alone.
+    import ops.commands.score as score_command
+
+    monkeypatch.setattr(score_command, "CHUNK", 4)
+    texts = ["claim your free prize now", "the garden meeting notes", "free casino spins", "thanks for the notes",
+             "see you at the meeting", "win a prize today"]
+    lines = ["plain " + texts[0]] + [json.dumps({"id": f"c{i}", "text": t}) for i, t in enumerate(texts[1:], 1)]
+    monkeypatch.setattr("sys.stdin", io.StringIO("\n".join(lines) + "\n"))
+    assert main(["score", "--model", str(model_file), "--json"]) == 0
+    rows = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert [r.get("id") for r in rows] == [None, "c1", "c2", "c3", "c4", "c5"]
+    from model.classifier import EmbeddingClassifier
+
+    clf = EmbeddingClassifier.load(model_file)
+    for row, text in zip(rows, ["plain " + texts[0]] + texts[1:]):
+        scores, reasons = clf.score_many([text], top_k=5)
+        assert row["score"] == pytest.approx(float(scores[0]), abs=1e-6)
+        assert [tuple(r) for r in row["reasons"]] == [(t, pytest.approx(c, abs=1e-9)) for t, c in reasons[0]]
+
+
+@pytest.mark.parametrize("lines, expected", [
+    (['{"text": "a"}', '{"text": "b"}', '{"text": 5}'], "stdin:7: a JSON line needs a string \"text\" field"),
+    (['{"text": "a"}', '{"id": 1}', '{"text": "c"}'], "stdin:6: a JSON line needs a string \"text\" field"),
+    (['{"text": "a"}', '{"text": null}', '{"text": "c"}'], "stdin:6: a JSON line needs a string \"text\" field"),
+    (['{"text": "a"}', '{"text": "b"', '{"text": "c"}'], "stdin:6: malformed JSON"),
+    (['{"text": "a"}', '{"text": "b"}, {"text": "b2"}', '{"text": "c"}'], "stdin:6: malformed JSON"),
+], ids=["text-not-string", "no-text", "null-text", "malformed", "two-objects-on-a-line"])
+def test_score_names_the_bad_line_in_a_later_batch(model_file, capsys, monkeypatch, lines, expected):
+    import ops.commands.score as score_command
+
+    monkeypatch.setattr(score_command, "CHUNK", 4)
+    good = ['{"text": "fine"}'] * 4  # the first batch is fine and is printed
+    monkeypatch.setattr("sys.stdin", io.StringIO("\n".join(good + lines) + "\n"))
+    assert main(["score", "--model", str(model_file), "--json"]) == 2
+    assert expected in one_error_line(capsys, "score")
+
+
+def test_score_line_that_is_not_utf8(model_file, capsys, monkeypatch):
+    class BinaryStdin(io.StringIO):
+        buffer = io.BytesIO(b"fine\n\xff\xfe broken\n")
+
+    monkeypatch.setattr("sys.stdin", BinaryStdin())
+    assert main(["score", "--model", str(model_file)]) == 2
+    assert "stdin:2: the line is not UTF-8 text" in one_error_line(capsys, "score")
+
+
+def test_score_imports_neither_scikit_learn_nor_scipy(model_file, tmp_path):
+    import subprocess
+    import sys
+
+    probe = ("import sys\nfrom ops.cli import main\n"
+             f"main(['score', '--model', {str(model_file)!r}, '--json', 'free prize now'])\n"
+             "print(sorted({m.split('.')[0] for m in sys.modules} & {'sklearn', 'scipy'}), file=sys.stderr)\n")
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=True)
+    assert done.stderr.strip().splitlines()[-1] == "[]"
+    assert json.loads(done.stdout)["action"] in ("publish", "hold", "reject")
+
+
+def test_train_prints_what_the_size_budget_chose(tmp_path, data, capsys):
+    out_file = tmp_path / "m.npz"
+    assert main(["train", str(data), "--out", str(out_file), "--quiet", "--max-bytes", "200000"]) == 0
+    line = next(x for x in capsys.readouterr().out.splitlines() if x.startswith("size budget"))
+    assert line.startswith("size budget 200,000 bytes: d=") and "min_df=" in line and "4th-root rule" in line
+    assert out_file.stat().st_size <= 200_000
+    assert main(["train", str(data), "--out", str(out_file), "--quiet", "--max-bytes", "none"]) == 0
+    assert "size budget: none" in capsys.readouterr().out
+
+
+def test_train_that_cannot_fit_the_budget_says_what_to_change(tmp_path, data, capsys):
+    assert main(["train", str(data), "--out", str(tmp_path / "m.npz"), "--quiet", "--max-bytes", "3000"]) == 2
+    assert "raise max_bytes (seawall train --max-bytes)" in one_error_line(capsys, "train")
+    assert not (tmp_path / "m.npz").exists()
+
+
+@pytest.mark.parametrize("argv, expected", [
+    (["--max-bytes", "lots"], "--max-bytes: must be a positive number of bytes or 'none'"),
+    (["--min-df", "0"], "--min-df: must be 'auto' or a positive integer"),
+], ids=["max-bytes-not-a-number", "min-df-zero"])
+def test_train_rejects_bad_budget_arguments(tmp_path, data, capsys, argv, expected):
+    with pytest.raises(SystemExit) as exit_:
+        main(["train", str(data), "--out", str(tmp_path / "m.npz"), "--quiet", *argv])
+    assert exit_.value.code == 2 and expected in capsys.readouterr().err

@@ -43,7 +43,8 @@ def test_contributions_add_up_to_the_logit_minus_active_biases_with_a_hidden_lay
     head = hidden._weights.head
     feats = [hidden._tokenizer.features(t) for t in texts]
     bag = hidden._bag(hidden._encoder.tokens(feats))
-    index, table = hidden._scoring_tables()[:2]
+    tables = hidden._scoring_tables()
+    index, table = tables.index, tables.table
     pooled = bag.matrix(hidden.buckets) @ hidden._weights.table
     pre = pooled @ head["w1"] + head["b1"]
     active_bias = ((pre > 0) * head["b1"]) @ head["w2"] + head["b2"][0]

@@ -19,7 +19,7 @@ from model.classifier import FEW, EmbeddingClassifier
 from model.errors import ArtifactError
 from model.explain import top_contributions
 from model.features import FeatureEncoder, FeatureNames
-from model.hashing import TokenHasher, _hash, _hash_many, _unsigned, pair_hash, pair_hashes
+from model.hashing import TokenHasher, _hash, _hash_many, murmur_u32, pair_hash, pair_hashes
 from model.tokens import Tokenizer
 
 from test_network import HAM, SPAM, small_corpus
@@ -54,11 +54,13 @@ def test_bulk_hashes_equal_one_at_a_time():
     assert hasher.hash_list(tokens[:50]) == hasher.hashes(tokens[:50]).tolist() == [_hash(t, 5) for t in tokens[:50]]
 
 
-@pytest.mark.parametrize("signed", [-(2**31), -1, 0, 5, 2**31 - 1])
-def test_unsigned_from_sklearns_abs_and_sign(signed):
-    # scikit-learn's loop gives abs(h) % n (0 for h = -2**31 when n = 2**31) and the sign of h.
-    index = 0 if signed == -(2**31) else abs(signed)
-    assert _unsigned(np.array([index]), np.array([1.0 if signed >= 0 else -1.0])).tolist() == [signed % 2**32]
+def test_integer_key_murmur_matches_sklearn_on_random_and_edge_keys():
+    # Reference: scikit-learn's MurmurHash3 (x86, 32-bit) of the 4-byte little-endian key.
+    rng = np.random.default_rng(1)
+    keys = np.concatenate([rng.integers(0, 2**32, 2000, dtype=np.uint64), EDGE]).astype(np.uint32)
+    for seed in (0, 1, 0x9747B28C, 2**32 - 1):
+        expected = [murmurhash3_32(struct.pack("<I", k), seed=seed, positive=True) for k in keys.tolist()]
+        assert murmur_u32(keys, seed).tolist() == expected
 
 
 def test_lone_surrogates_and_non_strings():
@@ -228,6 +230,24 @@ def test_few_comments_path_equals_the_vectorised_path(trained):
     feats = [trained._tokenizer.features(t) for t in texts[:2]]
     again, _ = trained.score_features(feats, top_k=5)
     np.testing.assert_allclose(again, scores[:2], rtol=0, atol=1e-12)
+
+
+def test_one_comment_and_batch_paths_share_the_last_step(trained, monkeypatch):
+    # Whatever turns logits into probabilities (a calibration, say) must be
+    # applied by the one-comment path exactly as by the batch path: both go
+    # through _probabilities.  A stand-in that is not a plain sigmoid shows it.
+    from model import network
+
+    texts = SPAM + HAM + TEXTS
+    monkeypatch.setattr(trained, "_probabilities", lambda z: network.sigmoid(0.5 * np.asarray(z) - 1.0))
+    batch, batch_reasons = trained.score_many(texts, top_k=3)
+    expected = network.sigmoid(0.5 * trained.logits_many(texts) - 1.0)
+    np.testing.assert_allclose(batch, expected, rtol=0, atol=1e-12)
+    for text, want, want_reasons in zip(texts, batch, batch_reasons):
+        (got,), (got_reasons,) = trained.score_many([text], top_k=3)
+        assert got == pytest.approx(want, abs=1e-12)
+        assert [t for t, _ in got_reasons] == [t for t, _ in want_reasons]
+        assert trained.predict_proba_one(text) == pytest.approx(want, abs=1e-12)
 
 
 def test_a_model_with_other_pair_hashing_is_refused(trained):

@@ -217,6 +217,11 @@ def test_learned_model_separates_the_classes():
         {"char_ngrams": (5, 3)},
         {"pooling": "max"},
         {"hidden": True},
+        {"min_df": 0},
+        {"min_df": "often"},
+        {"max_bytes": 0},
+        {"max_bytes": "1MB"},
+        {"max_bytes": True},
     ],
     ids=lambda p: "-".join(f"{k}={v}" for k, v in p.items()),
 )

@@ -21,10 +21,10 @@ import time
 
 from ops.bench import interleaved_medians, peak_rss_mb, report
 
-#: The settings of the corpus check (d = 8, buckets in fewer than 5 training
-#: comments get no row); with ``dim="auto"`` 100k comments of uni+bigrams give
-#: d = 31 and a file of about 3 MB.
-SEAWALL = dict(dim=8, min_df=5)
+#: Seawall's defaults: the size budget picks d and the document-frequency cut
+#: (100k comments of uni+bigrams give the 4th-root rule's d = 31 and, without
+#: the budget, a file of about 3 MB).
+SEAWALL: dict = {}
 SYLLABLES = [c + v for c in "bdfgklmnprstvz" for v in "aeiou"]
 TARGET_CHARS = 200
 #: Batch-1 timing: blocks of this many one-comment calls per side, taking turns.
@@ -167,7 +167,9 @@ def measure(*, n_train: int, repeats: int, seed: int) -> dict:
         "seawall_train_s": round(seawall_train_s, 2),
         "reference_train_s": round(reference_train_s, 2),
         "seawall_dim": clf.dim_,
-        "seawall_min_df": clf.min_df,
+        "seawall_min_df": clf.min_df_,
+        "seawall_budget_steps": ", ".join(clf.budget_["steps"]) or "none",
+        "seawall_rows_pruned": clf.budget_["rows_trained"] - clf.budget_["rows_kept"],
         "seawall_rows": clf.summary_["rows"],
         "seawall_epochs_run": clf.summary_["epochs_run"],
         "artifact_bytes": len(blob),

@@ -6,11 +6,17 @@ score, the action (publish / hold / reject) and its top tokens.  Actions come
 from the same router as ``seawall serve``'s, with the same settings
 (``worker.hold_fpr``, ``worker.hold_floor``, ... and ``worker.site_thresholds``,
 from ``SEAWALL_*`` variables and the config file).
+
+Comments go through the model :data:`CHUNK` at a time: stdin is read a batch
+of lines at a time, a batch whose lines are all JSON objects is parsed in one
+``orjson`` call, and each batch's output is written at once.  Only numpy is
+needed at run time (no scikit-learn, no scipy).
 """
 from __future__ import annotations
 
-import json
 import sys
+from collections.abc import Iterator
+from itertools import islice
 
 from model.errors import DataError
 
@@ -29,33 +35,104 @@ def register(sub) -> None:
     parser.set_defaults(func=run)
 
 
-def _stdin_comments(stream):
-    for number, line in enumerate(stream, start=1):
-        line = line.rstrip("\n")
-        if not line.strip():
+def _line_batches(stream, size: int) -> Iterator[list[bytes]]:
+    """Lists of up to ``size`` raw lines (bytes) of a text stream, read through its binary buffer."""
+    binary = getattr(stream, "buffer", None)
+    if binary is None:  # a text stream without a buffer (a StringIO in a test)
+        lines = (line.encode("utf-8", "surrogatepass") for line in stream)
+    else:
+        lines = iter(binary)
+    while batch := list(islice(lines, size)):
+        yield batch
+
+
+def parse_lines(lines: list[bytes], first_number: int) -> tuple[list, list[str], list[str]]:
+    """Ids, texts and sites of a batch of stdin lines; blank lines are skipped.
+
+    A line is a JSON object when it starts with ``{`` (after blanks), else
+    plain UTF-8 text.  ``first_number`` is the line number of ``lines[0]``,
+    for error messages.
+
+    Raises
+    ------
+    DataError
+        On a malformed JSON line, one without a string ``text``, or text
+        that is not UTF-8; the message names the line.
+
+    Examples
+    --------
+    >>> parse_lines([b'{"id": 7, "text": "hi", "site": "a.example"}\\n', b"\\n", b"plain words\\n"], 1)
+    ([7, None], ['hi', 'plain words'], ['a.example', ''])
+    """
+    import orjson
+
+    if all(line[:1] == b"{" for line in lines):  # the usual case: JSON Lines, parsed in one call
+        try:
+            records = orjson.loads(b"[" + b",".join(lines) + b"]")
+        except orjson.JSONDecodeError:
+            pass  # find the bad line below
+        else:
+            texts = [record.get("text") if type(record) is dict else None for record in records]
+            # One record per line (a line "{...}, {...}" would parse as two) and every text a string.
+            if len(records) == len(lines) and all(type(text) is str for text in texts):
+                return ([record.get("id") for record in records], texts,
+                        [str(record.get("site") or "") for record in records])
+    ids: list = []
+    texts: list[str] = []
+    sites: list[str] = []
+    for number, line in enumerate(lines, start=first_number):
+        stripped = line.strip()
+        if not stripped:
             continue
-        if line.lstrip().startswith("{"):
+        if stripped[:1] == b"{":
             try:
-                record = json.loads(line)
-            except json.JSONDecodeError as exc:
-                raise DataError(f"score: stdin:{number}: malformed JSON ({exc.msg} at column {exc.colno})") from None
+                record = orjson.loads(stripped)
+            except orjson.JSONDecodeError as exc:
+                raise DataError(f"score: stdin:{number}: malformed JSON ({exc})") from None
             text = record.get("text") if isinstance(record, dict) else None
             if not isinstance(text, str):
                 raise DataError(f"score: stdin:{number}: a JSON line needs a string \"text\" field")
-            yield record.get("id"), text, str(record.get("site") or "")
+            ids.append(record.get("id"))
+            texts.append(text)
+            sites.append(str(record.get("site") or ""))
         else:
-            yield None, line, ""
+            try:
+                texts.append(line.rstrip(b"\r\n").decode("utf-8"))
+            except UnicodeDecodeError:
+                raise DataError(f"score: stdin:{number}: the line is not UTF-8 text") from None
+            ids.append(None)
+            sites.append("")
+    return ids, texts, sites
 
 
-def _chunks(items, size):
-    chunk = []
-    for item in items:
-        chunk.append(item)
-        if len(chunk) == size:
-            yield chunk
-            chunk = []
-    if chunk:
-        yield chunk
+def json_lines(ids: list, scores, decisions: list, reasons: list, version: str) -> bytes:
+    """One JSON object per comment, newline-terminated, as bytes.
+
+    Scores are rounded to 6 decimals (in one numpy call); contributions are
+    written as the model gives them (each ``(token, contribution)`` pair
+    becomes a two-element array), since rounding them costs a Python call each.
+    """
+    import numpy as np
+    import orjson
+
+    dumps = orjson.dumps
+    out = [dumps({"score": score, "action": d.action, "rule": d.rule, "reasons": why, "model": version}
+                 if ident is None else
+                 {"score": score, "action": d.action, "rule": d.rule, "reasons": why, "model": version, "id": ident})
+           for ident, score, d, why in zip(ids, np.round(scores, 6).tolist(), decisions, reasons)]
+    out.append(b"")
+    return b"\n".join(out)
+
+
+def text_lines(ids: list, scores, decisions: list, reasons: list) -> bytes:
+    """``[id<TAB>]score<TAB>action<TAB>top tokens`` per comment, as UTF-8 bytes."""
+    out = []
+    for ident, score, decision, why in zip(ids, scores, decisions, reasons):
+        action = decision.action
+        tokens = "  ".join(f"{tok} {c:+.3f}" for tok, c in why)
+        prefix = f"{ident}\t" if ident is not None else ""
+        out.append(f"{prefix}{score:.4f}\t{action}\t{tokens}\n")
+    return "".join(out).encode("utf-8", "surrogatepass")
 
 
 def run(args) -> int:
@@ -70,20 +147,32 @@ def run(args) -> int:
         router = Router.for_model(clf, config.worker, fixed=fixed)
     except ValueError as exc:
         raise DataError(f"score: {exc}") from None
-    comments = ((None, t, "") for t in args.texts) if args.texts else _stdin_comments(sys.stdin)
-    for chunk in _chunks(comments, CHUNK):
-        scores, decisions, reasons = score_and_decide(clf, router, [text for _, text, _ in chunk],
-                                                      [site for _, _, site in chunk], top_k=max(args.top, 0))
-        for (ident, _, _), score, decision, why in zip(chunk, scores, decisions, reasons):
-            action = decision.action
-            if args.json:
-                out = {"score": round(float(score), 6), "action": action, "rule": decision.rule,
-                       "reasons": [[tok, round(c, 4)] for tok, c in why], "model": clf.version}
-                if ident is not None:
-                    out["id"] = ident
-                print(json.dumps(out))
-            else:
-                tokens = "  ".join(f"{tok} {c:+.3f}" for tok, c in why)
-                prefix = f"{ident}\t" if ident is not None else ""
-                print(f"{prefix}{score:.4f}\t{action}\t{tokens}")
+    if args.texts:
+        batches = (([None] * len(chunk), chunk, [""] * len(chunk)) for chunk in
+                   (args.texts[i:i + CHUNK] for i in range(0, len(args.texts), CHUNK)))
+    else:
+        batches = _parsed(sys.stdin)
+    top_k = max(args.top, 0)
+    version = clf.version
+    sys.stdout.flush()
+    out = getattr(sys.stdout, "buffer", None)
+    for ids, texts, sites in batches:
+        if not texts:
+            continue
+        scores, decisions, reasons = score_and_decide(clf, router, texts, sites, top_k=top_k)
+        data = json_lines(ids, scores, decisions, reasons, version) if args.json else \
+            text_lines(ids, scores, decisions, reasons)
+        if out is not None:
+            out.write(data)
+        else:
+            sys.stdout.write(data.decode("utf-8", "surrogatepass"))
+    if out is not None:
+        out.flush()
     return 0
+
+
+def _parsed(stream) -> Iterator[tuple[list, list[str], list[str]]]:
+    number = 1
+    for lines in _line_batches(stream, CHUNK):
+        yield parse_lines(lines, number)
+        number += len(lines)

@@ -44,6 +44,15 @@ def _dim(value: str):
         raise argparse.ArgumentTypeError(f"must be 'auto' or a positive integer, got {value!r}") from None
 
 
+def _max_bytes(value: str):
+    if value.lower() == "none":
+        return None
+    try:
+        return _positive(value)
+    except argparse.ArgumentTypeError:
+        raise argparse.ArgumentTypeError(f"must be a positive number of bytes or 'none', got {value!r}") from None
+
+
 def _positive(value: str) -> int:
     try:
         number = int(value)
@@ -62,11 +71,15 @@ def register(sub) -> None:
     )
     parser.add_argument("data", nargs="+", metavar="DATA.jsonl", help="labelled comments, one JSON object per line")
     parser.add_argument("--out", required=True, metavar="MODEL_FILE", help="where to write the model")
-    parser.add_argument("--dim", type=_dim, default="auto", help="embedding width, or 'auto' (4th root of distinct tokens)")
+    parser.add_argument("--dim", type=_dim, default="auto",
+                        help="embedding width, or 'auto' (4th root of distinct tokens, narrowed if the size budget needs it)")
     parser.add_argument("--buckets", type=_positive, default=2**18, help="hash buckets, a power of two (default 2**18)")
     parser.add_argument("--epochs", type=_positive, default=10, help="maximum passes over the data (default 10)")
     parser.add_argument("--seed", type=int, default=0, help="seed of initialisation, shuffling and validation split")
-    parser.add_argument("--min-df", type=_positive, default=2, help="buckets in fewer comments get no row (default 2)")
+    parser.add_argument("--min-df", type=_dim, default="auto",
+                        help="buckets in fewer comments get no row, or 'auto' (2, raised if the size budget needs it)")
+    parser.add_argument("--max-bytes", type=_max_bytes, default=2**20, metavar="BYTES",
+                        help="size budget of the model file (default 1048576 = 1 MiB; 'none' = no budget)")
     parser.add_argument("--calibration", choices=_CalibrationMethods(), default=DEFAULT_CALIBRATION, metavar="METHOD",
                         help="probability calibration fitted on the held-out share: identity, platt, temperature or "
                              f"isotonic (default {DEFAULT_CALIBRATION})")
@@ -74,6 +87,18 @@ def register(sub) -> None:
                         help="TOML config file whose [worker] targets and floors set the thresholds (default: SEAWALL_CONFIG)")
     parser.add_argument("--quiet", action="store_true", help="no per-epoch progress on stderr")
     parser.set_defaults(func=run)
+
+
+def budget_line(chosen: dict, size: int) -> str:
+    """What the size budget chose, in one line."""
+    limit = chosen.get("max_bytes")
+    head = "size budget: none" if limit is None else f"size budget {limit:,} bytes"
+    steps = ", ".join(chosen.get("steps") or []) or "no change"
+    parts = [f"d={chosen['dim']} (4th-root rule {chosen['rule_dim']})", f"min_df={chosen['min_df']}",
+             f"from the rule's start: {steps}"]
+    if chosen.get("pruned_by"):
+        parts.append(f"kept {chosen['rows_kept']:,} of {chosen['rows_trained']:,} rows (smallest row norms dropped)")
+    return f"{head}: " + "; ".join(parts) + f"; file {size:,} bytes"
 
 
 def _progress(epochs: int):
@@ -96,8 +121,8 @@ def run(args) -> int:
     examples = read_examples(args.data, op="train")
     require_both_classes(examples, args.data, op="train")
     try:
-        clf = EmbeddingClassifier(dim=args.dim, buckets=args.buckets, epochs=args.epochs, seed=args.seed, min_df=args.min_df,
-                                  calibration=args.calibration)
+        clf = EmbeddingClassifier(dim=args.dim, buckets=args.buckets, epochs=args.epochs, seed=args.seed,
+                                  min_df=args.min_df, max_bytes=args.max_bytes, calibration=args.calibration)
     except ValueError as exc:
         # The constructor's message names the field and value; make it a one-line user error.
         from model.errors import DataError
@@ -122,6 +147,7 @@ def run(args) -> int:
     print(f"calibration: {cal.method} (slope {cal.slope:.3f}, intercept {cal.intercept:+.3f}) "
           f"on {cal.n_ham} ham, {cal.n_spam} spam held out")
     print(f"thresholds: {describe(router)}")
+    print(budget_line(clf.budget_, size))
     print(f"wrote {args.out} ({size / 1024:.0f} KiB), version {clf.version}")
     print_warnings(router.warnings(), op="train")
     return 0
