@@ -129,7 +129,8 @@ class WaveSettings:
     campaign_min_words: int = setting(6, "comments with fewer words are not checked for campaigns")
     campaign_hold: bool = setting(True, "hold members of an active campaign even when the model would publish them")
     campaign_baseline_days: int = setting(7, "days of history kept per near-duplicate family: its baseline rate")
-    campaign_burst_ratio: float = setting(5.0, "a family is bursty when its count in the window is at least this many times what its history predicts")
+    campaign_burst_ratio: float = setting(5.0, "a family is bursty when its count in the window is at least this many times what its history's average rate predicts")
+    campaign_peak_ratio: float = setting(2.0, "... and at least this many times the busiest window of its history (campaigns' windows left out)")
     campaign_signals: str = setting("authors", "second signal a campaign needs: authors (its authors are new to the site), lean (its scores lean spam-ward), either or both")
     campaign_new_author_s: int = setting(3 * 86_400, "an author first seen on a site less than this long ago (seconds) is new to it")
     campaign_warmup_s: int = setting(86_400, "authors first seen in this long after the detector first saw their site are never new: it is learning who the regulars are")
@@ -168,6 +169,7 @@ _WAVE_BOUNDS = (
     ("campaign_min_words", 1, 10000),
     ("campaign_baseline_days", 1, 365),
     ("campaign_burst_ratio", 1.0, 1e6),
+    ("campaign_peak_ratio", 1.0, 1e6),
     ("campaign_new_author_s", 0, 10**9),
     ("campaign_warmup_s", 0, 10**9),
     ("campaign_new_author_share", 0.0, 1.0),

@@ -108,15 +108,17 @@ SIGNALS = ("either", "authors", "lean", "both")
 # Band keys: most are seen once, and a first sighting only joins the slot's set (two SMISMEMBERs and one
 # SADD for the whole batch).  A key already in either slot's set (or earlier in the batch) is a *hit* on
 # its bucket.  A bucket is one field of the current slot's hash, named by its key, holding
-# "t p e a w x h y": the window's count t (the previous slot's own count p carried in, plus this
-# slot's), the baseline e, distinct authors a (each recorded in a field <key><author key>) until there
-# are min_authors, hits by new authors w and spam-ward hits h (carried in like the count: x and y).
-# <key>L is the campaign the bucket is linked to (the worker writes it).  The batch's buckets are read
-# in one HMGET, updated in Lua and written back in one HSET.  A key with no bucket in this slot yet
-# carries in the previous slot's own figures and reads its baseline from the two history generations;
-# then the previous slot's own count joins the current generation.  Every hit whose window count
-# reaches min_size (link_size for rows the worker knows as members) comes back as {row, band, window
-# count, authors, new-author hits, spam-ward hits, baseline, link}.
+# "t p e m a w x h y": the window's count t (the previous slot's own count p carried in, plus this
+# slot's), the baseline (e: the history's count, m: its busiest window), distinct authors a (each
+# recorded in a field <key><author key>) until there are min_authors, hits by new authors w and
+# spam-ward hits h (carried in like the count: x and y).  <key>L is the campaign the bucket is linked to
+# (the worker writes it).  The batch's buckets are read in one HMGET, updated in Lua and written back in
+# one HSET.  A key with no bucket in this slot yet carries in the previous slot's own figures and reads
+# its baseline from the two history generations ("count busiest-window" per key); then the previous
+# slot joins the current generation: its own count always, its window as the busiest one unless the
+# bucket was linked to a campaign.  Every hit whose window count reaches min_size (link_size for rows
+# the worker knows as members) comes back as {row, band, window count, authors, new-author hits,
+# spam-ward hits, history count, busiest window, link}.
 #
 # KEYS: seen (this slot), seen (previous slot), buckets (this slot), buckets (previous slot),
 #       authors (this generation), authors (previous generation), sites, scheme start,
@@ -213,41 +215,51 @@ for f = 1, #fields do
   end
 end
 if #hits == 0 then return out end
-local PACKED = '^(%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+)$'
+local PACKED = '^(%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+)$'
 local function read(key, list)  -- each bucket's packed figures and link
   local names = {}
   for _, k in ipairs(list) do names[#names + 1] = k; names[#names + 1] = k .. 'L' end
   return chunked('HMGET', key, names)
+end
+local function history(v)  -- a history field: "sum peak"
+  if not v then return 0, 0 end
+  local sum, peak = string.match(v, '^(%d+) (%d+)$')
+  return tonumber(sum), tonumber(peak)
 end
 local got = read(B, order)
 local opened = {}
 for n, k in ipairs(order) do
   local s, v = state[k], got[2 * n - 1]
   if v then
-    s.t, s.p, s.e, s.a, s.w, s.x, s.h, s.y = string.match(v, PACKED)
-    s.t, s.p, s.e, s.a = tonumber(s.t), tonumber(s.p), tonumber(s.e), tonumber(s.a)
-    s.w, s.x, s.h, s.y = tonumber(s.w), tonumber(s.x), tonumber(s.h), tonumber(s.y)
+    local f = {string.match(v, PACKED)}
+    s.t, s.p, s.e, s.m, s.a = tonumber(f[1]), tonumber(f[2]), tonumber(f[3]), tonumber(f[4]), tonumber(f[5])
+    s.w, s.x, s.h, s.y = tonumber(f[6]), tonumber(f[7]), tonumber(f[8]), tonumber(f[9])
     s.L = got[2 * n]
   else
     opened[#opened + 1] = k
   end
 end
 if #opened > 0 then  -- first hits in this slot: carry the previous slot in, read the baseline, fold
-  local pv = chunked('HMGET', P, opened)
+  local pv = read(P, opened)
   local hv = chunked('HMGET', H, opened)
   local gv = chunked('HMGET', G, opened)
   local fold = {}
   for n, k in ipairs(opened) do
-    local s, v = state[k], pv[n]
+    local s, v = state[k], pv[2 * n - 1]
+    local hs, hp = history(hv[n])
+    local gs, gp = history(gv[n])
     s.opened, s.a, s.L = true, 0, false
-    s.e = (tonumber(hv[n]) or 0) + (tonumber(gv[n]) or 0)
+    s.e, s.m = hs + gs, math.max(hp, gp)
     s.t, s.w, s.h = 0, 0, 0
     if v then
-      local t, p, _, _, w, x, h, y = string.match(v, PACKED)
-      s.t, s.w, s.h = tonumber(t) - tonumber(p), tonumber(w) - tonumber(x), tonumber(h) - tonumber(y)
+      local f = {string.match(v, PACKED)}
+      local window = tonumber(f[1])
+      s.t = window - tonumber(f[2])
+      s.w, s.h = tonumber(f[6]) - tonumber(f[7]), tonumber(f[8]) - tonumber(f[9])
       s.prev_bucket = true
+      -- the previous slot's own count joins the sum; its window joins the peak unless it was a campaign's
       fold[#fold + 1] = k
-      fold[#fold + 1] = (tonumber(hv[n]) or 0) + s.t
+      fold[#fold + 1] = (hs + s.t) .. ' ' .. (pv[2 * n] and hp or math.max(hp, window))
     end
     s.p, s.x, s.y = s.t, s.w, s.h
   end
@@ -298,13 +310,13 @@ for _, f in ipairs(hits) do
   if fresh_of[i] then s.w = s.w + 1 end
   if lean[r] then s.h = s.h + 1 end
   if s.t >= (member[r] and link_size or min_size) then
-    out[#out + 1] = {r, f - r * bands - 1, s.t, s.a, s.w, s.h, s.e, s.L or ''}
+    out[#out + 1] = {r, f - r * bands - 1, s.t, s.a, s.w, s.h, s.e, s.m, s.L or ''}
   end
 end
 for _, k in ipairs(order) do
   local s = state[k]
   writes[#writes + 1] = k
-  writes[#writes + 1] = string.format('%d %d %d %d %d %d %d %d', s.t, s.p, s.e, s.a, s.w, s.x, s.h, s.y)
+  writes[#writes + 1] = string.format('%d %d %d %d %d %d %d %d %d', s.t, s.p, s.e, s.m, s.a, s.w, s.x, s.h, s.y)
 end
 chunked('HSET', B, writes)
 redis.call('EXPIRE', B, tonumber(ARGV[4]))
@@ -330,6 +342,7 @@ _PARAMS = {
     "hold": lambda v: isinstance(v, bool),
     "baseline_days": _is_int(1, 365),
     "burst_ratio": _is_real(1.0, 1e6),
+    "peak_ratio": _is_real(1.0, 1e6),
     "new_author_s": _is_int(0, 10**9),
     "warmup_s": _is_int(0, 10**9),
     "link_size": _is_int(2),
@@ -428,8 +441,10 @@ class CampaignPolicy:
     min_words : comments with fewer normalized words ("thanks!", "+1") are never members.
     hold : hold members that routing would publish.
     baseline_days : days of history per band key.
-    burst_ratio : a dense bucket is bursty when its window count is at least
-        this many times what its history predicts for one window.
+    burst_ratio, peak_ratio : a dense bucket is bursty when its window count
+        is at least ``burst_ratio`` times what its history's average rate
+        predicts for one window and ``peak_ratio`` times the busiest window of
+        its history (campaigns' windows left out).
     new_author_s : an author first seen on a site less than this long ago is new.
     warmup_s : authors first seen in a site's first ``warmup_s`` (since the
         detector first saw the site) are never new: it is learning the regulars.
@@ -444,7 +459,8 @@ class CampaignPolicy:
 
     def __init__(self, *, keys: Keys, hasher: MinHasher, bands: int = 16, min_size: int = 10, min_authors: int = 3,
                  window_s: int = 600, min_words: int = 6, hold: bool = True, baseline_days: int = 7,
-                 burst_ratio: float = 5.0, new_author_s: int = 3 * DAY_S, warmup_s: int = DAY_S,
+                 burst_ratio: float = 5.0, peak_ratio: float = 2.0, new_author_s: int = 3 * DAY_S,
+                 warmup_s: int = DAY_S,
                  new_author_share: float = 0.5, link_size: int = 3,
                  lean_share: float = 0.5, lean_quantile: float = 0.9, signals: str = "authors",
                  clock: Callable[[], float] = time.time, events_maxlen: int = EVENTS_MAXLEN):
@@ -464,6 +480,7 @@ class CampaignPolicy:
         self.hold = hold
         self.baseline_days = baseline_days
         self.burst_ratio = float(burst_ratio)
+        self.peak_ratio = float(peak_ratio)
         self.new_author_s = new_author_s
         self.warmup_s = warmup_s
         self.link_size = link_size
@@ -605,7 +622,7 @@ class CampaignPolicy:
             row_keys = keys[row]
             campaign = members.get(i)
             qualifying = []  # (count, band, facts) of buckets that could start or extend a campaign
-            for _row, band, total, n_authors, new_hits, lean_hits, history, link in row_hits:
+            for _row, band, total, n_authors, new_hits, lean_hits, history, peak, link in row_hits:
                 band = int(band)
                 link = _text(link)
                 if link:
@@ -614,7 +631,7 @@ class CampaignPolicy:
                         campaign = campaign or link
                     continue
                 facts = self._bucket_facts(int(total), int(n_authors), int(new_hits), int(lean_hits), int(history),
-                                           history_s)
+                                           int(peak), history_s)
                 if facts["bursty"] and facts["signal"]:
                     qualifying.append((int(total), band, facts))
             campaign = campaign or next((links[k] for k in map(int, row_keys) if k in links), None)
@@ -643,9 +660,14 @@ class CampaignPolicy:
             self._record_members(client, members, links, buckets_key, now)
         return members
 
-    def _bucket_facts(self, total: int, n_authors: int, new_hits: int, lean_hits: int, history: int,
+    def _bucket_facts(self, total: int, n_authors: int, new_hits: int, lean_hits: int, history: int, peak: int,
                       history_s: float) -> dict:
-        """What one bucket's window figures say: dense, bursty against its history, the second signals."""
+        """What one bucket's window figures say: dense, bursty against its history, the second signals.
+
+        Bursty is far above both the history's average rate (``burst_ratio``
+        times it) and its busiest window (``peak_ratio`` times it), so a family
+        that is busy at the same hour every day is not bursty at that hour.
+        """
         expected = history * self.window_s / history_s
         new_share = new_hits / total if total else 0.0
         lean_share = lean_hits / total if total else 0.0
@@ -654,7 +676,8 @@ class CampaignPolicy:
         signal = {"either": by_authors or by_lean, "authors": by_authors, "lean": by_lean,
                   "both": by_authors and by_lean}[self.signals]
         return {"dense": total >= self.min_size and n_authors >= self.min_authors,
-                "bursty": total >= self.burst_ratio * expected, "signal": signal, "members": total,
+                "bursty": total >= self.burst_ratio * expected and total >= self.peak_ratio * peak,
+                "signal": signal, "members": total, "peak": peak,
                 "authors": n_authors, "new_share": round(new_share, 3), "lean_share": round(lean_share, 3),
                 "expected": round(expected, 3), "by": [n for n, on in (("authors", by_authors), ("lean", by_lean)) if on]}
 
