@@ -116,9 +116,11 @@ SIGNALS = ("either", "authors", "lean", "both")
 # one HSET.  A key with no bucket in this slot yet carries in the previous slot's own figures and reads
 # its baseline from the two history generations ("count busiest-window" per key); then the previous
 # slot joins the current generation: its own count always, its window as the busiest one unless the
-# bucket was linked to a campaign.  Every hit whose window count reaches min_size (link_size for rows
-# the worker knows as members) comes back as {row, band, window count, authors, new-author hits,
-# spam-ward hits, history count, busiest window, link}.
+# bucket was linked to a campaign.  The reply names each bucket the batch hit once, as it stands after
+# the batch: a linked one with its campaign, another one if its window count reaches min_size (link_size
+# if a row the worker knows as a member hit it) and it is bursty (far above both its history's average
+# and its busiest window) as {key, window count, authors, new-author hits, spam-ward hits, history count,
+# busiest window}; the worker decides the rest.
 #
 # KEYS: seen (this slot), seen (previous slot), buckets (this slot), buckets (previous slot),
 #       authors (this generation), authors (previous generation), sites, scheme start,
@@ -127,8 +129,9 @@ SIGNALS = ("either", "authors", "lean", "both")
 #       8 min_authors, 9 band keys (8 bytes each, bands per row), 10 author keys (8 bytes, one per
 #       comment), 11 each row's comment (0-based), 12 each comment's site (1-based), 13 1-based places of
 #       band keys that occur earlier in the batch, 14 spam-ward rows, 15 member rows, 16 link_size,
-#       17 warmup_s, 18... the batch's sites.
-# Reply: {scheme start, hit, hit, ...}.
+#       17 warmup_s, 18 window_s, 19 burst_ratio, 20 peak_ratio, 21 start of the previous history
+#       generation, 22... the batch's sites.
+# Reply: {scheme start, {key, campaign, key, campaign, ...}, bucket, bucket, ...}.
 _STATE_SCRIPT = """
 local CHUNK = 7000  -- unpack() is bounded by the Lua stack (8000)
 local function chunked(cmd, key, list)
@@ -181,7 +184,7 @@ if #authors > 0 then
 end
 local newer_than = {}  -- per site: an author first seen at or after this is new
 local sites = {}
-for s = 18, #ARGV do sites[#sites + 1] = ARGV[s] end
+for s = 22, #ARGV do sites[#sites + 1] = ARGV[s] end
 if #sites > 0 then
   local since = redis.call('HMGET', KEYS[7], unpack(sites))
   for s = 1, #sites do
@@ -192,7 +195,8 @@ if #sites > 0 then
 end
 local site_of = numbers(ARGV[12])
 redis.call('SET', KEYS[8], now_s, 'NX')
-local out = {redis.call('GET', KEYS[8])}
+local since = redis.call('GET', KEYS[8])
+local out = {since, {}}
 
 local fields = cut(ARGV[9])
 if #fields == 0 then return out end
@@ -204,6 +208,9 @@ local row_comment = numbers(ARGV[11])
 local repeated, lean, member = flags(ARGV[13]), flags(ARGV[14]), flags(ARGV[15])
 local link_size = tonumber(ARGV[16])
 local B, P, H, G = KEYS[3], KEYS[4], KEYS[9], KEYS[10]
+-- the bursty test's first half (the worker checks it again): far above the history's average and peak
+local window, burst_ratio, peak_ratio = tonumber(ARGV[18]), tonumber(ARGV[19]), tonumber(ARGV[20])
+local history_s = math.max(now - math.max(tonumber(since), tonumber(ARGV[21])) - window, window)
 
 -- the batch's hits and their distinct buckets
 local hits, order, state = {}, {}, {}
@@ -309,12 +316,17 @@ for _, f in ipairs(hits) do
   if fresh_of[i] == nil then fresh_of[i] = tonumber(first[i]) >= newer_than[site_of[i]] end
   if fresh_of[i] then s.w = s.w + 1 end
   if lean[r] then s.h = s.h + 1 end
-  if s.t >= (member[r] and link_size or min_size) then
-    out[#out + 1] = {r, f - r * bands - 1, s.t, s.a, s.w, s.h, s.e, s.m, s.L or ''}
-  end
+  if member[r] then s.member = true end
 end
 for _, k in ipairs(order) do
   local s = state[k]
+  if s.L then
+    table.insert(out[2], k)
+    table.insert(out[2], s.L)
+  elseif s.t >= (s.member and link_size or min_size) and s.t >= peak_ratio * s.m
+      and s.t * history_s >= burst_ratio * s.e * window then
+    out[#out + 1] = {k, s.t, s.a, s.w, s.h, s.e, s.m}
+  end
   writes[#writes + 1] = k
   writes[#writes + 1] = string.format('%d %d %d %d %d %d %d %d %d', s.t, s.p, s.e, s.m, s.a, s.w, s.x, s.h, s.y)
 end
@@ -422,10 +434,11 @@ class SiteScores:
                 ring = (np.zeros(self.size), [0, 0])
             self._rings[site] = ring
             data, state = ring
-            for v in values[-self.size:]:
-                data[state[0]] = v
-                state[0] = (state[0] + 1) % self.size
-            state[1] = min(self.size, state[1] + len(values))
+            values = np.asarray(values[-self.size:], dtype=float)
+            places = (state[0] + np.arange(values.size)) % self.size
+            data[places] = values
+            state[0] = int((state[0] + values.size) % self.size)
+            state[1] = min(self.size, state[1] + values.size)
 
 
 class CampaignPolicy:
@@ -558,8 +571,8 @@ class CampaignPolicy:
                   2 * self.baseline_days * DAY_S + 3600, self.new_author_s, self.min_authors, blob, authors,
                   " ".join(map(str, eligible.tolist())), " ".join(str(site_index[s]) for s in sites),
                   " ".join(map(str, np.flatnonzero(repeated) + 1)), " ".join(map(str, lean)),
-                  " ".join(map(str, known)), self.link_size, self.warmup_s,
-                  *site_list],
+                  " ".join(map(str, known)), self.link_size, self.warmup_s, self.window_s, self.burst_ratio,
+                  self.peak_ratio, self._history_start(now), *site_list],
             client=client)
         members = self._decide(client, comments, eligible, keys, known, reply, state_keys[2], now)
         if scores is not None:
@@ -594,47 +607,52 @@ class CampaignPolicy:
                 out.append(row)
         return out
 
+    def _history_start(self, now: float) -> int:
+        """Where the previous history generation starts: the baselines cover from there (or the detector's start)."""
+        generation_s = self.baseline_days * DAY_S
+        return int((now // generation_s - 1) * generation_s)
+
     def _decide(self, client, comments, eligible, keys, known: dict[int, str], reply, buckets_key: str,
                 now: float) -> dict[int, str]:
         since = float(reply[0]) if reply and reply[0] is not None else now
-        hits = reply[1:] if reply else []
-        if not hits and not known:  # the usual batch: no bucket holds min_size comments
+        linked_keys = reply[1] if len(reply) > 1 else []
+        buckets = reply[2:]
+        if not buckets and not known and not linked_keys:  # the usual batch: no bucket is dense and bursty
             return {}
-        # the history the baselines cover: the two generations of baseline_days days, less the window
-        generation_s = self.baseline_days * DAY_S
-        covered = now - max(since, (now // generation_s - 1) * generation_s)
-        history_s = max(covered - self.window_s, float(self.window_s))
-        by_row: dict[int, list] = {}
-        for hit in hits:
-            by_row.setdefault(int(hit[0]), []).append(hit)
+        history_s = max(now - max(since, self._history_start(now)) - self.window_s, float(self.window_s))
         ck = campaign_keys(self.keys)
         active = {_text(k) for k in client.hkeys(ck["active"])}
         members: dict[int, str] = {}
-        links: dict[int, str] = {}  # band keys this batch links, with their campaign
-        seeds: dict[str, set[str]] | None = None  # campaign -> its first member's band keys, read when needed
         for row, campaign in known.items():
             if campaign in active:
                 members[int(eligible[row])] = campaign
             else:  # ended: forget its buckets
                 self._links = {k: v for k, v in self._links.items() if v[0] != campaign}
-        for row, row_hits in by_row.items():
+        linked: dict[int, str] = {}  # band keys linked to an active campaign, as Redis has them
+        for key, campaign in zip(linked_keys[::2], linked_keys[1::2]):
+            campaign = _text(campaign)
+            if campaign in active:
+                linked[int.from_bytes(key, "big")] = campaign
+                self._learn(int.from_bytes(key, "big"), campaign, now)
+        if linked:
+            on_link = np.isin(keys, np.fromiter(linked, dtype=np.uint64, count=len(linked)))
+            for row in np.flatnonzero(on_link.any(axis=1)).tolist():
+                members.setdefault(int(eligible[row]), linked[int(keys[row][on_link[row]][0])])
+        facts_of = {int.from_bytes(key, "big"): self._bucket_facts(int(t), int(a), int(w), int(h), int(e), int(m),
+                                                                   history_s)
+                    for key, t, a, w, h, e, m in buckets}
+        on_bucket = np.isin(keys, np.fromiter(facts_of, dtype=np.uint64, count=len(facts_of))) if facts_of else None
+        links: dict[int, str] = {}  # band keys this batch links, with their campaign
+        seeds: dict[str, set[str]] | None = None  # campaign -> its first member's band keys, read when needed
+        rows = np.flatnonzero(on_bucket.any(axis=1)).tolist() if on_bucket is not None else []
+        for row in rows:
             i = int(eligible[row])
             row_keys = keys[row]
-            campaign = members.get(i)
-            qualifying = []  # (count, band, facts) of buckets that could start or extend a campaign
-            for _row, band, total, n_authors, new_hits, lean_hits, history, peak, link in row_hits:
-                band = int(band)
-                link = _text(link)
-                if link:
-                    if link in active:
-                        self._learn(int(row_keys[band]), link, now)
-                        campaign = campaign or link
-                    continue
-                facts = self._bucket_facts(int(total), int(n_authors), int(new_hits), int(lean_hits), int(history),
-                                           int(peak), history_s)
-                if facts["bursty"] and facts["signal"]:
-                    qualifying.append((int(total), band, facts))
-            campaign = campaign or next((links[k] for k in map(int, row_keys) if k in links), None)
+            # (count, band, facts) of buckets that could start or extend a campaign
+            qualifying = [(facts_of[int(row_keys[band])]["members"], band, facts_of[int(row_keys[band])])
+                          for band in np.flatnonzero(on_bucket[row]).tolist()]
+            qualifying = [q for q in qualifying if q[2]["bursty"] and q[2]["signal"]]
+            campaign = members.get(i) or next((links[k] for k in map(int, row_keys) if k in links), None)
             if campaign is None:
                 starters = [q for q in qualifying if q[2]["dense"]]
                 if not starters:
@@ -645,8 +663,9 @@ class CampaignPolicy:
                     seeds = self._load_seeds(client)
                 campaign = self._campaign_of_seeds(bucket_list, active, seeds)
                 if campaign is None:
+                    earlier = facts["members"] - int((keys == row_keys[band]).any(axis=1).sum())
                     campaign = self._start(client, comments[i], int(row_keys[band]), bucket_list, facts,
-                                           buckets_key, now)
+                                           max(0, earlier), buckets_key, now)
                     active.add(campaign)
                     seeds[campaign] = set(bucket_list)
             members[i] = campaign
@@ -721,8 +740,10 @@ class CampaignPolicy:
         mine = set(bucket_list)
         return next((c for c, keys in seeds.items() if c in active and keys & mine), None)
 
-    def _start(self, client, comment, band_key: int, bucket_list: list[str], facts: dict, buckets_key: str,
-               now: float) -> str:
+    def _start(self, client, comment, band_key: int, bucket_list: list[str], facts: dict, earlier: int,
+               buckets_key: str, now: float) -> str:
+        """Announce a campaign (once: the link on its bucket decides which worker does); ``earlier`` near-
+        duplicates came before this batch, whose members :meth:`_record_members` counts."""
         campaign = "c" + hashlib.blake2b(f"{band_key:016x}:{int(now)}".encode(), digest_size=6).hexdigest()
         link_field = band_key.to_bytes(8, "big") + b"L"
         if not client.hsetnx(buckets_key, link_field, campaign):  # another worker announced this bucket first
@@ -736,7 +757,7 @@ class CampaignPolicy:
         pipe = client.pipeline(transaction=True)
         pipe.hset(ck["active"], campaign, json.dumps(data, sort_keys=True))
         pipe.hset(ck["last"], campaign, f"{now:.3f}")
-        pipe.hset(ck["size"], campaign, facts["members"] - 1)  # the trigger itself is added as the first member
+        pipe.hset(ck["size"], campaign, earlier)
         pipe.hset(ck["seed"], campaign, json.dumps(bucket_list))
         add_event(client, self.keys.events, "campaign_start", data, ts=now, maxlen=self.events_maxlen, pipeline=pipe)
         pipe.execute()
