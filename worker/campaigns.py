@@ -94,6 +94,7 @@ CAMPAIGN_TOKENIZER = {"version": 1, "bigrams": False, "char_ngrams": (0, 0), "ho
 
 DAY_S = 86_400
 # Author hits a bucket counts per slot: the share of new authors is measured on the first of them.
+_KNOWN_SAMPLE = 4
 _MAX_LEARNT_LINKS = 10_000  # linked buckets a worker remembers (a campaign links a few per template variant)
 SIGNALS = ("either", "authors", "lean", "both")
 
@@ -107,16 +108,17 @@ SIGNALS = ("either", "authors", "lean", "both")
 #
 # Band keys: most are seen once, and a first sighting only joins the slot's set (two SMISMEMBERs and one
 # SADD for the whole batch).  A key already in either slot's set (or earlier in the batch) is a *hit* on
-# its bucket.  A bucket is one field of the current slot's hash, named by its key, holding
-# "t p e m a w x h y": the window's count t (the previous slot's own count p carried in, plus this
+# its bucket (unless the worker knows the key linked and leaves it out).  A bucket is one field of the current slot's hash, named by its key, holding
+# "t p e m a w x h y c": the window's count t (the previous slot's own count p carried in, plus this
 # slot's), the baseline (e: the history's count, m: its busiest window), distinct authors a (each
 # recorded in a field <key><author key>) until there are min_authors, hits by new authors w and
-# spam-ward hits h (carried in like the count: x and y).  <key>L is the campaign the bucket is linked to
+# spam-ward hits h (carried in like the count: x and y), and c = 1 once a comment the worker knows as
+# a campaign member hit it.  <key>L is the campaign the bucket is linked to
 # (the worker writes it).  The batch's buckets are read in one HMGET, updated in Lua and written back in
 # one HSET.  A key with no bucket in this slot yet carries in the previous slot's own figures and reads
 # its baseline from the two history generations ("count busiest-window" per key); then the previous
 # slot joins the current generation: its own count always, its window as the busiest one unless the
-# bucket was linked to a campaign.  The reply names each bucket the batch hit once, as it stands after
+# bucket was linked to a campaign or hit by one's members.  The reply names each bucket the batch hit once, as it stands after
 # the batch: a linked one with its campaign, another one if its window count reaches min_size (link_size
 # if a row the worker knows as a member hit it) and it is bursty (far above both its history's average
 # and its busiest window) as {key, window count, authors, new-author hits, spam-ward hits, history count,
@@ -130,7 +132,8 @@ SIGNALS = ("either", "authors", "lean", "both")
 #       comment), 11 each row's comment (0-based), 12 each comment's site (1-based), 13 1-based places of
 #       band keys that occur earlier in the batch, 14 spam-ward rows, 15 member rows, 16 link_size,
 #       17 warmup_s, 18 window_s, 19 burst_ratio, 20 peak_ratio, 21 start of the previous history
-#       generation, 22... the batch's sites.
+#       generation, 22 places of band keys the worker knows linked, not to count, 23 "place hits" pairs:
+#       places that count for several (the ones left out), 24... the batch's sites.
 # Reply: {scheme start, {key, campaign, key, campaign, ...}, bucket, bucket, ...}.
 _STATE_SCRIPT = """
 local CHUNK = 7000  -- unpack() is bounded by the Lua stack (8000)
@@ -184,7 +187,7 @@ if #authors > 0 then
 end
 local newer_than = {}  -- per site: an author first seen at or after this is new
 local sites = {}
-for s = 22, #ARGV do sites[#sites + 1] = ARGV[s] end
+for s = 24, #ARGV do sites[#sites + 1] = ARGV[s] end
 if #sites > 0 then
   local since = redis.call('HMGET', KEYS[7], unpack(sites))
   for s = 1, #sites do
@@ -205,7 +208,9 @@ local prev = chunked('SMISMEMBER', KEYS[2], fields)
 chunked('SADD', KEYS[1], fields)
 redis.call('EXPIRE', KEYS[1], tonumber(ARGV[4]))
 local row_comment = numbers(ARGV[11])
-local repeated, lean, member = flags(ARGV[13]), flags(ARGV[14]), flags(ARGV[15])
+local repeated, lean, member, skip = flags(ARGV[13]), flags(ARGV[14]), flags(ARGV[15]), flags(ARGV[22])
+local weight = {}
+for p, w in string.gmatch(ARGV[23], '(%d+) (%d+)') do weight[tonumber(p)] = tonumber(w) end
 local link_size = tonumber(ARGV[16])
 local B, P, H, G = KEYS[3], KEYS[4], KEYS[9], KEYS[10]
 -- the bursty test's first half (the worker checks it again): far above the history's average and peak
@@ -215,14 +220,14 @@ local history_s = math.max(now - math.max(tonumber(since), tonumber(ARGV[21])) -
 -- the batch's hits and their distinct buckets
 local hits, order, state = {}, {}, {}
 for f = 1, #fields do
-  if cur[f] == 1 or prev[f] == 1 or repeated[f] then
+  if (cur[f] == 1 or prev[f] == 1 or repeated[f]) and not skip[f] then
     hits[#hits + 1] = f
     local k = fields[f]
     if not state[k] then state[k] = {}; order[#order + 1] = k end
   end
 end
 if #hits == 0 then return out end
-local PACKED = '^(%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+)$'
+local PACKED = '^(%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+)$'
 local function read(key, list)  -- each bucket's packed figures and link
   local names = {}
   for _, k in ipairs(list) do names[#names + 1] = k; names[#names + 1] = k .. 'L' end
@@ -241,6 +246,7 @@ for n, k in ipairs(order) do
     local f = {string.match(v, PACKED)}
     s.t, s.p, s.e, s.m, s.a = tonumber(f[1]), tonumber(f[2]), tonumber(f[3]), tonumber(f[4]), tonumber(f[5])
     s.w, s.x, s.h, s.y = tonumber(f[6]), tonumber(f[7]), tonumber(f[8]), tonumber(f[9])
+    s.c = f[10] == '1'
     s.L = got[2 * n]
   else
     opened[#opened + 1] = k
@@ -266,7 +272,8 @@ if #opened > 0 then  -- first hits in this slot: carry the previous slot in, rea
       s.prev_bucket = true
       -- the previous slot's own count joins the sum; its window joins the peak unless it was a campaign's
       fold[#fold + 1] = k
-      fold[#fold + 1] = (hs + s.t) .. ' ' .. (pv[2 * n] and hp or math.max(hp, window))
+      local campaign_window = pv[2 * n] or f[10] == '1'
+      fold[#fold + 1] = (hs + s.t) .. ' ' .. (campaign_window and hp or math.max(hp, window))
     end
     s.p, s.x, s.y = s.t, s.w, s.h
   end
@@ -303,7 +310,8 @@ for _, f in ipairs(hits) do
     if not s.prev_bucket and prev[f] == 1 then s.t, s.p = s.t + 1, s.p + 1 end  -- a first sighting last slot
     if cur[f] == 1 or repeated[f] then s.t = s.t + 1 end  -- a first sighting earlier in this slot
   end
-  s.t = s.t + 1
+  local n = weight[f] or 1  -- a hit may stand for others of its bucket left out
+  s.t = s.t + n
   if s.a < min_authors then
     local nm = k .. authors[i]
     if not recorded[nm] then
@@ -314,9 +322,9 @@ for _, f in ipairs(hits) do
     end
   end
   if fresh_of[i] == nil then fresh_of[i] = tonumber(first[i]) >= newer_than[site_of[i]] end
-  if fresh_of[i] then s.w = s.w + 1 end
-  if lean[r] then s.h = s.h + 1 end
-  if member[r] then s.member = true end
+  if fresh_of[i] then s.w = s.w + n end
+  if lean[r] then s.h = s.h + n end
+  if member[r] then s.member, s.c = true, true end
 end
 for _, k in ipairs(order) do
   local s = state[k]
@@ -328,7 +336,8 @@ for _, k in ipairs(order) do
     out[#out + 1] = {k, s.t, s.a, s.w, s.h, s.e, s.m}
   end
   writes[#writes + 1] = k
-  writes[#writes + 1] = string.format('%d %d %d %d %d %d %d %d %d', s.t, s.p, s.e, s.m, s.a, s.w, s.x, s.h, s.y)
+  writes[#writes + 1] = string.format('%d %d %d %d %d %d %d %d %d %d', s.t, s.p, s.e, s.m, s.a, s.w, s.x, s.h, s.y,
+                                      s.c and 1 or 0)
 end
 chunked('HSET', B, writes)
 redis.call('EXPIRE', B, tonumber(ARGV[4]))
@@ -511,6 +520,7 @@ class CampaignPolicy:
         # with such a key is a member even when the bucket is not linked in the current slot yet, and its
         # other buckets are linked from link_size comments on, so the campaign follows its variants.
         self._links: dict[int, tuple[str, float]] = {}
+        self._pending: dict[int, tuple[int, float]] = {}  # linked band key -> (hits left uncounted, last counted)
 
     def apply(self, client, comments: Sequence, scores: Sequence[float], actions: list[str]) -> list[str]:
         members = self.observe(client, comments, scores)
@@ -555,7 +565,7 @@ class CampaignPolicy:
         _, first_places = np.unique(keys.ravel(), return_index=True)
         repeated = np.ones(keys.size, dtype=bool)
         repeated[first_places] = False
-        known = self._known_members(keys, now)
+        known, skip, weights = self._known_members(keys, now)
         lean = self._lean_rows(eligible, sites, scores)
         site_list = list(dict.fromkeys(sites))
         site_index = {s: n for n, s in enumerate(site_list, 1)}
@@ -572,7 +582,8 @@ class CampaignPolicy:
                   " ".join(map(str, eligible.tolist())), " ".join(str(site_index[s]) for s in sites),
                   " ".join(map(str, np.flatnonzero(repeated) + 1)), " ".join(map(str, lean)),
                   " ".join(map(str, known)), self.link_size, self.warmup_s, self.window_s, self.burst_ratio,
-                  self.peak_ratio, self._history_start(now), *site_list],
+                  self.peak_ratio, self._history_start(now), " ".join(map(str, skip)),
+                  " ".join(f"{p} {w}" for p, w in weights.items()), *site_list],
             client=client)
         members = self._decide(client, comments, eligible, keys, known, reply, state_keys[2], now)
         if scores is not None:
@@ -700,21 +711,48 @@ class CampaignPolicy:
                 "authors": n_authors, "new_share": round(new_share, 3), "lean_share": round(lean_share, 3),
                 "expected": round(expected, 3), "by": [n for n, on in (("authors", by_authors), ("lean", by_lean)) if on]}
 
-    def _known_members(self, keys: np.ndarray, now: float) -> dict[int, str]:
-        """``{row: campaign}`` for rows of ``keys`` (comments x bands) with a band key this worker saw linked.
+    def _known_members(self, keys: np.ndarray, now: float) -> tuple[dict[int, str], list[int], dict[int, int]]:
+        """Rows of ``keys`` (comments x bands) with a band key this worker saw linked, as ``{row: campaign}``;
+        then which of those keys' hits the batch leaves uncounted (1-based places) and which count for
+        several (``{place: hits it stands for}``).
 
         A learnt link is trusted for one window after the bucket was last seen
         linked: a campaign whose buckets are no longer linked (no longer bursty
-        against their history) fades out of a worker's memory.
+        against their history) fades out of a worker's memory.  In a flood most
+        comments are such members: a worker counts a linked bucket's hits once
+        per KNOWN_SAMPLE (that hit standing for the others), and at least once
+        per quarter window, so the bucket's figures and link stay alive from
+        slot to slot at a fraction of the Redis work.
         """
         if not self._links or not keys.size:
-            return {}
+            return {}, [], {}
         self._links = {k: v for k, v in self._links.items() if v[1] > now}
         if not self._links:
-            return {}
-        learnt = np.fromiter(self._links, dtype=np.uint64, count=len(self._links))
-        hits = np.isin(keys, learnt)
-        return {r: self._links[int(keys[r][hits[r]][0])][0] for r in np.flatnonzero(hits.any(axis=1)).tolist()}
+            self._pending.clear()
+            return {}, [], {}
+        learnt = np.isin(keys, np.fromiter(self._links, dtype=np.uint64, count=len(self._links)))
+        rows = np.flatnonzero(learnt.any(axis=1))
+        known = {r: self._links[int(keys[r][learnt[r]][0])][0] for r in rows.tolist()}
+        places = np.flatnonzero(learnt.ravel())
+        values = keys.ravel()[places]
+        order = np.argsort(values, kind="stable")
+        uniq, starts, counts = np.unique(values[order], return_index=True, return_counts=True)
+        skip, weights = [], {}
+        stale_s = self.window_s / 4.0
+        for key, start, count in zip(uniq.tolist(), starts.tolist(), counts.tolist()):
+            pending, counted_at = self._pending.get(key, (0, -np.inf))
+            for place in (places[order[start:start + count]] + 1).tolist():
+                pending += 1
+                if pending >= _KNOWN_SAMPLE or now - counted_at >= stale_s:
+                    if pending > 1:
+                        weights[place] = pending
+                    pending, counted_at = 0, now
+                else:
+                    skip.append(place)
+            self._pending[key] = (pending, counted_at)
+        if len(self._pending) > 2 * len(self._links):
+            self._pending = {k: v for k, v in self._pending.items() if k in self._links}
+        return known, skip, weights
 
     def _learn(self, band_key: int, campaign: str, now: float) -> None:
         if len(self._links) >= _MAX_LEARNT_LINKS:
