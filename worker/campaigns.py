@@ -129,11 +129,11 @@ SIGNALS = ("either", "authors", "lean", "both")
 #       history (this generation), history (previous generation).
 # ARGV: 1 now, 2 min_size, 3 bands, 4 slot TTL, 5 author TTL, 6 history TTL, 7 new_author_s,
 #       8 min_authors, 9 band keys (8 bytes each, bands per row), 10 author keys (8 bytes, one per
-#       comment), 11 each row's comment (0-based), 12 each comment's site (1-based), 13 1-based places of
-#       band keys that occur earlier in the batch, 14 spam-ward rows, 15 member rows, 16 link_size,
-#       17 warmup_s, 18 window_s, 19 burst_ratio, 20 peak_ratio, 21 start of the previous history
-#       generation, 22 places of band keys the worker knows linked, not to count, 23 "place hits" pairs:
-#       places that count for several (the ones left out), 24... the batch's sites.
+#       comment), 11 each row's comment (0-based), 12 each comment's site (1-based), 13 a byte per place
+#       (1: the key occurs earlier in the batch, +2: a known link's hit left uncounted), 14 a byte per row
+#       (1: spam-ward, +2: a known member), 15 link_size, 16 warmup_s, 17 window_s, 18 burst_ratio,
+#       19 peak_ratio, 20 start of the previous history generation, 21 "place hits" pairs: places that
+#       count for several (the ones left out), 22... the batch's sites.
 # Reply: {scheme start, {key, campaign, key, campaign, ...}, bucket, bucket, ...}.
 _STATE_SCRIPT = """
 local CHUNK = 7000  -- unpack() is bounded by the Lua stack (8000)
@@ -153,11 +153,6 @@ end
 local function numbers(text)
   local out = {}
   for v in string.gmatch(text, '%d+') do out[#out + 1] = tonumber(v) end
-  return out
-end
-local function flags(text)
-  local out = {}
-  for v in string.gmatch(text, '%d+') do out[tonumber(v)] = true end
   return out
 end
 
@@ -187,13 +182,13 @@ if #authors > 0 then
 end
 local newer_than = {}  -- per site: an author first seen at or after this is new
 local sites = {}
-for s = 24, #ARGV do sites[#sites + 1] = ARGV[s] end
+for s = 22, #ARGV do sites[#sites + 1] = ARGV[s] end
 if #sites > 0 then
   local since = redis.call('HMGET', KEYS[7], unpack(sites))
   for s = 1, #sites do
     local t = tonumber(since[s])
     if not t then redis.call('HSETNX', KEYS[7], sites[s], now_s); t = now_s end
-    newer_than[s] = math.max(now - tonumber(ARGV[7]), t + tonumber(ARGV[17]))
+    newer_than[s] = math.max(now - tonumber(ARGV[7]), t + tonumber(ARGV[16]))
   end
 end
 local site_of = numbers(ARGV[12])
@@ -208,19 +203,24 @@ local prev = chunked('SMISMEMBER', KEYS[2], fields)
 chunked('SADD', KEYS[1], fields)
 redis.call('EXPIRE', KEYS[1], tonumber(ARGV[4]))
 local row_comment = numbers(ARGV[11])
-local repeated, lean, member, skip = flags(ARGV[13]), flags(ARGV[14]), flags(ARGV[15]), flags(ARGV[22])
+-- one byte per place: 1 the key occurs earlier in the batch, 2 the worker knows it linked and leaves it out;
+-- one byte per row: 1 the score leans spam-ward, 2 the worker knows the comment as a campaign member
+local place_flags, row_flags = ARGV[13], ARGV[14]
+local function repeated(f) return string.byte(place_flags, f) % 2 == 1 end
+local function lean(r) return string.byte(row_flags, r + 1) % 2 == 1 end
+local function member(r) return string.byte(row_flags, r + 1) >= 2 end
 local weight = {}
-for p, w in string.gmatch(ARGV[23], '(%d+) (%d+)') do weight[tonumber(p)] = tonumber(w) end
-local link_size = tonumber(ARGV[16])
+for p, w in string.gmatch(ARGV[21], '(%d+) (%d+)') do weight[tonumber(p)] = tonumber(w) end
+local link_size = tonumber(ARGV[15])
 local B, P, H, G = KEYS[3], KEYS[4], KEYS[9], KEYS[10]
 -- the bursty test's first half (the worker checks it again): far above the history's average and peak
-local window, burst_ratio, peak_ratio = tonumber(ARGV[18]), tonumber(ARGV[19]), tonumber(ARGV[20])
-local history_s = math.max(now - math.max(tonumber(since), tonumber(ARGV[21])) - window, window)
+local window, burst_ratio, peak_ratio = tonumber(ARGV[17]), tonumber(ARGV[18]), tonumber(ARGV[19])
+local history_s = math.max(now - math.max(tonumber(since), tonumber(ARGV[20])) - window, window)
 
 -- the batch's hits and their distinct buckets
 local hits, order, state = {}, {}, {}
 for f = 1, #fields do
-  if (cur[f] == 1 or prev[f] == 1 or repeated[f]) and not skip[f] then
+  if (cur[f] == 1 or prev[f] == 1 or repeated(f)) and string.byte(place_flags, f) < 2 then
     hits[#hits + 1] = f
     local k = fields[f]
     if not state[k] then state[k] = {}; order[#order + 1] = k end
@@ -308,7 +308,7 @@ for _, f in ipairs(hits) do
   if s.opened and not s.started then
     s.started = true
     if not s.prev_bucket and prev[f] == 1 then s.t, s.p = s.t + 1, s.p + 1 end  -- a first sighting last slot
-    if cur[f] == 1 or repeated[f] then s.t = s.t + 1 end  -- a first sighting earlier in this slot
+    if cur[f] == 1 or repeated(f) then s.t = s.t + 1 end  -- a first sighting earlier in this slot
   end
   local n = weight[f] or 1  -- a hit may stand for others of its bucket left out
   s.t = s.t + n
@@ -323,8 +323,8 @@ for _, f in ipairs(hits) do
   end
   if fresh_of[i] == nil then fresh_of[i] = tonumber(first[i]) >= newer_than[site_of[i]] end
   if fresh_of[i] then s.w = s.w + n end
-  if lean[r] then s.h = s.h + n end
-  if member[r] then s.member, s.c = true, true end
+  if lean(r) then s.h = s.h + n end
+  if member(r) then s.member, s.c = true, true end
 end
 for _, k in ipairs(order) do
   local s = state[k]
@@ -521,6 +521,7 @@ class CampaignPolicy:
         # other buckets are linked from link_size comments on, so the campaign follows its variants.
         self._links: dict[int, tuple[str, float]] = {}
         self._pending: dict[int, tuple[int, float]] = {}  # linked band key -> (hits left uncounted, last counted)
+        self._purge_at = -np.inf
 
     def apply(self, client, comments: Sequence, scores: Sequence[float], actions: list[str]) -> list[str]:
         members = self.observe(client, comments, scores)
@@ -563,10 +564,12 @@ class CampaignPolicy:
         eligible, keys = self.band_keys(texts)
         blob = keys.ravel().astype(">u8").tobytes()
         _, first_places = np.unique(keys.ravel(), return_index=True)
-        repeated = np.ones(keys.size, dtype=bool)
-        repeated[first_places] = False
+        place_flags = np.ones(keys.size, dtype=np.uint8)  # 1: the key occurs earlier in the batch
+        place_flags[first_places] = 0
         known, skip, weights = self._known_members(keys, now)
-        lean = self._lean_rows(eligible, sites, scores)
+        place_flags[skip] += 2  # 2: a hit this worker leaves uncounted
+        row_flags = self._lean_rows(eligible, sites, scores).astype(np.uint8)  # 1: leans spam-ward
+        row_flags[list(known)] += 2  # 2: a known member
         site_list = list(dict.fromkeys(sites))
         site_index = {s: n for n, s in enumerate(site_list, 1)}
         authors = b"".join(author_key(site, _get(c, "author"), _get(c, "id")) for site, c in zip(sites, comments))
@@ -580,9 +583,8 @@ class CampaignPolicy:
             args=[f"{now:.3f}", self.min_size, self.bands, slot_ttl, 2 * self._author_generation_s(),
                   2 * self.baseline_days * DAY_S + 3600, self.new_author_s, self.min_authors, blob, authors,
                   " ".join(map(str, eligible.tolist())), " ".join(str(site_index[s]) for s in sites),
-                  " ".join(map(str, np.flatnonzero(repeated) + 1)), " ".join(map(str, lean)),
-                  " ".join(map(str, known)), self.link_size, self.warmup_s, self.window_s, self.burst_ratio,
-                  self.peak_ratio, self._history_start(now), " ".join(map(str, skip)),
+                  place_flags.tobytes(), row_flags.tobytes(), self.link_size, self.warmup_s, self.window_s,
+                  self.burst_ratio, self.peak_ratio, self._history_start(now),
                   " ".join(f"{p} {w}" for p, w in weights.items()), *site_list],
             client=client)
         members = self._decide(client, comments, eligible, keys, known, reply, state_keys[2], now)
@@ -606,16 +608,15 @@ class CampaignPolicy:
             flat = [w for i in eligible.tolist() for w in flat[ends[i] - counts[i]:ends[i]]]
         return eligible, band_hashes(self.hasher.signatures_of_flat(flat, counts[eligible]), self.bands)
 
-    def _lean_rows(self, eligible: np.ndarray, sites: list[str], scores) -> list[int]:
-        """Rows whose score is above their site's spam-ward threshold."""
+    def _lean_rows(self, eligible: np.ndarray, sites: list[str], scores) -> np.ndarray:
+        """Which rows score above their site's spam-ward threshold (a bool per row)."""
+        out = np.zeros(eligible.size, dtype=bool)
         if scores is None or not eligible.size:
-            return []
+            return out
         limits = self.site_scores.thresholds(sites[i] for i in eligible.tolist())
-        out = []
         for row, i in enumerate(eligible.tolist()):
             limit = limits[sites[i]]
-            if limit is not None and float(scores[i]) > limit:
-                out.append(row)
+            out[row] = limit is not None and float(scores[i]) > limit
         return out
 
     def _history_start(self, now: float) -> int:
@@ -725,34 +726,39 @@ class CampaignPolicy:
         slot to slot at a fraction of the Redis work.
         """
         if not self._links or not keys.size:
-            return {}, [], {}
-        self._links = {k: v for k, v in self._links.items() if v[1] > now}
+            return {}, np.zeros(0, dtype=np.int64), {}
+        if now >= self._purge_at:  # forget expired links now and then, not every batch
+            self._links = {k: v for k, v in self._links.items() if v[1] > now}
+            self._purge_at = now + self.window_s / 4.0
         if not self._links:
             self._pending.clear()
-            return {}, [], {}
+            return {}, np.zeros(0, dtype=np.int64), {}
         learnt = np.isin(keys, np.fromiter(self._links, dtype=np.uint64, count=len(self._links)))
         rows = np.flatnonzero(learnt.any(axis=1))
-        known = {r: self._links[int(keys[r][learnt[r]][0])][0] for r in rows.tolist()}
+        first_learnt = keys[rows, learnt[rows].argmax(axis=1)].tolist()
+        known = {r: self._links[k][0] for r, k in zip(rows.tolist(), first_learnt)}
         places = np.flatnonzero(learnt.ravel())
-        values = keys.ravel()[places]
-        order = np.argsort(values, kind="stable")
-        uniq, starts, counts = np.unique(values[order], return_index=True, return_counts=True)
-        skip, weights = [], {}
-        stale_s = self.window_s / 4.0
-        for key, start, count in zip(uniq.tolist(), starts.tolist(), counts.tolist()):
-            pending, counted_at = self._pending.get(key, (0, -np.inf))
-            for place in (places[order[start:start + count]] + 1).tolist():
-                pending += 1
-                if pending >= _KNOWN_SAMPLE or now - counted_at >= stale_s:
-                    if pending > 1:
-                        weights[place] = pending
-                    pending, counted_at = 0, now
-                else:
-                    skip.append(place)
-            self._pending[key] = (pending, counted_at)
+        order = np.argsort(keys.ravel()[places], kind="stable")
+        places = places[order]  # grouped by key, in arrival order within a key
+        uniq, starts, counts = np.unique(keys.ravel()[places], return_index=True, return_counts=True)
+        state = [self._pending.get(k, (0, -np.inf)) for k in uniq.tolist()]
+        pending = np.array([p for p, _ in state], dtype=np.int64)
+        stale = np.array([now - t >= self.window_s / 4.0 for _, t in state], dtype=bool)
+        # a stale key counts its first hit at once (standing for what was pending); otherwise every
+        # KNOWN_SAMPLE-th hit counts, standing for the KNOWN_SAMPLE - 1 before it
+        offset = np.where(stale, _KNOWN_SAMPLE - 1, pending)
+        rank = np.arange(places.size) - np.repeat(starts, counts)
+        kept = (np.repeat(offset, counts) + rank + 1) % _KNOWN_SAMPLE == 0
+        weight = np.full(places.size, _KNOWN_SAMPLE)
+        weight[starts[stale]] = pending[stale] + 1
+        left = (offset + counts) % _KNOWN_SAMPLE
+        counted = np.add.reduceat(kept, starts) > 0 if starts.size else np.zeros(0, dtype=bool)
+        for key, p, c, (_, t) in zip(uniq.tolist(), left.tolist(), counted.tolist(), state):
+            self._pending[key] = (p, now if c else t)
         if len(self._pending) > 2 * len(self._links):
             self._pending = {k: v for k, v in self._pending.items() if k in self._links}
-        return known, skip, weights
+        weights = {p: w for p, w in zip((places[kept] + 1).tolist(), weight[kept].tolist()) if w > 1}
+        return known, places[~kept], weights
 
     def _learn(self, band_key: int, campaign: str, now: float) -> None:
         if len(self._links) >= _MAX_LEARNT_LINKS:
