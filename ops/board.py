@@ -36,6 +36,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ops.scenario import ScenarioComment
+
 YARD = "larkspur-yard.example"
 KITCHEN = "larkspur-kitchen.example"
 SITES = (YARD, KITCHEN)
@@ -44,27 +46,16 @@ _ALTERNATIVES = re.compile(r"\[([^\[\]]*)\]")
 
 
 @dataclass(frozen=True)
-class BoardComment:
-    """One invented comment with its truth.
+class BoardComment(ScenarioComment):
+    """One invented comment with its truth (see :class:`ops.scenario.ScenarioComment`).
 
     ``kind`` is the format (``dish``, ``puzzle``, ...), ``chatter``, ``spam``
     (background spam) or ``campaign``; ``campaign`` names the campaign (empty
     otherwise) and ``obfuscated`` says whether its text was disguised.
     """
 
-    id: str
-    text: str
-    site: str
-    author: str
-    ts: float
-    label: int
-    kind: str
     campaign: str = ""
     obfuscated: bool = False
-
-    def fields(self) -> dict[str, str]:
-        """The input-stream entry a site would XADD for this comment."""
-        return {"id": self.id, "text": self.text, "site": self.site, "author": self.author, "ts": f"{self.ts:.3f}"}
 
 
 # --- the co-op's words --------------------------------------------------------

@@ -484,8 +484,9 @@ def narrate(event: dict, result: DemoResult, seen: set) -> str:
         if key in seen:
             return ""
         seen.add(key)
-        return (f"ALARM campaign on {d.get('site')}: {d.get('members')} near-duplicates from {d.get('authors')} "
-                f"accounts within {d.get('window_s', 0) // 60} min{after}; members are held for review")
+        return (f"ALARM campaign on {d.get('site')}: {d.get('members')} near-duplicates from {d.get('authors')} or more "
+                f"accounts, {d.get('new_share', 0):.0%} of them new, within {d.get('window_s', 0) // 60} min{after}; "
+                "members are held for review")
     if kind == "wave_start":
         return (f"ALARM wave on {d.get('site')}: flagged rate {d.get('rate', 0):.0%} against a baseline of "
                 f"{d.get('baseline', 0):.0%}{after}")

@@ -184,7 +184,7 @@ def render(snap: Snapshot, *, title: str = "") -> str:
         for cid, c in sorted(snap.campaigns.items(), key=lambda kv: -kv[1].get("members", 0)):
             since = clock(c["started"]) if c.get("started") else "?"
             lines.append(f"CAMPAIGN  {clean(cid, 16)} on {clean(c.get('site', '') or '?', 20)}: "
-                         f"{c.get('members', 0)} members, {c.get('authors', '?')} authors at start, since {since}")
+                         f"{c.get('members', 0)} members, {c.get('authors', '?')}+ authors at start, since {since}")
     else:
         lines.append("campaigns none")
     if snap.events:
