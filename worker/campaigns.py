@@ -588,7 +588,7 @@ class CampaignPolicy:
                   " ".join(f"{p} {w}" for p, w in weights.items()), *site_list],
             client=client)
         members = self._decide(client, comments, eligible, keys, known, reply, state_keys[2], now)
-        if scores is not None:
+        if scores is not None and self.signals != "authors":
             plain = [i for i in range(len(comments)) if i not in members]
             self.site_scores.add([sites[i] for i in plain], [float(scores[i]) for i in plain])
         return members
@@ -611,7 +611,7 @@ class CampaignPolicy:
     def _lean_rows(self, eligible: np.ndarray, sites: list[str], scores) -> np.ndarray:
         """Which rows score above their site's spam-ward threshold (a bool per row)."""
         out = np.zeros(eligible.size, dtype=bool)
-        if scores is None or not eligible.size:
+        if scores is None or not eligible.size or self.signals == "authors":  # the lean is not asked for
             return out
         limits = self.site_scores.thresholds(sites[i] for i in eligible.tolist())
         for row, i in enumerate(eligible.tolist()):
