@@ -168,8 +168,13 @@ def test_no_text_or_author_is_stored(fake_redis):
 
 
 @pytest.mark.parametrize(("kwargs", "field"), [({"bands": 5}, "bands"), ({"min_size": 1}, "min_size"),
-                                               ({"window_s": 0}, "window_s"), ({"hold": "yes"}, "hold")],
-                         ids=["bands-not-dividing", "size-one", "no-window", "hold-string"])
+                                               ({"window_s": 0}, "window_s"), ({"hold": "yes"}, "hold"),
+                                               ({"signals": "sometimes"}, "signals"), ({"burst_ratio": 0.5}, "burst_ratio"),
+                                               ({"peak_ratio": True}, "peak_ratio"),
+                                               ({"new_author_share": 1.5}, "new_author_share"),
+                                               ({"baseline_days": 0}, "baseline_days"), ({"link_size": 1}, "link_size")],
+                         ids=["bands-not-dividing", "size-one", "no-window", "hold-string", "unknown-signal",
+                              "burst-below-one", "peak-bool", "share-above-one", "no-history", "link-size-one"])
 def test_params_are_validated(kwargs, field):
     with pytest.raises(ValueError, match=field):
         policy(Clock(), **kwargs)
@@ -448,7 +453,13 @@ def test_the_script_touches_only_the_keys_it_is_given(redis_server):
     assert len(in_script) > 10
     for line in in_script:
         command = line["command"].split()
-        if command[0].upper() in ("HMGET", "HSET", "HSETNX", "HINCRBY", "SMISMEMBER", "SADD", "EXPIRE", "SET", "GET"):
+        if command[0].upper() in ("HMGET", "HSET", "HSETNX", "HINCRBY", "HKEYS", "SMISMEMBER", "SADD", "EXPIRE", "SET",
+                                  "GET"):
             assert command[1] in script_keys, line["command"][:120]
     assert all(k.startswith("{site-a}:campaigns:") for k in script_keys)
     assert all(k.startswith(b"{site-a}:") for k in client.keys("*"))
+
+
+def test_scores_must_match_the_comments(fake_redis):
+    with pytest.raises(ValueError, match="2 scores for 1 comments"):
+        policy(Clock()).observe(fake_redis, comments([campaign_text(0)]), [0.1, 0.2])

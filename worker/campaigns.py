@@ -13,35 +13,38 @@ For each batch, :class:`CampaignPolicy`:
    a band key names a *bucket*, a family of comments that agree on that band;
 3. sends the whole batch to Redis in one script call, which records each
    author's first sighting, adds every band key to the current slot's set of
-   sightings, and counts the buckets seen twice;
-4. decides in the worker, from what the script returns, which comments are
-   campaign members.
+   sightings, and counts the buckets seen twice within the window;
+4. decides in the worker, from the buckets the script returns, which comments
+   are campaign members.
 
-A bucket starts a campaign when, within the window (two half-window slots),
+A bucket starts a campaign when, within the window (the current and the
+previous half-window slot),
 
 * it is **dense**: at least ``min_size`` comments from ``min_authors`` authors;
 * it is **bursty against its history**: its count is at least ``burst_ratio``
-  times what its baseline predicts for one window.  The baseline is the
-  bucket's count over the last ``baseline_days`` days (each slot's count is
-  folded into a per-day hash when the next slot first sees the band key;
-  slots whose bucket was linked to a campaign are left out, so a long
-  campaign never becomes its own history).  A phrasing family that members
-  post steadily every day has a baseline that predicts its rate;
+  times what its history's average rate predicts for one window, and
+  ``peak_ratio`` times the busiest window in its history.  Each slot's count
+  joins the history (two generations of ``baseline_days`` days) when the next
+  slot first sees the band key; a window that belonged to a campaign does not
+  raise the busiest window.  A phrasing family that members post every day,
+  even at one busy hour, has a history that predicts it;
 * and it has **a second signal**: its authors are new to the site (at least
-  ``new_author_share`` of its distinct authors were first seen on their site
-  less than ``new_author_s`` ago, or less than half the time the detector has
-  watched that site, whichever is shorter, so a freshly started detector does
-  not take every member for a newcomer), and/or its members' scores lean
-  spam-ward (at least ``lean_share`` of them above the site's
-  ``lean_quantile`` of recent scores, a baseline each worker keeps for
-  itself).  ``signals`` says which of the two is required.
+  ``new_author_share`` of its comments are by authors first seen on their site
+  less than ``new_author_s`` ago; in the first ``warmup_s`` after the detector
+  first sees a site nobody is new, as it is learning the regulars), and/or its
+  comments' scores lean spam-ward (at least ``lean_share`` of them above the
+  site's ``lean_quantile`` of recent scores, a baseline each worker keeps for
+  itself).  ``signals`` says which is required.
 
-Later comments in a bucket linked to an active campaign are its members.
-Another bucket of a member is linked too when it is dense and bursty itself,
-and a qualifying bucket that shares a band key with an active campaign's
-first member joins that campaign, so the campaign follows the template's
-variations and a burst is announced once.  With ``hold=True`` members that
-routing would publish are held for review.
+Comments of the batch in a bucket linked to an active campaign are its
+members.  A member's other buckets are linked too when they are bursty and
+carry the second signal themselves (from ``link_size`` comments), and a
+qualifying bucket that shares a band key with an active campaign's first
+member joins that campaign, so the campaign follows the template's variations
+and a burst is announced once.  With ``hold=True`` members that routing would
+publish are held for review.  A campaign that goes on at the same rate
+becomes part of its own history and stops being bursty after about a fifth of
+the history's length: the nightly retrain has learnt it by then.
 
 Redis keys (all named by :class:`worker.settings.Keys`, all passed to the
 script in KEYS; the band state is under a tag of the shingling scheme, so
@@ -49,13 +52,13 @@ workers that shingle differently never mix their buckets):
 
 * ``campaigns:{tag}:seen:{slot}``: set of the band keys seen in a slot
   (8 bytes each, hashes of MinHash bands, never text);
-* ``campaigns:{tag}:buckets:{slot}``: one hash per slot with, per band key
-  seen twice within the window, its count, the previous slot's figures, its
-  distinct authors (by hash), new authors, spam-ward members, baseline and
-  link, each in a field named by the band key and a letter;
-* ``campaigns:{tag}:history:{day}``: per-day counts per band key (the baseline);
+* ``campaigns:{tag}:buckets:{slot}``: one hash per slot; per band key seen
+  twice within the window a packed field of its figures, the campaign it is
+  linked to and the authors (by hash) counted in it;
+* ``campaigns:{tag}:history:{generation}``: per band key, its count and its
+  busiest window over ``baseline_days`` days;
 * ``campaigns:{tag}:since``: when the detector first ran with this scheme;
-* ``campaigns:authors:{generation}``: each author's (site, author hash) first
+* ``campaigns:authors:{generation}``: each (site, author) hash's first
   sighting; an author not seen for two generations counts as new again;
 * ``campaigns:sites``: when the detector first saw each site;
 * ``campaigns:active``, ``campaigns:size``, ``campaigns:last``,
@@ -93,8 +96,7 @@ CAMPAIGN_TOKENIZER = {"version": 1, "bigrams": False, "char_ngrams": (0, 0), "ho
                       "leet": True, "join_spaced": True, "squash_repeats": True}
 
 DAY_S = 86_400
-# Author hits a bucket counts per slot: the share of new authors is measured on the first of them.
-_KNOWN_SAMPLE = 4
+_KNOWN_SAMPLE = 4  # a flood's hits of a bucket a worker knows linked: one in this many is counted
 _MAX_LEARNT_LINKS = 10_000  # linked buckets a worker remembers (a campaign links a few per template variant)
 SIGNALS = ("either", "authors", "lean", "both")
 
@@ -126,15 +128,17 @@ SIGNALS = ("either", "authors", "lean", "both")
 #
 # KEYS: seen (this slot), seen (previous slot), buckets (this slot), buckets (previous slot),
 #       authors (this generation), authors (previous generation), sites, scheme start,
-#       history (this generation), history (previous generation).
+#       history (this generation), history (previous generation), active campaigns.
 # ARGV: 1 now, 2 min_size, 3 bands, 4 slot TTL, 5 author TTL, 6 history TTL, 7 new_author_s,
 #       8 min_authors, 9 band keys (8 bytes each, bands per row), 10 author keys (8 bytes, one per
 #       comment), 11 each row's comment (0-based), 12 each comment's site (1-based), 13 a byte per place
 #       (1: the key occurs earlier in the batch, +2: a known link's hit left uncounted), 14 a byte per row
 #       (1: spam-ward, +2: a known member), 15 link_size, 16 warmup_s, 17 window_s, 18 burst_ratio,
 #       19 peak_ratio, 20 start of the previous history generation, 21 "place hits" pairs: places that
-#       count for several (the ones left out), 22... the batch's sites.
-# Reply: {scheme start, {key, campaign, key, campaign, ...}, bucket, bucket, ...}.
+#       count for several (the ones left out), 22 "1" if the worker knows members in the batch, 23... the
+#       batch's sites.
+# Reply: {scheme start, active campaigns (when anything below or a known member needs them),
+#         {key, campaign, key, campaign, ...}, bucket, bucket, ...}.
 _STATE_SCRIPT = """
 local CHUNK = 7000  -- unpack() is bounded by the Lua stack (8000)
 local function chunked(cmd, key, list)
@@ -182,7 +186,7 @@ if #authors > 0 then
 end
 local newer_than = {}  -- per site: an author first seen at or after this is new
 local sites = {}
-for s = 22, #ARGV do sites[#sites + 1] = ARGV[s] end
+for s = 23, #ARGV do sites[#sites + 1] = ARGV[s] end
 if #sites > 0 then
   local since = redis.call('HMGET', KEYS[7], unpack(sites))
   for s = 1, #sites do
@@ -194,10 +198,14 @@ end
 local site_of = numbers(ARGV[12])
 redis.call('SET', KEYS[8], now_s, 'NX')
 local since = redis.call('GET', KEYS[8])
-local out = {since, {}}
+local out = {since, {}, {}}
+local function finish()  -- the active campaigns come along whenever the worker will need them
+  if #out > 3 or #out[3] > 0 or ARGV[22] == '1' then out[2] = redis.call('HKEYS', KEYS[11]) end
+  return out
+end
 
 local fields = cut(ARGV[9])
-if #fields == 0 then return out end
+if #fields == 0 then return finish() end
 local cur = chunked('SMISMEMBER', KEYS[1], fields)
 local prev = chunked('SMISMEMBER', KEYS[2], fields)
 chunked('SADD', KEYS[1], fields)
@@ -226,7 +234,7 @@ for f = 1, #fields do
     if not state[k] then state[k] = {}; order[#order + 1] = k end
   end
 end
-if #hits == 0 then return out end
+if #hits == 0 then return finish() end
 local PACKED = '^(%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+)$'
 local function read(key, list)  -- each bucket's packed figures and link
   local names = {}
@@ -329,8 +337,8 @@ end
 for _, k in ipairs(order) do
   local s = state[k]
   if s.L then
-    table.insert(out[2], k)
-    table.insert(out[2], s.L)
+    table.insert(out[3], k)
+    table.insert(out[3], s.L)
   elseif s.t >= (s.member and link_size or min_size) and s.t >= peak_ratio * s.m
       and s.t * history_s >= burst_ratio * s.e * window then
     out[#out + 1] = {k, s.t, s.a, s.w, s.h, s.e, s.m}
@@ -341,7 +349,7 @@ for _, k in ipairs(order) do
 end
 chunked('HSET', B, writes)
 redis.call('EXPIRE', B, tonumber(ARGV[4]))
-return out
+return finish()
 """
 
 
@@ -462,7 +470,7 @@ class CampaignPolicy:
         comments from ``min_authors`` distinct authors within ``window_s`` seconds.
     min_words : comments with fewer normalized words ("thanks!", "+1") are never members.
     hold : hold members that routing would publish.
-    baseline_days : days of history per band key.
+    baseline_days : days of a history generation; a band key's history covers one to two.
     burst_ratio, peak_ratio : a dense bucket is bursty when its window count
         is at least ``burst_ratio`` times what its history's average rate
         predicts for one window and ``peak_ratio`` times the busiest window of
@@ -471,8 +479,8 @@ class CampaignPolicy:
     warmup_s : authors first seen in a site's first ``warmup_s`` (since the
         detector first saw the site) are never new: it is learning the regulars.
     link_size : comments a bucket of a known member needs to be linked to its campaign.
-    new_author_share : share of a bucket's authors that must be new.
-    lean_share : share of a bucket's members whose score must lean spam-ward.
+    new_author_share : share of a bucket's comments that must be by new authors.
+    lean_share : share of a bucket's comments whose score must lean spam-ward.
     lean_quantile : a score leans spam-ward above this quantile of the site's recent scores.
     signals : the second signal required: ``"either"`` (new authors or a
         spam-ward lean), ``"authors"``, ``"lean"`` or ``"both"``.
@@ -482,9 +490,8 @@ class CampaignPolicy:
     def __init__(self, *, keys: Keys, hasher: MinHasher, bands: int = 16, min_size: int = 10, min_authors: int = 3,
                  window_s: int = 600, min_words: int = 6, hold: bool = True, baseline_days: int = 7,
                  burst_ratio: float = 5.0, peak_ratio: float = 2.0, new_author_s: int = 3 * DAY_S,
-                 warmup_s: int = DAY_S,
-                 new_author_share: float = 0.5, link_size: int = 3,
-                 lean_share: float = 0.5, lean_quantile: float = 0.9, signals: str = "authors",
+                 warmup_s: int = DAY_S, new_author_share: float = 0.5, link_size: int = 3, lean_share: float = 0.5,
+                 lean_quantile: float = 0.9, signals: str = "authors",
                  clock: Callable[[], float] = time.time, events_maxlen: int = EVENTS_MAXLEN):
         given = locals()
         for name, ok in _PARAMS.items():
@@ -540,7 +547,8 @@ class CampaignPolicy:
         return [k(self.tag, "seen", str(slot)), k(self.tag, "seen", str(slot - 1)),
                 k(self.tag, "buckets", str(slot)), k(self.tag, "buckets", str(slot - 1)),
                 k("authors", str(generation)), k("authors", str(generation - 1)), k("sites"), k(self.tag, "since"),
-                k(self.tag, "history", str(history)), k(self.tag, "history", str(history - 1))]
+                k(self.tag, "history", str(history)), k(self.tag, "history", str(history - 1)),
+                campaign_keys(self.keys)["active"]]
 
     def _author_generation_s(self) -> int:
         # an author is remembered for one to two generations after their last comment
@@ -585,7 +593,7 @@ class CampaignPolicy:
                   " ".join(map(str, eligible.tolist())), " ".join(str(site_index[s]) for s in sites),
                   place_flags.tobytes(), row_flags.tobytes(), self.link_size, self.warmup_s, self.window_s,
                   self.burst_ratio, self.peak_ratio, self._history_start(now),
-                  " ".join(f"{p} {w}" for p, w in weights.items()), *site_list],
+                  " ".join(f"{p} {w}" for p, w in weights.items()), "1" if known else "0", *site_list],
             client=client)
         members = self._decide(client, comments, eligible, keys, known, reply, state_keys[2], now)
         if scores is not None and self.signals != "authors":
@@ -627,13 +635,12 @@ class CampaignPolicy:
     def _decide(self, client, comments, eligible, keys, known: dict[int, str], reply, buckets_key: str,
                 now: float) -> dict[int, str]:
         since = float(reply[0]) if reply and reply[0] is not None else now
-        linked_keys = reply[1] if len(reply) > 1 else []
-        buckets = reply[2:]
+        linked_keys = reply[2] if len(reply) > 2 else []
+        buckets = reply[3:]
         if not buckets and not known and not linked_keys:  # the usual batch: no bucket is dense and bursty
             return {}
         history_s = max(now - max(since, self._history_start(now)) - self.window_s, float(self.window_s))
-        ck = campaign_keys(self.keys)
-        active = {_text(k) for k in client.hkeys(ck["active"])}
+        active = {_text(k) for k in reply[1]}
         members: dict[int, str] = {}
         for row, campaign in known.items():
             if campaign in active:
