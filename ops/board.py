@@ -74,8 +74,8 @@ _VERDICTS = ("Went down well.", "Seconds all round.", "A bit too salty, sorry al
              "Needed more time in the oven.", "Would make again.", "Plenty left in the fridge.", "Easy and cheap.")
 _REACTIONS = ("Tough one today.", "Lucky guess on the last line.", "Easy start to the week.", "Nearly lost it.",
               "Who picks these words?", "Best score this month.", "Coffee first next time.", "Done before the kettle.")
-_BEDS = ("the herb beds", "beds one to four", "the greenhouse", "the fruit cage", "the tomato row", "the pots by the gate",
-         "the bean trench", "the seedling shelf")
+_BEDS = ("the herb beds", "beds one to four", "the greenhouse", "the fruit cage", "the tomato row",
+         "the pots by the gate", "the bean trench", "the seedling shelf")
 _TOOLS = ("long ladder", "hedge trimmer", "pressure washer", "wallpaper steamer", "drill", "pasta machine",
           "carpet cleaner", "sewing machine", "tile cutter", "camping stove")
 _CONDITIONS = ("all fine", "blade a bit dull", "cleaned and dry", "battery low", "one wheel squeaks", "as found")
@@ -125,7 +125,8 @@ _WEEKLY = ("market", YARD, 60, 9.0, 10.0,
            "back at the next meeting.")
 
 _CHATTER = (
-    "[Does anyone know|Has anyone heard] whether the {place} [is getting|will get] new lights? It is so dark after {hour}.",
+    "[Does anyone know|Has anyone heard] whether the {place} [is getting|will get] new lights? "
+    "It is so dark after {hour}.",
     "Thanks to whoever [fixed|mended] the door by the {place}, it had been [sticking|banging] for weeks.",
     "[Is it just me or|Has anyone noticed] the lift in block {block} [is slow again|keeps stopping at floor {n}]?",
     "The {event} on {day} [sounds great|should be fun], {name}, count me in if there is room.",

@@ -5,9 +5,11 @@ import fakeredis
 import numpy as np
 import pytest
 
+from kit import Clock
 from model.minhash import MinHasher
 from worker.campaigns import CampaignPolicy, end_idle_campaigns, read_campaigns
 from worker.events import parse_event
+from worker.routing import Decision
 from worker.settings import Keys
 from worker.validation import Comment
 
@@ -15,14 +17,6 @@ KEYS = Keys()
 NAMES = ["ana", "bo", "cyd", "dee", "eli", "fay", "gus", "hal", "ivy", "jo", "kai", "lu"]
 FILLER = ("the council meeting ran long tonight and the new bridge plan was tabled again after a "
           "short debate about parking near the old market hall").split()
-
-
-class Clock:
-    def __init__(self, t=1_800_000_000.0):
-        self.t = t
-
-    def __call__(self):
-        return self.t
 
 
 def campaign_text(i):
@@ -33,6 +27,11 @@ def campaign_text(i):
 
 def ordinary_text(rng):
     return " ".join(rng.choice(FILLER, size=18))
+
+
+def policy_actions(p, client, batch, scores, actions):
+    """What policy ``p`` does to routing's ``actions`` (decisions in and out, as the worker calls it)."""
+    return [d.action for d in p.apply(client, batch, scores, [Decision(a) for a in actions])]
 
 
 def policy(clock, **kwargs):
@@ -70,7 +69,7 @@ def test_two_workers_find_one_campaign_neither_sees_alone(shared_redis):
             i = 2 * round_ + (name == "B")
             batch = comments([campaign_text(i), ordinary_text(rng)], start=10 * i)
             clock.t += 5
-            held_by[(name, i)] = worker.apply(shared_redis, batch, [0.1, 0.1], ["publish", "publish"])
+            held_by[(name, i)] = policy_actions(worker, shared_redis, batch, [0.1, 0.1], ["publish", "publish"])
     starts = [e for e in events(shared_redis) if e.type == "campaign_start"]
     assert len(starts) == 1, starts
     assert starts[0].data["members"] >= 10 and starts[0].data["authors"] >= 3
@@ -89,7 +88,7 @@ def test_the_same_comments_on_separate_redis_servers_make_no_campaign():
     a, b = policy(clock), policy(clock)
     for i in range(16):
         client, worker = (ra, a) if i % 2 == 0 else (rb, b)
-        worker.apply(client, comments([campaign_text(i)], start=i), [0.1], ["publish"])
+        policy_actions(worker, client, comments([campaign_text(i)], start=i), [0.1], ["publish"])
     assert not [e for e in events(ra) + events(rb) if e.type == "campaign_start"]
 
 
@@ -97,7 +96,7 @@ def test_one_author_posting_many_copies_is_not_a_campaign(fake_redis):
     clock = Clock()
     p = policy(clock)
     batch = comments([campaign_text(i) for i in range(20)], authors=["user1", "user2"] * 10)
-    assert p.apply(fake_redis, batch, [0.1] * 20, ["publish"] * 20) == ["publish"] * 20
+    assert policy_actions(p, fake_redis, batch, [0.1] * 20, ["publish"] * 20) == ["publish"] * 20
     assert read_campaigns(fake_redis, KEYS) == {}
 
 
@@ -106,7 +105,7 @@ def test_near_duplicates_spread_beyond_the_window_are_not_a_campaign(fake_redis)
     p = policy(clock, window_s=60)
     for i in range(20):
         clock.t += 30  # two per window at most
-        p.apply(fake_redis, comments([campaign_text(i)], start=i), [0.1], ["publish"])
+        policy_actions(p, fake_redis, comments([campaign_text(i)], start=i), [0.1], ["publish"])
     assert read_campaigns(fake_redis, KEYS) == {}
 
 
@@ -116,10 +115,10 @@ def test_hold_keeps_rejects_and_can_be_turned_off(fake_redis):
     clock = Clock()
     texts = [campaign_text(i) for i in range(14)]
     actions = ["publish"] * 12 + ["reject", "hold"]
-    out = policy(clock).apply(fake_redis, comments(texts), [0.1] * 14, list(actions))
+    out = policy_actions(policy(clock), fake_redis, comments(texts), [0.1] * 14, list(actions))
     assert out[:12] == ["hold"] * 12 and out[-2:] == ["reject", "hold"]
     quiet = fakeredis.FakeRedis(server=fakeredis.FakeServer())
-    assert policy(clock, hold=False).apply(quiet, comments(texts), [0.1] * 14, list(actions)) == actions
+    assert policy_actions(policy(clock, hold=False), quiet, comments(texts), [0.1] * 14, list(actions)) == actions
     assert len(read_campaigns(quiet, KEYS)) == 1  # still detected and announced
 
 
@@ -127,7 +126,7 @@ def test_short_comments_are_never_members(fake_redis):
     clock = Clock()
     batch = comments(["great point thanks"] * 30)
     p = policy(clock)
-    assert p.apply(fake_redis, batch, [0.1] * 30, ["publish"] * 30) == ["publish"] * 30
+    assert policy_actions(p, fake_redis, batch, [0.1] * 30, ["publish"] * 30) == ["publish"] * 30
     # no band state; their authors are recorded (a regular who only ever says thanks is still a regular)
     assert not fake_redis.keys(f"seawall:campaigns:{p.tag}:seen:*")
     assert not fake_redis.keys(f"seawall:campaigns:{p.tag}:buckets:*")
@@ -136,7 +135,8 @@ def test_short_comments_are_never_members(fake_redis):
 
 def test_idle_campaigns_end_once(fake_redis):
     clock = Clock()
-    policy(clock).apply(fake_redis, comments([campaign_text(i) for i in range(12)]), [0.1] * 12, ["publish"] * 12)
+    policy_actions(policy(clock), fake_redis, comments([campaign_text(i) for i in range(12)]), [0.1] * 12,
+                   ["publish"] * 12)
     (cid,) = read_campaigns(fake_redis, KEYS)
     assert end_idle_campaigns(fake_redis, KEYS, now=clock.t + 100, window_s=600) == []
     ended = end_idle_campaigns(fake_redis, KEYS, now=clock.t + 601, window_s=600)
@@ -150,8 +150,8 @@ def test_no_text_or_author_is_stored(fake_redis):
     clock = Clock()
     marker = "zqxmarkerword"
     texts = [campaign_text(i) + f" {marker}" for i in range(12)]
-    policy(clock).apply(fake_redis, comments(texts, authors=[f"{marker}{i}" for i in range(12)]), [0.1] * 12,
-                        ["publish"] * 12)
+    policy_actions(policy(clock), fake_redis, comments(texts, authors=[f"{marker}{i}" for i in range(12)]),
+                   [0.1] * 12, ["publish"] * 12)
     dump = []
     for key in fake_redis.keys("*"):
         dump.append(key)
@@ -169,10 +169,12 @@ def test_no_text_or_author_is_stored(fake_redis):
 
 @pytest.mark.parametrize(("kwargs", "field"), [({"bands": 5}, "bands"), ({"min_size": 1}, "min_size"),
                                                ({"window_s": 0}, "window_s"), ({"hold": "yes"}, "hold"),
-                                               ({"signals": "sometimes"}, "signals"), ({"burst_ratio": 0.5}, "burst_ratio"),
+                                               ({"signals": "sometimes"}, "signals"),
+                                               ({"burst_ratio": 0.5}, "burst_ratio"),
                                                ({"peak_ratio": True}, "peak_ratio"),
                                                ({"new_author_share": 1.5}, "new_author_share"),
-                                               ({"baseline_days": 0}, "baseline_days"), ({"link_size": 1}, "link_size")],
+                                               ({"baseline_days": 0}, "baseline_days"),
+                                               ({"link_size": 1}, "link_size")],
                          ids=["bands-not-dividing", "size-one", "no-window", "hold-string", "unknown-signal",
                               "burst-below-one", "peak-bool", "share-above-one", "no-history", "link-size-one"])
 def test_params_are_validated(kwargs, field):
@@ -187,7 +189,7 @@ def test_a_burst_of_variants_is_one_campaign(fake_redis):
     scenario = Scenario()
     wave = [c for c in scenario.stream() if c.kind == "wave"][:120]
     clock = Clock(wave[-1].ts)
-    out = policy(clock).apply(fake_redis, wave, [0.1] * len(wave), ["publish"] * len(wave))
+    out = policy_actions(policy(clock), fake_redis, wave, [0.1] * len(wave), ["publish"] * len(wave))
     starts = [e for e in events(fake_redis) if e.type == "campaign_start"]
     assert len(starts) == 1, [e.data for e in starts]
     assert out.count("hold") >= 100
@@ -199,7 +201,7 @@ def test_comments_with_no_near_duplicate_cost_no_bucket_of_their_own(shared_redi
     vocab = [f"word{i}" for i in range(3000)]
     texts = [" ".join(rng.choice(vocab, size=30)) for _ in range(200)]
     p = policy(Clock())
-    p.apply(shared_redis, comments(texts), [0.1] * 200, ["publish"] * 200)
+    policy_actions(p, shared_redis, comments(texts), [0.1] * 200, ["publish"] * 200)
     seen, _prev, buckets, *_ = p.state_keys(p.clock())
     band_state = sorted(k.decode() for k in shared_redis.keys(f"seawall:campaigns:{p.tag}:*"))
     assert band_state == sorted([seen, f"seawall:campaigns:{p.tag}:since"]), band_state
@@ -219,7 +221,7 @@ def test_near_duplicates_either_side_of_a_slot_boundary_all_count(fake_redis):
     p = policy(clock)
     out = []
     for i in range(10):
-        out += p.apply(fake_redis, comments([campaign_text(i)], start=i), [0.1], ["publish"])
+        out += policy_actions(p, fake_redis, comments([campaign_text(i)], start=i), [0.1], ["publish"])
         clock.t += 40
     assert out == ["publish"] * 9 + ["hold"]
     assert len(read_campaigns(fake_redis, KEYS)) == 1
@@ -230,11 +232,12 @@ def test_a_worker_keeps_the_members_of_a_campaign_it_knows_across_slots():
     from their first sighting in a new slot, before the bucket there holds enough comments to link."""
     clock = Clock()
     p = policy(clock)
-    p.apply(fake := fakeredis.FakeRedis(server=fakeredis.FakeServer()), comments([campaign_text(i) for i in range(14)]),
-            [0.1] * 14, ["publish"] * 14)
+    fake = fakeredis.FakeRedis(server=fakeredis.FakeServer())
+    policy_actions(p, fake, comments([campaign_text(i) for i in range(14)]), [0.1] * 14, ["publish"] * 14)
     (cid,) = read_campaigns(fake, KEYS)
     clock.t += 301  # the next slot (300 s): no bucket of it is linked yet
-    out = p.apply(fake, comments([campaign_text(i) for i in range(14, 17)], start=100), [0.1] * 3, ["publish"] * 3)
+    out = policy_actions(p, fake, comments([campaign_text(i) for i in range(14, 17)], start=100), [0.1] * 3,
+                         ["publish"] * 3)
     assert out == ["hold"] * 3
     assert read_campaigns(fake, KEYS)[cid]["members"] == 14 + 3  # the ten that made it, four more, three here
     # and those members linked their buckets of this slot: a worker that has learnt nothing finds it there
@@ -280,7 +283,7 @@ def test_a_disguised_campaign_is_caught_as_soon_as_its_plain_twin(shared_redis):
         for i in range(40):
             clock.t += 20
             text = campaign_text(i) if kind == "plain" else obfuscate(campaign_text(i), random.Random(i))
-            held += p.apply(client, comments([text], start=i, authors=[f"fresh{i}"]), [0.1], ["publish"])
+            held += policy_actions(p, client, comments([text], start=i, authors=[f"fresh{i}"]), [0.1], ["publish"])
         outcomes[kind] = held
     first = {k: v.index("hold") for k, v in outcomes.items()}
     assert first["plain"] <= 12 and first["disguised"] <= first["plain"] + 3, first
@@ -299,7 +302,7 @@ def _post(p, client, clock, texts, *, authors, start, every_s):
     out = []
     for n, text in enumerate(texts):
         clock.t += every_s
-        out += p.apply(client, comments([text], start=start + n, authors=[authors[n]]), [0.1], ["publish"])
+        out += policy_actions(p, client, comments([text], start=start + n, authors=[authors[n]]), [0.1], ["publish"])
     return out
 
 
@@ -315,7 +318,7 @@ def test_a_phrasing_posted_steadily_is_not_a_campaign_even_from_new_accounts(his
     clock = Clock()
     p = policy(clock, window_s=300, baseline_days=1, warmup_s=1080 * 20)
     anonymous = [""] * 2000
-    p.apply(fake_redis, comments(["the site opens with an ordinary comment about the garden party"]), [0.1],
+    policy_actions(p, fake_redis, comments(["the site opens with an ordinary comment about the garden party"]), [0.1],
             ["publish"])
     if history:
         _post(p, fake_redis, clock, [_steady_format(i) for i in range(1080)], authors=anonymous, start=0, every_s=20)
@@ -341,14 +344,14 @@ def test_a_long_campaign_is_caught_throughout_and_then_handed_over_to_the_model(
     """
     clock = Clock()
     p = policy(clock, window_s=300, baseline_days=1)
-    p.apply(fake_redis, comments(["the site opens with an ordinary comment about the garden party"]), [0.1],
+    policy_actions(p, fake_redis, comments(["the site opens with an ordinary comment about the garden party"]), [0.1],
             ["publish"])
     clock.t += 86_400  # the site has been watched for a day
     out = []
     for n in range(12 * 36):  # twelve hours, ten comments every 100 s
         clock.t += 100
         batch = comments([campaign_text(10 * n + i) for i in range(10)], start=10 * n)
-        out += p.apply(fake_redis, batch, [0.1] * 10, ["publish"] * 10)
+        out += policy_actions(p, fake_redis, batch, [0.1] * 10, ["publish"] * 10)
     hours = [out[h * 360:(h + 1) * 360].count("hold") / 360 for h in range(12)]
     assert min(hours[:4]) >= 0.9 and hours[-1] <= 0.1, hours
 
@@ -407,14 +410,15 @@ def test_the_score_lean_signal_against_the_sites_baseline(lean, fake_redis):
     regulars = [f"regular{i}" for i in range(40)]
     for n in range(300):  # the site's usual scores: 0.01 to 0.2
         clock.t += 10
-        p.apply(fake_redis, comments([f"ordinary comment number {n} about the courtyard and {rng.integers(1000)}"],
-                                     start=n, authors=[regulars[n % 40]]), [float(rng.uniform(0.01, 0.2))], ["publish"])
+        text = f"ordinary comment number {n} about the courtyard and {rng.integers(1000)}"
+        policy_actions(p, fake_redis, comments([text], start=n, authors=[regulars[n % 40]]),
+                       [float(rng.uniform(0.01, 0.2))], ["publish"])
     out = []
     for i in range(30):
         clock.t += 5
         score = 0.6 if lean else float(rng.uniform(0.01, 0.2))
-        out += p.apply(fake_redis, comments([campaign_text(i)], start=1000 + i, authors=[regulars[i]]), [score],
-                       ["publish"])
+        out += policy_actions(p, fake_redis, comments([campaign_text(i)], start=1000 + i, authors=[regulars[i]]),
+                              [score], ["publish"])
     assert (out.count("hold") >= 15) == lean and (len(read_campaigns(fake_redis, KEYS)) == 1) == lean
 
 
@@ -443,9 +447,9 @@ def test_the_script_touches_only_the_keys_it_is_given(redis_server):
     thread.start()
     ready.wait(5)
     texts = [campaign_text(i) for i in range(30)]
-    p.apply(client, comments(texts), [0.1] * 30, ["publish"] * 30)
+    policy_actions(p, client, comments(texts), [0.1] * 30, ["publish"] * 30)
     clock.t += 400  # a new slot: buckets carried over, history folded
-    p.apply(client, comments(texts, start=100), [0.1] * 30, ["publish"] * 30)
+    policy_actions(p, client, comments(texts, start=100), [0.1] * 30, ["publish"] * 30)
     script_keys = set(p.state_keys(clock.t)) | set(p.state_keys(clock.t - 400))
     client.get("stop-watching")
     thread.join(10)

@@ -84,6 +84,7 @@ import numpy as np
 from model.minhash import MinHasher, band_hashes
 from model.tokens import Tokenizer
 from worker.events import EVENTS_MAXLEN, add_event
+from worker.routing import CAMPAIGN_RULE, Decision
 from worker.settings import Keys
 
 log = logging.getLogger("seawall.worker.campaigns")
@@ -108,23 +109,22 @@ SIGNALS = ("either", "authors", "lean", "both")
 # author is new when first seen less than new_author_s ago and after the site's warm-up (the first
 # warmup_s after the detector first saw the site, while everyone it sees is a first sighting).
 #
-# Band keys: most are seen once, and a first sighting only joins the slot's set (two SMISMEMBERs and one
-# SADD for the whole batch).  A key already in either slot's set (or earlier in the batch) is a *hit* on
-# its bucket (unless the worker knows the key linked and leaves it out).  A bucket is one field of the current slot's hash, named by its key, holding
-# "t p e m a w x h y c": the window's count t (the previous slot's own count p carried in, plus this
-# slot's), the baseline (e: the history's count, m: its busiest window), distinct authors a (each
-# recorded in a field <key><author key>) until there are min_authors, hits by new authors w and
-# spam-ward hits h (carried in like the count: x and y), and c = 1 once a comment the worker knows as
-# a campaign member hit it.  <key>L is the campaign the bucket is linked to
-# (the worker writes it).  The batch's buckets are read in one HMGET, updated in Lua and written back in
-# one HSET.  A key with no bucket in this slot yet carries in the previous slot's own figures and reads
-# its baseline from the two history generations ("count busiest-window" per key); then the previous
-# slot joins the current generation: its own count always, its window as the busiest one unless the
-# bucket was linked to a campaign or hit by one's members.  The reply names each bucket the batch hit once, as it stands after
-# the batch: a linked one with its campaign, another one if its window count reaches min_size (link_size
-# if a row the worker knows as a member hit it) and it is bursty (far above both its history's average
-# and its busiest window) as {key, window count, authors, new-author hits, spam-ward hits, history count,
-# busiest window}; the worker decides the rest.
+# Band keys: most are seen once, and a first sighting only joins the slot's set (two SMISMEMBERs and one SADD
+# for the whole batch).  A key already in either slot's set (or earlier in the batch) is a *hit* on its bucket
+# (unless the worker knows the key linked and leaves it out).  A bucket is one field of the current slot's hash,
+# named by its key, holding "t p e m a w x h y c": the window's count t (the previous slot's own count p carried
+# in, plus this slot's), the baseline (e: the history's count, m: its busiest window), distinct authors a (each
+# recorded in a field <key><author key>) until there are min_authors, hits by new authors w and spam-ward hits h
+# (carried in like the count: x and y), and c = 1 once a comment the worker knows as a campaign member hit it.
+# <key>L is the campaign the bucket is linked to (the worker writes it).  The batch's buckets are read in one
+# HMGET, updated in Lua and written back in one HSET.  A key with no bucket in this slot yet carries in the
+# previous slot's own figures and reads its baseline from the two history generations ("count busiest-window"
+# per key); then the previous slot joins the current generation: its own count always, its window as the busiest
+# one unless the bucket was linked to a campaign or hit by one's members.  The reply names each bucket the batch
+# hit once, as it stands after the batch: a linked one with its campaign, another one if its window count
+# reaches min_size (link_size if a row the worker knows as a member hit it) and it is bursty (far above both its
+# history's average and its busiest window) as {key, window count, authors, new-author hits, spam-ward hits,
+# history count, busiest window}; the worker decides the rest.
 #
 # KEYS: seen (this slot), seen (previous slot), buckets (this slot), buckets (previous slot),
 #       authors (this generation), authors (previous generation), sites, scheme start,
@@ -530,11 +530,19 @@ class CampaignPolicy:
         self._pending: dict[int, tuple[int, float]] = {}  # linked band key -> (hits left uncounted, last counted)
         self._purge_at = -np.inf
 
-    def apply(self, client, comments: Sequence, scores: Sequence[float], actions: list[str]) -> list[str]:
+    def apply(self, client, comments: Sequence, scores: Sequence[float], decisions: list[Decision]) -> list[Decision]:
+        """Members the model would publish are held (rule ``campaign``); every member's decision names its campaign."""
         members = self.observe(client, comments, scores)
-        if not self.hold:
-            return list(actions)
-        return ["hold" if i in members and a == "publish" else a for i, a in enumerate(actions)]
+        if not members:
+            return list(decisions)
+        out = list(decisions)
+        for i, campaign in members.items():
+            d = out[i]
+            if self.hold and d.action == "publish":
+                out[i] = Decision("hold", CAMPAIGN_RULE, campaign)
+            else:
+                out[i] = Decision(d.action, d.rule, campaign)
+        return out
 
     # -- keys ------------------------------------------------------------------------------
 
@@ -717,7 +725,8 @@ class CampaignPolicy:
                 "bursty": total >= self.burst_ratio * expected and total >= self.peak_ratio * peak,
                 "signal": signal, "members": total, "peak": peak,
                 "authors": n_authors, "new_share": round(new_share, 3), "lean_share": round(lean_share, 3),
-                "expected": round(expected, 3), "by": [n for n, on in (("authors", by_authors), ("lean", by_lean)) if on]}
+                "expected": round(expected, 3),
+                "by": [n for n, on in (("authors", by_authors), ("lean", by_lean)) if on]}
 
     def _known_members(self, keys: np.ndarray, now: float) -> tuple[dict[int, str], list[int], dict[int, int]]:
         """Rows of ``keys`` (comments x bands) with a band key this worker saw linked, as ``{row: campaign}``;
