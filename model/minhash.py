@@ -111,14 +111,42 @@ class MinHasher:
     def signatures_of_words(self, word_lists: list[list[str]]) -> np.ndarray:
         """:meth:`signatures` of texts already split into words."""
         word_lists = [w[: self.max_words] for w in word_lists]
-        n_texts, n = len(word_lists), self.shingle
+        lengths = np.fromiter((len(w) for w in word_lists), dtype=np.int64, count=len(word_lists))
+        wh = np.fromiter(map(self._word_crc.__getitem__, chain.from_iterable(word_lists)), dtype=np.uint64,
+                         count=int(lengths.sum()))
+        return self._signatures_of_hashes(wh, lengths)
+
+    def signatures_of_flat(self, words: list[str], counts) -> np.ndarray:
+        """:meth:`signatures` of texts given as one flat word list and each text's word count.
+
+        ``words`` holds the first text's ``counts[0]`` words, then the
+        second's, and so on (the form :meth:`model.tokens.Tokenizer.words_many`
+        returns); equal to :meth:`signatures_of_words` on the same texts.
+
+        Examples
+        --------
+        >>> mh = MinHasher(num_perm=8, shingle=2)
+        >>> a = mh.signatures_of_flat(["free", "prize", "now", "hello", "there"], [3, 2])
+        >>> bool((a == mh.signatures_of_words([["free", "prize", "now"], ["hello", "there"]])).all())
+        True
+        """
+        counts = np.asarray(counts, dtype=np.int64)
+        if counts.ndim != 1 or (counts < 0).any() or int(counts.sum()) != len(words):
+            raise ValueError(f"signatures_of_flat: counts must be >= 0 and add up to {len(words)} words")
+        wh = np.fromiter(map(self._word_crc.__getitem__, words), dtype=np.uint64, count=len(words))
+        if counts.size and int(counts.max()) > self.max_words:  # keep each text's first max_words words
+            starts = np.repeat(np.cumsum(counts) - counts, counts)
+            wh = wh[np.arange(len(words)) - starts < self.max_words]
+            counts = np.minimum(counts, self.max_words)
+        return self._signatures_of_hashes(wh, counts)
+
+    def _signatures_of_hashes(self, wh: np.ndarray, lengths: np.ndarray) -> np.ndarray:
+        """Signatures from every text's word hashes, concatenated (``lengths[i]`` for text ``i``)."""
+        n_texts, n = len(lengths), self.shingle
         out = np.full((n_texts, self.num_perm), EMPTY, dtype=np.uint32)
-        lengths = np.fromiter((len(w) for w in word_lists), dtype=np.int64, count=n_texts)
         total = int(lengths.sum())
         if total == 0:
             return out
-        wh = np.fromiter(map(self._word_crc.__getitem__, chain.from_iterable(word_lists)), dtype=np.uint64,
-                         count=total)
         wh = np.concatenate([wh, np.zeros(n, dtype=np.uint64)])
         starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
         text_of = np.repeat(np.arange(n_texts), lengths)

@@ -286,7 +286,7 @@ def story_items(result: DemoResult) -> list[str]:
         if e["type"] == "campaign_start" and "campaign" not in seen:
             seen.add("campaign")
             items.append(f"{_clock(e['ts'])} campaign alarm on {html.escape(str(d.get('site')))}: "
-                         f"{d.get('members')} near-duplicates from {d.get('authors')} accounts; members are held.")
+                         f"{d.get('members')} near-duplicates from {d.get('authors')} or more accounts; members are held.")
         elif e["type"] == "wave_start" and ("wave", d.get("site")) not in seen:
             seen.add(("wave", d.get("site")))
             ts = (d.get("minute", e["ts"] // 60) + 1) * 60.0

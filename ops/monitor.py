@@ -163,12 +163,17 @@ class Observability:
             self.server.stop()
 
 
-def campaign_policy(config) -> CampaignPolicy:
+def campaign_policy(config, *, clock=time.time) -> CampaignPolicy:
+    """The campaign policy of ``[waves]``, as ``seawall serve``, the demo and the benchmarks run it."""
     w = config.waves
     return CampaignPolicy(
         keys=config.keys, hasher=MinHasher(num_perm=w.campaign_perm, shingle=w.campaign_shingle),
         bands=w.campaign_bands, min_size=w.campaign_min_size, min_authors=w.campaign_min_authors,
         window_s=w.campaign_window_s, min_words=w.campaign_min_words, hold=w.campaign_hold,
+        baseline_days=w.campaign_baseline_days, burst_ratio=w.campaign_burst_ratio, peak_ratio=w.campaign_peak_ratio,
+        signals=w.campaign_signals,
+        new_author_s=w.campaign_new_author_s, warmup_s=w.campaign_warmup_s, new_author_share=w.campaign_new_author_share,
+        lean_share=w.campaign_lean_share, lean_quantile=w.campaign_lean_quantile, clock=clock,
     )
 
 

@@ -127,16 +127,27 @@ class WaveSettings:
     end_quiet_minutes: int = setting(5, "consecutive in-control minutes that end a wave")
     campaigns: bool = setting(True, "run near-duplicate campaign detection in the comment path (costs Redis work per comment)")
     campaign_shingle: int = setting(3, "words per shingle of the near-duplicate MinHash")
-    campaign_perm: int = setting(64, "MinHash permutations (signature length); each costs hashing time per comment")
-    campaign_bands: int = setting(16, "LSH bands of permutations / bands rows each (16 x 4: texts above Jaccard ~0.5 usually share a bucket); each costs Redis work per comment")
+    campaign_perm: int = setting(32, "MinHash permutations (signature length); each costs hashing time per comment")
+    campaign_bands: int = setting(16, "LSH bands of permutations / bands rows each (16 x 2: texts above Jaccard ~0.35 usually share a bucket); each costs Redis work per comment")
     campaign_min_size: int = setting(10, "near-duplicates within the window that make a campaign (N)")
     campaign_min_authors: int = setting(3, "distinct authors among them (M); a comment with no author counts as its own")
     campaign_window_s: int = setting(600, "window T in seconds; LSH buckets expire after it")
     campaign_min_words: int = setting(6, "comments with fewer words are not checked for campaigns")
     campaign_hold: bool = setting(True, "hold members of an active campaign even when the model would publish them")
+    campaign_baseline_days: int = setting(7, "days of history kept per near-duplicate family: its baseline rate")
+    campaign_burst_ratio: float = setting(5.0, "a family is bursty when its count in the window is at least this many times what its history's average rate predicts")
+    campaign_peak_ratio: float = setting(2.0, "... and at least this many times the busiest window of its history (campaigns' windows left out)")
+    campaign_signals: str = setting("authors", "second signal a campaign needs: authors (its authors are new to the site), lean (its scores lean spam-ward), either or both")
+    campaign_new_author_s: int = setting(3 * 86_400, "an author first seen on a site less than this long ago (seconds) is new to it")
+    campaign_warmup_s: int = setting(86_400, "authors first seen in this long after the detector first saw their site are never new: it is learning who the regulars are")
+    campaign_new_author_share: float = setting(0.5, "share of a family's authors that must be new for the new-author signal")
+    campaign_lean_share: float = setting(0.5, "share of a family's comments that must score above the site's lean quantile for the score signal")
+    campaign_lean_quantile: float = setting(0.9, "a score leans spam-ward above this quantile of the site's recent scores")
 
     def __post_init__(self):
         _check_bounds(self, _WAVE_BOUNDS)
+        if self.campaign_signals not in ("either", "authors", "lean", "both"):
+            raise ValueError(f"WaveSettings: campaign_signals must be either, authors, lean or both, got {self.campaign_signals!r}")
         if self.campaign_perm % self.campaign_bands:
             raise ValueError(f"WaveSettings: campaign_bands ({self.campaign_bands}) must divide campaign_perm ({self.campaign_perm})")
 
@@ -162,6 +173,14 @@ _WAVE_BOUNDS = (
     ("campaign_min_authors", 1, 10**9),
     ("campaign_window_s", 1, 7 * 86400),
     ("campaign_min_words", 1, 10000),
+    ("campaign_baseline_days", 1, 365),
+    ("campaign_burst_ratio", 1.0, 1e6),
+    ("campaign_peak_ratio", 1.0, 1e6),
+    ("campaign_new_author_s", 0, 10**9),
+    ("campaign_warmup_s", 0, 10**9),
+    ("campaign_new_author_share", 0.0, 1.0),
+    ("campaign_lean_share", 0.0, 1.0),
+    ("campaign_lean_quantile", 0.5, 0.999),
 )
 
 

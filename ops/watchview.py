@@ -168,7 +168,7 @@ def render(snap: Snapshot, *, title: str = "") -> str:
         for cid, c in sorted(snap.campaigns.items(), key=lambda kv: -kv[1].get("members", 0)):
             since = clock(c["started"]) if c.get("started") else "?"
             lines.append(f"CAMPAIGN  {clean(cid, 16)} on {clean(c.get('site', '') or '?', 20)}: "
-                         f"{c.get('members', 0)} members, {c.get('authors', '?')} authors at start, since {since}")
+                         f"{c.get('members', 0)} members, {c.get('authors', '?')}+ authors at start, since {since}")
     else:
         lines.append("campaigns none")
     if snap.events:
@@ -204,7 +204,7 @@ def event_line(e: Event) -> str:
                 f"peak {_share(d.get('peak_rate'))} flagged")
     if e.type == "campaign_start":
         return (f"campaign {d.get('id', '?')} on {d.get('site') or '?'}: {d.get('members', 0)} near-duplicates "
-                f"from {d.get('authors', '?')} authors")
+                f"from {d.get('authors', '?')} or more authors")
     if e.type == "campaign_end":
         return f"campaign {d.get('id', '?')} on {d.get('site') or '?'} over: {d.get('members', 0)} members"
     if e.type in ("promote", "rollback"):

@@ -1,4 +1,4 @@
-"""Near-duplicate campaigns across workers: shared LSH buckets in Redis, events, the hold policy."""
+"""Campaigns across workers: shared buckets in Redis, the baseline, the second signal, spelling tricks, events."""
 from __future__ import annotations
 
 import fakeredis
@@ -35,8 +35,9 @@ def policy_actions(p, client, batch, scores, actions):
 
 
 def policy(clock, **kwargs):
-    defaults = dict(keys=KEYS, hasher=MinHasher(num_perm=64, shingle=3), bands=16, min_size=10,
-                    min_authors=3, window_s=600, min_words=6, hold=True, clock=clock)
+    """The default policy, except no warm-up: every author is new to a site the test has just opened."""
+    defaults = dict(keys=KEYS, hasher=MinHasher(num_perm=32, shingle=3), bands=16, min_size=10,
+                    min_authors=3, window_s=600, min_words=6, hold=True, warmup_s=0, clock=clock)
     defaults.update(kwargs)
     return CampaignPolicy(**defaults)
 
@@ -109,11 +110,13 @@ def test_near_duplicates_spread_beyond_the_window_are_not_a_campaign(fake_redis)
 
 
 def test_hold_keeps_rejects_and_can_be_turned_off(fake_redis):
+    """A batch is judged on its buckets as they stand after it: the first nine near-duplicates of a batch
+    that makes a campaign are its members too."""
     clock = Clock()
     texts = [campaign_text(i) for i in range(14)]
     actions = ["publish"] * 12 + ["reject", "hold"]
     out = policy_actions(policy(clock), fake_redis, comments(texts), [0.1] * 14, list(actions))
-    assert out[-2:] == ["reject", "hold"] and out[9:12] == ["hold"] * 3 and out[:9] == ["publish"] * 9
+    assert out[:12] == ["hold"] * 12 and out[-2:] == ["reject", "hold"]
     quiet = fakeredis.FakeRedis(server=fakeredis.FakeServer())
     assert policy_actions(policy(clock, hold=False), quiet, comments(texts), [0.1] * 14, list(actions)) == actions
     assert len(read_campaigns(quiet, KEYS)) == 1  # still detected and announced
@@ -122,13 +125,18 @@ def test_hold_keeps_rejects_and_can_be_turned_off(fake_redis):
 def test_short_comments_are_never_members(fake_redis):
     clock = Clock()
     batch = comments(["great point thanks"] * 30)
-    assert policy_actions(policy(clock), fake_redis, batch, [0.1] * 30, ["publish"] * 30) == ["publish"] * 30
-    assert fake_redis.keys("seawall:campaigns:*") == []
+    p = policy(clock)
+    assert policy_actions(p, fake_redis, batch, [0.1] * 30, ["publish"] * 30) == ["publish"] * 30
+    # no band state; their authors are recorded (a regular who only ever says thanks is still a regular)
+    assert not fake_redis.keys(f"seawall:campaigns:{p.tag}:seen:*")
+    assert not fake_redis.keys(f"seawall:campaigns:{p.tag}:buckets:*")
+    assert fake_redis.keys("seawall:campaigns:authors:*")
 
 
 def test_idle_campaigns_end_once(fake_redis):
     clock = Clock()
-    policy_actions(policy(clock), fake_redis, comments([campaign_text(i) for i in range(12)]), [0.1] * 12, ["publish"] * 12)
+    policy_actions(policy(clock), fake_redis, comments([campaign_text(i) for i in range(12)]), [0.1] * 12,
+                   ["publish"] * 12)
     (cid,) = read_campaigns(fake_redis, KEYS)
     assert end_idle_campaigns(fake_redis, KEYS, now=clock.t + 100, window_s=600) == []
     ended = end_idle_campaigns(fake_redis, KEYS, now=clock.t + 601, window_s=600)
@@ -142,8 +150,8 @@ def test_no_text_or_author_is_stored(fake_redis):
     clock = Clock()
     marker = "zqxmarkerword"
     texts = [campaign_text(i) + f" {marker}" for i in range(12)]
-    policy_actions(policy(clock), fake_redis, comments(texts, authors=[f"{marker}{i}" for i in range(12)]), [0.1] * 12,
-                        ["publish"] * 12)
+    policy_actions(policy(clock), fake_redis, comments(texts, authors=[f"{marker}{i}" for i in range(12)]),
+                   [0.1] * 12, ["publish"] * 12)
     dump = []
     for key in fake_redis.keys("*"):
         dump.append(key)
@@ -160,8 +168,15 @@ def test_no_text_or_author_is_stored(fake_redis):
 
 
 @pytest.mark.parametrize(("kwargs", "field"), [({"bands": 5}, "bands"), ({"min_size": 1}, "min_size"),
-                                               ({"window_s": 0}, "window_s"), ({"hold": "yes"}, "hold")],
-                         ids=["bands-not-dividing", "size-one", "no-window", "hold-string"])
+                                               ({"window_s": 0}, "window_s"), ({"hold": "yes"}, "hold"),
+                                               ({"signals": "sometimes"}, "signals"),
+                                               ({"burst_ratio": 0.5}, "burst_ratio"),
+                                               ({"peak_ratio": True}, "peak_ratio"),
+                                               ({"new_author_share": 1.5}, "new_author_share"),
+                                               ({"baseline_days": 0}, "baseline_days"),
+                                               ({"link_size": 1}, "link_size")],
+                         ids=["bands-not-dividing", "size-one", "no-window", "hold-string", "unknown-signal",
+                              "burst-below-one", "peak-bool", "share-above-one", "no-history", "link-size-one"])
 def test_params_are_validated(kwargs, field):
     with pytest.raises(ValueError, match=field):
         policy(Clock(), **kwargs)
@@ -181,15 +196,18 @@ def test_a_burst_of_variants_is_one_campaign(fake_redis):
 
 
 def test_comments_with_no_near_duplicate_cost_no_bucket_of_their_own(shared_redis):
-    """The usual comment only joins the current slot's set of first sightings: no per-band key."""
+    """The usual comment only joins the current slot's set of sightings: no bucket field, no history."""
     rng = np.random.default_rng(3)
     vocab = [f"word{i}" for i in range(3000)]
     texts = [" ".join(rng.choice(vocab, size=30)) for _ in range(200)]
-    policy_actions(policy(Clock()), shared_redis, comments(texts), [0.1] * 200, ["publish"] * 200)
-    keys = sorted(k.decode() for k in shared_redis.keys("seawall:campaigns:*"))
-    assert len(keys) == 1 and keys[0].startswith("seawall:campaigns:seen:"), keys
-    assert shared_redis.scard(keys[0]) == 200 * 16
-    assert 0 < shared_redis.ttl(keys[0]) <= 600 + 1  # until the end of the next half-window slot, plus 1 s
+    p = policy(Clock())
+    policy_actions(p, shared_redis, comments(texts), [0.1] * 200, ["publish"] * 200)
+    seen, _prev, buckets, *_ = p.state_keys(p.clock())
+    band_state = sorted(k.decode() for k in shared_redis.keys(f"seawall:campaigns:{p.tag}:*"))
+    assert band_state == sorted([seen, f"seawall:campaigns:{p.tag}:since"]), band_state
+    assert not shared_redis.exists(buckets)
+    assert shared_redis.scard(seen) == 200 * 16
+    assert 0 < shared_redis.ttl(seen) <= 600 + 1  # until the end of the next half-window slot, plus 1 s
 
 
 def test_near_duplicates_either_side_of_a_slot_boundary_all_count(fake_redis):
@@ -209,29 +227,243 @@ def test_near_duplicates_either_side_of_a_slot_boundary_all_count(fake_redis):
     assert len(read_campaigns(fake_redis, KEYS)) == 1
 
 
-def test_members_a_worker_knows_skip_most_bucket_writes_and_are_still_held_and_counted():
-    """Once a worker has seen a bucket linked to a campaign, its later members skip most bucket writes.
+def test_a_worker_keeps_the_members_of_a_campaign_it_knows_across_slots():
+    """Once a worker has seen a bucket linked to a campaign, later comments with that band key are members
+    from their first sighting in a new slot, before the bucket there holds enough comments to link."""
+    clock = Clock()
+    p = policy(clock)
+    fake = fakeredis.FakeRedis(server=fakeredis.FakeServer())
+    policy_actions(p, fake, comments([campaign_text(i) for i in range(14)]), [0.1] * 14, ["publish"] * 14)
+    (cid,) = read_campaigns(fake, KEYS)
+    clock.t += 301  # the next slot (300 s): no bucket of it is linked yet
+    out = policy_actions(p, fake, comments([campaign_text(i) for i in range(14, 17)], start=100), [0.1] * 3,
+                         ["publish"] * 3)
+    assert out == ["hold"] * 3
+    assert read_campaigns(fake, KEYS)[cid]["members"] == 14 + 3  # the ten that made it, four more, three here
+    # and those members linked their buckets of this slot: a worker that has learnt nothing finds it there
+    assert policy(clock).observe(fake, comments([campaign_text(17)], start=200)) == {0: cid}
 
-    The same comments go to two Redis servers in the same state; on one, the worker that saw the
-    campaign start goes on, on the other a worker that has learnt nothing.  Both hold and count
-    every later member; the first writes far less to the buckets.
+
+# --- spelling tricks ---------------------------------------------------------------------------
+
+def test_disguised_variants_get_the_band_keys_of_their_plain_text():
+    """Look-alike letters, zero-width characters, leetspeak and spaced letters do not split a family.
+
+    The policy's band keys of a disguised comment agree with its plain twin's on most bands; words
+    cut as they are typed (the detector before it shingled the model's tokens) agree on few.
     """
-    first = [campaign_text(i) for i in range(14)]
-    later = [campaign_text(i) for i in range(14, 38)]
-    growth, sizes = {}, {}
-    for kind in ("learnt", "fresh"):
+    import random
+
+    from model.minhash import band_hashes
+    from ops.board import obfuscate
+
+    p = policy(Clock())
+    plain = [campaign_text(i) for i in range(40)]
+    disguised = [obfuscate(t, random.Random(i)) for i, t in enumerate(plain)]
+    assert sum(a != b for a, b in zip(plain, disguised)) == 40
+    _, keys_plain = p.band_keys(plain)
+    _, keys_disguised = p.band_keys(disguised)
+    agree = (keys_plain == keys_disguised).mean()
+    raw = MinHasher(num_perm=32, shingle=3)  # case folding and word characters only
+    agree_raw = (band_hashes(raw.signatures(plain), 16) == band_hashes(raw.signatures(disguised), 16)).mean()
+    assert agree >= 0.6 and agree_raw <= 0.3, (agree, agree_raw)
+
+
+def test_a_disguised_campaign_is_caught_as_soon_as_its_plain_twin(shared_redis):
+    import random
+
+    from ops.board import obfuscate
+
+    outcomes = {}
+    for kind in ("plain", "disguised"):
         clock = Clock()
-        r = fakeredis.FakeRedis(server=fakeredis.FakeServer())
+        client = shared_redis if kind == "plain" else fakeredis.FakeRedis(server=fakeredis.FakeServer())
         p = policy(clock)
-        policy_actions(p, r, comments(first), [0.1] * 14, ["publish"] * 14)
-        (cid,) = read_campaigns(r, KEYS)
-        size0 = read_campaigns(r, KEYS)[cid]["members"]
-        total0 = sum(int(r.hget(k, "n") or 0) for k in r.keys("seawall:campaigns:lsh:*"))
-        if kind == "fresh":
-            p = policy(clock)
+        held = []
+        for i in range(40):
+            clock.t += 20
+            text = campaign_text(i) if kind == "plain" else obfuscate(campaign_text(i), random.Random(i))
+            held += policy_actions(p, client, comments([text], start=i, authors=[f"fresh{i}"]), [0.1], ["publish"])
+        outcomes[kind] = held
+    first = {k: v.index("hold") for k, v in outcomes.items()}
+    assert first["plain"] <= 12 and first["disguised"] <= first["plain"] + 3, first
+    assert all(a == "hold" for a in outcomes["disguised"][first["disguised"]:])
+
+
+# --- the baseline: new and bursty against the site's own history -------------------------------
+
+def _steady_format(i: int) -> str:
+    days = ("monday", "tuesday", "wednesday", "thursday", "friday")
+    return (f"Weekly rota for block {'ABCDE'[i % 5]}: bins out on {days[i % 5]}, recycling the day after. "
+            "Please flatten boxes and rinse the jars, the collectors skip dirty bins.")
+
+
+def _post(p, client, clock, texts, *, authors, start, every_s):
+    out = []
+    for n, text in enumerate(texts):
+        clock.t += every_s
+        out += policy_actions(p, client, comments([text], start=start + n, authors=[authors[n]]), [0.1], ["publish"])
+    return out
+
+
+@pytest.mark.parametrize("history", [True, False], ids=["with-history", "no-history"])
+def test_a_phrasing_posted_steadily_is_not_a_campaign_even_from_new_accounts(history, fake_redis):
+    """The baseline alone: a format anonymous posters (new authors, once the six-hour warm-up is over) put
+    up every 20 s for six hours has a history that predicts its rate; the same hour on a site with no
+    such history is a campaign.
+
+    Windows are 300 s here (so the history of 6 hours is 72 windows); a real burst of the same
+    phrasing at ten times the usual rate is still a campaign with the history.
+    """
+    clock = Clock()
+    p = policy(clock, window_s=300, baseline_days=1, warmup_s=1080 * 20)
+    anonymous = [""] * 2000
+    policy_actions(p, fake_redis, comments(["the site opens with an ordinary comment about the garden party"]), [0.1],
+            ["publish"])
+    if history:
+        _post(p, fake_redis, clock, [_steady_format(i) for i in range(1080)], authors=anonymous, start=0, every_s=20)
+    else:
+        clock.t += 1080 * 20
+    steady = _post(p, fake_redis, clock, [_steady_format(i) for i in range(180)], authors=anonymous, start=5000,
+                   every_s=20)
+    if history:
+        assert "hold" not in steady and read_campaigns(fake_redis, KEYS) == {}
+        burst = _post(p, fake_redis, clock, [_steady_format(i) for i in range(150)], authors=anonymous, start=9000,
+                      every_s=1)
+        assert burst.count("hold") >= 60 and len(read_campaigns(fake_redis, KEYS)) == 1
+    else:
+        assert steady.count("hold") >= 150 and len(read_campaigns(fake_redis, KEYS)) >= 1
+
+
+def test_a_long_campaign_is_caught_throughout_and_then_handed_over_to_the_model(fake_redis):
+    """A campaign is tracked while it is far above its history; run steadily for long enough, it
+    becomes history too (the nightly retrain has learnt it by then) and its members are no longer held.
+
+    Windows of 300 s and one day of history: a campaign of one comment every 10 s is held from its
+    first minutes for hours, and no longer after half a day.
+    """
+    clock = Clock()
+    p = policy(clock, window_s=300, baseline_days=1)
+    policy_actions(p, fake_redis, comments(["the site opens with an ordinary comment about the garden party"]), [0.1],
+            ["publish"])
+    clock.t += 86_400  # the site has been watched for a day
+    out = []
+    for n in range(12 * 36):  # twelve hours, ten comments every 100 s
+        clock.t += 100
+        batch = comments([campaign_text(10 * n + i) for i in range(10)], start=10 * n)
+        out += policy_actions(p, fake_redis, batch, [0.1] * 10, ["publish"] * 10)
+    hours = [out[h * 360:(h + 1) * 360].count("hold") / 360 for h in range(12)]
+    assert min(hours[:4]) >= 0.9 and hours[-1] <= 0.1, hours
+
+
+# --- the second signal: new authors (or a spam-ward lean) ---------------------------------------
+
+def test_a_new_phrasing_from_the_sites_regulars_is_not_a_campaign(shared_redis):
+    """Bursty and new, but posted by the site's regulars: no campaign.  The same burst from new accounts is one."""
+    clock = Clock()
+    p = policy(clock, warmup_s=3600)
+    regulars = [f"regular{i}" for i in range(40)]
+    _post(p, shared_redis, clock, [f"good morning from flat {i}, the lift is working again today" for i in range(40)],
+          authors=regulars, start=0, every_s=30)  # the regulars, first seen during the warm-up
+    clock.t += 7200
+    burst = [f"count me in for the roof terrace picnic on saturday, I will bring {x} and a chair"
+             for x in ("lemonade", "a salad", "cups", "a cake", "blankets") * 6]
+    by_regulars = _post(p, shared_redis, clock, burst, authors=regulars[:30], start=100, every_s=5)
+    assert "hold" not in by_regulars and read_campaigns(shared_redis, KEYS) == {}
+    clock.t += 1200
+    by_newcomers = _post(p, shared_redis, clock, burst, authors=[f"fresh{i}" for i in range(30)], start=200, every_s=5)
+    assert by_newcomers.count("hold") >= 15 and len(read_campaigns(shared_redis, KEYS)) == 1
+
+
+def test_authors_first_seen_during_the_warm_up_are_regulars(fake_redis):
+    clock = Clock()
+    p = policy(clock, warmup_s=3600)
+    texts = [campaign_text(i) for i in range(20)]
+    early = _post(p, fake_redis, clock, texts, authors=[f"early{i}" for i in range(20)], start=0, every_s=10)
+    assert "hold" not in early  # the detector's first hour on the site: it is learning who posts here
+    clock.t += 3600
+    late = _post(p, fake_redis, clock, texts, authors=[f"late{i}" for i in range(20)], start=100, every_s=10)
+    assert late.count("hold") >= 8
+
+
+def test_an_author_stays_known_across_author_generations(fake_redis):
+    """First sightings live in generations of 30 days; a returning author is carried into the next one."""
+    p = policy(Clock(), new_author_s=86_400)
+    generation_s = 30 * 86_400
+    start = (1_800_000_000 // generation_s + 1) * generation_s - 3600  # an hour before a generation ends
+    p.clock.t = start
+    p.observe(fake_redis, comments(["an ordinary first comment from a regular of the site"], authors=["ana"]))
+    p.clock.t = start + 7200  # the next generation
+    p.observe(fake_redis, comments(["an ordinary second comment from the same regular of the site"],
+                                   authors=["ana"]))
+    cur, prev = p.state_keys(p.clock.t)[4:6]
+    assert cur != prev and fake_redis.hlen(cur) == 1
+    assert int(fake_redis.hvals(cur)[0]) == int(start)  # the first sighting, carried over
+
+
+@pytest.mark.parametrize("lean", [True, False], ids=["spam-ward", "ordinary-scores"])
+def test_the_score_lean_signal_against_the_sites_baseline(lean, fake_redis):
+    """With signals="lean", a burst of regulars' comments is a campaign only if it scores above the site's usual."""
+    rng = np.random.default_rng(1)
+    clock = Clock()
+    p = policy(clock, signals="lean", warmup_s=3600)
+    regulars = [f"regular{i}" for i in range(40)]
+    for n in range(300):  # the site's usual scores: 0.01 to 0.2
+        clock.t += 10
+        text = f"ordinary comment number {n} about the courtyard and {rng.integers(1000)}"
+        policy_actions(p, fake_redis, comments([text], start=n, authors=[regulars[n % 40]]),
+                       [float(rng.uniform(0.01, 0.2))], ["publish"])
+    out = []
+    for i in range(30):
         clock.t += 5
-        assert policy_actions(p, r, comments(later, start=100), [0.1] * 24, ["publish"] * 24) == ["hold"] * 24
-        growth[kind] = sum(int(r.hget(k, "n") or 0) for k in r.keys("seawall:campaigns:lsh:*")) - total0
-        sizes[kind] = read_campaigns(r, KEYS)[cid]["members"] - size0
-    assert sizes == {"learnt": 24, "fresh": 24}
-    assert growth["learnt"] < growth["fresh"] / 2, growth
+        score = 0.6 if lean else float(rng.uniform(0.01, 0.2))
+        out += policy_actions(p, fake_redis, comments([campaign_text(i)], start=1000 + i, authors=[regulars[i]]),
+                              [score], ["publish"])
+    assert (out.count("hold") >= 15) == lean and (len(read_campaigns(fake_redis, KEYS)) == 1) == lean
+
+
+# --- Redis: every key in KEYS, named by Keys ------------------------------------------------------
+
+def test_the_script_touches_only_the_keys_it_is_given(redis_server):
+    """MONITOR shows each command the script runs; every key is one of its KEYS, all under the prefix."""
+    import threading
+
+    keys = Keys(prefix="{site-a}:")
+    client = redis_server.client()
+    clock = Clock()
+    p = policy(clock, keys=keys)
+    seen_lines = []
+    ready = threading.Event()
+
+    def watch():
+        with redis_server.client().monitor() as m:
+            ready.set()
+            for line in m.listen():
+                seen_lines.append(line)
+                if "stop-watching" in line["command"]:
+                    return
+
+    thread = threading.Thread(target=watch, daemon=True)
+    thread.start()
+    ready.wait(5)
+    texts = [campaign_text(i) for i in range(30)]
+    policy_actions(p, client, comments(texts), [0.1] * 30, ["publish"] * 30)
+    clock.t += 400  # a new slot: buckets carried over, history folded
+    policy_actions(p, client, comments(texts, start=100), [0.1] * 30, ["publish"] * 30)
+    script_keys = set(p.state_keys(clock.t)) | set(p.state_keys(clock.t - 400))
+    client.get("stop-watching")
+    thread.join(10)
+    in_script = [line for line in seen_lines if line.get("client_type") == "lua"]
+    assert len(in_script) > 10
+    for line in in_script:
+        command = line["command"].split()
+        if command[0].upper() in ("HMGET", "HSET", "HSETNX", "HINCRBY", "HKEYS", "SMISMEMBER", "SADD", "EXPIRE", "SET",
+                                  "GET"):
+            assert command[1] in script_keys, line["command"][:120]
+    assert all(k.startswith("{site-a}:campaigns:") for k in script_keys)
+    assert all(k.startswith(b"{site-a}:") for k in client.keys("*"))
+
+
+def test_scores_must_match_the_comments(fake_redis):
+    with pytest.raises(ValueError, match="2 scores for 1 comments"):
+        policy(Clock()).observe(fake_redis, comments([campaign_text(0)]), [0.1, 0.2])

@@ -71,7 +71,8 @@ def test_recall_on_the_wave_rises_after_the_retrain(demo):
     # the first model is blind to the wave: only the campaign policy holds it
     assert before["wave_model_recall"] < 0.1
     assert after["wave_model_recall"] > 0.9
-    assert after["wave_recall"] > before["wave_recall"]
+    # the campaign detector may already hold the whole wave before the retrain; the model takes over after it
+    assert after["wave_recall"] >= before["wave_recall"]
     assert after["wave_recall"] > 0.95
 
 

@@ -106,3 +106,16 @@ def test_band_hashes_match_for_equal_bands_only_and_batch_equals_alone():
     assert len(set(band_hashes(same_rows, 16)[0].tolist())) == 16  # the band index is part of the key
     with pytest.raises(ValueError, match="bands"):
         band_hashes(sigs, 5)
+
+
+@pytest.mark.parametrize("max_words", [64, 3], ids=["whole-texts", "cut-to-three-words"])
+def test_signatures_of_a_flat_word_list_equal_those_of_word_lists(max_words):
+    """One flat list and per-text counts (what the tokenizer's batch path returns) give the same signatures,
+    empty texts and texts longer than max_words included."""
+    mh = MinHasher(num_perm=32, shingle=2, max_words=max_words)
+    texts = [["win", "a", "free", "prize", "now"], [], ["hello"], ["the", "council", "met", "on", "monday", "night"]]
+    flat = [w for t in texts for w in t]
+    np.testing.assert_array_equal(mh.signatures_of_flat(flat, [len(t) for t in texts]), mh.signatures_of_words(texts))
+    assert (mh.signatures_of_flat([], []).shape) == (0, 32)
+    with pytest.raises(ValueError, match="counts"):
+        mh.signatures_of_flat(flat, [1, 2])

@@ -20,6 +20,7 @@ import shutil
 import signal
 import subprocess
 import sys
+import time
 import urllib.error
 import urllib.parse
 import urllib.request
@@ -58,7 +59,9 @@ def model_file(tmp_path_factory):
 def worker(redis_server, model_file, tmp_path):
     port = free_port()
     env = {k: v for k, v in os.environ.items() if not k.startswith("SEAWALL_")}
-    env.update({"SEAWALL_METRICS_POLL_S": "0.3", "SEAWALL_METRICS_SITES": "news.example"})
+    # a one-second campaign warm-up: the authors of the first comments are the site's regulars
+    env.update({"SEAWALL_METRICS_POLL_S": "0.3", "SEAWALL_METRICS_SITES": "news.example",
+                "SEAWALL_WAVES_CAMPAIGN_WARMUP_S": "1"})
     log_path = tmp_path / "worker.log"
     log = open(log_path, "wb")
     proc = subprocess.Popen(
@@ -81,13 +84,16 @@ def worker(redis_server, model_file, tmp_path):
 
 
 def send_comments(client, marker: str) -> int:
-    """Ordinary comments, some from an unlisted site, and a 14-comment campaign; returns how many."""
+    """Ordinary comments from the site's regulars, some from an unlisted site, then (once the detector's
+    one-second warm-up is over) a 14-comment campaign from new accounts; returns how many."""
     n = 0
     for i, (text, _label) in enumerate(invented_comments(60, seed=9)):
         site = "news.example" if i % 2 else f"{marker}.example"
         client.xadd(KEYS.comments, {"id": f"o{i}", "text": f"{text} {marker}", "site": site,
                                     "author": f"{marker}-user{i}"})
         n += 1
+    wait_until(lambda: client.xlen(KEYS.verdicts) >= n, timeout=30, what="the regulars' verdicts")
+    time.sleep(1.5)
     for i in range(14):
         text = (f"hello friend {i} I earned 900 dollars this week from home with one odd trick {marker} "
                 f"see easycash{i}.invalid before it is gone")

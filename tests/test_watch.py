@@ -100,7 +100,7 @@ def test_events_read_as_sentences_not_json(fake_redis):
     assert events == [
         "  08:00    10s ago  audit           what=drill, who=ops",
         "  08:00    20s ago  wave_end        wave over on news.example after 12 min, peak 31.0% flagged",
-        "  08:00    30s ago  campaign_start  campaign c9 on news.example: 10 near-duplicates from 4 authors",
+        "  08:00    30s ago  campaign_start  campaign c9 on news.example: 10 near-duplicates from 4 or more authors",
         "  07:59    59s ago  retrain         promoted bbb222 after 812 new labels",
         "  07:59    60s ago  promote         promoted bbb222 (was aaa111) by retrain",
     ]

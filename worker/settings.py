@@ -74,6 +74,10 @@ class Keys:
         """Per-minute counts hash; ``minute`` is ``int(epoch_seconds // 60)``."""
         return self.key("rates", str(minute))
 
+    def campaigns(self, *parts: str) -> str:
+        """Campaign detection state; :func:`worker.campaigns.campaign_keys` and its policy name each key."""
+        return self.key("campaigns", *parts)
+
 
 @dataclass(frozen=True, kw_only=True)
 class WorkerSettings:

@@ -1,15 +1,30 @@
-"""``seawall bench campaigns``: what the campaign policy costs a worker, end to end.
+"""``seawall bench campaigns``: what the campaign detector catches, and what it costs a worker.
 
-One run, one Redis (its own ``redis-server`` on a free port unless ``--redis``
-is given), the harness of :mod:`ops.bench.stream` (a spawned worker process
-built by :func:`ops.serving.build_consumer`, as ``seawall serve`` does; the
-rate is read from the verdict entry ids).  Rows:
+Two parts (``--part``), each against one Redis (its own ``redis-server`` on a
+free port unless ``--redis`` is given; each run under its own key prefix).
+
+**board** (quality): the invented board of :mod:`ops.board` (recurring formats
+posted by established members over simulated days, then a test day with
+campaigns from new accounts, plain and obfuscated) replayed through the
+campaign policy ``seawall serve`` builds (:func:`ops.monitor.campaign_policy`,
+two simulated workers taking turns) on its simulated clock, with the scores of
+a model trained on the board's history.  Twice: with the model *blind* to the
+campaigns (each campaign comment gets the score of a random ham comment; the
+site hold threshold is 0.95, so the model alone holds nothing) and with the
+model's own scores.  It prints, for the test day and for all days: campaigns
+started (true and false), ham held because of campaigns (members the model
+alone would publish) as a share of ham, recall of plain and obfuscated
+campaigns, the detection delay in comments (the first member's place in its
+campaign), and the Redis CPU per comment of the replay.
+
+**throughput** (cost): the harness of :mod:`ops.bench.stream` (a spawned
+worker process built by :func:`ops.serving.build_consumer`, as ``seawall
+serve`` does; the rate is read from the verdict entry ids).  Rows:
 
 * **model only**: the real model, no batch policy, on the stream bench's
   invented comments;
-* **model + campaigns**: the same, with the campaign policy that
-  ``seawall serve`` builds from ``[waves]`` (:func:`ops.monitor.campaign_policy`).
-  That corpus joins sentences from a small pool, so nearly every comment is a
+* **model + campaigns**: the same, with the campaign policy.  That corpus
+  joins sentences from a small pool, so nearly every comment is a
   near-duplicate of many others: the policy's worst case (every bucket dense,
   nearly every comment a campaign member);
 * the same pair on **varied comments** (:func:`varied_comments`: invented
@@ -17,9 +32,13 @@ rate is read from the verdict entry ids).  Rows:
   the usual case where most LSH buckets hold one comment;
 * **transport ceiling**: the no-op scorer without policies.
 
-Each row also gives the worker's CPU per comment (``process_time``) and the
-Redis server's (``INFO cpu``), which depend less on how busy a shared machine
-is than rates do.
+The throughput runs start from an empty Redis and turn the new-author warm-up
+off (``waves.campaign_warmup_s = 0``), so campaigns are found as they would
+be on a site the detector knows.  Each row gives the worker's CPU per comment
+(``process_time``), the Redis server's (``INFO cpu``) and the sum of
+``INFO commandstats`` per comment (which counts the commands a script runs
+both in the script's time and on their own); these depend less on how busy a
+shared machine is than rates do.
 """
 from __future__ import annotations
 
@@ -100,20 +119,28 @@ def _throughput(url, prefix, model_path, comments, *, noop, campaigns, batch, bl
     try:
         h.enqueue(comments)
         h.start(1, noop=noop)
+        h.client.config_resetstat()
         redis_before = h.redis_cpu_usec()
         h.wait_verdicts(len(comments), timeout_s=900)
         redis_usec = h.redis_cpu_usec() - redis_before
+        commandstats_usec = commandstats_usec_total(h.client)
         (stats,) = h.stop()
         ids = h.verdict_ids()
         held = _count_actions(h)
         span_s = max(ids[-1][0] - ids[0][0], 1) / 1000.0
         return {"per_s": (len(ids) - 1) / span_s, "worker_cpu_us": stats["cpu_s"] / len(ids) * 1e6,
-                "redis_cpu_us": redis_usec / len(ids), "held_share": held / len(ids),
+                "redis_cpu_us": redis_usec / len(ids), "commandstats_us": commandstats_usec / len(ids),
+                "held_share": held / len(ids),
                 "peak_rss_mb": stats["peak_rss_mb"]}
     finally:
         if h.procs:
             h.stop()
         h.cleanup()
+
+
+def commandstats_usec_total(client) -> float:
+    """The sum of ``usec`` over ``INFO commandstats`` (a script's commands count twice: in it and alone)."""
+    return float(sum(v.get("usec", 0) for v in client.info("commandstats").values() if isinstance(v, dict)))
 
 
 def _count_actions(h: Harness) -> int:
@@ -129,13 +156,26 @@ def _count_actions(h: Harness) -> int:
 
 
 def run(args) -> int:
-    bench = [(t, "", f"site{i % 4}.example") for i, (t, _) in enumerate(invented_comments(args.comments, seed=3))]
-    varied = varied_comments(args.comments)
     overrides = {}
     if args.bands:
         overrides["waves.campaign_bands"] = args.bands
     if args.perm:
         overrides["waves.campaign_perm"] = args.perm
+    if args.signals:
+        overrides["waves.campaign_signals"] = args.signals
+    rows: dict = {}
+    if args.part in ("board", "all"):
+        rows.update(board_quality(args, overrides))
+    if args.part in ("throughput", "all"):
+        rows.update(throughput(args, {**overrides, "waves.campaign_warmup_s": 0}))
+    report("seawall bench campaigns (one run; ratios against the model alone in the same run)", rows,
+           as_json=args.json)
+    return 0
+
+
+def throughput(args, overrides: dict) -> dict:
+    bench = [(t, "", f"site{i % 4}.example") for i, (t, _) in enumerate(invented_comments(args.comments, seed=3))]
+    varied = varied_comments(args.comments)
     with tempfile.TemporaryDirectory(prefix="seawall-bench-") as tmp:
         model_path = os.path.join(tmp, "model.bin")
         model = train_model(model_path)
@@ -144,11 +184,104 @@ def run(args) -> int:
         else:
             with LocalRedis() as url:
                 figures = _measure(url, model_path, bench, varied, args, overrides)
-    rows = {"comments": args.comments, "model_version": model.version, "batch": args.batch,
+    return {"comments": args.comments, "model_version": model.version, "batch": args.batch,
             "varied_mean_chars": sum(len(t) for t, _a, _s in varied) / len(varied), **figures}
-    report("seawall bench campaigns (one run; ratios against the model alone in the same run)", rows,
-           as_json=args.json)
-    return 0
+
+
+def board_quality(args, overrides: dict) -> dict:
+    """Replay the invented board through the campaign policy; the figures of :meth:`ops.board.Replay.figures`.
+
+    Three replays: the headline (the model blind to the campaigns, the
+    configured second signal), then the model's own scores with the second
+    signal ``either`` (new authors or a spam-ward lean) and ``both``, which
+    show what the score lean adds and costs.
+    """
+    from model.classifier import EmbeddingClassifier
+    from ops.board import Board, blind_scores
+
+    board = Board(seed=args.board_seed, history_days=args.board_days)
+    comments = board.comments()
+    rows = board.training_rows()
+    model = EmbeddingClassifier(seed=0).fit([c.text for c in rows], [c.label for c in rows])
+    scores, _ = model.score_many([c.text for c in comments], top_k=0)
+    out = {"board_comments": len(comments), "board_days": board.history_days + 1}
+    runs = (("blind", blind_scores(comments, scores), overrides),
+            ("model_either", scores, {**overrides, "waves.campaign_signals": "either"}),
+            ("model_both", scores, {**overrides, "waves.campaign_signals": "both"}))
+    for label, given, settings in runs:
+        if args.redis:
+            figures = _replay(args.redis, board, comments, given, settings, label)
+        else:
+            with LocalRedis() as url:
+                figures = _replay(url, board, comments, given, settings, label)
+        out.update(figures)
+    return out
+
+
+def _replay(url: str, board, comments, scores, overrides: dict, label: str) -> dict:
+    import redis
+
+    from ops.board import play
+    from ops.config import load_config
+    from ops.monitor import campaign_policy
+
+    config = load_config({**overrides, "keys.prefix": f"seawall-bench-board-{os.getpid()}-{label}:"}, environ={})
+    clock = _Clock()
+    policies = [campaign_policy(config, clock=clock) for _ in range(2)]
+    client = redis.Redis.from_url(url)
+    try:
+        client.config_resetstat()
+        cpu0 = _redis_cpu_usec(client)
+        replay = play(client, policies, comments, scores, set_time=clock.set, keys=config.keys,
+                      window_s=config.waves.campaign_window_s)
+        redis_usec = _redis_cpu_usec(client) - cpu0
+        stats_usec = commandstats_usec_total(client)
+    finally:
+        for key in client.scan_iter(match=config.keys.prefix + "*", count=1000):
+            client.delete(key)
+        client.close()
+    day, whole = replay.figures(since=board.test_day_ts), replay.figures(since=0.0)
+    return {
+        f"{label}_signals": config.waves.campaign_signals,
+        f"{label}_campaigns_started_true": day["campaigns_started_true"],
+        f"{label}_campaigns_started_false": day["campaigns_started_false"],
+        f"{label}_campaigns_started_false_all_days": whole["campaigns_started_false"],
+        f"{label}_ham_held_by_campaigns": day["ham_held_by_campaigns"],
+        f"{label}_ham_held_by_campaigns_share": day["ham_held_by_campaigns_share"],
+        f"{label}_ham_held_by_campaigns_share_all_days": whole["ham_held_by_campaigns_share"],
+        f"{label}_plain_recall": day["plain_recall"],
+        f"{label}_obfuscated_recall": day["obfuscated_recall"],
+        f"{label}_plain_recall_by_campaign": _rounded(day["plain_recall_by_campaign"]),
+        f"{label}_obfuscated_recall_by_campaign": _rounded(day["obfuscated_recall_by_campaign"]),
+        f"{label}_plain_delay_comments": day["plain_delay_comments"],
+        f"{label}_obfuscated_delay_comments": day["obfuscated_delay_comments"],
+        f"{label}_precision": day["precision"],
+        f"{label}_replay_s": replay.seconds,
+        f"{label}_redis_cpu_us": redis_usec / len(comments),
+        f"{label}_commandstats_us": stats_usec / len(comments),
+    } | ({"board_test_day_ham": day["ham"], "board_all_days_ham": whole["ham"]} if label == "blind" else {})
+
+
+def _rounded(shares: dict) -> dict:
+    return {k: None if v is None else round(v, 3) for k, v in shares.items()}
+
+
+class _Clock:
+    """The replay's simulated clock, set before each batch."""
+
+    def __init__(self):
+        self.now = 0.0
+
+    def __call__(self) -> float:
+        return self.now
+
+    def set(self, ts: float) -> None:
+        self.now = ts
+
+
+def _redis_cpu_usec(client) -> float:
+    cpu = client.info("cpu")
+    return (float(cpu["used_cpu_user"]) + float(cpu["used_cpu_sys"])) * 1e6
 
 
 def _measure(url, model_path, bench, varied, args, overrides) -> dict:
@@ -167,6 +300,7 @@ def _measure(url, model_path, bench, varied, args, overrides) -> dict:
         out[f"{name}_per_s"] = r["per_s"]
         out[f"{name}_worker_cpu_us"] = r["worker_cpu_us"]
         out[f"{name}_redis_cpu_us"] = r["redis_cpu_us"]
+        out[f"{name}_commandstats_us"] = r["commandstats_us"]
         if not noop:  # the model holds some comments itself: compare with and without the policy
             out[f"{name}_held_share"] = r["held_share"]
         if campaigns:
@@ -178,10 +312,17 @@ def _measure(url, model_path, bench, varied, args, overrides) -> dict:
 
 
 def register(sub) -> None:
-    parser = sub.add_parser("campaigns", help="worker comments/s with and without the campaign policy, and the ceiling")
+    parser = sub.add_parser("campaigns", help="campaign precision and recall on an invented board; worker comments/s "
+                                              "with and without the campaign policy")
     add_harness_arguments(parser, comments=30_000)
+    parser.add_argument("--part", choices=("board", "throughput", "all"), default="all",
+                        help="board: precision and recall on the invented board; throughput: worker cost; all: both")
+    parser.add_argument("--board-days", type=int, default=6, help="ordinary days before the board's test day")
+    parser.add_argument("--board-seed", type=int, default=3, help="seed of the invented board")
     parser.add_argument("--bands", type=int, default=0, help="override [waves] campaign_bands (0: the default)")
     parser.add_argument("--perm", type=int, default=0, help="override [waves] campaign_perm (0: the default)")
+    parser.add_argument("--signals", choices=("authors", "lean", "either", "both"), default=None,
+                        help="override [waves] campaign_signals")
     parser.set_defaults(func=run)
 
 
