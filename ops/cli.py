@@ -27,6 +27,7 @@ COMMANDS = (
     "retrain",
     "models",
     "watch",
+    "console",
     "demo",
     "bench",
 )

@@ -33,7 +33,7 @@ for i = 0, n - 1 do
     redis.call('XADD', verdicts, 'MAXLEN', '~', maxlen, '*', 'id', id, 'score', score, 'action', action,
                'model', model, 'reasons', reasons, 'site', site, 'stream_id', stream_id, 'rescored', '1')
     if redis.call('EXISTS', KEYS[3 + i]) == 1 then
-      redis.call('HSET', KEYS[3 + i], 'score', score, 'action', action, 'model', model)
+      redis.call('HSET', KEYS[3 + i], 'score', score, 'action', action, 'model', model, 'reasons', reasons)
     end
     if action ~= 'hold' then
       redis.call('ZREM', held, id)

@@ -70,7 +70,7 @@ for i = 1, n do
                  'model', model, 'reasons', reasons, 'site', site, 'stream_id', sid)
       redis.call('SET', done, sid, 'EX', done_ttl)
       redis.call('HSET', cache, 'text', text, 'site', site, 'author', author, 'ts', ts, 'stream_id', sid,
-                 'score', score, 'action', action, 'model', model)
+                 'score', score, 'action', action, 'model', model, 'reasons', reasons)
       redis.call('EXPIRE', cache, text_ttl)
       if action == 'hold' then holds[#holds + 1] = now; holds[#holds + 1] = id end
       count(site .. ':total')

@@ -74,6 +74,31 @@ class Keys:
         """Per-minute counts hash; ``minute`` is ``int(epoch_seconds // 60)``."""
         return self.key("rates", str(minute))
 
+    # -- moderators' decisions (worker/decisions.py) and the console's accounts --
+    @property
+    def decisions(self) -> str:
+        """Stream of final moderator decisions, for the site's application."""
+        return self.key("decisions")
+
+    @property
+    def deciding(self) -> str:
+        """Sorted set of decided comments still inside their undo window (score = when final)."""
+        return self.key("decisions", "pending")
+
+    def decision(self, comment_id: str) -> str:
+        """Hash of one decision inside its undo window."""
+        return self.key("decisions", "pending", comment_id)
+
+    @property
+    def audit(self) -> str:
+        """Stream of who did what in the console (sign-ins, decisions, undos, promotions)."""
+        return self.key("audit")
+
+    @property
+    def accounts(self) -> str:
+        """Hash of console accounts: name -> JSON record (role, salted scrypt hash)."""
+        return self.key("console", "accounts")
+
 
 @dataclass(frozen=True, kw_only=True)
 class WorkerSettings:

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import importlib
 
-BENCHES = ("model", "stream", "retrain", "soak", "campaigns")
+BENCHES = ("model", "stream", "retrain", "soak", "campaigns", "console")
 
 
 def register(sub) -> None:

@@ -2,13 +2,18 @@
 
 For scripts and tests; a moderation tool would XADD the same flat fields
 (``id``, ``label``, optional ``moderator``, ``reason``, ``text``) itself.
+It goes through the same helper as the console (:func:`worker.decisions.label_now`):
+a comment still held also leaves the hold queue, and its final decision
+(``ham`` publishes, ``spam`` rejects) goes to the decisions stream.
 """
 from __future__ import annotations
 
 import json
+import time
 
 from model.errors import SeawallError
 from ops.connection import add_connection_args, config_from_args, connect
+from worker.decisions import label_now
 from worker.feedback import Rejected, parse_feedback
 
 
@@ -41,10 +46,12 @@ def run(args) -> int:
         raise SeawallError(f"feedback: {checked.reason.removeprefix('feedback_').replace('_', ' ')}; "
                            "give a non-empty id, spam or ham, and a text within retrain.feedback_text_max_bytes")
     client = connect(config)
-    entry_id = client.xadd(config.keys.feedback, fields)
-    entry_id = entry_id.decode() if isinstance(entry_id, bytes) else entry_id
+    sent = label_now(client, config.keys, args.id, args.label, moderator=args.moderator or "",
+                     reason=args.reason or "", text=args.text, now=time.time())
+    entry_id = sent["feedback_id"]
     if args.json:
-        print(json.dumps({"stream_id": entry_id, "id": args.id, "label": args.label}))
+        print(json.dumps({"stream_id": entry_id, "id": args.id, "label": args.label, "decided": sent["decided"]}))
     else:
-        print(f"feedback {entry_id}: {args.id} -> {args.label}")
+        decided = "; it left the hold queue" if sent["decided"] else ""
+        print(f"feedback {entry_id}: {args.id} -> {args.label}{decided}")
     return 0
