@@ -202,6 +202,10 @@ class Accounts:
         check_role(role)
         return self._update(name, lambda rec: dict(rec, role=role, epoch=int(rec.get("epoch", 0)) + 1))
 
+    def end_sessions(self, name: str) -> Account:
+        """Sign the account out everywhere (a signed cookie cannot be recalled, so its epoch moves on)."""
+        return self._update(name, lambda rec: dict(rec, epoch=int(rec.get("epoch", 0)) + 1))
+
     def remove(self, name: str) -> bool:
         return bool(self.client.hdel(self.keys.accounts, name))
 

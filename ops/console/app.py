@@ -313,6 +313,7 @@ class Console:
         if not same_origin(request) or not sessions.csrf_matches(seen.session, form.get("csrf")):
             return PlainTextResponse("sign-out refused: reload the page and try again", status_code=403)
         if seen.account is not None:
+            self.accounts.end_sessions(seen.account.name)  # every copy of the cookie stops working
             decisions.write_audit(self.client, self.keys, "sign_out", {"moderator": seen.account.name},
                                   now=self.clock())
         response = RedirectResponse("/signin", status_code=303)
