@@ -13,13 +13,13 @@ from urllib.parse import urlencode
 
 import pytest
 
+from console_kit import hold
 from ops.bench.console import Browser, ConsoleThread
 from ops.config import load_config
 from ops.connection import connect
 from ops.console.accounts import Accounts
 from ops.console.app import CSP, Console
 from ops.registry import Registry
-from test_decisions import hold
 from worker_models import tiny_model
 
 pytestmark = pytest.mark.redis_server

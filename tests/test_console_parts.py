@@ -219,7 +219,7 @@ def test_apply_filters():
     (HeldComment("a", 0, "t", score=0.2), 0.5, None, "c1", "campaign"),
     (HeldComment("a", 0, "t", score=0.7), 0.5, 0.3, None, "model"),
     (HeldComment("a", 0, "t", score=0.4), 0.5, 0.3, None, "site"),
-    (HeldComment("a", 0, "t", score=0.1), 0.5, 0.3, None, "unknown"),
+    (HeldComment("a", 0, "t", score=0.1), 0.5, 0.3, None, "campaign"),
     (HeldComment("a", 0, "t", score=None), 0.5, None, None, "unknown"),
     (HeldComment("a", 0, "t", score=0.1), None, None, None, "model"),
 ], ids=["recorded", "campaign", "model", "site", "below-all", "no-score", "no-thresholds"])

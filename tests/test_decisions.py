@@ -16,24 +16,10 @@ from ops.cli import main
 from worker import decisions
 from worker.feedback import FeedbackConsumer, scan_labels
 from worker.holdqueue import CACHED_FIELDS, parse_held, parse_reasons, read_held, read_held_by_id
+from console_kit import NOW, hold
 from worker.settings import Keys
 
 KEYS = Keys()
-NOW = 1_800_000_000.0
-
-
-def hold(client, n: int, *, start: int = 0, keys: Keys = KEYS) -> list[str]:
-    """``n`` held comments as the worker's commit leaves them: the held entry and the text cache."""
-    ids = []
-    for i in range(start, start + n):
-        cid = f"c{i}"
-        client.zadd(keys.held, {cid: NOW - 1000 + i})
-        client.hset(keys.text(cid), mapping={"text": f"comment number {i} about the allotment fence",
-                                             "site": "plots.example", "author": f"m{i}", "score": "0.7312",
-                                             "action": "hold", "model": "v1", "stream_id": f"{i + 1}-0",
-                                             "reasons": json.dumps([["fence", 0.4], ["allotment", -0.2]])})
-        ids.append(cid)
-    return ids
 
 
 def stream(client, key) -> list[dict[str, str]]:

@@ -350,12 +350,13 @@ def infer_rule(comment: HeldComment, *, model_hold: float | None, site_hold: flo
                campaign: str | None = None) -> str:
     """The rule that held a comment: the verdict's own ``rule`` when the worker recorded one, else inferred.
 
-    Inferred (workers that do not record the rule): a campaign named by the
-    verdict, or an active campaign whose first member is in the comment's
-    near-duplicate family, gives ``campaign``; a score at or above the site's
-    own hold threshold but below the model's gives ``site``; at or above the
-    model's gives ``model``; anything else is ``unknown`` (held below every
-    known threshold, most likely by a campaign that has ended).
+    Inferred for workers that do not record it, from the thresholds the
+    console shares with them (its config's ``worker.site_thresholds`` and the
+    registry's record of the scoring model): a campaign named by the verdict,
+    or an active campaign whose first member is in the comment's family, gives
+    ``campaign``; a score at or above the model's hold threshold ``model``; at
+    or above the site's own ``site``; held below both, only the campaign
+    policy holds a comment, so ``campaign``.  No score: ``unknown``.
     """
     if comment.rule:
         return comment.rule
@@ -367,7 +368,7 @@ def infer_rule(comment: HeldComment, *, model_hold: float | None, site_hold: flo
         return "model"
     if site_hold is not None and comment.score >= site_hold:
         return "site"
-    return "model" if model_hold is None and site_hold is None else "unknown"
+    return "model" if model_hold is None and site_hold is None else "campaign"
 
 
 def campaigns_by_family(group_of: dict[str, str], campaigns: dict[str, dict]) -> dict[str, str]:
