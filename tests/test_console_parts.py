@@ -16,7 +16,7 @@ from ops.console.app import host_name, safe_next
 from ops.console.overview import deadletter_counts, gate_summary, summarize_rates
 from ops.console.queue import (
     Families, Filters, Group, Highlighter, apply_filters, campaigns_by_family, group_label, group_rows, infer_rule,
-    parse_filters, visible,
+    parse_filters, render_body, visible,
 )
 from ops.watchview import SiteRow
 from worker.holdqueue import HeldComment
@@ -156,6 +156,20 @@ def test_hidden_and_direction_characters_are_shown_not_applied():
     assert [s.text for s in segs if s.kind == "ctl"] == ["U+202E", "U+202C", "U+200B", "U+2066", "U+2069", "U+0007"]
     assert [s.text for s in visible("a\u202eb") if s.kind == "ctl"] == ["U+202E"]
     assert "\n" in "".join(s.text for s in h.segments("line one\nline two", []))  # newlines stay
+
+
+def test_a_body_is_escaped_html_whatever_the_comment_holds():
+    h = Highlighter()
+    text = '<script>alert(1)</script> "quoted" & <a href="javascript:x">free</a>\u202e'
+    html = str(render_body(segments=h.segments(text, [("free", 0.5), ("<script>", 0.1)]), full=visible(text),
+                           reasons=[("<b>free</b>", 0.5), ('"x" onmouseover=y', -0.2)], chars=len(text)))
+    assert "<script" not in html and "<a " not in html and "<b>free" not in html and "\u202e" not in html
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html and "&#34;quoted&#34; &amp;" in html
+    assert '<mark class="w-spam" title="+0.50 toward spam">href=&#34;javascript:x&#34;&gt;free&lt;/a&gt;</mark>' in html
+    assert "&lt;b&gt;free&lt;/b&gt;" in html and "&#34;x&#34; onmouseover=y" in html
+    assert html.count("<details") == 1 and f"Show all {len(text)} characters" in html
+    expired = str(render_body(segments=None, full=None, reasons=[], chars=0))
+    assert "no longer cached" in expired
 
 
 # -- families -------------------------------------------------------------------------------

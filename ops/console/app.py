@@ -39,7 +39,7 @@ from ops.console.accounts import Account, Accounts
 from ops.console.overview import collect_overview
 from ops.console.queue import (
     EXAMPLES, PREVIEW_CHARS, REASONS_SHOWN, Families, Group, Highlighter, age, apply_filters, campaigns_by_family,
-    group_label, group_rows, infer_rule, parse_filters, utc, visible,
+    group_label, group_rows, infer_rule, parse_filters, render_body, utc, visible,
 )
 from ops.registry import Registry, RegistryError
 from worker import decisions
@@ -178,6 +178,7 @@ class Console:
         self._model_holds: dict[str, float | None] = {}
         self._macros = self.env.get_template("_comment.html").module
         self._bodies: dict[tuple, object] = {}
+        self._metas: dict[tuple, object] = {}
         self._families_lock = threading.Lock()
         self._overview: tuple[float, dict] | None = None
         self._stop = threading.Event()
@@ -399,19 +400,19 @@ class Console:
             long = text is not None and len(text) > PREVIEW_CHARS
             preview = text[:PREVIEW_CHARS] if long else text
             reasons = sorted(c.reasons, key=lambda r: -abs(r[1]))[:REASONS_SHOWN]
-            body = self._bodies[key] = self._macros.body({
-                "expired": text is None, "chars": len(text or ""),
-                "segments": self.highlighter.segments(preview, c.reasons) if preview else [],
-                "full": visible(text) if long else None,
-                "reasons": [{"token": t, "weight": w, "kind": "spam" if w > 0 else "ham"} for t, w in reasons],
-            })
-        return {
-            "id": c.id, "body": body, "score": c.score,
-            "rule": infer_rule(c, model_hold=self._model_hold(c.model), site_hold=self.site_holds.get(c.site),
-                               campaign=campaign),
-            "site": c.site, "author": c.author, "model": c.model, "campaign": c.campaign or campaign,
-            "age": age(now - c.held_at), "held_utc": utc(c.held_at),
-        }
+            body = self._bodies[key] = render_body(
+                segments=self.highlighter.segments(preview, c.reasons) if text is not None else None,
+                full=visible(text) if long else None, reasons=reasons, chars=len(text or ""))
+        rule = infer_rule(c, model_hold=self._model_hold(c.model), site_hold=self.site_holds.get(c.site),
+                          campaign=campaign)
+        meta_key = (c.id, c.score, rule, c.site, c.author)
+        meta = self._metas.get(meta_key)
+        if meta is None:
+            if len(self._metas) >= BODIES_KEPT:
+                self._metas.clear()
+            meta = self._metas[meta_key] = self._macros.meta(
+                {"score": c.score, "rule": rule, "site": c.site, "author": c.author})
+        return {"id": c.id, "body": body, "meta": meta, "age": age(now - c.held_at), "held_utc": utc(c.held_at)}
 
     def _row(self, group: Group, now: float, group_of: dict[str, str], linked: dict[str, str]) -> dict:
         members = sorted(group.members, key=lambda c: -c.held_at)

@@ -24,6 +24,7 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
+from markupsafe import Markup, escape
 
 from model.minhash import EMPTY, MinHasher, band_hashes
 from model.tokens import Tokenizer
@@ -341,6 +342,48 @@ def _shown(text: str, kind: str, weight: float = 0.0) -> list[Segment]:
 def visible(text: str) -> list[Segment]:
     """A whole text with its hidden characters shown, nothing marked (for the full view of a long comment)."""
     return _shown(text, "") if text else []
+
+
+# -- a comment's body as HTML ----------------------------------------------------------------
+
+def _segments_html(segments: Sequence[Segment], *, marks: bool) -> str:
+    out = []
+    for s in segments:
+        text = escape(s.text)
+        if s.kind == "ctl":
+            out.append(f'<span class="ctl" title="hidden control character">{text}</span>')
+        elif s.kind and marks:
+            out.append(f'<mark class="w-{s.kind}" title="{s.weight:+.2f} toward {s.kind}">{text}</mark>')
+        else:
+            out.append(str(text))
+    return "".join(out)
+
+
+def render_body(*, segments: Sequence[Segment] | None, full: Sequence[Segment] | None,
+                reasons: Sequence[tuple[str, float]], chars: int) -> Markup:
+    """A comment's text (highlighted), its full text when long, and its reasons, as escaped HTML.
+
+    Every piece of comment text goes through :func:`markupsafe.escape`, the
+    escaper Jinja2's autoescape uses; this runs once per comment and is kept,
+    so a 500-row page is not 20,000 template calls.  ``segments=None`` means
+    the text is no longer cached.
+    """
+    if segments is None:
+        html = ('<p class="text expired">The text is no longer cached (its cache entry expired); '
+                "the decision still works.</p>")
+    else:
+        html = f'<p class="text" dir="auto">{_segments_html(segments, marks=True)}'
+        if full is not None:
+            html += ('<span class="cut">…</span></p><details class="full"><summary>Show all '
+                     f'{chars:,} characters</summary><p class="text" dir="auto">'
+                     f"{_segments_html(full, marks=False)}</p></details>")
+        else:
+            html += "</p>"
+    if reasons:
+        chips = "".join(f'<li class="w-{"spam" if w > 0 else "ham"}"><bdi>{escape(t)}</bdi> <b>{w:+.2f}</b></li>'
+                        for t, w in reasons)
+        html += f'<ul class="why" aria-label="tokens that drove the score">{chips}</ul>'
+    return Markup(html)
 
 
 # -- small formatting helpers ------------------------------------------------------------
