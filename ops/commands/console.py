@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import getpass
 import json
+import signal
 import sys
 import time
 
@@ -67,10 +68,11 @@ def _accounts(args):
     return Accounts(client=client, keys=config.keys, attempts=config.console.signin_attempts)
 
 
-def read_password(args, *, stdin=None, prompt=getpass.getpass) -> str:
+def read_password(args, *, stdin=None, prompt=None) -> str:
     """The new password: one line of standard input, or typed twice at a prompt."""
     from ops.console.accounts import check_password
 
+    prompt = prompt or getpass.getpass
     if args.password_stdin:
         line = (stdin or sys.stdin).readline()
         return check_password(line.rstrip("\r\n"))
@@ -159,5 +161,15 @@ def run_serve(args) -> int:
         shown = f"[{host}]" if ":" in host else host
         print(f"console: http://{shown}:{port}/ (Ctrl-C stops it)", flush=True)
 
-    serve(console, host=host, port=port, on_ready=ready)
+    # uvicorn shuts down gracefully on SIGINT or SIGTERM (pending decisions that are due get written), then
+    # raises the signal again: either one then ends this command with status 0.
+    signal.signal(signal.SIGTERM, _stop)
+    try:
+        serve(console, host=host, port=port, on_ready=ready)
+    except KeyboardInterrupt:
+        pass
     return 0
+
+
+def _stop(signum, frame):
+    raise SystemExit(0)
