@@ -23,7 +23,9 @@ import pytest
 
 from playwright.sync_api import expect
 
-from console_kit import HOSTILE, HOSTILE_AUTHOR, HOSTILE_SITE, PWNED, SANDBOX, SITE_THRESHOLDS, hostile_comments
+from console_kit import (
+    HOSTILE, HOSTILE_AUTHOR, HOSTILE_SITE, PWNED, SANDBOX, SITE_THRESHOLDS, hostile_comments, wait_for,
+)
 from ops.bench.console import ConsoleThread, fill_queue
 from ops.config import load_config
 from ops.connection import connect
@@ -82,16 +84,6 @@ class Story:
 
     def entries(self, stream: str) -> list[dict[str, str]]:
         return [{k.decode(): v.decode() for k, v in f.items()} for _s, f in self.client.xrange(stream)]
-
-    def wait_for(self, check, what: str, timeout: float = 60.0):
-        """Poll until ``check()`` is truthy (the console's finalizer runs every quarter second)."""
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            got = check()
-            if got:
-                return got
-            time.sleep(0.1)
-        raise AssertionError(f"timed out waiting for {what}")
 
 
 @pytest.fixture(scope="module")
@@ -184,7 +176,7 @@ def test_the_keyboard_publishes_one_comment_and_the_site_is_told(story, hazel):
     page.keyboard.press("p")
     expect(page.locator("#toast-text")).to_have_text("Published 1 comment.")
     assert not rows.nth(1).is_visible()
-    decision = story.wait_for(lambda: next((e for e in story.entries(story.keys.decisions) if e["id"] == target), None),
+    decision = wait_for(lambda: next((e for e in story.entries(story.keys.decisions) if e["id"] == target), None),
                               "the decision on the decisions stream")
     assert (decision["decision"], decision["label"], decision["moderator"]) == ("publish", "ham", "mod-hazel")
     assert decision["site"] == "cycling" and decision["source"] == "console"
@@ -206,11 +198,12 @@ def test_bulk_reject_of_the_campaign_then_undo_then_for_good(story, hazel):
     assert set(ids) <= story.held() and len(story.held()) == held_before
     assert family.is_visible()
     time.sleep(UNDO_S + 1)  # past the window: an undone decision must never be written
-    written = {e["id"] for e in story.entries(story.keys.decisions)} | {f["id"] for f in story.entries(story.keys.feedback)}
+    written = ({e["id"] for e in story.entries(story.keys.decisions)}
+               | {f["id"] for f in story.entries(story.keys.feedback)})
     assert written.isdisjoint(ids)
 
     page.keyboard.press("r")  # the cursor is back on the family row
-    story.wait_for(lambda: set(ids) <= {e["id"] for e in story.entries(story.keys.decisions)},
+    wait_for(lambda: set(ids) <= {e["id"] for e in story.entries(story.keys.decisions)},
                    "the family's decisions", timeout=90)
     decided = [e for e in story.entries(story.keys.decisions) if e["id"] in set(ids)]
     assert len(decided) == len(ids) and {(e["decision"], e["moderator"]) for e in decided} == {("reject", "mod-hazel")}
@@ -232,7 +225,7 @@ def test_a_selection_is_decided_in_one_go(story, hazel):
     assert page.locator("#bulkbar").is_visible() and page.locator("#picked").inner_text().startswith("2 selected")
     page.locator("#bulkbar button[data-bulk=reject]").click()
     expect(page.locator("#toast-text")).to_have_text("Rejected 2 comments.")
-    story.wait_for(lambda: set(picked) <= {e["id"] for e in story.entries(story.keys.decisions)}, "both decisions")
+    wait_for(lambda: set(picked) <= {e["id"] for e in story.entries(story.keys.decisions)}, "both decisions")
 
 
 def test_hostile_comments_are_shown_as_text_and_run_nothing(story, hazel):
@@ -267,7 +260,7 @@ def test_the_second_moderator_sees_the_comment_is_gone(story, browser, hazel):
         other.locator(f"#rows > li[data-ids='{target}'] button[data-act=reject]").click()
         expect(other.locator("#toast-text")).to_have_text(
             "Rejected 0 comments. 1 had already been decided by someone else.")
-        story.wait_for(lambda: any(e["id"] == target for e in story.entries(story.keys.decisions)), "the decision")
+        wait_for(lambda: any(e["id"] == target for e in story.entries(story.keys.decisions)), "the decision")
         time.sleep(UNDO_S + 0.5)
         assert [(f["label"], f["moderator"]) for f in story.entries(story.keys.feedback) if f["id"] == target] == [
             ("ham", "mod-hazel")]

@@ -14,7 +14,7 @@ import time
 
 import pytest
 
-from console_kit import hold
+from console_kit import hold, wait_for
 from ops.bench.console import Browser
 from ops.cli import main
 from ops.config import load_config
@@ -85,9 +85,7 @@ def test_serve_then_a_killed_console_writes_its_pending_decisions_when_it_starts
     redis_client.zadd(KEYS.deciding, {"c0": time.time() - 1})  # its window has passed meanwhile
     proc = console_process(url, port, tmp_path)
     try:
-        deadline = time.monotonic() + 30
-        while redis_client.xlen(KEYS.decisions) == 0 and time.monotonic() < deadline:
-            time.sleep(0.05)
+        wait_for(lambda: redis_client.xlen(KEYS.decisions), "the restarted console's finalizer")
         assert [f[b"id"] for _s, f in redis_client.xrange(KEYS.decisions)] == [b"c0"]
     finally:
         proc.send_signal(signal.SIGTERM)

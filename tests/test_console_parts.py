@@ -218,7 +218,8 @@ def test_filters_from_query_parameters():
 
 
 def test_apply_filters():
-    comments = [held("a", "Free PRIZE here", site="a.example", score=0.9), held("b", "hello", site="b.example", score=0.2),
+    comments = [held("a", "Free PRIZE here", site="a.example", score=0.9),
+                held("b", "hello", site="b.example", score=0.2),
                 held("c", None, site="a.example", score=None), held("d", "prize two", site="a.example", score=0.6)]
     group_of = {"a": "family:a", "d": "family:a"}
     ids = lambda f: [c.id for c in apply_filters(comments, f, group_of)]  # noqa: E731

@@ -40,6 +40,13 @@ FAILURE_WINDOW_S = 900
 _HASHING = threading.Semaphore(1)
 
 
+# The constructor's parameters: (check, what the error says a good value is).
+_PARAMS = {
+    "cost": (lambda v: v >= 2**10 and not v & (v - 1), "a power of two >= 1024"),
+    "attempts": (lambda v: v >= 1, "an integer >= 1"),
+}
+
+
 class AccountError(SeawallError):
     """An account operation cannot be done as asked; the message says why."""
 
@@ -120,10 +127,10 @@ class Accounts:
     """
 
     def __init__(self, *, client, keys: Keys, cost: int = SCRYPT_N, attempts: int = 10):
-        if isinstance(cost, bool) or not isinstance(cost, int) or cost < 2**10 or cost & (cost - 1):
-            raise ValueError(f"Accounts: cost must be a power of two >= 1024, got {cost!r}")
-        if isinstance(attempts, bool) or not isinstance(attempts, int) or attempts < 1:
-            raise ValueError(f"Accounts: attempts must be an integer >= 1, got {attempts!r}")
+        for name, value in (("cost", cost), ("attempts", attempts)):
+            ok, what = _PARAMS[name]
+            if isinstance(value, bool) or not isinstance(value, int) or not ok(value):
+                raise ValueError(f"Accounts: {name} must be {what}, got {value!r}")
         self.client = client
         self.keys = keys
         self.cost = cost

@@ -38,10 +38,11 @@ from ops.console import sessions
 from ops.console.accounts import Account, Accounts
 from ops.console.overview import collect_overview
 from ops.console.queue import (
-    EXAMPLES, PREVIEW_CHARS, REASONS_SHOWN, Families, Group, Highlighter, age, apply_filters, campaigns_by_family,
+    EXAMPLES, PREVIEW_CHARS, REASONS_SHOWN, Families, Group, Highlighter, apply_filters, campaigns_by_family,
     group_label, group_rows, infer_rule, parse_filters, render_body, utc, visible,
 )
 from ops.registry import Registry, RegistryError
+from ops.watchview import age
 from worker import decisions
 from worker.campaigns import read_campaigns
 from worker.holdqueue import HeldComment, held_count, newest_held_at, read_held
@@ -253,6 +254,19 @@ class Console:
             return self._refuse(400, "the request body is not JSON")
         return data if isinstance(data, dict) else self._refuse(400, "send a JSON object")
 
+    async def _form_call(self, request: Request, handler) -> Response:
+        """Read a small urlencoded form (first value of each field), then run ``handler(request, form)``."""
+        body = await _read_limited(request, MAX_FORM_BYTES)
+        form = {k: v[0] for k, v in parse_qs((body or b"").decode("utf-8", "replace")).items()}
+        return await run_in_threadpool(handler, request, form)
+
+    async def _json_call(self, request: Request, handler, *args) -> Response:
+        """Read a JSON body (or refuse it), then run ``handler(request, body, *args)`` in the thread pool."""
+        body = await self._json_body(request)
+        if isinstance(body, Response):
+            return body
+        return await run_in_threadpool(handler, request, body, *args)
+
     def _api_guard(self, request: Request, *, admin: bool = False) -> Seen | JSONResponse:
         """Session, account, role, origin and CSRF checks of a state-changing API call."""
         if not same_origin(request):
@@ -282,9 +296,7 @@ class Console:
         return response
 
     async def signin(self, request: Request) -> Response:
-        body = await _read_limited(request, MAX_FORM_BYTES)
-        form = {k: v[0] for k, v in parse_qs((body or b"").decode("utf-8", "replace")).items()}
-        return await run_in_threadpool(self._signin, request, form)
+        return await self._form_call(request, self._signin)
 
     def _signin(self, request: Request, form: dict) -> Response:
         session = self._cookie_session(request)
@@ -305,9 +317,7 @@ class Console:
         return response
 
     async def signout(self, request: Request) -> Response:
-        body = await _read_limited(request, MAX_FORM_BYTES)
-        form = {k: v[0] for k, v in parse_qs((body or b"").decode("utf-8", "replace")).items()}
-        return await run_in_threadpool(self._signout, request, form)
+        return await self._form_call(request, self._signout)
 
     def _signout(self, request: Request, form: dict) -> Response:
         seen = self._seen(request)
@@ -441,10 +451,7 @@ class Console:
 
     # -- decisions --------------------------------------------------------------------
     async def decide(self, request: Request) -> Response:
-        body = await self._json_body(request)
-        if isinstance(body, Response):
-            return body
-        return await run_in_threadpool(self._decide, request, body)
+        return await self._json_call(request, self._decide)
 
     def _decide(self, request: Request, body: dict) -> Response:
         seen = self._api_guard(request)
@@ -464,10 +471,7 @@ class Console:
                              "final_at": done.final_at, "undo_s": self.settings.undo_s})
 
     async def undo(self, request: Request) -> Response:
-        body = await self._json_body(request)
-        if isinstance(body, Response):
-            return body
-        return await run_in_threadpool(self._undo, request, body)
+        return await self._json_call(request, self._undo)
 
     def _undo(self, request: Request, body: dict) -> Response:
         seen = self._api_guard(request)
@@ -530,16 +534,10 @@ class Console:
 
     # -- models (admin) ---------------------------------------------------------------
     async def promote(self, request: Request) -> Response:
-        body = await self._json_body(request)
-        if isinstance(body, Response):
-            return body
-        return await run_in_threadpool(self._switch, request, body, "promote")
+        return await self._json_call(request, self._switch, "promote")
 
     async def rollback(self, request: Request) -> Response:
-        body = await self._json_body(request)
-        if isinstance(body, Response):
-            return body
-        return await run_in_threadpool(self._switch, request, body, "rollback")
+        return await self._json_call(request, self._switch, "rollback")
 
     def _switch(self, request: Request, body: dict, kind: str) -> Response:
         seen = self._api_guard(request, admin=True)
@@ -613,8 +611,9 @@ def build_app(console: Console, *, manage_finalizer: bool = True) -> Starlette:
         Mount("/static", app=StaticFiles(directory=STATIC), name="static"),
     ]
     app = Starlette(routes=routes, lifespan=lifespan)
+    bound = console.settings.host.lower()
     allowed = frozenset(LOOPBACK_NAMES | {h.lower() for h in console.settings.allowed_hosts}
-                        | ({console.settings.host.lower()} if console.settings.host not in ("0.0.0.0", "::") else set()))
+                        | ({bound} if bound not in ("0.0.0.0", "::") else set()))
     return HostCheck(SecurityHeaders(app), allowed=allowed)
 
 

@@ -433,17 +433,6 @@ def group_label(group: Group, campaign: str | None = None) -> str:
     return f"family of {group.size} · “{example[:40]}{'…' if len(example) > 40 else ''}”"
 
 
-def age(seconds: float) -> str:
-    seconds = max(0, int(seconds))
-    if seconds < 60:
-        return f"{seconds}s"
-    if seconds < 3600:
-        return f"{seconds // 60} min"
-    if seconds < 2 * 86400:
-        return f"{seconds // 3600} h {seconds % 3600 // 60} min"
-    return f"{seconds // 86400} d"
-
-
 def utc(ts: float | None) -> str:
     if not ts:
         return ""

@@ -35,12 +35,13 @@
 
   function number(n) { return n === null || n === undefined ? "–" : Number(n).toLocaleString("en"); }
 
+  // the same format as `seawall watch` and the queue's server-side ages
   function ago(seconds) {
-    seconds = Math.max(0, Math.round(seconds));
-    if (seconds < 60) { return seconds + " s"; }
-    if (seconds < 3600) { return Math.floor(seconds / 60) + " min"; }
-    if (seconds < 172800) { return Math.floor(seconds / 3600) + " h " + Math.floor((seconds % 3600) / 60) + " min"; }
-    return Math.floor(seconds / 86400) + " d";
+    seconds = Math.max(0, Math.floor(seconds));
+    if (seconds < 120) { return seconds + "s"; }
+    if (seconds < 7200) { return Math.floor(seconds / 60) + "m"; }
+    if (seconds < 172800) { return Math.floor(seconds / 3600) + "h " + Math.floor((seconds % 3600) / 60) + "m"; }
+    return Math.floor(seconds / 86400) + "d " + Math.floor((seconds % 86400) / 3600) + "h";
   }
 
   function clock(ts) {
