@@ -269,6 +269,20 @@ def test_the_second_moderator_sees_the_comment_is_gone(story, browser, hazel):
         idris.close()
 
 
+def test_the_queue_notices_newly_held_comments_without_a_reload(story, hazel):
+    page = hazel.goto("/queue?view=list")
+    navigations = []
+    page.on("framenavigated", lambda frame: navigations.append(frame.url))
+    count = page.locator("#held-count").inner_text()
+    assert page.locator("#fresh").is_hidden()
+    model = Registry(client=story.client, keys=story.keys).load()
+    fill_queue(story.server.url, story.keys, [{"id": "x-late", "text": "a late note for the sandbox", "site": SANDBOX}],
+               model, site_thresholds=SITE_THRESHOLDS, clock=lambda: story.story_end)
+    expect(page.locator("#fresh")).to_be_visible()
+    expect(page.locator("#held-count")).not_to_have_text(count)
+    assert navigations == []
+
+
 class _Attacker(http.server.BaseHTTPRequestHandler):
     """Another site on this machine whose page tries to make a signed-in moderator's browser decide."""
 

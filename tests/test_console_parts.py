@@ -102,7 +102,7 @@ def test_an_account_locks_after_too_many_failures(fake_redis):
         assert accounts.authenticate("mod-bo", "wrong password!") is None
     assert accounts.locked("mod-bo")
     assert accounts.authenticate("mod-bo", "a long password") is None  # even the right one, for now
-    assert 0 < fake_redis.ttl(KEYS.key("console", "failures", "mod-bo")) <= 900
+    assert 0 < fake_redis.ttl(KEYS.signin_failures("mod-bo")) <= 900
 
 
 @pytest.mark.parametrize("name, password, role, match", [

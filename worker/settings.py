@@ -99,6 +99,15 @@ class Keys:
         """Hash of console accounts: name -> JSON record (role, salted scrypt hash)."""
         return self.key("console", "accounts")
 
+    def signin_failures(self, account: str) -> str:
+        """Counter of one account's failed console sign-ins (TTL: the lockout window)."""
+        return self.key("console", "failures", account)
+
+    @property
+    def session_secret(self) -> str:
+        """The key that signs console session cookies, shared by every console process."""
+        return self.key("console", "secret")
+
 
 @dataclass(frozen=True, kw_only=True)
 class WorkerSettings:

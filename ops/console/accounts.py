@@ -140,7 +140,7 @@ class Accounts:
         self._decoy = None
 
     def _failures_key(self, name: str) -> str:
-        return self.keys.key("console", "failures", name)
+        return self.keys.signin_failures(name)
 
     def _record(self, name: str) -> dict | None:
         raw = self.client.hget(self.keys.accounts, name)
@@ -243,6 +243,6 @@ class Accounts:
 
     def session_secret(self) -> bytes:
         """The key that signs session cookies, made once per deployment and shared by every console process."""
-        key = self.keys.key("console", "secret")
+        key = self.keys.session_secret
         self.client.set(key, secrets.token_bytes(32), nx=True)
         return bytes(self.client.get(key))

@@ -176,6 +176,7 @@ class Console:
         self.families = Families(tokenizer=self.highlighter.tokenizer)
         self.site_holds = {site: o["hold"] for site, o in parse_site_overrides(config.worker.site_thresholds).items()
                            if "hold" in o}
+        self._registry = Registry(client=client, keys=config.keys, clock=clock)
         self._model_holds: dict[str, float | None] = {}
         self._macros = self.env.get_template("_comment.html").module
         self._bodies: dict[tuple, object] = {}
@@ -392,7 +393,7 @@ class Console:
 
     def _model_hold(self, version: str) -> float | None:
         if version not in self._model_holds:
-            raw = self.client.hget(self.keys.key("models", "meta", version), "hold") if version else None
+            raw = self.client.hget(self._registry.meta_key(version), "hold") if version else None
             try:
                 self._model_holds[version] = float(raw) if raw else None
             except ValueError:
@@ -545,7 +546,7 @@ class Console:
             return seen
         from ops.commands.models import rescore_after_switch
 
-        registry = Registry(client=self.client, keys=self.keys, clock=self.clock)
+        registry = self._registry
         actor = seen.account.name
         try:
             if kind == "promote":
