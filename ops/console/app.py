@@ -17,6 +17,7 @@ helpers the CLI uses (:mod:`worker.holdqueue`, :mod:`worker.decisions`).
 """
 from __future__ import annotations
 
+import gc
 import json
 import logging
 import threading
@@ -185,10 +186,11 @@ class Console:
         self._overview: tuple[float, dict] | None = None
         self._stop = threading.Event()
         self._finalizer: threading.Thread | None = None
+        self.warmed = threading.Event()
 
     # -- the finalizer ------------------------------------------------------------------
     def start(self) -> None:
-        """Write decisions whose undo window is over, in a background thread."""
+        """In a background thread: prepare the newest held comments, then write decisions whose undo window is over."""
         self._stop.clear()
         self._finalizer = threading.Thread(target=self._finalize_loop, name="seawall-console-finalize", daemon=True)
         self._finalizer.start()
@@ -204,7 +206,21 @@ class Console:
         except Exception as exc:  # noqa: BLE001 - shutting down: report, never raise
             log.warning("console: could not finalize decisions at shutdown (%s)", type(exc).__name__)
 
+    def warm(self) -> None:
+        """Render the newest held comments once, so the first page after a start does not pay for every one of
+        them (later pages only render the comments held since)."""
+        try:
+            self.queue_html({"view": "list"}, account=None, csrf="")
+        except Exception as exc:  # noqa: BLE001 - only a head start: a page load does the same work
+            log.warning("console: could not prepare the hold queue (%s)", type(exc).__name__)
+        finally:
+            # What exists now (modules, the web stack, the prepared comments) lives as long as the process:
+            # keep it out of the cycle collector's full passes, which otherwise stall a page now and then.
+            gc.freeze()
+            self.warmed.set()
+
     def _finalize_loop(self) -> None:
+        self.warm()
         delay = FINALIZE_EVERY_S
         while not self._stop.wait(delay):
             try:
@@ -348,12 +364,16 @@ class Console:
         if not isinstance(seen, Seen):
             return seen
         t0 = time.perf_counter()
-        view = self.queue_view(request.query_params)
-        response = self._render("queue.html", account=seen.account, csrf=seen.session.csrf, page="queue",
-                                poll_s=self.settings.poll_s, undo_s=self.settings.undo_s, **view)
+        response = HTMLResponse(self.queue_html(request.query_params, account=seen.account, csrf=seen.session.csrf))
         # W3C Server Timing: what `seawall bench console` reads as the server-side time of the page
         response.headers["server-timing"] = f"queue;dur={(time.perf_counter() - t0) * 1000:.2f}"
         return response
+
+    def queue_html(self, params, *, account: Account | None, csrf: str) -> str:
+        """The queue page for these query parameters: read Redis, group, render."""
+        return self.env.get_template("queue.html").render(
+            account=account, csrf=csrf, page="queue", poll_s=self.settings.poll_s, undo_s=self.settings.undo_s,
+            **self.queue_view(params))
 
     def queue_view(self, params) -> dict:
         """Everything the queue template shows for these query parameters."""
