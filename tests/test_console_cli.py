@@ -90,12 +90,18 @@ def test_serve_then_a_killed_console_writes_its_pending_decisions_when_it_starts
     finally:
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(timeout=30) == 0
-    proc = console_process(url, port, tmp_path)
-    proc.send_signal(signal.SIGINT)
+    proc = console_process(url, port, tmp_path)  # undo window 1 s
+    b = Browser(port)
+    b.sign_in("ana", PASSWORD)
+    res, body = b.post_json("/api/decide", json.dumps({"ids": ["c1"], "action": "publish"}).encode())
+    assert json.loads(body)["decided"] == ["c1"]
+    proc.send_signal(signal.SIGINT)  # a clean stop inside the undo window: the decision is written first
     assert proc.wait(timeout=30) == 0
+    assert [f[b"id"] for _s, f in redis_client.xrange(KEYS.decisions)] == [b"c0", b"c1"]
+    assert redis_client.zcard(KEYS.deciding) == 0
     assert main(["console", "audit", "--json", "--redis", url]) == 0
     events = [json.loads(line)["event"] for line in capsys.readouterr().out.splitlines()]
-    assert events == ["sign_in", "decide"]
+    assert events == ["sign_in", "decide", "sign_in", "decide"]
 
 
 @pytest.mark.slow

@@ -196,15 +196,21 @@ class Console:
         self._finalizer.start()
 
     def stop(self) -> None:
+        """Stop the background thread, then wait out the undo windows still running (at most ``undo_s``) and
+        write those decisions, so that a clean stop leaves none pending."""
         self._stop.set()
         if self._finalizer is not None:
             self._finalizer.join(timeout=10)
+        deadline = time.monotonic() + self.settings.undo_s + 1.0
         try:
-            decisions.finalize_due(self.client, self.keys, now=self.clock())
-        except OSError:
-            pass
+            while True:
+                decisions.finalize_due(self.client, self.keys, now=self.clock())
+                if decisions.pending_count(self.client, self.keys) == 0 or time.monotonic() > deadline:
+                    return
+                time.sleep(FINALIZE_EVERY_S)
         except Exception as exc:  # noqa: BLE001 - shutting down: report, never raise
-            log.warning("console: could not finalize decisions at shutdown (%s)", type(exc).__name__)
+            log.warning("console: could not finalize decisions at shutdown (%s); the next console start "
+                        "writes them", type(exc).__name__)
 
     def warm(self) -> None:
         """Render the newest held comments once, so the first page after a start does not pay for every one of
