@@ -172,7 +172,6 @@ class Console:
         self.env = Environment(loader=PackageLoader("ops.console", "templates"),
                                autoescape=select_autoescape(["html"], default_for_string=True, default=True),
                                trim_blocks=True, lstrip_blocks=True)
-        self.env.globals.update(age=age, utc=utc)
         self.highlighter = Highlighter()
         self.families = Families(tokenizer=self.highlighter.tokenizer)
         self.site_holds = {site: o["hold"] for site, o in parse_site_overrides(config.worker.site_thresholds).items()
