@@ -29,7 +29,10 @@ import numpy as np
 import scipy.sparse as sp
 
 from model import artifact, network, training
-from model.calibration import DEFAULT_HOLD_FPR, DEFAULT_REJECT_FPR, DEFAULT_THRESHOLDS, Thresholds, calibrate
+from model.calibration import (DEFAULT_HOLD_FLOOR, DEFAULT_HOLD_FPR, DEFAULT_METHOD, DEFAULT_REJECT_FLOOR,
+                               DEFAULT_REJECT_FPR, DEFAULT_TARGETS, IDENTITY, METHODS, HeldOutHam,
+                               ProbabilityMap, ThresholdChoice, Thresholds, ThresholdTargets, choose_thresholds,
+                               fit_probability_map)
 from model.errors import ArtifactError, DataError
 from model.evaluation import evaluate
 from model.explain import top_contributions
@@ -115,6 +118,8 @@ PARAMS = {
     "quant_block": (1, *_int_at_least(1), "rows sharing one int8 scale and zero point (1 = per row)"),
     "shuffle": (True, lambda v: isinstance(v, bool), "a bool", "shuffle the order of examples each epoch"),
     "seed": (0, *_int_at_least(0), "seed of the initialisation, shuffling and validation split"),
+    "calibration": (DEFAULT_METHOD, lambda v: v in METHODS, f"one of {METHODS}",
+                    "probability calibration fitted on the held-out share (model.calibration)"),
 }
 
 
@@ -369,11 +374,15 @@ class EmbeddingClassifier:
         self._fitted = True
         self._invalidate()
         metrics = {}
-        self.thresholds = DEFAULT_THRESHOLDS
+        self._set_calibration(IDENTITY, None, choose_thresholds(None, DEFAULT_TARGETS))
         if validation is not None:
-            val_scores = self._proba_from_matrix(matrix[val_idx])
-            self.thresholds = calibrate(val_scores, y[val_idx])
-            metrics["validation"] = evaluate(y[val_idx], val_scores, self.thresholds)
+            val_logits = training.predict_logits(self._weights, matrix[val_idx])
+            try:
+                fitted = self._fit_calibration(val_logits, y[val_idx], DEFAULT_TARGETS, self.calibration)
+            except DataError:  # a model that ranks its own held-out data backwards keeps raw scores
+                fitted = self._fit_calibration(val_logits, y[val_idx], DEFAULT_TARGETS, "identity")
+            self._set_calibration(*fitted)
+            metrics["validation"] = evaluate(y[val_idx], self.calibration_.probability(val_logits), self.thresholds)
         self.summary_ = {
             "n_train": int(train_idx.size),
             "n_validation": int(val_idx.size),
@@ -467,7 +476,7 @@ class EmbeddingClassifier:
     def _invalidate(self) -> None:
         self._scoring = None
 
-    def _score_few(self, docs, top_k: int):
+    def _score_few(self, docs, top_k: int, spamward_from=None):
         """Plain-Python scoring for a handful of comments (linear head only).
 
         ``docs`` holds one ``(buckets, names)`` per comment: its feature
@@ -480,8 +489,11 @@ class EmbeddingClassifier:
         _, _, _, head, bucket_logit = self._scoring_tables()
         bias = float(head["b2"][0])
         l2 = self.pooling == "l2"
-        scores = []
+        calibration = self.calibration_
+        scale = calibration.contribution_scale
+        logits = []
         reasons = []
+        explain = []  # (comment, buckets, names, distinct buckets, their terms), ranked once scores are known
         for buckets, names in docs:
             counts = Counter(buckets)  # insertion order = order of first appearance
             if l2:
@@ -490,23 +502,35 @@ class EmbeddingClassifier:
             else:
                 norm = float(len(buckets))
             if not norm:
-                scores.append(bias)
+                logits.append(bias)
                 reasons.append([])
                 continue
             unique = list(counts)
             weights = map(truediv, counts.values(), repeat(norm))
             terms = list(map(mul, weights, bucket_logit[unique].tolist()))
-            scores.append(bias + sum(terms))
-            if top_k <= 0:
-                reasons.append([])
-                continue
+            logits.append(bias + sum(terms))
+            reasons.append([])
+            if top_k > 0:
+                explain.append((len(reasons) - 1, buckets, names, unique, terms))
+        if calibration.method == "identity":
+            scores = network.sigmoid(np.array(logits))
+        elif calibration.method == "isotonic":
+            scores = calibration.probability(np.array(logits))
+        else:  # the affine maps, with the batch path's arithmetic: sigmoid(slope * z + intercept)
+            shift = calibration.calibrated_intercept
+            scores = network.sigmoid(np.array([z * scale + shift for z in logits]))
+        single = isinstance(spamward_from, (int, float))
+        for i, buckets, names, unique, terms in explain:
             # Largest magnitude first; a stable sort keeps ties in the order the
             # tokens appear.  Buckets without a row contribute 0 and are left out.
             magnitude = list(map(abs, terms))
+            if spamward_from is not None and scores[i] >= (spamward_from if single else spamward_from[i]):
+                lift = max(magnitude) + 1.0  # spam-ward tokens first, then the rest by magnitude
+                magnitude = [m + lift if t > 0 else m for m, t in zip(magnitude, terms)]
             ranked = sorted(range(len(terms)), key=magnitude.__getitem__, reverse=True)[:top_k]
             at = buckets.index
-            reasons.append([(names[at(unique[j])], terms[j]) for j in ranked if terms[j]])
-        return network.sigmoid(np.array(scores)), reasons
+            reasons[i] = [(names[at(unique[j])], terms[j] * scale) for j in ranked if terms[j]]
+        return scores, reasons
 
     def _few_from_features(self, features: Features):
         """Per-comment ``(buckets, names)`` of a small :class:`Features` batch."""
@@ -555,28 +579,30 @@ class EmbeddingClassifier:
             contrib = bag.weight * np.einsum("ij,ij->i", table[rows], g[bag.doc])
         return logits.astype(np.float64), contrib
 
-    def _proba_from_matrix(self, matrix: sp.csr_matrix) -> np.ndarray:
-        return network.sigmoid(training.predict_logits(self._weights, matrix))
-
-    def score_many(self, texts: Iterable[str], *, top_k: int = 5) -> tuple[np.ndarray, list[list[tuple[str, float]]]]:
-        """Spam probabilities and explanations in one pass (the worker's hot path).
+    def score_many(self, texts: Iterable[str], *, top_k: int = 5,
+                   spamward_from=None) -> tuple[np.ndarray, list[list[tuple[str, float]]]]:
+        """Calibrated spam probabilities and explanations in one pass (the worker's hot path).
 
         Parameters
         ----------
         texts : iterable of str.
         top_k : tokens per comment in the explanation (0 = none).
+        spamward_from : ``None``, a probability, or one per text: a comment
+            whose score is at or above it (one that will be held or rejected)
+            lists its spam-ward tokens first, strongest first, then the others.
 
         Returns
         -------
-        scores : np.ndarray (n,) of float64 in [0, 1].
+        scores : np.ndarray (n,) of float64 in [0, 1], calibrated (see :attr:`calibration_`).
         reasons : per comment, up to ``top_k`` ``(token, contribution)`` pairs,
-            largest magnitude first; contribution > 0 pushes toward spam.
+            largest magnitude first; contribution > 0 pushes toward spam, in
+            calibrated log-odds (raw log-odds times the calibration's slope).
         """
         self._require_fitted("score")
         texts = self._texts(texts, "score")
         if len(texts) <= FEW and self._scoring_tables()[2] is not None:
-            return self._score_few([self._encoder.one(t) for t in texts], top_k)
-        return self._score(self._features(texts), top_k)
+            return self._score_few([self._encoder.one(t) for t in texts], top_k, spamward_from)
+        return self._score(self._features(texts), top_k, spamward_from)
 
     def score_features(self, feature_lists: list[list[str]], *, top_k: int = 5):
         """:meth:`score_many` for comments already cut into feature tokens.
@@ -587,18 +613,22 @@ class EmbeddingClassifier:
         self._require_fitted("score")
         return self._score(self._encoder.tokens(feature_lists), top_k)
 
-    def _score(self, features: Features, top_k: int):
+    def _score(self, features: Features, top_k: int, spamward_from=None):
         if features.n <= FEW and self._scoring_tables()[2] is not None:
-            return self._score_few(self._few_from_features(features), top_k)
+            return self._score_few(self._few_from_features(features), top_k, spamward_from)
         bag = self._bag(features)
         logits, contrib = self._logits_and_contributions(bag, top_k > 0)
-        scores = network.sigmoid(logits)
+        scores = self.calibration_.probability(logits)
         if top_k <= 0:
             return scores, [[] for _ in range(bag.n)]
-        return scores, top_contributions(bag.doc, contrib, bag.first, bag.names, bag.n, top_k)
+        scale = self.calibration_.contribution_scale
+        if scale != 1.0:
+            contrib = contrib * scale
+        spamward = None if spamward_from is None else scores >= np.asarray(spamward_from, dtype=np.float64)
+        return scores, top_contributions(bag.doc, contrib, bag.first, bag.names, bag.n, top_k, spamward=spamward)
 
     def logits_many(self, texts: Iterable[str]) -> np.ndarray:
-        """Log-odds of spam per text (the sigmoid's input), shape (n,)."""
+        """The network's raw log-odds of spam per text, before calibration, shape (n,)."""
         self._require_fitted("score")
         bag = self._bag(self._features(self._texts(texts, "score")))
         return self._logits_and_contributions(bag, False)[0]
@@ -615,14 +645,53 @@ class EmbeddingClassifier:
         """The ``top_k`` tokens with the largest signed contributions (positive = toward spam)."""
         return self.score_many([text], top_k=top_k)[1][0]
 
-    def calibrate(self, texts, labels, *, reject_fpr: float = DEFAULT_REJECT_FPR, hold_fpr: float = DEFAULT_HOLD_FPR) -> Thresholds:
-        """Set :attr:`thresholds` from held-out labelled texts; returns them."""
+    def calibrate(self, texts, labels, *, reject_fpr: float = DEFAULT_REJECT_FPR, hold_fpr: float = DEFAULT_HOLD_FPR,
+                  hold_floor: float = DEFAULT_HOLD_FLOOR, reject_floor: float = DEFAULT_REJECT_FLOOR,
+                  method: str | None = None) -> Thresholds:
+        """Refit the probability calibration and the thresholds on held-out labelled texts.
+
+        Parameters
+        ----------
+        texts, labels : data the model did not train on, with both classes.
+        reject_fpr, hold_fpr : false-positive-rate targets (share of this ham).
+        hold_floor, reject_floor : each threshold is at least its floor.
+        method : the calibration (default: the ``calibration`` parameter).
+
+        Returns
+        -------
+        Thresholds
+            Also set as :attr:`thresholds`; :attr:`calibration_`,
+            :attr:`held_out_ham_` and :attr:`threshold_choice_` change with them.
+
+        Raises
+        ------
+        DataError
+            When the data lack a class, or the model ranks their spam below their ham.
+        """
         self._require_fitted("calibrate")
         texts = self._texts(texts, "calibrate")
         y = self._labels(labels, len(texts), "calibrate")
-        self.thresholds = calibrate(self.predict_proba_many(texts), y, reject_fpr=reject_fpr, hold_fpr=hold_fpr)
-        self._manifest = None
+        targets = ThresholdTargets(hold_fpr=hold_fpr, reject_fpr=reject_fpr, hold_floor=hold_floor,
+                                   reject_floor=reject_floor)
+        self._set_calibration(*self._fit_calibration(self.logits_many(texts), y, targets, method or self.calibration))
         return self.thresholds
+
+    @staticmethod
+    def _fit_calibration(logits: np.ndarray, y: np.ndarray, targets: ThresholdTargets, method: str):
+        calibration = fit_probability_map(logits, y, method)
+        ham = HeldOutHam.from_scores(calibration.probability(logits)[y == 0])
+        return calibration, ham, choose_thresholds(ham, targets)
+
+    def _set_calibration(self, calibration: ProbabilityMap, ham: HeldOutHam | None, choice: ThresholdChoice) -> None:
+        self.calibration_ = calibration
+        self.held_out_ham_ = ham
+        self.threshold_choice_ = choice
+        self.thresholds = choice.thresholds
+
+    def threshold_choice(self, targets: ThresholdTargets = DEFAULT_TARGETS) -> ThresholdChoice:
+        """The thresholds these targets and floors give on the model's held-out ham, with how each was set."""
+        self._require_fitted("thresholds")
+        return choose_thresholds(self.held_out_ham_, targets, stored=self.thresholds)
 
     # --- artifact -------------------------------------------------------------
 
@@ -653,6 +722,10 @@ class EmbeddingClassifier:
             "dim": self.dim_,
             "quantization": {"scheme": "affine-int8", "block": self.quant_block},
             "thresholds": self.thresholds.to_dict(),
+            "calibration": {
+                "probability": self.calibration_.to_dict(),
+                "held_out_ham": None if self.held_out_ham_ is None else self.held_out_ham_.to_dict(),
+            },
             "training": self.summary_,
             "metrics": self.metrics_,
         }
@@ -689,7 +762,13 @@ class EmbeddingClassifier:
             head = {k[len("head_"):]: v.astype(np.float32) for k, v in arrays.items() if k.startswith("head_")}
             if values.shape != (rows.size, clf.dim_) or (rows.size and (rows[-1] >= clf.buckets or rows[0] < 0)):
                 raise ArtifactError("load model: stored rows do not match the manifest; the file is corrupt")
-            clf.thresholds = Thresholds.from_dict(manifest["thresholds"])
+            thresholds = Thresholds.from_dict(manifest["thresholds"])
+            # A file written before calibration was stored scores with the raw sigmoid (identity).
+            stored = manifest.get("calibration") or {}
+            calibration = ProbabilityMap.from_dict(stored["probability"]) if "probability" in stored else IDENTITY
+            ham = HeldOutHam.from_dict(stored["held_out_ham"]) if stored.get("held_out_ham") else None
+            clf._set_calibration(calibration, ham, choose_thresholds(ham, DEFAULT_TARGETS, stored=thresholds))
+            clf.thresholds = thresholds
         except (KeyError, TypeError, ValueError) as exc:
             if isinstance(exc, ArtifactError):
                 raise

@@ -21,6 +21,8 @@ def top_contributions(
     tokens: list[str],
     n_docs: int,
     top_k: int,
+    *,
+    spamward: np.ndarray | None = None,
 ) -> list[list[tuple[str, float]]]:
     """The ``top_k`` largest contributions by magnitude, per comment.
 
@@ -34,6 +36,8 @@ def top_contributions(
     n_docs : number of comments.
     top_k : how many per comment; pairs contributing exactly 0 (unknown
         buckets) are left out.
+    spamward : optional bool per comment: those comments list their positive
+        (spam-ward) contributions first, largest first, then the others.
 
     Returns
     -------
@@ -52,6 +56,9 @@ def top_contributions(
         return [[] for _ in range(n_docs)]
     doc, contribution, first = doc[keep], contribution[keep], first[keep]
     magnitude = np.abs(contribution)
+    if spamward is not None:
+        lift = (np.asarray(spamward, dtype=bool)[doc] & (contribution > 0)) * (magnitude.max() + 1.0)
+        magnitude = magnitude + lift  # the ranking key: spam-ward pairs of those comments above every other
     # Only pairs at or above their comment's top_k-th magnitude can be chosen;
     # the exact ranking then runs on those few.
     candidates = _at_least_kth(doc, magnitude, n_docs, top_k)

@@ -461,17 +461,18 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
     registry = Registry(client=client, keys=config.keys, clock=clock)
     model = registry.load(version)
     result.thresholds[version] = {"hold": model.thresholds.hold, "reject": model.thresholds.reject}
-    gate = report.get("gate", {}).get("sets", {}).get("holdout+canary", {})
+    gate = report.get("gate", {}).get("sets", {}).get("holdout", {})
     progress(f"{stamp(clock.now)} nightly retrain on {labels.get('new', 0)} new labels "
              f"(+{labels.get('replay_original', 0)} replayed): holdout ROC-AUC "
              f"{gate.get('active', {}).get('roc_auc', float('nan')):.3f} -> "
-             f"{gate.get('candidate', {}).get('roc_auc', float('nan')):.3f}; promoted {version}")
+             f"{gate.get(report.get('chosen'), {}).get('roc_auc', float('nan')):.3f}; promoted {version} "
+             f"({report.get('chosen', '').replace('_', ' ')})")
     if not rescore:
         progress(f"{stamp(clock.now)} the hold queue is left for you ({client.zcard(config.keys.held)} held): "
                  "no re-score, no more simulated review")
     else:
         result.rescore = rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
-                                      site_overrides=config.worker.site_thresholds,
+                                      settings=config.worker,
                                       verdicts_maxlen=config.worker.verdicts_maxlen)
         progress(f"{stamp(clock.now)} re-scored the hold queue: {result.rescore.get('held', 0)} held, "
                  f"{result.rescore.get('released', 0)} released by the new model")

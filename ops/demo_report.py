@@ -296,10 +296,11 @@ def story_items(result: DemoResult) -> list[str]:
                  f"{sum(result.labels_sent.values())} labels in all.")
     if result.retrain_ts:
         report = result.retrain_report
-        gate = report.get("gate", {}).get("sets", {}).get("holdout+canary", {})
+        gate = report.get("gate", {}).get("sets", {}).get("holdout", {})
         auc = ""
-        if gate:
-            auc = (f" (holdout ROC-AUC {gate['active']['roc_auc']:.3f} &rarr; {gate['candidate']['roc_auc']:.3f})")
+        if report.get("chosen") in gate:
+            auc = (f" (holdout ROC-AUC {gate['active']['roc_auc']:.3f} &rarr; {gate[report['chosen']]['roc_auc']:.3f}, "
+                   f"{html.escape(report['chosen'].replace('_', ' '))})")
         items.append(f"{_clock(result.retrain_ts)} the nightly retrain runs through the gate: "
                      f"{html.escape(str(report.get('decision', '?')))}{auc}; the workers hot-reload "
                      f"<code>{html.escape(result.retrained_model or '-')}</code> and the hold queue is re-scored.")

@@ -46,7 +46,7 @@ def retrain_job(config_file: str | None = None) -> dict:
     client = connect(config)
     report = retrain(client, config.keys, config.retrain,
                      on_promoted=lambda version: enqueue_rescore(client, config, version))
-    return {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "reasons", "seconds")}
+    return {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "chosen", "reasons", "seconds")}
 
 
 def rescore_job(version: str | None = None, config_file: str | None = None) -> dict:
@@ -62,5 +62,5 @@ def rescore_job(version: str | None = None, config_file: str | None = None) -> d
     if version is not None and active != version:
         return {"skipped": f"model {version} is no longer active (active is {active})"}
     return rescore_held(client, config.keys, registry.load(active), batch=config.retrain.rescore_batch,
-                        site_overrides=config.worker.site_thresholds,
+                        settings=config.worker,
                         verdicts_maxlen=config.worker.verdicts_maxlen)

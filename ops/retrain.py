@@ -1,4 +1,4 @@
-"""The gated retrain: labels in, a candidate out, promoted only if it is not worse.
+"""The gated retrain: labels in, two candidates out, the better one promoted only if it is not worse.
 
 One retrain, in order:
 
@@ -28,21 +28,38 @@ One retrain, in order:
       several honest moderators correct is still learned;
 4. holdout: a stable share of ids (by SHA-1 of the id, so an id is always on
    the same side) is never trained on; with 3b every label left is either
-   from an untrimmed source or backed by one, so all of them judge;
-5. candidate: a copy of the active model, warm-started with ``learn_many``
-   on the new labels + a replay sample of older labels + the replay sample of
-   the original training data stored in the registry (at most
-   ``replay_ratio`` replay rows per new label), for ``epochs`` passes;
-   thresholds recalibrated on holdout + canary;
-6. gate: candidate and active are scored on the same holdout (new holdout
-   labels + the registry's canary set) and, separately, on the canary set
-   alone (trusted data a label flood cannot touch).  Promote only if on each
-   set ROC-AUC and recall at ``gate_fpr`` are not worse than the active
-   model's by more than the tolerances.  The thresholds do not enter the gate:
-   both figures are threshold-free, so calibrating on the same rows does not
-   bias it;
-7. promote atomically (only if the active model is still the parent), store
-   a JSON report, emit a ``retrain`` event (the registry emits ``promote``).
+   from an untrimmed source or backed by one, so all of them judge.  The
+   older labels pass the same guard (as one batch), so what an earlier
+   retrain set aside does not come back through the replay or the scratch fit;
+5. two candidates:
+
+   a. the warm start: a copy of the active model trained further with
+      ``learn_many`` on the new labels + a replay sample of older labels + the
+      replay sample of the original training data stored in the registry (at
+      most ``replay_ratio`` replay rows per new label), for ``epochs`` passes;
+   b. the scratch fit (``scratch``): a new model with the active model's
+      parameters (``get_params()``), fitted on every guarded label outside the
+      holdout plus the whole stored replay sample;
+
+   each recalibrates its thresholds on holdout + canary;
+6. gate: every candidate and the active model are scored on the same rows of
+   the recent holdout and, separately, of the canary set (trusted data a label
+   flood cannot touch).  A candidate is *not worse* on a set when the one-sided
+   ``gate_confidence`` lower confidence bound of (candidate - active) is at
+   least ``-auc_tolerance`` for ROC-AUC (DeLong's test for two correlated ROC
+   curves) and at least ``-recall_tolerance`` for recall at ``gate_fpr`` (a
+   stratified paired bootstrap); see :mod:`model.comparison`.  A candidate must
+   be not worse on both sets.  If both are, the scratch fit is promoted only
+   when the holdout shows it better than the warm start (its DeLong lower
+   bound above 0), else the warm start, the smaller change.  The thresholds do
+   not enter the gate: both figures are threshold-free, so calibrating on the
+   same rows does not bias it.  When the canary set is part of the first
+   model's training data (``models push --replay`` with the training data),
+   the active model has seen its rows and the comparison there favours it and
+   the warm start; it can refuse a good scratch fit, never pass a worse one;
+7. promote the chosen candidate atomically (only if the active model is still
+   the parent), store a JSON report with both candidates' figures, emit a
+   ``retrain`` event (the registry emits ``promote``).
 """
 from __future__ import annotations
 
@@ -60,6 +77,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from model.errors import DataError, SeawallError
+from model.comparison import bootstrap_recall_difference, delong_difference
 from model.evaluation import evaluate, recall_at_fpr
 from model.minhash import MinHasher, band_hashes, exact_jaccard
 from ops.registry import Registry, load_model
@@ -250,6 +268,31 @@ def corroborate(rows: list[LabelRow], witnesses: list[LabelRow], suspects: set[s
     return [r for r in rows if r.id not in set_aside], counts  # ids are unique: the latest label of an id won
 
 
+def guard_labels(rows: list[LabelRow], entries, settings: RetrainSettings,
+                 rng: random.Random) -> tuple[list[LabelRow], dict]:
+    """The poisoning guard over one batch of labels: the cap, then corroboration (pure).
+
+    ``entries`` are the batch's raw label records (witnesses include labels a
+    later one of the same id replaced).  Returns the kept rows and, per
+    source, ``given`` and ``kept``; a source the cap trimmed also has
+    ``over_cap``, ``set_aside`` and ``contradicted``.
+    """
+    capped, by_source = cap_moderators(rows, settings.max_moderator_share, rng)
+    dropped = {m: c["given"] - c["kept"] for m, c in by_source.items() if c["given"] > c["kept"]}
+    if not dropped:
+        return capped, by_source
+    # A source the cap had to trim is suspect: what it kept trains and judges only
+    # where another moderator backs it (see the module docstring, step 3b).
+    witnesses = label_rows([(sid, rec) for sid, rec in entries
+                            if (rec.get("moderator", "") or UNATTRIBUTED) not in dropped])
+    kept, guard = corroborate(capped, witnesses, set(dropped), similarity=settings.corroboration_similarity)
+    for m, n in dropped.items():
+        aside = guard[m]["set_aside"]
+        by_source[m].update(over_cap=n, set_aside=aside, contradicted=guard[m]["contradicted"],
+                            kept=by_source[m]["kept"] - aside)
+    return kept, by_source
+
+
 def replay_sizes(n_new: int, n_older: int, n_original: int, settings: RetrainSettings) -> tuple[int, int]:
     """How many older labels and original rows to replay beside ``n_new`` new labels (pure).
 
@@ -274,26 +317,89 @@ def ranking_figures(labels, scores, fpr: float) -> dict:
     return out
 
 
-def gate_decision(sets: dict, *, auc_tolerance: float, recall_tolerance: float) -> tuple[bool, list[str]]:
-    """Promote only if on every evaluated set the candidate is not worse beyond the tolerances (pure)."""
-    reasons = []
-    ok = True
-    for name, pair in sets.items():
-        a, c = pair["active"], pair["candidate"]
-        d_auc = c["roc_auc"] - a["roc_auc"]
-        d_rec = c["recall_at_gate_fpr"] - a["recall_at_gate_fpr"]
-        if d_auc < -auc_tolerance:
-            ok = False
-            reasons.append(f"{name}: ROC-AUC {c['roc_auc']:.4f} is {-d_auc:.4f} below the active model's "
-                           f"{a['roc_auc']:.4f} (tolerance {auc_tolerance})")
-        if d_rec < -recall_tolerance:
-            ok = False
-            reasons.append(f"{name}: recall at the gate FPR {c['recall_at_gate_fpr']:.4f} is {-d_rec:.4f} below "
-                           f"the active model's {a['recall_at_gate_fpr']:.4f} (tolerance {recall_tolerance})")
-        if d_auc >= -auc_tolerance and d_rec >= -recall_tolerance:
-            reasons.append(f"{name}: ROC-AUC {a['roc_auc']:.4f} -> {c['roc_auc']:.4f}, recall at the gate FPR "
-                           f"{a['recall_at_gate_fpr']:.4f} -> {c['recall_at_gate_fpr']:.4f}: within tolerance")
-    return ok, reasons
+#: The two candidates, in the order the report lists them (a tie in the choice goes to the first).
+CANDIDATES = ("warm_start", "scratch")
+_NAMES = {"warm_start": "the warm start", "scratch": "the scratch fit"}
+
+
+def judgeable(labels) -> bool:
+    """Whether a set can be compared on: the paired tests need two spam and two ham rows at least (pure)."""
+    spam = sum(labels)
+    return min(spam, len(labels) - spam) >= 2
+
+
+def gate_rule(settings: RetrainSettings) -> str:
+    """What "not worse" means, in one sentence for the report (pure)."""
+    return (f"a candidate is not worse than the active model on a set when the one-sided "
+            f"{settings.gate_confidence:.0%} lower confidence bound of (candidate - active) is >= "
+            f"-{settings.auc_tolerance:g} for ROC-AUC (DeLong's paired test) and >= -{settings.recall_tolerance:g} "
+            f"for recall at {settings.gate_fpr:g} FPR (stratified paired bootstrap, {settings.gate_rounds} rounds); "
+            "it must be so on the recent holdout and on the canary set")
+
+
+def compare_to_active(labels, active_scores, candidate_scores, settings: RetrainSettings) -> dict:
+    """Paired comparison of one candidate with the active model on one set of rows (pure)."""
+    auc = delong_difference(labels, candidate_scores, active_scores, confidence=settings.gate_confidence)
+    recall = bootstrap_recall_difference(labels, candidate_scores, active_scores, fpr=settings.gate_fpr,
+                                         rounds=settings.gate_rounds, confidence=settings.gate_confidence,
+                                         seed=settings.seed)
+    return {"roc_auc": auc.to_dict(), "recall_at_gate_fpr": recall.to_dict(),
+            "not_worse": auc.not_worse(settings.auc_tolerance) and recall.not_worse(settings.recall_tolerance)}
+
+
+def judge_set(name: str, set_name: str, comparison: dict, settings: RetrainSettings) -> str:
+    """One line saying how a candidate compares with the active model on one set, and why (pure)."""
+    auc, rec = comparison["roc_auc"], comparison["recall_at_gate_fpr"]
+    figures = (f"ROC-AUC {auc['reference']:.4f} -> {auc['candidate']:.4f} ({auc['difference']:+.4f}, lower bound "
+               f"{auc['lower']:+.4f}), recall at {settings.gate_fpr:g} FPR {rec['reference']:.4f} -> "
+               f"{rec['candidate']:.4f} ({rec['difference']:+.4f}, lower bound {rec['lower']:+.4f})")
+    if comparison["not_worse"]:
+        return f"{set_name}: {_NAMES[name]} is not worse than the active model: {figures}"
+    failed = []
+    if auc["lower"] < -settings.auc_tolerance - 1e-12:
+        failed.append(f"ROC-AUC bound below -{settings.auc_tolerance:g} (retrain.auc_tolerance)")
+    if rec["lower"] < -settings.recall_tolerance - 1e-12:
+        failed.append(f"recall bound below -{settings.recall_tolerance:g} (retrain.recall_tolerance)")
+    return (f"{set_name}: {_NAMES[name]} may be below the active model beyond the tolerance "
+            f"({'; '.join(failed)}): {figures}")
+
+
+def choose_candidate(candidates: dict, scratch_vs_warm: dict | None) -> tuple[str | None, str]:
+    """The candidate to promote and why (pure).
+
+    ``candidates`` maps a name of :data:`CANDIDATES` to its gate entry
+    (``{"not_worse": bool, ...}``, or ``{"not_built": why}``);
+    ``scratch_vs_warm`` is the paired ROC-AUC comparison (a
+    :class:`model.comparison.PairedDifference` dict) of the scratch fit with
+    the warm start on the recent holdout.  Only candidates not worse than the
+    active model on every judged set are eligible.  When both are, the
+    scratch fit wins only if the holdout shows it better than the warm start
+    (its lower confidence bound above 0); otherwise the warm start, the
+    smaller change, is promoted.  The canary set does not decide between
+    them: the active model, and so the warm start, has usually seen its rows.
+    """
+    built = [n for n in CANDIDATES if n in candidates and "not_built" not in candidates[n]]
+    eligible = [n for n in built if candidates[n].get("not_worse")]
+    if not built:
+        return None, "refused: no candidate could be built"
+    if not eligible:
+        return None, ("refused: " + " and ".join(_NAMES[n] for n in built)
+                      + (" may be" if len(built) == 1 else " may both be")
+                      + " below the active model beyond the tolerance")
+    if len(eligible) == 1:
+        (best,) = eligible
+        others = [n for n in CANDIDATES if n in candidates and n != best]
+        why = f"chose {_NAMES[best]}, the only candidate not worse than the active model"
+        return best, why + "".join(
+            f"; {_NAMES[n]} " + ("could not be built" if n not in built else "may be below it") for n in others)
+    d = scratch_vs_warm
+    figures = (f"holdout ROC-AUC {d['candidate']:.4f} against {d['reference']:.4f} "
+               f"({d['difference']:+.4f}, lower bound {d['lower']:+.4f})")
+    if d["lower"] > 0:
+        return "scratch", ("chose the scratch fit: both candidates are not worse, and it is better than the warm "
+                           f"start: {figures}")
+    return "warm_start", ("chose the warm start: both candidates are not worse, and the holdout does not show "
+                          f"the scratch fit better, so the smaller change wins: {figures}")
 
 
 # -- the lock -------------------------------------------------------------------------
@@ -332,7 +438,7 @@ def store_report(client, keys: Keys, report: dict, *, kept: int, clock=time.time
     pipe = pipeline if pipeline is not None else client.pipeline(transaction=True)
     pipe.lpush(reports_key(keys), json.dumps(report, sort_keys=True))
     pipe.ltrim(reports_key(keys), 0, kept - 1)
-    summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "reasons", "error")
+    summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "chosen", "reasons", "error")
                if k in report}
     summary["labels_new"] = report.get("labels", {}).get("new", 0)
     pipe.xadd(keys.events, {"type": "retrain", "ts": f"{clock():.3f}",
@@ -406,42 +512,43 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
     labels["cursor_to"] = new_cursor
 
     rng = random.Random(settings.seed)
-    capped, by_source = cap_moderators(new_rows, settings.max_moderator_share, rng)
+    capped, by_source = guard_labels(new_rows, new_entries, settings, rng)
     labels["moderators"] = by_source
-    labels["kept_after_cap"] = len(capped)
-    dropped = {m: c["given"] - c["kept"] for m, c in by_source.items() if c["given"] > c["kept"]}
-    # A source the cap had to trim is suspect: what it kept trains and judges only
-    # where another moderator backs it (see the module docstring, step 3b).
-    trimmed = set(dropped)
-    if trimmed:
-        witnesses = label_rows([(sid, rec) for sid, rec in new_entries
-                                if (rec.get("moderator", "") or UNATTRIBUTED) not in trimmed])
-        capped, guard = corroborate(capped, witnesses, trimmed, similarity=settings.corroboration_similarity)
-        for m in sorted(trimmed):
-            src = by_source[m]
-            aside, contradicted = guard[m]["set_aside"], guard[m]["contradicted"]
-            src.update(over_cap=dropped[m], set_aside=aside, contradicted=contradicted,
-                       kept=src["kept"] - aside)
-            report["reasons"].append(
-                f"poisoning guard: {m} supplied {src['given']} of {len(new_rows)} new labels "
-                f"(cap {settings.max_moderator_share:.0%}, retrain.max_moderator_share): dropped {dropped[m]} "
-                f"over the cap, set aside {aside} that no other moderator backed ({contradicted} of them "
-                f"contradicted another moderator's label of the same or a near-identical comment, "
-                f"{aside - contradicted} had no such label; the active model's agreement does not count), "
-                f"kept {src['kept']}")
-    labels["set_aside"] = sum(by_source[m].get("set_aside", 0) for m in trimmed)
+    labels["kept_after_cap"] = len(new_rows) - sum(c.get("over_cap", 0) for c in by_source.values())
+    trimmed = sorted(m for m, c in by_source.items() if "over_cap" in c)
+    for m in trimmed:
+        src = by_source[m]
+        aside, contradicted = src["set_aside"], src["contradicted"]
+        report["reasons"].append(
+            f"poisoning guard: {m} supplied {src['given']} of {len(new_rows)} new labels "
+            f"(cap {settings.max_moderator_share:.0%}, retrain.max_moderator_share): dropped {src['over_cap']} "
+            f"over the cap, set aside {aside} that no other moderator backed ({contradicted} of them "
+            f"contradicted another moderator's label of the same or a near-identical comment, "
+            f"{aside - contradicted} had no such label; the active model's agreement does not count), "
+            f"kept {src['kept']}")
+    labels["set_aside"] = sum(by_source[m]["set_aside"] for m in trimmed)
     labels["kept_after_guard"] = len(capped)
+    # Older labels were judged in their own retrain, but what the guard set aside then is still in the
+    # store; the same guard over all of them keeps it out of the replay and out of the scratch fit.
+    older_kept, older_sources = guard_labels(old_rows, old_entries, settings, random.Random(f"older-{settings.seed}"))
+    labels["older_kept"] = len(older_kept)
+    if len(older_kept) < len(old_rows):
+        report["reasons"].append(
+            f"poisoning guard on the older labels: {len(old_rows) - len(older_kept)} of {len(old_rows)} neither "
+            "replay nor train the scratch fit (" + ", ".join(
+                f"{m}: {c['over_cap']} over the cap, {c['set_aside']} set aside"
+                for m, c in sorted(older_sources.items()) if "over_cap" in c) + ")")
 
     holdout = [r for r in capped if in_holdout(r.id, settings.holdout_share)]
     train_new = [r for r in capped if not in_holdout(r.id, settings.holdout_share)]
-    older_pool = [r for r in old_rows if not in_holdout(r.id, settings.holdout_share)]
+    older_pool = [r for r in older_kept if not in_holdout(r.id, settings.holdout_share)]
     original = registry.replay()
     n_old, n_orig = replay_sizes(len(train_new), len(older_pool), len(original), settings)
     replay_old = rng.sample(older_pool, n_old)
     replay_orig = rng.sample(original, n_orig)
     canary = registry.canary()
-    labels.update({"holdout": len(holdout), "trained_new": len(train_new), "replay_labels": len(replay_old),
-                   "replay_original": len(replay_orig), "canary": len(canary)})
+    labels.update({"holdout": len(holdout), "trained_new": len(train_new), "older_trainable": len(older_pool),
+                   "replay_labels": len(replay_old), "replay_original": len(replay_orig), "canary": len(canary)})
 
     train = [(r.text, r.y) for r in train_new + replay_old] + list(replay_orig)
     rng.shuffle(train)
@@ -450,56 +557,115 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
         return
 
     # Every label left is from an untrimmed source or backed by one (step 3b), so all judge.
-    judged = holdout
-    labels["holdout_judging"] = len(judged)
-    gate_rows = [(r.text, r.y) for r in judged] + list(canary)
-    gate_y = [y for _, y in gate_rows]
-    if len(gate_rows) < settings.min_holdout or len(set(gate_y)) < 2:
+    labels["holdout_judging"] = len(holdout)
+    holdout_y = [r.y for r in holdout]
+    if len(holdout) < settings.min_holdout or not judgeable(holdout_y):
         report["decision"] = "refused"
-        report["reasons"].append(f"holdout + canary has {len(gate_rows)} rows ({sum(gate_y)} spam); the gate needs "
-                                 f">= retrain.min_holdout={settings.min_holdout} with both classes; "
-                                 "push a canary set (`seawall models push ... --replay`) or wait for more labels")
+        report["reasons"].append(
+            f"the recent holdout has {len(holdout)} rows ({sum(holdout_y)} spam); the gate needs >= "
+            f"retrain.min_holdout={settings.min_holdout} with at least two of each class; the labels stay new "
+            "for the next retrain, or raise retrain.holdout_share")
         return
 
-    candidate = load_model(active_bytes)
-    t_fit = time.perf_counter()
-    candidate.learn_many([t for t, _ in train], [y for _, y in train], epochs=settings.epochs or None)
-    report["train_seconds"] = round(time.perf_counter() - t_fit, 3)
-    try:
-        thresholds = candidate.calibrate([t for t, _ in gate_rows], gate_y,
-                                         reject_fpr=settings.reject_fpr, hold_fpr=settings.hold_fpr)
-        report["thresholds"] = {"hold": float(thresholds.hold), "reject": float(thresholds.reject)}
-    except DataError as exc:
-        report["reasons"].append(f"thresholds kept from the active model: {exc}")
     active = load_model(active_bytes)
+    models, entries = {}, {}
+    models["warm_start"], entries["warm_start"] = _warm_start(active_bytes, train, settings)
+    if settings.scratch and not judgeable([y for _, y in canary]):
+        # The holdout only shows recent comments; what a new model forgot of older ones only the
+        # canary set can show (a scratch fit on a few recent labels looked perfect on the holdout).
+        entries["scratch"] = {"not_built": "no canary set with both classes to show what it forgot of older "
+                                           "comments; push one with `seawall models push ... --replay` or --canary"}
+    elif settings.scratch:
+        scratch_rows = [(r.text, r.y) for r in train_new + older_pool] + list(original)
+        random.Random(settings.seed).shuffle(scratch_rows)
+        models["scratch"], entries["scratch"] = _scratch_fit(active, scratch_rows)
+    models = {name: m for name, m in models.items() if m is not None}
+    report["candidates"] = entries
+    report["train_seconds"] = round(sum(e.get("train_seconds", 0.0) for e in entries.values()), 3)
+    for name, entry in entries.items():
+        if "not_built" in entry:
+            report["reasons"].append(f"{_NAMES[name]} not built: {entry['not_built']}")
 
-    # Canary rows are the tail of the gate rows: score every row once per model.
-    gate_texts = [t for t, _ in gate_rows]
-    active_scores = active.predict_proba_many(gate_texts)
-    candidate_scores = candidate.predict_proba_many(gate_texts)
-    sets = {"holdout+canary": {
-        "active": ranking_figures(gate_y, active_scores, settings.gate_fpr),
-        "candidate": ranking_figures(gate_y, candidate_scores, settings.gate_fpr),
-    }}
-    canary_y = [y for _, y in canary]
-    if len(set(canary_y)) == 2:
-        tail = len(canary)
-        sets["canary"] = {
-            "active": ranking_figures(canary_y, active_scores[-tail:], settings.gate_fpr),
-            "candidate": ranking_figures(canary_y, candidate_scores[-tail:], settings.gate_fpr),
-        }
-    ok, reasons = gate_decision(sets, auc_tolerance=settings.auc_tolerance, recall_tolerance=settings.recall_tolerance)
-    report["gate"] = {"fpr": settings.gate_fpr, "auc_tolerance": settings.auc_tolerance,
-                      "recall_tolerance": settings.recall_tolerance, "sets": sets}
-    report["reasons"].extend(reasons)
-    data = candidate.to_bytes()
-    report["candidate"] = candidate.version
-    if not ok:
+    t_gate = time.perf_counter()
+    chosen, why = _gate(active, models, entries, holdout, canary, settings, report)
+    report["gate_seconds"] = round(time.perf_counter() - t_gate, 3)
+    report["chosen"] = chosen
+    report["reasons"].append(why)
+    if chosen is None:
         report["decision"] = "refused"
         return
-    version = registry.push(data, source="retrain", parent=active_version, labels_cursor=new_cursor)
-    registry.promote(version, expect_active=active_version, actor="retrain",
-                     reason="gate passed: " + "; ".join(reasons))
+    version = registry.push(models[chosen].to_bytes(), source="retrain", parent=active_version,
+                            labels_cursor=new_cursor)
+    registry.promote(version, expect_active=active_version, actor="retrain", reason=f"gate passed: {why}")
+    report["thresholds"] = entries[chosen].get("thresholds")
     report["candidate"] = version
     report["decision"] = "promoted"
     report["promoted"] = True
+
+
+def _warm_start(active_bytes: bytes, train: list, settings: RetrainSettings):
+    """Candidate 1: a copy of the active model trained further on the new labels + replay."""
+    model = load_model(active_bytes)
+    t0 = time.perf_counter()
+    model.learn_many([t for t, _ in train], [y for _, y in train], epochs=settings.epochs or None)
+    return model, {"train_rows": len(train), "train_seconds": round(time.perf_counter() - t0, 3)}
+
+
+def _scratch_fit(active, rows: list):
+    """Candidate 2: a new model with the active model's parameters, fitted on ``rows`` alone.
+
+    The parameters go through ``get_params()``, so a parameter added to the
+    model later is carried over without a change here.
+    """
+    t0 = time.perf_counter()
+    try:
+        model = type(active)._from_params(active.get_params())
+        model.fit([t for t, _ in rows], [y for _, y in rows])
+    except DataError as exc:
+        return None, {"not_built": f"the fit failed: {exc}", "train_rows": len(rows)}
+    return model, {"train_rows": len(rows), "train_seconds": round(time.perf_counter() - t0, 3)}
+
+
+def _gate(active, models: dict, entries: dict, holdout: list[LabelRow], canary: list, settings: RetrainSettings,
+          report: dict) -> tuple[str | None, str]:
+    """Recalibrate the candidates, compare each with the active model on the holdout and the canary set,
+    and choose; fills ``report["gate"]`` and the candidates' entries."""
+    # Canary rows are the tail of the gate rows: score every row once per model.
+    gate_rows = [(r.text, r.y) for r in holdout] + list(canary)
+    texts, y_all = [t for t, _ in gate_rows], [y for _, y in gate_rows]
+    sets = {"holdout": slice(0, len(holdout))}
+    if judgeable([y for _, y in canary]):
+        sets["canary"] = slice(len(holdout), len(gate_rows))
+    else:
+        report["reasons"].append("no canary set with both classes: the gate judges the recent holdout only; "
+                                 "push one with `seawall models push ... --replay` or --canary")
+    scores = {"active": active.predict_proba_many(texts)}
+    for name, model in models.items():
+        try:
+            thresholds = model.calibrate(texts, y_all, reject_fpr=settings.reject_fpr, hold_fpr=settings.hold_fpr)
+            entries[name]["thresholds"] = {"hold": float(thresholds.hold), "reject": float(thresholds.reject)}
+        except DataError as exc:
+            report["reasons"].append(f"{_NAMES[name]}: thresholds kept from the active model: {exc}")
+        entries[name]["version"] = model.version
+        scores[name] = model.predict_proba_many(texts)
+    gate = report["gate"] = {"rule": gate_rule(settings), "confidence": settings.gate_confidence,
+                             "fpr": settings.gate_fpr, "auc_tolerance": settings.auc_tolerance,
+                             "recall_tolerance": settings.recall_tolerance, "rounds": settings.gate_rounds,
+                             "sets": {}}
+    for set_name, rows in sets.items():
+        y = y_all[rows]
+        figures = gate["sets"][set_name] = {"rows": len(y), "spam": sum(y)}
+        for name, s in scores.items():
+            figures[name] = ranking_figures(y, s[rows], settings.gate_fpr)
+            if name != "active":
+                comparison = compare_to_active(y, scores["active"][rows], s[rows], settings)
+                entries[name].setdefault("sets", {})[set_name] = comparison
+                report["reasons"].append(judge_set(name, set_name, comparison, settings))
+    for name in models:
+        entries[name]["not_worse"] = all(c["not_worse"] for c in entries[name]["sets"].values())
+    if len(models) == 2:
+        rows = sets["holdout"]
+        gate["scratch_vs_warm_start"] = delong_difference(
+            y_all[rows], scores["scratch"][rows], scores["warm_start"][rows],
+            confidence=settings.gate_confidence).to_dict()
+    return choose_candidate(entries, gate.get("scratch_vs_warm_start"))

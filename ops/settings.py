@@ -39,9 +39,12 @@ class RetrainSettings:
     corroboration_similarity: float = setting(0.6, "a source the cap trimmed trains and judges only with labels another moderator backs: same comment, or one whose word 3-shingle Jaccard similarity is at least this")
     epochs: int = setting(3, "passes of the warm-start update over its rows (0 = the model's own epochs); few, as the active model is already trained and no early stopping guards the update")
     seed: int = setting(0, "seed of the retrain's samples")
+    scratch: bool = setting(True, "also fit a candidate from scratch (the active model's parameters) on the labelled store + replay; the gate promotes the better of it and the warm start")
     gate_fpr: float = setting(0.01, "false-positive rate at which the gate compares recall")
-    auc_tolerance: float = setting(0.005, "promote only if candidate ROC-AUC >= active ROC-AUC - this")
-    recall_tolerance: float = setting(0.02, "promote only if candidate recall at gate_fpr >= active's - this")
+    gate_confidence: float = setting(0.95, "confidence of the gate's one-sided lower bounds on (candidate - active)")
+    gate_rounds: int = setting(2000, "paired bootstrap rounds of the gate's recall comparison")
+    auc_tolerance: float = setting(0.002, "promote only if the lower confidence bound of (candidate - active) ROC-AUC (DeLong) is >= -this, on the holdout and on the canary set")
+    recall_tolerance: float = setting(0.03, "promote only if the lower confidence bound of (candidate - active) recall at gate_fpr (paired bootstrap) is >= -this, on each set")
     reject_fpr: float = setting(0.001, "target false-positive rate of the recalibrated reject threshold")
     hold_fpr: float = setting(0.02, "target false-positive rate of the recalibrated hold threshold")
     reports_kept: int = setting(50, "retrain reports kept in Redis")
@@ -79,6 +82,8 @@ _RETRAIN_BOUNDS = (
     ("epochs", 0, 1000),
     ("seed", 0, 2**32 - 1),
     ("gate_fpr", 0.0001, 0.5),
+    ("gate_confidence", 0.5, 0.9999),
+    ("gate_rounds", 100, 100000),
     ("auc_tolerance", 0.0, 1.0),
     ("recall_tolerance", 0.0, 1.0),
     ("reject_fpr", 0.00001, 0.5),

@@ -29,6 +29,24 @@ HOSTILE_AUTHOR = "<b onmouseover=alert(1)>mallory</b>"
 SITE_THRESHOLDS = {SANDBOX: {"hold": 0.0, "reject": 1.0}, HOSTILE_SITE: {"hold": 0.0, "reject": 1.0}}
 
 
+# Two forum sections that hold every comment for review for a while (a site's fixed hold cutoff), so the
+# queue also has single comments held by the site rule beside the campaign.
+STRICT_SECTIONS = {"cycling": {"hold": 0.0, "reject": 1.0}, "events": {"hold": 0.0, "reject": 1.0}}
+
+
+def strict_section_comments(n: int = 24) -> list[dict[str, str]]:
+    """The first ``n`` comments of the strict sections from another hour of the invented forum."""
+    from ops.scenario import Scenario
+
+    out = []
+    for c in Scenario(seed=13, wave_rate_per_min=0.0).stream():
+        if c.site in STRICT_SECTIONS:
+            out.append({"id": "late-" + c.id, "text": c.text, "site": c.site, "author": c.author})
+            if len(out) == n:
+                return out
+    return out
+
+
 def hostile_comments() -> list[dict[str, str]]:
     """Input entries of the hostile comments, ready for the comments stream."""
     out = [{"id": cid, "text": text, "site": SANDBOX, "author": HOSTILE_AUTHOR} for cid, text in HOSTILE.items()]

@@ -175,6 +175,23 @@ def consumer_pending(client, name: str, keys: Keys = KEYS) -> int:
     return 0
 
 
+def kill_mid_batch(client, workers, rng, kill_number: int) -> tuple[str, int]:
+    """SIGKILL a worker holding unacknowledged entries (any worker if none does) and start it again.
+
+    Even kills restart it under the same name (it reads its own backlog first); odd kills under a
+    new name, so the others must reclaim what the dead one held.  Returns the victim's name at the
+    kill and how many entries it held then.
+    """
+    busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name)],
+                      timeout=5, interval=0.01)
+    victim = rng.choice(busy or workers)
+    name, held = victim.name, consumer_pending(client, victim.name)
+    assert victim.kill() == -signal.SIGKILL
+    base = name.split(".")[0]
+    victim.start(name=name if kill_number % 2 == 0 else f"{base}.{kill_number}")
+    return name, held
+
+
 def consumer_seen(client, name: str, keys: Keys = KEYS) -> bool:
     try:
         rows = client.xinfo_consumers(keys.comments, keys.group)

@@ -30,7 +30,7 @@ class WordScorer:
         self.fail_on = fail_on
         self.calls = 0
 
-    def score_many(self, texts, *, top_k: int = 5):
+    def score_many(self, texts, *, top_k: int = 5, spamward_from=None):
         self.calls += 1
         scores, reasons = [], []
         for text in texts:

@@ -8,6 +8,7 @@ import pytest
 from model.minhash import MinHasher
 from worker.campaigns import CampaignPolicy, end_idle_campaigns, read_campaigns
 from worker.events import parse_event
+from worker.routing import Decision
 from worker.settings import Keys
 from worker.validation import Comment
 
@@ -33,6 +34,11 @@ def campaign_text(i):
 
 def ordinary_text(rng):
     return " ".join(rng.choice(FILLER, size=18))
+
+
+def policy_actions(p, client, batch, scores, actions):
+    """What policy ``p`` does to routing's ``actions`` (decisions in and out, as the worker calls it)."""
+    return [d.action for d in p.apply(client, batch, scores, [Decision(a) for a in actions])]
 
 
 def policy(clock, **kwargs):
@@ -69,7 +75,7 @@ def test_two_workers_find_one_campaign_neither_sees_alone(shared_redis):
             i = 2 * round_ + (name == "B")
             batch = comments([campaign_text(i), ordinary_text(rng)], start=10 * i)
             clock.t += 5
-            held_by[(name, i)] = worker.apply(shared_redis, batch, [0.1, 0.1], ["publish", "publish"])
+            held_by[(name, i)] = policy_actions(worker, shared_redis, batch, [0.1, 0.1], ["publish", "publish"])
     starts = [e for e in events(shared_redis) if e.type == "campaign_start"]
     assert len(starts) == 1, starts
     assert starts[0].data["members"] >= 10 and starts[0].data["authors"] >= 3
@@ -88,7 +94,7 @@ def test_the_same_comments_on_separate_redis_servers_make_no_campaign():
     a, b = policy(clock), policy(clock)
     for i in range(16):
         client, worker = (ra, a) if i % 2 == 0 else (rb, b)
-        worker.apply(client, comments([campaign_text(i)], start=i), [0.1], ["publish"])
+        policy_actions(worker, client, comments([campaign_text(i)], start=i), [0.1], ["publish"])
     assert not [e for e in events(ra) + events(rb) if e.type == "campaign_start"]
 
 
@@ -96,7 +102,7 @@ def test_one_author_posting_many_copies_is_not_a_campaign(fake_redis):
     clock = Clock()
     p = policy(clock)
     batch = comments([campaign_text(i) for i in range(20)], authors=["user1", "user2"] * 10)
-    assert p.apply(fake_redis, batch, [0.1] * 20, ["publish"] * 20) == ["publish"] * 20
+    assert policy_actions(p, fake_redis, batch, [0.1] * 20, ["publish"] * 20) == ["publish"] * 20
     assert read_campaigns(fake_redis, KEYS) == {}
 
 
@@ -105,7 +111,7 @@ def test_near_duplicates_spread_beyond_the_window_are_not_a_campaign(fake_redis)
     p = policy(clock, window_s=60)
     for i in range(20):
         clock.t += 30  # two per window at most
-        p.apply(fake_redis, comments([campaign_text(i)], start=i), [0.1], ["publish"])
+        policy_actions(p, fake_redis, comments([campaign_text(i)], start=i), [0.1], ["publish"])
     assert read_campaigns(fake_redis, KEYS) == {}
 
 
@@ -113,23 +119,23 @@ def test_hold_keeps_rejects_and_can_be_turned_off(fake_redis):
     clock = Clock()
     texts = [campaign_text(i) for i in range(14)]
     actions = ["publish"] * 12 + ["reject", "hold"]
-    out = policy(clock).apply(fake_redis, comments(texts), [0.1] * 14, list(actions))
+    out = policy_actions(policy(clock), fake_redis, comments(texts), [0.1] * 14, list(actions))
     assert out[-2:] == ["reject", "hold"] and out[9:12] == ["hold"] * 3 and out[:9] == ["publish"] * 9
     quiet = fakeredis.FakeRedis(server=fakeredis.FakeServer())
-    assert policy(clock, hold=False).apply(quiet, comments(texts), [0.1] * 14, list(actions)) == actions
+    assert policy_actions(policy(clock, hold=False), quiet, comments(texts), [0.1] * 14, list(actions)) == actions
     assert len(read_campaigns(quiet, KEYS)) == 1  # still detected and announced
 
 
 def test_short_comments_are_never_members(fake_redis):
     clock = Clock()
     batch = comments(["great point thanks"] * 30)
-    assert policy(clock).apply(fake_redis, batch, [0.1] * 30, ["publish"] * 30) == ["publish"] * 30
+    assert policy_actions(policy(clock), fake_redis, batch, [0.1] * 30, ["publish"] * 30) == ["publish"] * 30
     assert fake_redis.keys("seawall:campaigns:*") == []
 
 
 def test_idle_campaigns_end_once(fake_redis):
     clock = Clock()
-    policy(clock).apply(fake_redis, comments([campaign_text(i) for i in range(12)]), [0.1] * 12, ["publish"] * 12)
+    policy_actions(policy(clock), fake_redis, comments([campaign_text(i) for i in range(12)]), [0.1] * 12, ["publish"] * 12)
     (cid,) = read_campaigns(fake_redis, KEYS)
     assert end_idle_campaigns(fake_redis, KEYS, now=clock.t + 100, window_s=600) == []
     ended = end_idle_campaigns(fake_redis, KEYS, now=clock.t + 601, window_s=600)
@@ -143,7 +149,7 @@ def test_no_text_or_author_is_stored(fake_redis):
     clock = Clock()
     marker = "zqxmarkerword"
     texts = [campaign_text(i) + f" {marker}" for i in range(12)]
-    policy(clock).apply(fake_redis, comments(texts, authors=[f"{marker}{i}" for i in range(12)]), [0.1] * 12,
+    policy_actions(policy(clock), fake_redis, comments(texts, authors=[f"{marker}{i}" for i in range(12)]), [0.1] * 12,
                         ["publish"] * 12)
     dump = []
     for key in fake_redis.keys("*"):
@@ -175,7 +181,7 @@ def test_a_burst_of_variants_is_one_campaign(fake_redis):
     scenario = Scenario()
     wave = [c for c in scenario.stream() if c.kind == "wave"][:120]
     clock = Clock(wave[-1].ts)
-    out = policy(clock).apply(fake_redis, wave, [0.1] * len(wave), ["publish"] * len(wave))
+    out = policy_actions(policy(clock), fake_redis, wave, [0.1] * len(wave), ["publish"] * len(wave))
     starts = [e for e in events(fake_redis) if e.type == "campaign_start"]
     assert len(starts) == 1, [e.data for e in starts]
     assert out.count("hold") >= 100
@@ -186,7 +192,7 @@ def test_comments_with_no_near_duplicate_cost_no_bucket_of_their_own(shared_redi
     rng = np.random.default_rng(3)
     vocab = [f"word{i}" for i in range(3000)]
     texts = [" ".join(rng.choice(vocab, size=30)) for _ in range(200)]
-    policy(Clock()).apply(shared_redis, comments(texts), [0.1] * 200, ["publish"] * 200)
+    policy_actions(policy(Clock()), shared_redis, comments(texts), [0.1] * 200, ["publish"] * 200)
     keys = sorted(k.decode() for k in shared_redis.keys("seawall:campaigns:*"))
     assert len(keys) == 1 and keys[0].startswith("seawall:campaigns:seen:"), keys
     assert shared_redis.scard(keys[0]) == 200 * 16
@@ -204,7 +210,7 @@ def test_near_duplicates_either_side_of_a_slot_boundary_all_count(fake_redis):
     p = policy(clock)
     out = []
     for i in range(10):
-        out += p.apply(fake_redis, comments([campaign_text(i)], start=i), [0.1], ["publish"])
+        out += policy_actions(p, fake_redis, comments([campaign_text(i)], start=i), [0.1], ["publish"])
         clock.t += 40
     assert out == ["publish"] * 9 + ["hold"]
     assert len(read_campaigns(fake_redis, KEYS)) == 1
@@ -224,14 +230,14 @@ def test_members_a_worker_knows_skip_most_bucket_writes_and_are_still_held_and_c
         clock = Clock()
         r = fakeredis.FakeRedis(server=fakeredis.FakeServer())
         p = policy(clock)
-        p.apply(r, comments(first), [0.1] * 14, ["publish"] * 14)
+        policy_actions(p, r, comments(first), [0.1] * 14, ["publish"] * 14)
         (cid,) = read_campaigns(r, KEYS)
         size0 = read_campaigns(r, KEYS)[cid]["members"]
         total0 = sum(int(r.hget(k, "n") or 0) for k in r.keys("seawall:campaigns:lsh:*"))
         if kind == "fresh":
             p = policy(clock)
         clock.t += 5
-        assert p.apply(r, comments(later, start=100), [0.1] * 24, ["publish"] * 24) == ["hold"] * 24
+        assert policy_actions(p, r, comments(later, start=100), [0.1] * 24, ["publish"] * 24) == ["hold"] * 24
         growth[kind] = sum(int(r.hget(k, "n") or 0) for k in r.keys("seawall:campaigns:lsh:*")) - total0
         sizes[kind] = read_campaigns(r, KEYS)[cid]["members"] - size0
     assert sizes == {"learnt": 24, "fresh": 24}

@@ -275,6 +275,21 @@ def test_gate_summary_keeps_what_a_report_says():
     assert gate_summary(None) is None and gate_summary({"decision": "skipped"})["sets"] == []
 
 
+def test_gate_summary_of_a_retrain_that_built_two_candidates(fake_redis):
+    # the shape ops.retrain writes when it builds a warm start and a fit from scratch and chooses one
+    sets = {name: {"rows": 60, "spam": 20, "active": {"roc_auc": 0.97, "recall_at_gate_fpr": 0.81},
+                   "warm_start": {"roc_auc": 0.98, "recall_at_gate_fpr": 0.85},
+                   "scratch": {"roc_auc": 0.99, "recall_at_gate_fpr": 0.9}} for name in ("canary", "holdout")}
+    report = {"decision": "promoted", "chosen": "scratch", "candidate": "v2", "reasons": ["fine"],
+              "gate": {"sets": sets}, "labels": {"new": 300}, "finished_at": 5.0}
+    out = gate_summary(report)
+    assert out["chosen"] == "scratch" and [r["set"] for r in out["sets"]] == ["canary", "holdout"]
+    assert out["sets"][0]["candidate"] == {"roc_auc": 0.99, "recall_at_gate_fpr": 0.9}
+    assert out["sets"][0]["active"] == {"roc_auc": 0.97, "recall_at_gate_fpr": 0.81}
+    refused = gate_summary({"decision": "refused", "reasons": ["the recent holdout has 23 rows"]})
+    assert refused["sets"] == [] and refused["chosen"] == "" and refused["reasons"] == ["the recent holdout has 23 rows"]
+
+
 # -- small web helpers --------------------------------------------------------------------------
 
 @pytest.mark.parametrize("host, name", [("127.0.0.1:9320", "127.0.0.1"), ("[::1]:9320", "[::1]"),

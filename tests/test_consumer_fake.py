@@ -12,6 +12,7 @@ from scorers import StandInThresholds, WordScorer
 from worker.connection import raw_stream_replies
 from worker.consumer import StreamConsumer, format_reasons
 from worker.loader import FileModelSource, StaticModelSource
+from worker.routing import Decision
 from worker.settings import Keys, WorkerSettings
 
 KEYS = Keys()
@@ -50,6 +51,9 @@ def make(client, *, name="w1", model=None, observer=None, policies=(), **setting
     # Inline commits by default: with the commit thread's second connection, fakeredis's
     # blocking read was seen to take ~5 s; one test below runs the commit thread on purpose.
     settings.setdefault("overlap_commit", False)
+    # The stand-in's scores are word shares, not probabilities: its own thresholds route them, no floors.
+    settings.setdefault("hold_floor", 0.0)
+    settings.setdefault("reject_floor", 0.0)
     c = StreamConsumer(client=client, keys=KEYS, settings=WorkerSettings(**settings),
                        model_source=StaticModelSource(model=model or WordScorer()), consumer=name,
                        observer=observer, policies=policies)
@@ -209,7 +213,7 @@ def test_a_failing_model_call_is_isolated_to_the_comment(client):
 
 
 class NaNScorer(WordScorer):
-    def score_many(self, texts, *, top_k=5):
+    def score_many(self, texts, *, top_k=5, spamward_from=None):
         scores, reasons = super().score_many(texts, top_k=top_k)
         scores[0] = float("nan")
         return scores, reasons
@@ -226,7 +230,7 @@ class CountingScorer(WordScorer):
         super().__init__()
         self.texts = []
 
-    def score_many(self, texts, *, top_k=5):
+    def score_many(self, texts, *, top_k=5, spamward_from=None):
         self.texts.append(list(texts))
         return super().score_many(texts, top_k=top_k)
 
@@ -244,8 +248,9 @@ def test_the_whole_batch_is_scored_in_one_model_call_each_distinct_text_once(cli
 
 
 class HoldEverything:
-    def apply(self, client, comments, scores, actions):
-        return ["hold" if c.site == "a.example" else a for c, a in zip(comments, actions)]
+    def apply(self, client, comments, scores, decisions):
+        return [Decision("hold", "campaign", "camp-1") if c.site == "a.example" else d
+                for c, d in zip(comments, decisions)]
 
 
 class Broken:
@@ -262,7 +267,10 @@ def test_policies_adjust_actions_and_broken_ones_are_ignored(client):
     send(client, 2, id="c{i}")
     send(client, 1, id="other", site="b.example")
     make(client, policies=[Broken(), HoldEverything(), Malformed()]).step()
-    assert {v["id"]: v["action"] for v in verdicts(client)} == {"c0": "hold", "c1": "hold", "other": "publish"}
+    got = {v["id"]: v for v in verdicts(client)}
+    assert {i: v["action"] for i, v in got.items()} == {"c0": "hold", "c1": "hold", "other": "publish"}
+    assert {i: (v["rule"], v.get("campaign")) for i, v in got.items()} == {
+        "c0": ("campaign", "camp-1"), "c1": ("campaign", "camp-1"), "other": ("model", None)}
     assert sorted(client.zrange(KEYS.held, 0, -1)) == [b"c0", b"c1"]
 
 

@@ -118,11 +118,13 @@ def test_five_thousand_contrary_labels_from_one_moderator_keep_a_worse_model_out
     print("faults:", json.dumps({"test": "poisoned_feedback", "contrary_labels": 5000,
                                  "uncapped": uncapped["decision"], "capped": capped["decision"],
                                  "mallory_kept": mallory["kept"], "mallory_set_aside": mallory["set_aside"],
-                                 "gate_auc": {name: {side: round(fig["roc_auc"], 4) for side, fig in pair.items()}
+                                 "gate_auc": {name: {side: round(fig["roc_auc"], 4) for side, fig in pair.items()
+                                                     if isinstance(fig, dict)}
                                               for name, pair in capped.get("gate", {}).get("sets", {}).items()},
+                                 "chosen": capped.get("chosen"),
                                  "guard": guard[0],
                                  "auc_before": round(before["roc_auc"], 4), "auc_after": round(after["roc_auc"], 4)}))
-    assert after["roc_auc"] >= before["roc_auc"] - 0.005  # retrain.auc_tolerance: not worse
+    assert after["roc_auc"] >= before["roc_auc"] - 0.005  # not worse on later comments either
     if capped["decision"] == "refused":
         assert registry.active() == first
         assert any("below the active model" in r for r in capped["reasons"])

@@ -3,7 +3,6 @@ from __future__ import annotations
 
 import json
 import random
-import signal
 import time
 
 import pytest
@@ -12,10 +11,10 @@ from faults_kit import (
     KEYS,
     Producer,
     Worker,
-    consumer_pending,
     deadletters,
     group_lag,
     group_pending,
+    kill_mid_batch,
     stop_all,
     verdict_ids,
     wait_until,
@@ -47,17 +46,10 @@ def test_twenty_sigkills_during_a_20000_comment_run_lose_and_double_nothing(redi
             due = (k + 1) * COMMENTS // (KILLS + 2)
             wait_until(lambda: client.xlen(KEYS.verdicts) >= due, timeout=max(0.0, deadline - time.monotonic()))
             time.sleep(rng.uniform(0.0, 0.2))
-            # Aim at a worker holding unacknowledged entries, so the kill lands mid-batch.
-            busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name)],
-                              timeout=5, interval=0.01)
-            victim = rng.choice(busy or workers)
-            held = consumer_pending(client, victim.name)
-            assert victim.kill() == -signal.SIGKILL
-            kills.append({"worker": victim.name, "pending_at_kill": held})
-            # Even kills: restart under the same name (it reads its own backlog first);
-            # odd kills: a new name, so the others must reclaim what the dead one held.
-            base = victim.name.split(".")[0]
-            victim.start(name=victim.name if len(kills) % 2 == 0 else f"{base}.{len(kills)}")
+            # Aim at a worker holding unacknowledged entries, so the kill lands mid-batch; restart it
+            # under the same name or a new one, in turns.
+            name, held = kill_mid_batch(client, workers, rng, len(kills) + 1)
+            kills.append({"worker": name, "pending_at_kill": held})
         finished = wait_until(lambda: client.xlen(KEYS.verdicts) >= COMMENTS and group_pending(client) == 0,
                               timeout=max(10.0, deadline - time.monotonic()), interval=0.2)
         counts = verdict_ids(client)

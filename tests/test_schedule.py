@@ -121,9 +121,12 @@ def test_bench_retrain_runs_and_reports_its_ratio(capsys):
 
     assert main(["bench", "retrain", "--n", "300", "--replay", "100", "--repeats", "1", "--json"]) == 0
     rows = json.loads(capsys.readouterr().out)
-    assert rows["comments"] == 300 and rows["update_epochs"] == 3
+    assert rows["comments"] == 300 and rows["update_epochs"] == 3 and rows["runs"] == 1
     assert rows["update_over_fresh_fit"] == pytest.approx(rows["update_median_s"] / rows["fresh_fit_median_s"], rel=0.05)
-    assert rows["full_retrain_decision"] in ("promoted", "refused")
+    assert rows["both_over_warm_start_only"] == pytest.approx(
+        rows["retrain_both_candidates_median_s"] / rows["retrain_warm_start_only_median_s"], rel=0.05)
+    assert rows["scratch_fit_train_median_s"] > 0 and rows["scratch_fit_rows"] > 0 and rows["gate_median_s"] > 0
+    assert rows["decision"] in ("promoted", "refused")
 
 
 @pytest.mark.redis_server

@@ -47,6 +47,7 @@ import numpy as np
 
 from model.minhash import MinHasher, band_hashes
 from worker.events import EVENTS_MAXLEN, add_event
+from worker.routing import CAMPAIGN_RULE, Decision
 from worker.settings import Keys
 
 log = logging.getLogger("seawall.worker.campaigns")
@@ -225,13 +226,21 @@ class CampaignPolicy:
         # in a flood, most comments are members and would otherwise cost 3 calls per band.
         self._links: dict[int, tuple[str, float]] = {}
 
-    def apply(self, client, comments: Sequence, scores: Sequence[float], actions: list[str]) -> list[str]:
-        members = self.observe(client, comments)
-        if not self.hold:
-            return list(actions)
-        return ["hold" if i in members and a == "publish" else a for i, a in enumerate(actions)]
+    def apply(self, client, comments: Sequence, scores: Sequence[float], decisions: list[Decision]) -> list[Decision]:
+        """Members the model would publish are held (rule ``campaign``); every member's decision names its campaign."""
+        members = self.observe(client, comments, scores)
+        if not members:
+            return list(decisions)
+        out = list(decisions)
+        for i, campaign in members.items():
+            d = out[i]
+            if self.hold and d.action == "publish":
+                out[i] = Decision("hold", CAMPAIGN_RULE, campaign)
+            else:
+                out[i] = Decision(d.action, d.rule, campaign)
+        return out
 
-    def observe(self, client, comments: Sequence) -> dict[int, str]:
+    def observe(self, client, comments: Sequence, scores: Sequence[float] | None = None) -> dict[int, str]:
         """Record the batch in the shared buckets; return ``{index: campaign id}`` of campaign members."""
         words = [self.hasher.words(_get(c, "text")) for c in comments]
         eligible = [i for i, w in enumerate(words) if len(w) >= self.min_words]

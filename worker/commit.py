@@ -7,17 +7,21 @@ counts, the per-id ``done:{id}`` marker and the XACK land together; a worker
 SIGKILLed mid-batch has written either a whole comment or nothing of it, and
 its unacked entries are read again.
 
-Exactly one verdict per comment id, checked before anything is written:
+Exactly one verdict per comment id *and text*, checked before anything is written:
 
 1. the entry is still pending **for this consumer** (one ``XPENDING`` over the
    batch's id range, filtered by consumer).  Only an entry's current owner
    commits it: when a slow worker's entries were taken over (XAUTOCLAIM moves
    ownership) and both finish, the slow one finds them no longer its own, or
    already acked, and writes nothing;
-2. ``done:{id}`` does not exist.  This catches what the pending list cannot:
-   the same comment id sent twice by a producer that retried its XADD, a
-   group recreated at ``0``, a replay.  Use ``maxmemory-policy noeviction``
-   (Redis's default, which RQ needs too) so markers are never evicted early.
+2. ``done:{id}`` (a hash: text digest -> version) does not hold this text's
+   digest.  This catches what the pending list cannot: the same comment sent
+   twice by a producer that retried its XADD, a group recreated at ``0``, a
+   replay.  The same id with *another* text is an edit: it gets its own
+   verdict, version ``HLEN + 1``, marked ``edit=1``.  A ``done:{id}`` string
+   written by an older Seawall counts as "this id has its verdict".  Use
+   ``maxmemory-policy noeviction`` (Redis's default, which RQ needs too) so
+   markers are never evicted early.
 
 Redis does not roll a script back when a command fails half-way, so the
 writes are ordered for the failures that can happen: the verdict XADD comes
@@ -25,10 +29,12 @@ first (an out-of-memory server refuses a script's first write, and nothing
 else has been touched), the marker right after it (from then on a retry
 cannot write a second verdict), one XACK of the whole batch last (a comment
 is never acked without its verdict).  Holds, counters and acks are batched
-into one command each.  Dead letters: XADD, then XACK, one by one.
+into one command each (the hold queue follows each id's latest version: an
+edit that is not held leaves it).  Dead letters: XADD, then XACK, one by one.
 """
 from __future__ import annotations
 
+import hashlib
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -46,7 +52,8 @@ local group, vmax, text_ttl, done_ttl, rates_ttl, now, model, dmax =
     ARGV[1], ARGV[2], ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7], ARGV[8]
 local consumer, first, last, span = ARGV[9], ARGV[10], ARGV[11], ARGV[12]
 local n = tonumber(ARGV[13])
-local out, acks, holds, counts, fields = {}, {}, {}, {}, {}
+local out, acks, counts, fields = {}, {}, {}, {}
+local held_state, held_ids = {}, {}  -- id -> 'add' | 'rem', the id's latest version wins
 local a = 14
 -- The batch's entries this consumer still owns: one read of its pending list over the batch's id range.
 local mine = {}
@@ -58,21 +65,48 @@ local function count(field)
   if counts[field] == nil then counts[field] = 0; fields[#fields + 1] = field end
   counts[field] = counts[field] + 1
 end
+local function set_held(id, state)
+  if held_state[id] == nil then held_ids[#held_ids + 1] = id end
+  held_state[id] = state
+end
 for i = 1, n do
-  local sid, id, score, action, reasons, site, text, author, ts =
-      ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4], ARGV[a + 5], ARGV[a + 6], ARGV[a + 7], ARGV[a + 8]
-  a = a + 9
+  local sid, id, score, action, reasons, site, text, author, ts, rule, campaign, digest =
+      ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4], ARGV[a + 5], ARGV[a + 6], ARGV[a + 7], ARGV[a + 8],
+      ARGV[a + 9], ARGV[a + 10], ARGV[a + 11]
+  a = a + 12
   local done, cache = KEYS[4 + 2 * i], KEYS[5 + 2 * i]
   out[i] = 0
   if still_pending(sid) then
-    if redis.call('EXISTS', done) == 0 then
-      redis.call('XADD', verdicts, 'MAXLEN', '~', vmax, '*', 'id', id, 'score', score, 'action', action,
-                 'model', model, 'reasons', reasons, 'site', site, 'stream_id', sid)
-      redis.call('SET', done, sid, 'EX', done_ttl)
+    -- done:{id} maps each text digest already judged to its version; a string is an older worker's marker.
+    local version = 0
+    local seen = redis.pcall('HLEN', done)
+    if type(seen) ~= 'number' then
+      version = 0
+    elseif seen == 0 then
+      version = 1
+    elseif redis.call('HEXISTS', done, digest) == 0 then
+      version = seen + 1
+    end
+    if version > 0 then
+      if version == 1 and campaign == '' then
+        redis.call('XADD', verdicts, 'MAXLEN', '~', vmax, '*', 'id', id, 'score', score, 'action', action,
+                   'rule', rule, 'model', model, 'reasons', reasons, 'site', site, 'stream_id', sid,
+                   'version', '1', 'digest', digest)
+      else
+        local entry = {'XADD', verdicts, 'MAXLEN', '~', vmax, '*', 'id', id, 'score', score, 'action', action,
+                       'rule', rule, 'model', model, 'reasons', reasons, 'site', site, 'stream_id', sid,
+                       'version', tostring(version), 'digest', digest}
+        if campaign ~= '' then entry[#entry + 1] = 'campaign'; entry[#entry + 1] = campaign end
+        if version > 1 then entry[#entry + 1] = 'edit'; entry[#entry + 1] = '1' end
+        redis.call(unpack(entry))
+      end
+      redis.call('HSET', done, digest, version)
+      redis.call('EXPIRE', done, done_ttl)
       redis.call('HSET', cache, 'text', text, 'site', site, 'author', author, 'ts', ts, 'stream_id', sid,
-                 'score', score, 'action', action, 'model', model, 'reasons', reasons)
+                 'score', score, 'action', action, 'rule', rule, 'model', model, 'version', version, 'digest', digest,
+                 'reasons', reasons, 'campaign', campaign)
       redis.call('EXPIRE', cache, text_ttl)
-      if action == 'hold' then holds[#holds + 1] = now; holds[#holds + 1] = id end
+      if action == 'hold' then set_held(id, 'add') elseif version > 1 then set_held(id, 'rem') end
       count(site .. ':total')
       if action ~= 'publish' then count(site .. ':' .. action) end
       out[i] = 1
@@ -80,7 +114,13 @@ for i = 1, n do
     acks[#acks + 1] = sid
   end
 end
+local holds, releases = {}, {}
+for _, id in ipairs(held_ids) do
+  if held_state[id] == 'add' then holds[#holds + 1] = now; holds[#holds + 1] = id
+  else releases[#releases + 1] = id end
+end
 if #holds > 0 then redis.call('ZADD', held, unpack(holds)) end
+if #releases > 0 then redis.call('ZREM', held, unpack(releases)) end
 if #fields > 0 then
   for _, field in ipairs(fields) do redis.call('HINCRBY', rates, field, counts[field]) end
   redis.call('EXPIRE', rates, rates_ttl)
@@ -108,12 +148,25 @@ return out
 
 @dataclass(frozen=True, slots=True)
 class Scored:
-    """One comment ready to commit: its score, action and reasons already formatted."""
+    """One comment ready to commit: its score, action and reasons already formatted, and the rule that decided."""
 
     comment: Comment
     score: str
     action: str
     reasons: str
+    rule: str = "model"
+    campaign: str = ""
+
+
+def text_digest(text: str) -> str:
+    """The verdict's ``digest``: the first 16 hex digits of SHA-256 of the text in UTF-8.
+
+    Examples
+    --------
+    >>> text_digest("See you at the meeting")
+    'e122dd469f03179e'
+    """
+    return hashlib.sha256(text.encode("utf-8", "surrogatepass")).hexdigest()[:16]
 
 
 @dataclass(frozen=True, slots=True)
@@ -160,7 +213,8 @@ class BatchCommitter:
             c = s.comment
             keys.append(k.done(c.id))
             keys.append(k.text(c.id))
-            args += (c.stream_id, c.id, s.score, s.action, s.reasons, c.site, c.text, c.author, c.ts)
+            args += (c.stream_id, c.id, s.score, s.action, s.reasons, c.site, c.text, c.author, c.ts, s.rule,
+                     s.campaign, text_digest(c.text))
         args.append(len(dead))
         source = k.comments
         for d in dead:

@@ -9,9 +9,10 @@ One loop iteration (:meth:`StreamConsumer.step`):
    then new ones (``>``);
 3. validate each entry; bad ones become dead letters with their reason, and
    entries delivered more than ``max_deliveries`` times become ``poison``;
-4. score all valid comments in ONE ``score_many`` call, route them by the
-   model's thresholds and the per-site overrides, let the batch policies
-   adjust the actions;
+4. score all valid comments in ONE ``score_many`` call, decide each by the
+   effective cutoffs of its site (:class:`worker.routing.Router`), let the
+   batch policies adjust the decisions, and make sure the reasons of held and
+   rejected comments list their spam-ward tokens first;
 5. commit the whole batch in one Lua script call (see :mod:`worker.commit`).
 
 :meth:`StreamConsumer.run` repeats this until :meth:`stop` is called (the
@@ -38,7 +39,7 @@ from worker.commit import WRITTEN, BatchCommitter, Limits as CommitLimits, Score
 from worker.loader import ModelSource
 from worker.observer import NullObserver, WorkerObserver
 from worker.policies import BatchPolicy, apply_policies
-from worker.routing import Router
+from worker.routing import Router, explain_decisions
 from worker.settings import Keys, WorkerSettings
 from worker.streams import Entry, parse_xautoclaim, parse_xinfo_group, parse_xpending_range, parse_xreadgroup, stream_id_ms
 from worker.validation import Comment, DeadLetter, Limits as InputLimits, comment_dead_letter, dead_letter, validate
@@ -47,6 +48,8 @@ log = logging.getLogger("seawall.worker")
 
 # Upper bound on XAUTOCLAIM rounds per reclaim pass, so that fresh entries are never starved.
 MAX_CLAIM_ROUNDS = 20
+# Tokens in each verdict's reasons.
+TOP_K = 5
 
 
 def default_consumer_name() -> str:
@@ -322,9 +325,12 @@ class StreamConsumer:
             self._install(model)
 
     def _install(self, model) -> None:
-        router = Router(thresholds=model.thresholds, site_overrides=self.settings.site_thresholds)
+        router = Router.for_model(model, self.settings)
         self._model, self._router = model, router
-        log.info("serving model %s (hold %.4f, reject %.4f)", model.version, model.thresholds.hold, model.thresholds.reject)
+        cutoffs = router.cutoffs("")
+        log.info("serving model %s (hold %.4f, reject %.4f)", model.version, cutoffs.hold, cutoffs.reject)
+        for warning in router.warnings():
+            log.warning("model %s: %s", model.version, warning)
         self.observer.on_model(str(model.version), float(getattr(model, "created_at", 0.0) or 0.0))
 
     def report_lag(self) -> None:
@@ -418,8 +424,18 @@ class StreamConsumer:
         # A spam wave repeats itself word for word: score each distinct text once.
         slots: dict[str, int] = {}
         index = [slots.setdefault(c.text, len(slots)) for c in comments]
+        cutoffs = self._router.hold_cutoffs([c.site for c in comments])
+        if len(slots) < len(comments):
+            # One text on sites with different hold cutoffs is ranked for the highest of them;
+            # a comment held below it is explained again in _route.
+            highest = [1.0] * len(slots)
+            seen = [False] * len(slots)
+            for slot, cutoff in zip(index, cutoffs):
+                highest[slot] = cutoff if not seen[slot] else max(highest[slot], cutoff)
+                seen[slot] = True
+            cutoffs = highest
         try:
-            scores, reasons = model.score_many(list(slots))
+            scores, reasons = model.score_many(list(slots), top_k=TOP_K, spamward_from=cutoffs)
             scores = [float(s) for s in scores]
             if len(scores) != len(slots) or len(reasons) != len(slots):
                 raise ValueError(f"score_many returned {len(scores)} scores for {len(slots)} texts")
@@ -429,23 +445,28 @@ class StreamConsumer:
         if len(slots) < len(comments):
             scores = [scores[i] for i in index]
             reasons = [reasons[i] for i in index]
-        return self._route(comments, scores, reasons)
+            cutoffs = [cutoffs[i] for i in index]
+        return self._route(comments, scores, reasons, cutoffs)
 
     def _score_each(self, comments: list[Comment]) -> tuple[list[Scored], list[DeadLetter]]:
-        good, scores, reasons, dead = [], [], [], []
+        good, scores, reasons, cutoffs, dead = [], [], [], [], []
         for c in comments:
             try:
-                s, r = self._model.score_many([c.text])
+                cutoff = self._router.hold_cutoffs([c.site])
+                s, r = self._model.score_many([c.text], top_k=TOP_K, spamward_from=cutoff)
                 good.append(c)
                 scores.append(float(s[0]))
                 reasons.append(r[0])
+                cutoffs.append(cutoff[0])
             except Exception as exc:  # noqa: BLE001 - reported as a dead letter, never swallowed
                 dead.append(comment_dead_letter(c, "score_error", f"{type(exc).__name__} in the model",
                                                 self._input_limits))
-        scored, bad = self._route(good, scores, reasons)
+        scored, bad = self._route(good, scores, reasons, cutoffs)
         return scored, dead + bad
 
-    def _route(self, comments, scores, reasons) -> tuple[list[Scored], list[DeadLetter]]:
+    def _route(self, comments, scores, reasons, ranked_from) -> tuple[list[Scored], list[DeadLetter]]:
+        """Decide, let the policies adjust, and explain each final action (``ranked_from``: the
+        cutoff each comment's reasons were ranked for; see :func:`worker.routing.explain_decisions`)."""
         dead = []
         if not all(0.0 <= s <= 1.0 for s in scores):  # NaN fails both comparisons
             keep = [i for i, s in enumerate(scores) if 0.0 <= s <= 1.0]
@@ -455,9 +476,16 @@ class StreamConsumer:
             comments = [comments[i] for i in keep]
             scores = [scores[i] for i in keep]
             reasons = [reasons[i] for i in keep]
-        actions = self._router.route_many(scores, [c.site for c in comments])
+            ranked_from = [ranked_from[i] for i in keep]
+        decisions = self._router.decide_many(scores, [c.site for c in comments])
         if self.policies:
-            actions = apply_policies(self.policies, self.client, comments, scores, actions)
-        scored = [Scored(c, f"{s:.4f}", a, format_reasons(r)) for c, s, a, r in zip(comments, scores, actions, reasons)]
+            decisions = apply_policies(self.policies, self.client, comments, scores, decisions)
+        try:
+            reasons = explain_decisions(self._model, [c.text for c in comments], scores, decisions, list(reasons),
+                                        ranked_from, top_k=TOP_K)
+        except Exception:  # noqa: BLE001 - the scores stand; only the order of the reasons is lost
+            log.exception("explaining held comments again failed; their reasons keep the model's order")
+        scored = [Scored(c, f"{s:.4f}", d.action, format_reasons(r), d.rule, d.campaign)
+                  for c, s, d, r in zip(comments, scores, decisions, reasons)]
         return scored, dead
 

@@ -4,15 +4,20 @@ Enqueue :func:`score_batch` by its dotted name with plain values only::
 
     Queue("seawall", connection=Redis()).enqueue("worker.jobs.score_batch", [{"id": "c1", "text": "..."}])
 
-The job's return value is one dict per comment, in order, routed exactly like
-the stream worker (the model's thresholds, then the per-site overrides).
+The job's return value is one dict per comment, in order, decided exactly like
+the stream worker (:class:`worker.routing.Router`: the deployment's targets
+and floors, then each site's own), with the rule that decided.
 
 Where the model comes from: the **rq worker's environment**.
 ``SEAWALL_MODEL_PATH`` names the model file; it is read once per process,
 the model is cached, and the file is watched like ``seawall serve --model``
 (a changed file is reloaded at most every ``RELOAD_POLL_S`` seconds, a
-corrupt one refused).  ``SEAWALL_WORKER_SITE_THRESHOLDS`` (JSON, the same
-setting as the stream worker's) adds per-site overrides.  An app embedding
+corrupt one refused).  The routing settings are the stream worker's, read
+the way ``seawall serve`` reads them: ``SEAWALL_WORKER_HOLD_FPR``,
+``..._REJECT_FPR``, ``..._HOLD_FLOOR``, ``..._REJECT_FLOOR`` and
+``..._SITE_THRESHOLDS`` (JSON), over the ``[worker]`` table of the
+``SEAWALL_CONFIG`` file (:func:`worker.routing.routing_settings_from_environment`).
+An app embedding
 Seawall differently (e.g. the registry) installs its own source once per
 process with :func:`set_model_source`.  RQ's default worker forks a work
 horse per job, so each job loads the model once; run
@@ -24,6 +29,7 @@ the job has no access to the operator's Config.
 """
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import threading
@@ -33,13 +39,12 @@ from collections.abc import Mapping, Sequence
 from model.errors import SeawallError
 from worker.consumer import format_reasons
 from worker.loader import FileModelSource, ModelSource
-from worker.routing import Router
+from worker.routing import Router, RoutingSettings, routing_settings_from_environment, score_and_decide
 from worker.settings import WorkerSettings
 from worker.streams import Entry
 from worker.validation import Comment, Limits, validate
 
 MODEL_PATH_ENV = "SEAWALL_MODEL_PATH"
-SITE_THRESHOLDS_ENV = "SEAWALL_WORKER_SITE_THRESHOLDS"
 RELOAD_POLL_S = 2.0
 PLAIN_VALUES = (str, int, float)
 MAX_COMMENTS = 10_000
@@ -55,7 +60,7 @@ class _Process:
     def __init__(self):
         self.lock = threading.Lock()
         self.source: ModelSource | None = None
-        self.overrides: dict | None = None
+        self.settings: RoutingSettings | None = None
         self.next_poll = 0.0
         self.router = None
         self.model = None
@@ -64,12 +69,27 @@ class _Process:
 _PROCESS = _Process()
 
 
-def set_model_source(source: ModelSource, *, site_thresholds: Mapping | None = None) -> None:
-    """Use ``source`` for this process's jobs instead of ``SEAWALL_MODEL_PATH``."""
+def set_model_source(source: ModelSource, *, site_thresholds: Mapping | None = None,
+                     settings: RoutingSettings | None = None) -> None:
+    """Use ``source`` for this process's jobs instead of ``SEAWALL_MODEL_PATH``.
+
+    ``settings`` are the routing settings (default: read from the environment
+    like the job does); ``site_thresholds`` replaces their per-site table.
+    """
     with _PROCESS.lock:
         _PROCESS.source = source
-        _PROCESS.overrides = dict(site_thresholds or {})
+        _PROCESS.settings = settings
+        if site_thresholds is not None:
+            base = settings if settings is not None else _settings_from_environment()
+            _PROCESS.settings = dataclasses.replace(base, site_thresholds=dict(site_thresholds))
         _PROCESS.model = None
+
+
+def _settings_from_environment() -> RoutingSettings:
+    try:
+        return routing_settings_from_environment()
+    except ValueError as exc:
+        raise SeawallError(f"score_batch: {exc}; fix the rq worker's environment") from None
 
 
 def _current():
@@ -82,12 +102,8 @@ def _current():
                     f"score_batch: no model; set {MODEL_PATH_ENV} to the model file in the rq worker's environment"
                 )
             state.source = FileModelSource(path=path)
-        if state.overrides is None:
-            raw = os.environ.get(SITE_THRESHOLDS_ENV, "")
-            try:
-                state.overrides = json.loads(raw) if raw.strip() else {}
-            except ValueError:
-                raise SeawallError(f"score_batch: {SITE_THRESHOLDS_ENV} is not valid JSON; fix the worker's environment") from None
+        if state.settings is None:
+            state.settings = _settings_from_environment()
         now = time.monotonic()
         model = state.model
         if model is None:
@@ -95,7 +111,10 @@ def _current():
         elif now >= state.next_poll:
             model = state.source.poll() or model
         if model is not state.model:
-            state.router = Router(thresholds=model.thresholds, site_overrides=state.overrides)
+            try:
+                state.router = Router.for_model(model, state.settings)
+            except ValueError as exc:
+                raise SeawallError(f"score_batch: {exc}; fix the routing settings") from None
             state.model = model
             state.next_poll = now + RELOAD_POLL_S
         return state.model, state.router
@@ -124,9 +143,9 @@ def _check_plain(comments) -> list[dict]:
 def score_batch(comments, *, top_k: int = 5) -> list[dict]:
     """Score ``comments`` (a list of ``{"id", "text", "site"?, "author"?, "ts"?}``) in one model call.
 
-    Returns, in order, ``{"id", "score", "action", "model", "reasons", "site"}``
-    per comment (score a float to 4 decimals, reasons a list of
-    ``[token, contribution]``), or ``{"id", "error", "detail"}`` for a comment
+    Returns, in order, ``{"id", "score", "action", "rule", "model", "reasons", "site"}``
+    per comment (score a float to 4 decimals, rule ``model`` or ``site``,
+    reasons a list of ``[token, contribution]``), or ``{"id", "error", "detail"}`` for a comment
     the stream worker would dead-letter (same reasons: ``missing_text``,
     ``empty_text``, ``text_too_large``...).  Raises :class:`JobArgumentError`
     on anything but plain values.
@@ -143,12 +162,11 @@ def score_batch(comments, *, top_k: int = 5) -> list[dict]:
     good = [c for c in checked if isinstance(c, Comment)]
     verdicts: dict[int, dict] = {}
     if good:
-        scores, reasons = model.score_many([c.text for c in good], top_k=top_k)
-        scores = [float(s) for s in scores]
-        actions = router.route_many(scores, [c.site for c in good])
-        for c, s, a, r in zip(good, scores, actions, reasons):
-            verdicts[id(c)] = {"id": c.id, "score": round(s, 4), "action": a, "model": str(model.version),
-                               "reasons": json.loads(format_reasons(r)), "site": c.site}
+        scores, decisions, reasons = score_and_decide(model, router, [c.text for c in good], [c.site for c in good],
+                                                      top_k=top_k)
+        for c, s, d, r in zip(good, scores, decisions, reasons):
+            verdicts[id(c)] = {"id": c.id, "score": round(s, 4), "action": d.action, "rule": d.rule,
+                               "model": str(model.version), "reasons": json.loads(format_reasons(r)), "site": c.site}
     out = []
     for item, c in zip(items, checked):
         if isinstance(c, Comment):

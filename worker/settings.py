@@ -137,10 +137,16 @@ class WorkerSettings:
     lag_every_s: float = setting(5.0, "how often the worker reports consumer-group lag and pending counts")
     socket_timeout_s: float = setting(10.0, "Redis socket timeout on top of block_ms, in seconds")
     overlap_commit: bool = setting(True, "commit a batch on a second connection while the next one is read and scored")
+    hold_fpr: float = setting(0.02, "hold target: at most this share of the model's held-out ham is held or rejected")
+    reject_fpr: float = setting(0.001, "reject target: at most this share of the model's held-out ham is rejected")
+    hold_floor: float = setting(0.5, "the hold threshold is never below this probability, whatever the target gives")
+    reject_floor: float = setting(0.9, "the reject threshold is never below this probability, whatever the target gives")
     site_thresholds: Mapping[str, Mapping[str, float]] = field(
         default_factory=lambda: MappingProxyType({}),
         metadata={
-            "help": 'per-site threshold overrides, e.g. {"forum.example" = {hold = 0.4, reject = 0.9}}; unset keys keep the model\'s'
+            "help": 'per-site settings, e.g. {"forum.example" = {hold_floor = 0.6, reject_fpr = 0.0005}} or fixed '
+                    'cutoffs {"quiet.example" = {hold = 0.95}}; keys: hold, reject, hold_fpr, reject_fpr, hold_floor, '
+                    'reject_floor; unset keys keep the deployment\'s'
         },
     )
 
@@ -159,6 +165,16 @@ class WorkerSettings:
             )
         if not isinstance(self.site_thresholds, Mapping):
             raise ValueError(f"WorkerSettings: site_thresholds must be a table, got {self.site_thresholds!r}")
+        for name in ("hold_fpr", "reject_fpr"):
+            if not 0.0 < getattr(self, name) <= 0.5:
+                raise ValueError(f"WorkerSettings: {name} must be a rate in (0, 0.5], got {getattr(self, name)!r}")
+        for name in ("hold_floor", "reject_floor"):
+            if not 0.0 <= getattr(self, name) <= 1.0:
+                raise ValueError(f"WorkerSettings: {name} must be a probability in [0, 1], got {getattr(self, name)!r}")
+        if self.reject_fpr > self.hold_fpr or self.hold_floor > self.reject_floor:
+            raise ValueError(f"WorkerSettings: reject_fpr must not exceed hold_fpr and hold_floor must not exceed "
+                             f"reject_floor, got {self.reject_fpr!r} > {self.hold_fpr!r} or "
+                             f"{self.hold_floor!r} > {self.reject_floor!r}")
 
 
 MAX_BATCH = 4096
@@ -187,4 +203,8 @@ _WORKER_MINIMUMS = {
     "reload_poll_s": 0.01,
     "lag_every_s": 0.1,
     "socket_timeout_s": 0.1,
+    "hold_fpr": 0.0,
+    "reject_fpr": 0.0,
+    "hold_floor": 0.0,
+    "reject_floor": 0.0,
 }

@@ -70,7 +70,7 @@ def rescore_after_switch(mode: str, client, config, version: str) -> dict:
 
     model = Registry(client=client, keys=config.keys).load(version)
     return {"rescore": rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
-                                    site_overrides=config.worker.site_thresholds,
+                                    settings=config.worker,
                                     verdicts_maxlen=config.worker.verdicts_maxlen)}
 
 
@@ -155,14 +155,20 @@ def run_pull(args) -> int:
 
 
 def _after_switch(args, config, client, result: dict, kind: str) -> int:
+    from ops.thresholds import describe, model_router, print_warnings
+
     result = dict(result, **rescore_after_switch(args.rescore, client, config, result["version"]))
-    text = f"models {kind}: {result['version']} is active (was {result['previous'] or 'none'})"
+    router = model_router(Registry(client=client, keys=config.keys).load(result["version"]), config.worker)
+    result["thresholds"] = {"hold": router.cutoffs("").hold, "reject": router.cutoffs("").reject,
+                            "warnings": router.warnings()}
+    text = f"models {kind}: {result['version']} is active (was {result['previous'] or 'none'}); {describe(router)}"
     if "rescore_job" in result:
         text += f"; hold-queue re-score queued on RQ queue {config.retrain.queue!r}"
     if "rescore" in result:
         done = result["rescore"]
         text += f"; re-scored {done['rescored']} held comments, {done['released']} left the hold queue"
     _print(args, result, text)
+    print_warnings(router.warnings(), op=f"models {kind}")
     return 0
 
 

@@ -1,7 +1,11 @@
 """``seawall train``: fit a model on labelled JSON Lines files and save it.
 
 Progress (one line per epoch: loss, validation loss and AUC) goes to stderr;
-the closing summary to stdout.
+the closing summary to stdout.  The thresholds printed (and stored in the
+file) are the ones the deployment's settings give on the model's held-out
+share (``worker.hold_fpr``, ``worker.hold_floor``, ... from ``SEAWALL_*``
+variables and the config file); a warning goes to stderr when one sits at its
+floor or the held-out ham is too few to measure its target.
 """
 from __future__ import annotations
 
@@ -9,8 +13,10 @@ import argparse
 import os
 import sys
 
+from model.calibration import DEFAULT_METHOD, METHODS
 from model.classifier import EmbeddingClassifier
 from ops.datafiles import read_examples, require_both_classes
+from ops.thresholds import describe, model_router, print_warnings
 
 
 def _dim(value: str):
@@ -45,6 +51,10 @@ def register(sub) -> None:
     parser.add_argument("--epochs", type=_positive, default=10, help="maximum passes over the data (default 10)")
     parser.add_argument("--seed", type=int, default=0, help="seed of initialisation, shuffling and validation split")
     parser.add_argument("--min-df", type=_positive, default=2, help="buckets in fewer comments get no row (default 2)")
+    parser.add_argument("--calibration", choices=METHODS, default=DEFAULT_METHOD,
+                        help=f"probability calibration fitted on the held-out share (default {DEFAULT_METHOD})")
+    parser.add_argument("--config", metavar="FILE", default=None,
+                        help="TOML config file whose [worker] targets and floors set the thresholds (default: SEAWALL_CONFIG)")
     parser.add_argument("--quiet", action="store_true", help="no per-epoch progress on stderr")
     parser.set_defaults(func=run)
 
@@ -61,10 +71,14 @@ def _progress(epochs: int):
 
 
 def run(args) -> int:
+    from ops.config import load_config
+
+    worker = load_config(config_file=args.config).worker
     examples = read_examples(args.data, op="train")
     require_both_classes(examples, args.data, op="train")
     try:
-        clf = EmbeddingClassifier(dim=args.dim, buckets=args.buckets, epochs=args.epochs, seed=args.seed, min_df=args.min_df)
+        clf = EmbeddingClassifier(dim=args.dim, buckets=args.buckets, epochs=args.epochs, seed=args.seed, min_df=args.min_df,
+                                  calibration=args.calibration)
     except ValueError as exc:
         # The constructor's message names the field and value; make it a one-line user error.
         from model.errors import DataError
@@ -72,10 +86,11 @@ def run(args) -> int:
         raise DataError(f"train: {exc}") from None
     clf.fit([e.text for e in examples], [e.label for e in examples],
             on_epoch=None if args.quiet else _progress(args.epochs))
+    router = model_router(clf, worker)
+    clf.thresholds = router.choice.thresholds  # stored with the model: what these settings give
     clf.save(args.out)
     s = clf.summary_
     size = os.path.getsize(args.out)
-    t = clf.thresholds
     print(
         f"trained on {s['n_train']} comments ({s['n_spam']} spam, {s['n_ham']} ham in all; "
         f"{s['n_validation']} held out) in {s['seconds']:.1f}s: d={clf.dim_}, {s['rows']} rows, "
@@ -84,6 +99,10 @@ def run(args) -> int:
     val = clf.metrics_.get("validation")
     if val:
         print(f"validation: roc_auc {val['roc_auc']:.4f}  recall@1%fpr {val['recall_at_1pct_fpr']:.4f}")
-    print(f"thresholds: hold {t.hold:.4f}  reject {t.reject:.4f}")
+    cal = clf.calibration_
+    print(f"calibration: {cal.method} (slope {cal.slope:.3f}, intercept {cal.intercept:+.3f}) "
+          f"on {cal.n_ham} ham, {cal.n_spam} spam held out")
+    print(f"thresholds: {describe(router)}")
     print(f"wrote {args.out} ({size / 1024:.0f} KiB), version {clf.version}")
+    print_warnings(router.warnings(), op="train")
     return 0

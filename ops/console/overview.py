@@ -77,22 +77,29 @@ def deadletter_counts(entries) -> dict:
 
 
 def gate_summary(report: dict | None) -> dict | None:
-    """What a model's retrain report says about its gate, in a shape the page can show (pure)."""
+    """What a retrain report says about its gate, in a shape the page can show (pure).
+
+    Each evaluated set gives the active model's figures and the candidate's:
+    the one under ``candidate``, or the candidate the retrain chose (``chosen``,
+    e.g. ``warm_start`` or ``scratch``) when it built several.
+    """
     if not report:
         return None
+    chosen = report.get("chosen")
     sets = []
     for name, pair in sorted((report.get("gate") or {}).get("sets", {}).items()):
         if not isinstance(pair, dict):
             continue
         row = {"set": name}
-        for side in ("active", "candidate"):
-            figures = pair.get(side) or {}
+        for side, key in (("active", "active"), ("candidate", "candidate" if "candidate" in pair else chosen)):
+            figures = pair.get(key) if key else None
+            figures = figures if isinstance(figures, dict) else {}
             row[side] = {k: figures.get(k) for k in ("roc_auc", "recall_at_gate_fpr", "n", "spam")
-                         if isinstance(figures.get(k), (int, float))}
+                         if isinstance(figures.get(k), (int, float)) and not isinstance(figures.get(k), bool)}
         sets.append(row)
     return {"decision": str(report.get("decision", "")), "reasons": [str(r) for r in report.get("reasons", [])][:8],
             "finished_at": report.get("finished_at"), "labels_new": (report.get("labels") or {}).get("new"),
-            "sets": sets}
+            "chosen": str(chosen or ""), "sets": sets}
 
 
 def _groups(client, stream: str) -> list[dict]:
@@ -136,7 +143,8 @@ def decisions_since(client, keys, since: float) -> dict:
 def models(client, keys) -> dict:
     registry = Registry(client=client, keys=keys)
     reports = {}
-    for report in last_reports(client, keys, REPORTS_READ):
+    recent = last_reports(client, keys, REPORTS_READ)
+    for report in recent:
         version = report.get("candidate")
         if version and version not in reports:
             reports[version] = report
@@ -153,7 +161,8 @@ def models(client, keys) -> dict:
         })
     history = registry.history()
     return {"active": registry.active(), "can_roll_back": len(history) >= 2 and history[0] == registry.active(),
-            "previous": history[1] if len(history) >= 2 else None, "versions": rows}
+            "previous": history[1] if len(history) >= 2 else None, "versions": rows,
+            "last_retrain": gate_summary(recent[0]) if recent else None}
 
 
 def _float(value) -> float | None:

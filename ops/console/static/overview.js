@@ -108,8 +108,9 @@
 
   function gateCell(gate) {
     var td = S.el("td", "gate");
-    if (!gate) { td.appendChild(S.el("span", "note", "no retrain report (pushed by hand)")); return td; }
+    if (!gate) { td.appendChild(S.el("span", "note", "no retrain report")); return td; }
     td.appendChild(S.el("span", "pill " + gate.decision, gate.decision));
+    if (gate.chosen) { td.appendChild(document.createTextNode(" (" + gate.chosen.replace("_", " ") + ")")); }
     if (gate.labels_new !== null && gate.labels_new !== undefined) {
       td.appendChild(document.createTextNode(" on " + S.number(gate.labels_new) + " new labels"));
     }
@@ -148,6 +149,14 @@
     var body = clear($("models").querySelector("tbody"));
     var box = clear($("rollback-box"));
     $("models-note").textContent = models.active ? "(active: " + models.active + ")" : "(no active model)";
+    var last = models.last_retrain, line = $("last-retrain");
+    line.textContent = "";
+    if (last) {
+      line.appendChild(document.createTextNode("Last retrain: "));
+      line.appendChild(S.el("span", "pill " + last.decision, last.decision));
+      line.appendChild(document.createTextNode((last.finished_at ? " " + S.ago(now - last.finished_at) + " ago" : "")
+        + (last.decision !== "promoted" && last.reasons.length ? ": " + last.reasons[last.reasons.length - 1] : "")));
+    }
     if (admin && models.can_roll_back) {
       var rb = S.el("button", "quiet", "Roll back to " + models.previous);
       rb.type = "button";
