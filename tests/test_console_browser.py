@@ -165,7 +165,7 @@ def row_ids(row) -> list[str]:
     return row.get_attribute("data-ids").split()
 
 
-def test_sign_in_lands_on_the_queue_with_the_campaign_as_one_row(story, hazel):
+def test_sign_in_lands_on_the_queue_with_the_campaign_as_one_row(story, browser, hazel):
     page = hazel.page
     first = page.locator("#rows > li").first
     assert first.locator(".badge").text_content() == "campaign"  # the campaign the worker named
@@ -177,6 +177,13 @@ def test_sign_in_lands_on_the_queue_with_the_campaign_as_one_row(story, hazel):
     assert page.locator("mark.w-spam").count() > 0 and page.locator("mark.w-ham").count() > 0
     assert page.locator("#nav-held").inner_text() == f"{len(story.held()):,}"
     page.screenshot(path=str(story.shots / "console-queue.png"))
+    boss = Session(browser, story, "boss")  # the overview as an admin sees it, while the campaign is still held
+    try:
+        boss.goto("/overview").wait_for_selector("#families li a")
+        boss.page.screenshot(path=str(story.shots / "console-overview.png"), full_page=True)
+        assert boss.problems == []
+    finally:
+        boss.close()
 
 
 def test_the_keyboard_publishes_one_comment_and_the_site_is_told(story, hazel):
@@ -360,7 +367,6 @@ def test_the_overview_updates_live_and_only_admins_switch_models(story, browser,
         assert page.locator("#dead tbody tr").count() == 4  # missing_text, empty_text, missing_id, too_many_fields
         held_tile = page.locator("#t-held")
         before = held_tile.inner_text()
-        page.screenshot(path=str(story.shots / "console-overview.png"), full_page=True)
 
         hazel_page = hazel.goto("/queue?view=list&site=events")
         hazel_page.locator("#rows > li").first.locator("button[data-act=reject]").click()
