@@ -36,7 +36,6 @@ import math
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy.special import expit
 
 from model.errors import DataError
 
@@ -49,6 +48,13 @@ DEFAULT_REJECT_FLOOR = 0.9
 MAX_TARGET_FPR = 0.5
 METHODS = ("identity", "platt", "temperature", "isotonic")
 DEFAULT_METHOD = "temperature"
+
+
+def _expit(z):
+    """The logistic sigmoid, scipy's (imported here: readers of thresholds, such as ``seawall watch``, need no scipy)."""
+    from scipy.special import expit
+
+    return expit(z)
 
 
 def _check_threshold(name: str, value: float) -> float:
@@ -169,10 +175,10 @@ class ProbabilityMap:
         """Calibrated spam probabilities, float64, for raw log-odds ``logits``."""
         z = np.asarray(logits, dtype=np.float64)
         if self.method == "identity":
-            return expit(z)
+            return _expit(z)
         if self.method == "isotonic":
             return np.interp(z, self.knots_z, self.knots_p)
-        return expit(self.slope * z + self.intercept)
+        return _expit(self.slope * z + self.intercept)
 
     def to_dict(self) -> dict:
         out = {"method": self.method, "slope": self.slope, "intercept": self.intercept,
@@ -216,7 +222,7 @@ def _fit_platt(z: np.ndarray, t: np.ndarray, n_ham: int, n_spam: int) -> tuple[f
 
     def loss_grad(ab):
         r = ab[0] * f + ab[1]
-        g = expit(r) - t
+        g = _expit(r) - t
         return _log_loss(r, t), np.array([g @ f, g.sum()])
 
     start = np.array([0.0, math.log((n_spam + 1.0) / (n_ham + 1.0))])

@@ -454,6 +454,7 @@ class EmbeddingClassifier:
         self._touched |= np.bincount(m.indices, minlength=self.buckets) > 0
         self.summary_["updates"] = self.summary_.get("updates", 0) + len(texts)
         self.summary_["rows"] = int(self._touched.sum())
+        self.created_at = time.time()  # the weights changed: this is a new model
         self._invalidate()
         self._manifest = None
         return self

@@ -1,42 +1,99 @@
-"""Quality figures of a spam scorer, computed with ``sklearn.metrics``.
+"""Quality figures of a spam scorer, computed with numpy.
 
 Ranking quality (ROC-AUC, average precision, recall at a fixed false-positive
 rate) does not depend on thresholds; the operating figures (precision, recall,
 F1, confusion matrix) are given at the hold and the reject threshold when
 thresholds are passed.  Label 1 is spam (the positive class), 0 ham.
+
+The definitions are scikit-learn's (``sklearn.metrics.roc_auc_score``,
+``average_precision_score``, ``roc_curve``, ``precision_score``...), and
+tests/test_evaluation.py checks every figure against scikit-learn, which
+stays the reference there.  They are written out here because they run in
+the worker, the retrain and the CLI, where importing scikit-learn's metrics
+would cost start-up time for a few cumulative sums.
 """
 from __future__ import annotations
 
 import numpy as np
-from sklearn import metrics
 
 from model.calibration import Thresholds
 from model.errors import DataError
 
 
+def roc_points(labels: np.ndarray, scores: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """False- and true-positive rates at every distinct score used as a threshold.
+
+    A comment is flagged when its score is >= the threshold, so tied scores
+    are flagged together.  The first point is (0, 0) (nothing flagged), as in
+    ``sklearn.metrics.roc_curve(..., drop_intermediate=False)``.
+
+    Returns
+    -------
+    fpr, tpr, thresholds : arrays of the same length, thresholds decreasing
+        (the first one is +inf).
+    """
+    labels = np.asarray(labels)
+    scores = np.asarray(scores, dtype=np.float64)
+    order = np.argsort(-scores, kind="mergesort")
+    sorted_scores = scores[order]
+    positives = labels[order] == 1
+    # The last index of each run of tied scores: one point per distinct threshold.
+    ends = np.r_[np.flatnonzero(np.diff(sorted_scores)), sorted_scores.size - 1]
+    tps = np.cumsum(positives)[ends]
+    fps = (ends + 1) - tps
+    n_pos, n_neg = tps[-1], fps[-1]
+    fpr = np.r_[0.0, fps / n_neg] if n_neg else np.r_[0.0, np.zeros(ends.size)]
+    tpr = np.r_[0.0, tps / n_pos] if n_pos else np.r_[0.0, np.zeros(ends.size)]
+    return fpr, tpr, np.r_[np.inf, sorted_scores[ends]]
+
+
+def roc_auc(labels: np.ndarray, scores: np.ndarray) -> float:
+    """Area under the ROC curve (trapezoids between the points of :func:`roc_points`)."""
+    fpr, tpr, _ = roc_points(labels, scores)
+    return float(np.sum(np.diff(fpr) * (tpr[1:] + tpr[:-1]) / 2.0))
+
+
+def average_precision(labels: np.ndarray, scores: np.ndarray) -> float:
+    """Sum over the distinct thresholds of (recall gained) x (precision there), no interpolation."""
+    fpr, tpr, _ = roc_points(labels, scores)
+    labels = np.asarray(labels)
+    n_pos = int(np.sum(labels == 1))
+    n_neg = labels.size - n_pos
+    tps, fps = tpr[1:] * n_pos, fpr[1:] * n_neg
+    precision = tps / np.maximum(tps + fps, 1e-300)
+    return float(np.sum(np.diff(tpr) * precision))
+
+
 def recall_at_fpr(labels: np.ndarray, scores: np.ndarray, fpr: float) -> float:
     """Highest true-positive rate among thresholds whose false-positive rate is <= ``fpr``.
 
-    Read off ``sklearn.metrics.roc_curve``; a comment is flagged when its score
-    is >= the threshold, so tied scores are flagged together.
+    Read off :func:`roc_points`; a comment is flagged when its score is >= the
+    threshold, so tied scores are flagged together.
     """
-    fprs, tprs, _ = metrics.roc_curve(labels, scores, drop_intermediate=False)
+    fprs, tprs, _ = roc_points(labels, scores)
     ok = fprs <= fpr + 1e-12
     return float(tprs[ok].max()) if ok.any() else 0.0
 
 
 def at_threshold(labels: np.ndarray, scores: np.ndarray, threshold: float) -> dict:
     """Precision, recall, F1, false-positive rate and confusion matrix for ``score >= threshold``."""
-    predicted = (scores >= threshold).astype(np.int64)
-    tn, fp, fn, tp = metrics.confusion_matrix(labels, predicted, labels=[0, 1]).ravel()
+    labels = np.asarray(labels)
+    flagged = np.asarray(scores) >= threshold
+    spam = labels == 1
+    tp = int(np.sum(flagged & spam))
+    fp = int(np.sum(flagged & ~spam))
+    fn = int(np.sum(~flagged & spam))
+    tn = int(np.sum(~flagged & ~spam))
     n_ham = tn + fp
+    precision = tp / (tp + fp) if tp + fp else 0.0
+    recall = tp / (tp + fn) if tp + fn else 0.0
     return {
         "threshold": float(threshold),
-        "precision": float(metrics.precision_score(labels, predicted, zero_division=0)),
-        "recall": float(metrics.recall_score(labels, predicted, zero_division=0)),
-        "f1": float(metrics.f1_score(labels, predicted, zero_division=0)),
+        "precision": float(precision),
+        "recall": float(recall),
+        "f1": float(2 * tp / (2 * tp + fp + fn)) if tp else 0.0,
         "fpr": float(fp / n_ham) if n_ham else 0.0,
-        "confusion_matrix": {"tn": int(tn), "fp": int(fp), "fn": int(fn), "tp": int(tp)},
+        "confusion_matrix": {"tn": tn, "fp": fp, "fn": fn, "tp": tp},
     }
 
 
@@ -85,8 +142,8 @@ def evaluate(labels, scores, thresholds: Thresholds | None = None) -> dict:
         "n": int(labels.size),
         "n_spam": n_spam,
         "n_ham": int(labels.size - n_spam),
-        "roc_auc": float(metrics.roc_auc_score(labels, scores)),
-        "average_precision": float(metrics.average_precision_score(labels, scores)),
+        "roc_auc": roc_auc(labels, scores),
+        "average_precision": average_precision(labels, scores),
         "recall_at_1pct_fpr": recall_at_fpr(labels, scores, 0.01),
         "recall_at_0_1pct_fpr": recall_at_fpr(labels, scores, 0.001),
     }

@@ -185,7 +185,7 @@ def run_epochs(
 
     Returns a summary dict (epochs run, best epoch, final losses).
     """
-    from sklearn.metrics import roc_auc_score
+    from model.evaluation import roc_auc
 
     n = matrix.shape[0]
     best = None
@@ -211,7 +211,7 @@ def run_epochs(
             vm, vy, vw = validation
             vp = network.sigmoid(predict_logits(weights, vm))
             report.val_loss = log_loss(vp, vy, vw)
-            report.val_auc = float(roc_auc_score(vy, vp)) if len(np.unique(vy)) == 2 else None
+            report.val_auc = roc_auc(vy, vp) if len(np.unique(vy)) == 2 else None
         history.append(report)
         if on_epoch is not None:
             on_epoch(report)

@@ -5,6 +5,14 @@ Each subcommand lives in its own module under ``ops/commands`` and exposes
 takes the parsed arguments and returns the exit code.  User errors
 (:class:`model.errors.SeawallError`, :class:`ops.config.ConfigError`) are
 printed on one line with no traceback.
+
+Start-up time matters here: ``seawall --help`` and the short commands a
+moderator's script runs (``feedback``, ``watch --once``) must not pay for
+libraries they do not use.  So this module and every command module import
+only the standard library and light Seawall modules at the top; numpy,
+scikit-learn, redis, RQ and prometheus-client are imported inside the
+functions that use them (``seawall bench startup`` measures it, and
+tests/test_startup.py checks that ``--help`` loads none of them).
 """
 from __future__ import annotations
 
@@ -12,12 +20,11 @@ import argparse
 import importlib
 import sys
 
-import redis
-
 from model.errors import SeawallError
 from ops.config import ConfigError
 
 COMMANDS = (
+    "sample",
     "train",
     "evaluate",
     "score",
@@ -52,24 +59,38 @@ def main(argv: list[str] | None = None) -> int:
     except (SeawallError, ConfigError) as exc:
         print(f"seawall {args.command}: error: {exc}", file=sys.stderr)
         return 2
-    except redis.exceptions.AuthenticationError as exc:
-        # Checked before ConnectionError, its base class.  The URL is not printed: it holds the password.
-        print(f"seawall {args.command}: error: Redis refused the credentials ({exc}); "
-              "check the user and password in redis_url", file=sys.stderr)
-        return 2
-    except redis.exceptions.NoPermissionError as exc:
-        print(f"seawall {args.command}: error: the Redis ACL user may not do this ({exc}); "
-              "see the README's ACL rule for the commands Seawall needs", file=sys.stderr)
-        return 2
-    except (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError) as exc:
-        print(f"seawall {args.command}: error: cannot reach Redis ({exc}); check redis_url and that the server runs",
-              file=sys.stderr)
-        return 2
     except KeyboardInterrupt:
         return 130
     except BrokenPipeError:
         return 0
+    except Exception as exc:
+        message = redis_error_message(exc)
+        if message is None:
+            raise
+        print(f"seawall {args.command}: error: {message}", file=sys.stderr)
+        return 2
     return int(code or 0)
+
+
+def redis_error_message(exc: BaseException) -> str | None:
+    """The one-line message for a Redis error a user can act on, or None for anything else.
+
+    A command that never imported redis cannot have raised one of its errors,
+    so redis is not imported here just to find out.
+    """
+    redis = sys.modules.get("redis")
+    if redis is None:
+        return None
+    errors = redis.exceptions
+    if isinstance(exc, errors.AuthenticationError):
+        # Checked before ConnectionError, its base class.  The URL is not printed: it holds the password.
+        return f"Redis refused the credentials ({exc}); check the user and password in redis_url"
+    if isinstance(exc, errors.NoPermissionError):
+        return (f"the Redis ACL user may not do this ({exc}); "
+                "see the README's ACL rule for the commands Seawall needs")
+    if isinstance(exc, (errors.ConnectionError, errors.TimeoutError)):
+        return f"cannot reach Redis ({exc}); check redis_url and that the server runs"
+    return None
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -6,14 +6,13 @@ bytes and parsed by redis-py as usual.
 """
 from __future__ import annotations
 
-import redis
-
 from ops.config import Config
-from worker.connection import connect as worker_connect
 
 
-def connect(config: Config, **kwargs) -> redis.Redis:
-    """A client for ``config.redis_url`` (redis://, rediss:// or unix://)."""
+def connect(config: Config, **kwargs):
+    """A redis-py client for ``config.redis_url`` (redis://, rediss:// or unix://)."""
+    from worker.connection import connect as worker_connect
+
     try:
         return worker_connect(config.redis_url, tls_ca=config.redis_tls_ca, tls_cert=config.redis_tls_cert,
                               tls_key=config.redis_tls_key, raw_streams=False, **kwargs)

@@ -5,23 +5,40 @@ the rest of the configuration when they run, like any Seawall process:
 ``SEAWALL_*`` environment variables and ``SEAWALL_CONFIG``.  So the ``rq
 worker`` that runs them is configured exactly like ``seawall serve``; no
 Redis URL or password is ever stored inside a job record.
+
+Every job Seawall enqueues is serialized with RQ's JSON serializer
+(:data:`worker.jobs.JOB_SERIALIZER`), so a job record in Redis is data, never
+code: the ``rq worker`` runs with ``--serializer json`` and cannot unpickle
+anything someone wrote under ``rq:job:*``.
 """
 from __future__ import annotations
 
 from ops.config import load_config
 from ops.connection import connect
-from worker.jobs import JobArgumentError
+from worker.jobs import JOB_SERIALIZER, JobArgumentError
 
 RESCORE_FUNC = "ops.jobs.rescore_job"
 
 
-def enqueue_rescore(client, config, version: str):
-    """Queue the hold-queue re-score for ``version`` on ``retrain.queue``; returns the RQ job."""
+def job_queue(client, name: str):
+    """The RQ queue ``name``, serializing with JSON like every job Seawall enqueues."""
     from rq import Queue
 
-    queue = Queue(config.retrain.queue, connection=client)
-    return queue.enqueue(RESCORE_FUNC, kwargs={"version": version}, job_timeout=config.retrain.job_timeout_s,
-                         description=f"re-score the hold queue with model {version}")
+    return Queue(name, connection=client, serializer=JOB_SERIALIZER)
+
+
+def listening_workers(client, name: str) -> int:
+    """How many live RQ workers listen on queue ``name`` (a dead one drops out when its key expires)."""
+    from rq import Worker
+
+    return len(Worker.all(queue=job_queue(client, name)))
+
+
+def enqueue_rescore(client, config, version: str):
+    """Queue the hold-queue re-score for ``version`` on ``retrain.queue``; returns the RQ job."""
+    return job_queue(client, config.retrain.queue).enqueue(
+        RESCORE_FUNC, kwargs={"version": version}, job_timeout=config.retrain.job_timeout_s,
+        description=f"re-score the hold queue with model {version}")
 
 
 def plain_arguments(operation: str, **values) -> None:
@@ -38,15 +55,24 @@ def plain_arguments(operation: str, **values) -> None:
 
 
 def retrain_job(config_file: str | None = None) -> dict:
-    """The scheduled retrain (same code as ``seawall retrain``); returns the report's summary."""
+    """The scheduled retrain (same code as ``seawall retrain``); returns the report's summary.
+
+    A promotion's hold-queue re-score runs in this job, right after it: the
+    job already runs on an RQ worker, and a second job would only wait for one.
+    """
+    from ops.rescore import rescore_after_switch
     from ops.retrain import retrain
 
     plain_arguments("retrain job", config_file=config_file)
     config = load_config(config_file=config_file)
     client = connect(config)
+    after = {}
     report = retrain(client, config.keys, config.retrain,
-                     on_promoted=lambda version: enqueue_rescore(client, config, version))
-    return {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "chosen", "reasons", "seconds")}
+                     on_promoted=lambda version: after.update(rescore_after_switch("now", client, config, version)))
+    summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "chosen", "reasons",
+                                          "seconds")}
+    summary.update(after)
+    return summary
 
 
 def rescore_job(version: str | None = None, config_file: str | None = None) -> dict:

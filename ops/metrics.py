@@ -133,8 +133,10 @@ def build_metrics(registry: CollectorRegistry) -> Metrics:
             ["site"], registry=r,
         ),
         model=Info("seawall_model", "The model version this process serves", registry=r),
-        model_created=Gauge("seawall_model_created_timestamp_seconds", "Creation time of the served model", registry=r),
-        model_age=Gauge("seawall_model_age_seconds", "Age of the served model", registry=r),
+        model_created=Gauge("seawall_model_created_timestamp_seconds",
+                            "When the served model was trained, or last updated by a retrain", registry=r),
+        model_age=Gauge("seawall_model_age_seconds",
+                        "Seconds since the served model was trained, or last updated by a retrain", registry=r),
         feedback=Counter("seawall_feedback", "Moderator feedback seen on the feedback stream, by label", ["label"], registry=r),
         retrains=Counter("seawall_retrain_runs", "Retrain runs seen on the events stream, by outcome", ["outcome"], registry=r),
         retrain_last=Gauge(

@@ -98,3 +98,62 @@ def rescore_held(client, keys: Keys, model, *, batch: int = 500, settings=None, 
     counts["still_held"] = counts["rescored"] - counts["released"]
     return counts
 
+
+
+RESCORE_MODES = ("now", "queue", "off")
+
+
+def rescore_after_switch(mode: str, client, config, version: str) -> dict:
+    """Re-score the hold queue after the active model became ``version``; returns what happened.
+
+    ``now`` re-scores in this process.  ``queue`` hands the re-score to an RQ
+    worker on ``retrain.queue`` when one listens, and re-scores here when none
+    does: a job nobody runs would leave the held comments on the old model's
+    verdicts without a word.  ``off`` does nothing.  The result says which
+    happened (``rescore_mode``: ``now``, ``queue`` or ``off``) with, when it
+    ran here, ``rescore`` (the counts of :func:`rescore_held`) or, when it was
+    queued, ``rescore_job`` and ``rq_workers``.  ``rq_workers`` is 0 when
+    ``queue`` found no worker and ran the re-score here.
+    """
+    if mode not in RESCORE_MODES:
+        raise ValueError(f"rescore_after_switch: mode must be one of {RESCORE_MODES}, got {mode!r}")
+    if mode == "off":
+        return {"rescore_mode": "off"}
+    out: dict = {}
+    if mode == "queue":
+        from ops.jobs import enqueue_rescore, listening_workers
+
+        workers = listening_workers(client, config.retrain.queue)
+        out["rq_workers"] = workers
+        if workers:
+            return dict(out, rescore_mode="queue", rescore_job=enqueue_rescore(client, config, version).id)
+    from ops.registry import Registry
+
+    model = Registry(client=client, keys=config.keys).load(version)
+    out["rescore"] = rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
+                                  settings=config.worker, verdicts_maxlen=config.worker.verdicts_maxlen)
+    return dict(out, rescore_mode="now")
+
+
+def describe_rescore(result: dict, *, queue: str) -> str:
+    """One line for a person: what :func:`rescore_after_switch` did and how many comments it re-scored."""
+    mode = result.get("rescore_mode")
+    if mode == "off":
+        return "held comments not re-scored (--rescore off)"
+    if mode == "queue":
+        workers = result.get("rq_workers", 0)
+        return (f"hold-queue re-score queued as RQ job {result.get('rescore_job')} on queue {queue!r} "
+                f"({workers} RQ worker{'s' if workers != 1 else ''} listening)")
+    if mode != "now":
+        return "held comments not re-scored"
+    done = result.get("rescore") or {}
+    where = (f"no RQ worker listens on queue {queue!r}, so the re-score ran here: "
+             if result.get("rq_workers") == 0 else "")
+    if not done.get("held"):
+        return where + "no held comments to re-score"
+    rescored = done.get("rescored", 0)
+    text = (f"{where}re-scored {rescored} held comment{'s' if rescored != 1 else ''}: {done.get('released', 0)} "
+            f"published or rejected by the new model, {done.get('still_held', 0)} still held")
+    if done.get("no_text"):
+        text += f", {done['no_text']} without cached text left for a moderator"
+    return text

@@ -411,7 +411,8 @@ class RetrainLock:
         self.client = client
         self.key = lock_key(keys)
         self.ttl_s = ttl_s
-        self.token = f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}:{time.time():.0f}"
+        since = time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime())  # shown to the next retrain: readable, UTC
+        self.token = f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}:{since}"
 
     def __enter__(self):
         if not self.client.set(self.key, self.token, nx=True, ex=self.ttl_s):

@@ -9,12 +9,12 @@ terminal.
 """
 from __future__ import annotations
 
-import json
 import time
 from dataclasses import dataclass, field
 
 from redis.exceptions import ResponseError
 
+from ops.times import age, clock
 from ops.waves import read_active
 from worker.campaigns import read_campaigns
 from worker.events import Event, parse_event
@@ -46,6 +46,7 @@ class Snapshot:
     consumers: int | None = None
     model_version: str | None = None
     model_created: float | None = None
+    model_promoted: float | None = None
     retrain: Event | None = None
     events: list[Event] = field(default_factory=list)
 
@@ -69,11 +70,8 @@ def collect(client, keys: Keys, *, now: float | None = None, minutes: int = HIST
     snap.lag, snap.pending, snap.consumers = _group(client, keys)
     if active:
         snap.model_version = _text(active)
-        created = client.hget(keys.key("models", "meta", snap.model_version), "created_at")
-        try:
-            snap.model_created = float(created) if created is not None else None
-        except ValueError:
-            snap.model_created = None
+        created, promoted = client.hmget(keys.key("models", "meta", snap.model_version), ["created_at", "promoted_at"])
+        snap.model_created, snap.model_promoted = _seconds(created), _seconds(promoted)
     events = [e for e in (parse_event(i, f) for i, f in raw_events) if e is not None]
     snap.retrain = next((e for e in events if e.type == "retrain"), None)
     snap.events = events[:EVENTS_SHOWN]
@@ -130,28 +128,14 @@ def clean(name: str, width: int) -> str:
     return safe if len(safe) <= width else safe[: width - 1] + "…"
 
 
-def age(seconds: float) -> str:
-    seconds = max(0, int(seconds))
-    if seconds < 120:
-        return f"{seconds}s"
-    if seconds < 7200:
-        return f"{seconds // 60}m"
-    if seconds < 2 * 86400:
-        return f"{seconds // 3600}h {seconds % 3600 // 60}m"
-    return f"{seconds // 86400}d {seconds % 86400 // 3600}h"
-
-
-def clock(ts: float) -> str:
-    return time.strftime("%H:%M", time.gmtime(ts))
-
-
 def render(snap: Snapshot, *, title: str = "") -> str:
     """The whole frame as text (no trailing escape codes)."""
     lines = [f"Seawall watch  {time.strftime('%Y-%m-%d %H:%M:%S', time.gmtime(snap.now))} UTC"
              + (f"  {title}" if title else "")]
     if snap.model_version:
         model_age = age(snap.now - snap.model_created) if snap.model_created else "unknown age"
-        lines.append(f"model     {clean(snap.model_version, 20)}  age {model_age}")
+        promoted = f", promoted {age(snap.now - snap.model_promoted)} ago" if snap.model_promoted else ""
+        lines.append(f"model     {clean(snap.model_version, 20)}  age {model_age} (trained or retrained){promoted}")
     else:
         lines.append("model     none (no active model in the registry)")
     lines.append("retrain   " + _retrain_line(snap))
@@ -191,7 +175,8 @@ def render(snap: Snapshot, *, title: str = "") -> str:
         lines.append("")
         lines.append("recent events")
         for e in snap.events:
-            lines.append(f"  {clock(e.ts)}  {clean(e.type, 16):<16} {clean(_event_summary(e), 60)}")
+            lines.append(f"  {clock(e.ts)}  {age(snap.now - e.ts) + ' ago':>9}  {clean(e.type, 16):<15} "
+                         f"{clean(event_line(e), 72)}")
     return "\n".join(lines) + "\n"
 
 
@@ -205,16 +190,45 @@ def _retrain_line(snap: Snapshot) -> str:
     return f"{clean(str(decision), 12)} {age(snap.now - e.ts)} ago{why}"
 
 
-def _event_summary(e: Event) -> str:
+def _share(value) -> str:
+    return f"{value:.1%}" if isinstance(value, (int, float)) else "?"
+
+
+def event_line(e: Event) -> str:
+    """One event in words (pure); an event type this version does not know shows its fields as ``key=value``."""
     d = e.data
-    if e.type.startswith("wave"):
-        return f"{d.get('site', '')} rate {d.get('rate', d.get('peak_rate', 0)):.1%}"
-    if e.type.startswith("campaign"):
-        return f"{d.get('id', '')} on {d.get('site', '')}, {d.get('members', 0)} members"
+    if e.type == "wave_start":
+        return f"wave on {d.get('site', '?')}: flagged {_share(d.get('rate'))} vs normal {_share(d.get('baseline'))}"
+    if e.type == "wave_end":
+        return (f"wave over on {d.get('site', '?')} after {d.get('minutes', '?')} min, "
+                f"peak {_share(d.get('peak_rate'))} flagged")
+    if e.type == "campaign_start":
+        return (f"campaign {d.get('id', '?')} on {d.get('site') or '?'}: {d.get('members', 0)} near-duplicates "
+                f"from {d.get('authors', '?')} authors")
+    if e.type == "campaign_end":
+        return f"campaign {d.get('id', '?')} on {d.get('site') or '?'} over: {d.get('members', 0)} members"
+    if e.type in ("promote", "rollback"):
+        verb = "promoted" if e.type == "promote" else "rolled back to"
+        by = f" by {d['actor']}" if d.get("actor") else ""
+        return f"{verb} {d.get('version', '?')} (was {d.get('previous') or 'none'}){by}"
     if e.type == "retrain":
-        return str(d.get("decision", ""))
-    return json.dumps(d, sort_keys=True)[:60]
+        decision = d.get("decision", "?")
+        if decision == "promoted":
+            return f"promoted {d.get('candidate', '?')} after {d.get('labels_new', 0)} new labels"
+        if decision == "refused":
+            return f"kept {d.get('active', '?')}; candidate refused by the gate"
+        if decision == "failed":
+            return f"failed: {d.get('error', '?')}"
+        return f"{decision}: {d.get('labels_new', 0)} new labels"
+    return ", ".join(f"{k}={v}" for k, v in sorted(d.items()) if not isinstance(v, (dict, list)))
 
 
 def _text(value) -> str:
     return value.decode("utf-8", "replace") if isinstance(value, bytes) else str(value)
+
+
+def _seconds(value) -> float | None:
+    try:
+        return float(value) if value is not None else None
+    except ValueError:
+        return None

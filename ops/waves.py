@@ -21,11 +21,14 @@ import logging
 import os
 import time
 from collections.abc import Callable, Mapping
+from typing import TYPE_CHECKING
 
 from ops.cusum import WaveParams, WaveState, observe_minute
-from ops.metrics import SiteLabels
 from worker.events import EVENTS_MAXLEN, add_event
 from worker.settings import Keys
+
+if TYPE_CHECKING:  # ops.metrics imports prometheus-client, which `seawall watch` (a reader of this module) never needs
+    from ops.metrics import SiteLabels
 
 log = logging.getLogger("seawall.waves")
 
@@ -96,6 +99,8 @@ class WaveDetector:
         self.client = client
         self.keys = keys
         self.params = params
+        from ops.metrics import SiteLabels
+
         self.site_label = SiteLabels(sites=sites)
         self.clock = clock
         self.events_maxlen = events_maxlen

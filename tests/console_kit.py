@@ -7,7 +7,6 @@ threshold holds everything, so the console shows them exactly as the worker cach
 from __future__ import annotations
 
 import json
-import time
 
 from worker.settings import Keys
 
@@ -67,14 +66,3 @@ def hold(client, n: int, *, start: int = 0, keys: Keys = Keys()) -> list[str]:
                                              "reasons": json.dumps([["fence", 0.4], ["allotment", -0.2]])})
         ids.append(cid)
     return ids
-
-
-def wait_for(check, what: str, *, timeout: float = 60.0):
-    """Poll ``check()`` until it is truthy and return it (the console's finalizer runs every quarter second)."""
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        got = check()
-        if got:
-            return got
-        time.sleep(0.05)
-    raise AssertionError(f"timed out after {timeout}s waiting for {what}")

@@ -11,6 +11,7 @@ from pathlib import Path
 
 import pytest
 
+from kit import wait_until
 from ops.cli import main
 from ops.registry import Registry
 from retrain_kit import KEYS, MODERATORS, stream
@@ -19,23 +20,13 @@ from test_retrain import bootstrap
 ROOT = Path(__file__).resolve().parent.parent
 
 
-def wait_until(predicate, *, seconds: float, every: float = 0.05):
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
-        value = predicate()
-        if value:
-            return value
-        time.sleep(every)
-    return predicate()
-
-
 def seconds_until_served(client, version: str, probes, *, limit: float = 10.0) -> float:
     """Send a probe comment every 0.2 s until one gets a verdict from ``version``."""
     t0 = time.monotonic()
     for probe in probes:
         mark = client.xadd(KEYS.comments, probe.fields())
         got = wait_until(lambda: [f for _i, f in client.xrange(KEYS.verdicts, min=mark) if f[b"id"] == probe.id.encode()],
-                         seconds=0.2, every=0.02)
+                         timeout=0.2, interval=0.02)
         if got and got[0][b"model"].decode() == version:
             return time.monotonic() - t0
         if time.monotonic() - t0 > limit:
@@ -69,7 +60,7 @@ def test_feedback_retrain_promote_hot_reload_and_rollback_with_a_running_worker(
         for c in comments:
             pipe.xadd(KEYS.comments, c.fields())
         pipe.execute()
-        assert wait_until(lambda: r.xlen(KEYS.verdicts) >= len(comments), seconds=60), log()
+        assert wait_until(lambda: r.xlen(KEYS.verdicts) >= len(comments), timeout=60), log()
         assert set(verdict_models(r)) == {first}
 
         # Moderators label comments by id only: the text comes from the worker's cache.
@@ -78,7 +69,7 @@ def test_feedback_retrain_promote_hot_reload_and_rollback_with_a_running_worker(
                                       "moderator": MODERATORS[i % len(MODERATORS)]})
         pipe.execute()
         # The worker's own feedback thread turns them into labels.
-        assert wait_until(lambda: r.xlen("seawall:labels") >= 1000, seconds=30)
+        assert wait_until(lambda: r.xlen("seawall:labels") >= 1000, timeout=30)
         assert r.xlen(KEYS.deadletter) == 0
 
         assert main(["retrain", "--redis", redis_server.url, "--rescore", "now"]) == 0

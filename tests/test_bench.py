@@ -17,6 +17,7 @@ def test_interleaved_medians_take_turns_and_skip_warmup():
     assert set(medians) == {"a", "b"} and all(v >= 0 for v in medians.values())
 
 
+@pytest.mark.slow
 def test_bench_model_runs_and_reports_ratios(capsys):
     assert main(["bench", "model", "--train", "2000", "--repeats", "2", "--json"]) == 0
     rows = json.loads(capsys.readouterr().out)

@@ -5,6 +5,7 @@ import fakeredis
 import numpy as np
 import pytest
 
+from kit import Clock
 from model.minhash import MinHasher
 from worker.campaigns import CampaignPolicy, end_idle_campaigns, read_campaigns
 from worker.events import parse_event
@@ -16,14 +17,6 @@ KEYS = Keys()
 NAMES = ["ana", "bo", "cyd", "dee", "eli", "fay", "gus", "hal", "ivy", "jo", "kai", "lu"]
 FILLER = ("the council meeting ran long tonight and the new bridge plan was tabled again after a "
           "short debate about parking near the old market hall").split()
-
-
-class Clock:
-    def __init__(self, t=1_800_000_000.0):
-        self.t = t
-
-    def __call__(self):
-        return self.t
 
 
 def campaign_text(i):

@@ -24,9 +24,10 @@ from playwright.sync_api import expect
 
 from console_kit import (
     HOSTILE, HOSTILE_AUTHOR, HOSTILE_SITE, PWNED, SANDBOX, SITE_THRESHOLDS, STRICT_SECTIONS, hostile_comments,
-    strict_section_comments, wait_for,
+    strict_section_comments,
 )
 from model.classifier import EmbeddingClassifier
+from kit import wait_until
 from ops.bench.console import ConsoleThread, fill_queue
 from ops.config import load_config
 from ops.connection import connect
@@ -41,7 +42,7 @@ from worker.connection import connect as worker_connect
 
 pytestmark = pytest.mark.redis_server
 
-CHROMIUM = "/usr/bin/chromium"
+CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"  # Debian's; Playwright downloads no browser here
 CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
                  "--disable-component-update", "--disable-sync", "--no-first-run"]
 PASSWORD = "hedgerow lane moderators"
@@ -100,7 +101,7 @@ class Story:
 
 @pytest.fixture(scope="module")
 def story(tmp_path_factory):
-    require(os.path.exists(CHROMIUM), f"{CHROMIUM} missing; apt-get install chromium chromium-driver")
+    require(shutil.which("chromium") is not None, "chromium missing; apt-get install chromium chromium-driver")
     require(shutil.which("redis-server") is not None, "redis-server binary not on PATH")
     shots = Path(os.environ.get("SEAWALL_SCREENSHOT_DIR") or tmp_path_factory.mktemp("shots"))
     server = RedisServer(tmp_path_factory.mktemp("redis")).start()
@@ -196,8 +197,8 @@ def test_the_keyboard_publishes_one_comment_and_the_site_is_told(story, hazel):
     page.keyboard.press("p")
     expect(page.locator("#toast-text")).to_have_text("Published 1 comment.")
     assert not rows.nth(1).is_visible()
-    decision = wait_for(lambda: next((e for e in story.entries(story.keys.decisions) if e["id"] == target), None),
-                              "the decision on the decisions stream")
+    decision = wait_until(lambda: next((e for e in story.entries(story.keys.decisions) if e["id"] == target), None),
+                          timeout=60, what="the decision on the decisions stream")
     assert (decision["decision"], decision["label"], decision["moderator"]) == ("publish", "ham", "mod-hazel")
     assert decision["site"] == "cycling" and decision["source"] == "console"
     labels = [f for f in story.entries(story.keys.feedback) if f["id"] == target]
@@ -223,8 +224,8 @@ def test_bulk_reject_of_the_campaign_then_undo_then_for_good(story, hazel):
     assert written.isdisjoint(ids)
 
     page.keyboard.press("r")  # the cursor is back on the family row
-    wait_for(lambda: set(ids) <= {e["id"] for e in story.entries(story.keys.decisions)},
-                   "the family's decisions", timeout=90)
+    wait_until(lambda: set(ids) <= {e["id"] for e in story.entries(story.keys.decisions)},
+               timeout=90, what="the family's decisions")
     decided = [e for e in story.entries(story.keys.decisions) if e["id"] in set(ids)]
     assert len(decided) == len(ids) and {(e["decision"], e["moderator"]) for e in decided} == {("reject", "mod-hazel")}
     labels = [f for f in story.entries(story.keys.feedback) if f["id"] in set(ids)]
@@ -245,7 +246,8 @@ def test_a_selection_is_decided_in_one_go(story, hazel):
     assert page.locator("#bulkbar").is_visible() and page.locator("#picked").inner_text().startswith("2 selected")
     page.locator("#bulkbar button[data-bulk=reject]").click()
     expect(page.locator("#toast-text")).to_have_text("Rejected 2 comments.")
-    wait_for(lambda: set(picked) <= {e["id"] for e in story.entries(story.keys.decisions)}, "both decisions")
+    wait_until(lambda: set(picked) <= {e["id"] for e in story.entries(story.keys.decisions)}, timeout=60,
+               what="both decisions")
 
 
 def test_hostile_comments_are_shown_as_text_and_run_nothing(story, hazel):
@@ -280,7 +282,8 @@ def test_the_second_moderator_sees_the_comment_is_gone(story, browser, hazel):
         other.locator(f"#rows > li[data-ids='{target}'] button[data-act=reject]").click()
         expect(other.locator("#toast-text")).to_have_text(
             "Rejected 0 comments. 1 had already been decided by someone else.")
-        wait_for(lambda: any(e["id"] == target for e in story.entries(story.keys.decisions)), "the decision")
+        wait_until(lambda: any(e["id"] == target for e in story.entries(story.keys.decisions)), timeout=60,
+                   what="the decision")
         time.sleep(UNDO_S + 0.5)
         assert [(f["label"], f["moderator"]) for f in story.entries(story.keys.feedback) if f["id"] == target] == [
             ("ham", "mod-hazel")]

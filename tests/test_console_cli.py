@@ -14,7 +14,8 @@ import time
 
 import pytest
 
-from console_kit import hold, wait_for
+from console_kit import hold
+from kit import wait_until
 from ops.bench.console import Browser
 from ops.cli import main
 from ops.config import load_config
@@ -85,7 +86,7 @@ def test_serve_then_a_killed_console_writes_its_pending_decisions_when_it_starts
     redis_client.zadd(KEYS.deciding, {"c0": time.time() - 1})  # its window has passed meanwhile
     proc = console_process(url, port, tmp_path)
     try:
-        wait_for(lambda: redis_client.xlen(KEYS.decisions), "the restarted console's finalizer")
+        wait_until(lambda: redis_client.xlen(KEYS.decisions), timeout=60, what="the restarted console's finalizer")
         assert [f[b"id"] for _s, f in redis_client.xrange(KEYS.decisions)] == [b"c0"]
     finally:
         proc.send_signal(signal.SIGTERM)

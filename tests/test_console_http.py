@@ -13,7 +13,8 @@ from urllib.parse import urlencode
 
 import pytest
 
-from console_kit import hold, wait_for
+from console_kit import hold
+from kit import wait_until
 from ops.bench.console import Browser, ConsoleThread
 from ops.config import load_config
 from ops.connection import connect
@@ -166,7 +167,8 @@ def test_decide_undo_and_the_streams(desk):
     assert got["undo_s"] == 0.5
     res, body = b.post_json("/api/undo", json.dumps({"token": got["token"], "ids": ["c1"]}).encode())
     assert json.loads(body) == {"restored": ["c1"], "final": []}
-    wait_for(lambda: desk.client.xlen(desk.keys.decisions) >= 1, "the finalizer (after the undo window)")
+    wait_until(lambda: desk.client.xlen(desk.keys.decisions) >= 1, timeout=60,
+               what="the finalizer (after the undo window)")
     entries = [{k.decode(): v.decode() for k, v in f.items()} for _s, f in desk.client.xrange(desk.keys.decisions)]
     assert [(e["id"], e["decision"], e["moderator"]) for e in entries] == [("c0", "reject", "mod-ana")]
     assert sorted(desk.held()) == [b"c1", b"c2"]
@@ -206,7 +208,7 @@ def test_two_moderators_racing_over_http_decide_each_comment_once(desk):
         t.join(timeout=120)
     assert sorted(won["mod-ana"] + won["mod-bo"]) == sorted(ids)
     assert won["mod-ana"] and won["mod-bo"]  # both got some: they met in the middle
-    wait_for(lambda: desk.client.xlen(desk.keys.feedback) >= 60, "the 60 labels")
+    wait_until(lambda: desk.client.xlen(desk.keys.feedback) >= 60, timeout=60, what="the 60 labels")
     labels = [{k.decode(): v.decode() for k, v in f.items()} for _s, f in desk.client.xrange(desk.keys.feedback)]
     assert sorted(label["id"] for label in labels) == sorted(ids)
     assert {label["id"]: label["moderator"] for label in labels} == {

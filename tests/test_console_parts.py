@@ -287,7 +287,8 @@ def test_gate_summary_of_a_retrain_that_built_two_candidates(fake_redis):
     assert out["sets"][0]["candidate"] == {"roc_auc": 0.99, "recall_at_gate_fpr": 0.9}
     assert out["sets"][0]["active"] == {"roc_auc": 0.97, "recall_at_gate_fpr": 0.81}
     refused = gate_summary({"decision": "refused", "reasons": ["the recent holdout has 23 rows"]})
-    assert refused["sets"] == [] and refused["chosen"] == "" and refused["reasons"] == ["the recent holdout has 23 rows"]
+    assert refused["sets"] == [] and refused["chosen"] == ""
+    assert refused["reasons"] == ["the recent holdout has 23 rows"]
 
 
 # -- small web helpers --------------------------------------------------------------------------

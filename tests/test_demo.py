@@ -13,7 +13,7 @@ import re
 
 import pytest
 
-import ops.commands.demo as demo_command
+import ops.demo as demo_module  # `seawall demo` imports run_demo from here when it runs
 from ops.cli import main
 from ops.scenario import WAVE_SITES
 
@@ -22,7 +22,7 @@ def demo(tmp_path_factory):
     """Run `seawall demo --report PATH` once; keep its output, its report and its DemoResult."""
     report = tmp_path_factory.mktemp("demo") / "report.html"
     results = []
-    real_run_demo = demo_command.run_demo
+    real_run_demo = demo_module.run_demo
 
     def spy(**kwargs):
         result = real_run_demo(**kwargs)
@@ -30,7 +30,7 @@ def demo(tmp_path_factory):
         return result
 
     with pytest.MonkeyPatch.context() as mp:
-        mp.setattr(demo_command, "run_demo", spy)
+        mp.setattr(demo_module, "run_demo", spy)
         mp.delenv("SEAWALL_CONFIG", raising=False)
         code = main(["demo", "--report", str(report)])
     (result, kwargs), = results

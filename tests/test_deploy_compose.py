@@ -20,6 +20,7 @@ from ops.cli import build_parser
 from ops.config import env_name, iter_settings
 from ops.settings import MetricsSettings, RetrainSettings
 from servers import require
+from worker.jobs import JOB_SERIALIZER
 
 DEPLOY = Path(__file__).resolve().parents[1] / "deploy"
 SETTINGS = {env_name(name) for name, *_ in iter_settings()}
@@ -92,6 +93,7 @@ def test_rq_scheduler_and_worker_use_the_schedule_module_and_queue(services):
     assert cron == ["rq", "cron", "ops.schedule"]
     worker = services["rq-worker"]["command"]
     assert worker[:2] == ["rq", "worker"] and worker[-1] == RetrainSettings().queue
+    assert worker[worker.index("--serializer") + 1] == JOB_SERIALIZER  # the JSON jobs Seawall enqueues, never pickle
 
 
 def _host_path(mounts: dict[str, str], inside: str) -> Path | None:

@@ -19,6 +19,8 @@ import pytest
 from ops.cli import build_parser
 from ops.config import env_name, iter_settings
 from ops.settings import RetrainSettings
+from servers import require
+from worker.jobs import JOB_SERIALIZER
 
 SYSTEMD = Path(__file__).resolve().parents[1] / "deploy" / "systemd"
 INSTALL_BIN = "/opt/seawall/venv/bin/"
@@ -100,8 +102,8 @@ def instance_name(name: str) -> str:
 
 @pytest.fixture
 def analyze():
-    if shutil.which("systemd-analyze") is None:
-        pytest.skip("systemd-analyze is not installed here (it is on Debian CI images with systemd)")
+    require(shutil.which("systemd-analyze") is not None,
+            "systemd-analyze is not installed (Debian package systemd; .ci/run installs it)")
     return verify
 
 
@@ -178,6 +180,7 @@ def test_rq_worker_unit_listens_on_the_retrain_queue():
     argv = exec_argv("seawall-rq-worker.service")
     assert argv[:2] == [INSTALL_BIN + "rq", "worker"]
     assert argv[-1] == RetrainSettings().queue
+    assert argv[argv.index("--serializer") + 1] == JOB_SERIALIZER  # reads the JSON jobs Seawall enqueues, never pickle
 
 
 @pytest.mark.parametrize("name", OURS)

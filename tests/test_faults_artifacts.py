@@ -10,7 +10,8 @@ import os
 import numpy as np
 import pytest
 
-from faults_kit import KEYS, Worker, comment_text, stop_all, wait_until
+from faults_kit import KEYS, comment_text
+from kit import Worker, stop_all, wait_until
 from model import artifact
 from model.classifier import EmbeddingClassifier
 from model.errors import ArtifactError

@@ -9,7 +9,8 @@ from pathlib import Path
 
 import pytest
 
-from faults_kit import KEYS, clean_env
+from faults_kit import KEYS
+from kit import clean_env
 from ops.registry import Registry
 from retrain_kit import bootstrap, model_bytes, send_feedback, stream
 
@@ -46,6 +47,7 @@ def consistent(registry: Registry) -> str:
 
 
 
+@pytest.mark.slow
 def test_two_concurrent_retrains_one_runs_the_other_is_told(redis_server):
     client = redis_server.client()
     registry, first = bootstrap(client)
@@ -67,6 +69,7 @@ def test_two_concurrent_retrains_one_runs_the_other_is_told(redis_server):
     assert client.llen("seawall:retrain:reports") == 1  # the loser stored no report
 
 
+@pytest.mark.slow
 def test_two_concurrent_promotes_leave_one_consistent_active_model(redis_server):
     client = redis_server.client()
     registry = Registry(client=client, keys=KEYS)

@@ -10,16 +10,14 @@ import pytest
 
 from faults_kit import (
     KEYS,
-    Worker,
     comment_text,
     deadletters,
     group_pending,
     kill_mid_batch,
     read_stream,
-    stop_all,
-    wait_until,
     write_model,
 )
+from kit import Worker, stop_all, wait_for_progress, wait_until
 from worker.commit import text_digest
 
 COMMENTS = 4_000
@@ -78,15 +76,15 @@ def test_sigkills_while_comments_are_edited_give_one_verdict_per_version(redis_s
             if i % 1000 == 999:
                 pipe.execute()
         pipe.execute()
-        deadline = time.monotonic() + 150
         for k in range(KILLS):
             due = (k + 1) * expected // (KILLS + 2)
-            wait_until(lambda: client.xlen(KEYS.verdicts) >= due, timeout=max(0.0, deadline - time.monotonic()))
+            wait_for_progress(lambda: client.xlen(KEYS.verdicts) >= due, lambda: client.xlen(KEYS.verdicts),
+                              stall_s=60, what=f"{due} verdicts before kill {k + 1}")
             time.sleep(rng.uniform(0.0, 0.2))
             kills.append(kill_mid_batch(client, workers, rng, len(kills) + 1)[1])
-        finished = wait_until(lambda: client.xlen(KEYS.verdicts) >= expected and group_pending(client) == 0,
-                              timeout=max(10.0, deadline - time.monotonic()), interval=0.2)
-        assert finished, f"{client.xlen(KEYS.verdicts)} of {expected} verdicts, {group_pending(client)} pending"
+        wait_for_progress(lambda: client.xlen(KEYS.verdicts) >= expected and group_pending(client) == 0,
+                          lambda: (client.xlen(KEYS.verdicts), group_pending(client)), stall_s=60, interval=0.2,
+                          what=f"{expected} verdicts and nothing pending (progress: verdicts, pending)")
         assert wait_until(lambda: all(w.started() for w in workers), timeout=60)
     finally:
         codes = stop_all(workers)

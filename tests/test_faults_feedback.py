@@ -16,7 +16,8 @@ import sys
 
 import pytest
 
-from faults_kit import KEYS, Worker, clean_env, deadletters, stop_all, verdict_ids, wait_until, write_model
+from faults_kit import KEYS, deadletters, verdict_ids, write_model
+from kit import Worker, clean_env, stop_all, wait_until
 from model.evaluation import evaluate
 from retrain_kit import bootstrap, send_feedback, stream
 

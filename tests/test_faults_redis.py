@@ -12,15 +12,13 @@ import redis
 from faults_kit import (
     KEYS,
     Producer,
-    Worker,
     consumer_seen,
     deadletters,
     group_pending,
-    stop_all,
     verdict_ids,
-    wait_until,
     write_model,
 )
+from kit import Worker, stop_all, wait_until
 from ops.registry import Registry
 from retrain_kit import model_bytes
 from servers import RedisServer, require

@@ -17,16 +17,14 @@ import pytest
 from faults_kit import (
     KEYS,
     Producer,
-    Worker,
     consumer_pending,
     consumer_seen,
     deadletters,
     group_pending,
-    stop_all,
     verdict_ids,
-    wait_until,
     write_model,
 )
+from kit import Worker, stop_all, wait_until
 
 STALLS = 6
 CLAIM_IDLE_MS = 800

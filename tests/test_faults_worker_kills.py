@@ -10,19 +10,19 @@ import pytest
 from faults_kit import (
     KEYS,
     Producer,
-    Worker,
     deadletters,
     group_lag,
     group_pending,
     kill_mid_batch,
-    stop_all,
     verdict_ids,
-    wait_until,
     write_model,
 )
+from kit import Worker, stop_all, wait_for_progress, wait_until
 
 COMMENTS = 20_000
 KILLS = 20
+# The run may take as long as the machine needs; it fails only if the verdict count stands still this long.
+STALL_S = 60.0
 
 
 @pytest.mark.redis_server
@@ -40,20 +40,20 @@ def test_twenty_sigkills_during_a_20000_comment_run_lose_and_double_nothing(redi
     try:
         # The whole run is queued up front, so the workers always have a batch in hand.
         Producer(url=redis_server.url, n=COMMENTS, rate=1e9, chunk=1000).run()
-        deadline = time.monotonic() + 150
         for k in range(KILLS):
             # Kills are spread over the run: the k-th waits for its share of the verdicts.
             due = (k + 1) * COMMENTS // (KILLS + 2)
-            wait_until(lambda: client.xlen(KEYS.verdicts) >= due, timeout=max(0.0, deadline - time.monotonic()))
+            wait_for_progress(lambda: client.xlen(KEYS.verdicts) >= due, lambda: client.xlen(KEYS.verdicts),
+                              stall_s=STALL_S, what=f"{due} verdicts before kill {k + 1}")
             time.sleep(rng.uniform(0.0, 0.2))
             # Aim at a worker holding unacknowledged entries, so the kill lands mid-batch; restart it
             # under the same name or a new one, in turns.
             name, held = kill_mid_batch(client, workers, rng, len(kills) + 1)
             kills.append({"worker": name, "pending_at_kill": held})
-        finished = wait_until(lambda: client.xlen(KEYS.verdicts) >= COMMENTS and group_pending(client) == 0,
-                              timeout=max(10.0, deadline - time.monotonic()), interval=0.2)
+        wait_for_progress(lambda: client.xlen(KEYS.verdicts) >= COMMENTS and group_pending(client) == 0,
+                          lambda: (client.xlen(KEYS.verdicts), group_pending(client)), stall_s=STALL_S,
+                          interval=0.2, what="every verdict, nothing pending (progress: verdicts, pending)")
         counts = verdict_ids(client)
-        assert finished, f"{len(counts)} ids with verdicts, {group_pending(client)} pending after the run"
         # A worker restarted by the last kill may still be starting; let it join before SIGTERM.
         assert wait_until(lambda: all(w.started() for w in workers), timeout=60)
     finally:

@@ -23,7 +23,8 @@ import pytest
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
-from faults_kit import KEYS, Worker, group_pending, read_stream, stop_all, wait_until, write_model
+from faults_kit import KEYS, group_pending, read_stream, write_model
+from kit import Worker, stop_all, wait_until
 from worker.connection import connect
 from worker.consumer import StreamConsumer
 from worker.loader import FileModelSource
@@ -218,6 +219,7 @@ def drain(consumer: StreamConsumer) -> int:
             return total
 
 
+@pytest.mark.slow
 def test_ten_thousand_fuzzed_entries_through_the_batch_processing(redis_server, tmp_path):
     client = connect(redis_server.url)
     model = write_model(tmp_path / "model.bin")

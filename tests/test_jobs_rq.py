@@ -4,13 +4,14 @@ from __future__ import annotations
 import datetime
 import os
 import subprocess
-import sys
 from pathlib import Path
 
 import pytest
 
+from kit import rq_worker_argv
 from worker_models import tiny_model
 from ops.bench.stream import invented_comments
+from worker.jobs import JOB_SERIALIZER
 
 pytestmark = pytest.mark.redis_server
 
@@ -32,8 +33,7 @@ def fresh_jobs(monkeypatch):
 def run_burst(url: str, model: Path, tmp_path: Path, **env_extra) -> subprocess.CompletedProcess:
     env = {k: v for k, v in os.environ.items() if not k.startswith("SEAWALL_")}
     env.update({"SEAWALL_MODEL_PATH": str(model), **env_extra})
-    rq = Path(sys.executable).with_name("rq")
-    return subprocess.run([str(rq), "worker", "--burst", "--url", url, "seawall"], env=env, cwd=tmp_path,
+    return subprocess.run(rq_worker_argv(url, "seawall"), env=env, cwd=tmp_path,
                           capture_output=True, text=True, timeout=120)
 
 
@@ -46,10 +46,12 @@ def test_score_batch_in_a_real_rq_worker(redis_server, model_file, tmp_path, fre
     comments.append({"id": "bad", "text": "   "})
     comments.append({"id": 77, "text": "an integer id is a plain value too", "author": None})
     overrides = '{"pets.example": {"hold": 0.0}}'                 # everything on pets.example is at least held
-    queue = Queue("seawall", connection=redis_server.client())
+    queue = Queue("seawall", connection=redis_server.client(), serializer=JOB_SERIALIZER)
     good_job = queue.enqueue("worker.jobs.score_batch", comments)
     not_a_list = queue.enqueue("worker.jobs.score_batch", "just a string")
-    not_plain = queue.enqueue("worker.jobs.score_batch", [{"id": "x", "text": "t", "ts": datetime.datetime(2026, 1, 1)}])
+    not_plain = queue.enqueue("worker.jobs.score_batch", [{"id": "x", "text": "t", "ts": ["2026-01-01"]}])
+    with pytest.raises(TypeError, match="JSON serializable"):  # JSON jobs carry data only: no objects at all
+        queue.enqueue("worker.jobs.score_batch", [{"id": "x", "text": "t", "ts": datetime.datetime(2026, 1, 1)}])
 
     done = run_burst(redis_server.url, model_file, tmp_path, SEAWALL_WORKER_SITE_THRESHOLDS=overrides)
     assert done.returncode == 0, done.stderr[-2000:]

@@ -9,6 +9,7 @@ import pytest
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.parser import text_string_to_metric_families
 
+from kit import Clock
 from ops.httpserver import MetricsServer, redis_model_ready
 from ops.metrics import (
     BATCH_SECONDS_BUCKETS,
@@ -18,14 +19,6 @@ from ops.metrics import (
     build_metrics,
     reason_label,
 )
-
-
-class Clock:
-    def __init__(self, t=1_800_000_000.0):
-        self.t = t
-
-    def __call__(self):
-        return self.t
 
 
 @pytest.fixture

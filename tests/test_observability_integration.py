@@ -20,13 +20,13 @@ import shutil
 import signal
 import subprocess
 import sys
-import time
 import urllib.error
 import urllib.parse
 import urllib.request
 
 import pytest
 
+from kit import wait_until
 from ops.bench.stream import invented_comments
 from servers import free_port, require, wait_for_port
 from worker.events import parse_event
@@ -42,16 +42,6 @@ def fetch(url: str) -> tuple[int, str]:
             return resp.status, resp.read().decode()
     except urllib.error.HTTPError as err:
         return err.code, err.read().decode()
-
-
-def wait_until(check, *, timeout: float, what: str):
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        value = check()
-        if value:
-            return value
-        time.sleep(0.1)
-    raise AssertionError(f"timed out after {timeout}s waiting for {what}")
 
 
 @pytest.fixture(scope="module")
@@ -116,6 +106,7 @@ def sample(body: str, name: str, **labels) -> float | None:
     return None
 
 
+@pytest.mark.slow
 def test_real_worker_metrics_scraped_by_real_prometheus_without_leaking_text(worker, redis_client, tmp_path):
     require(shutil.which("prometheus") is not None, "prometheus binary not on PATH (Debian package prometheus)")
     marker = "mk" + secrets.token_hex(6)
@@ -204,6 +195,7 @@ def free_port_pair() -> int:
     raise RuntimeError("no two consecutive free loopback ports")
 
 
+@pytest.mark.slow
 def test_processes_each_serve_their_own_endpoint(redis_server, model_file, tmp_path):
     """`--processes 2 --metrics-port P`: process i serves on P + i, each with its own counts."""
     port = free_port_pair()

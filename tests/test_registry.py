@@ -3,10 +3,10 @@ from __future__ import annotations
 
 import json
 import threading
-import time
 
 import pytest
 
+from kit import wait_until
 from model.classifier import EmbeddingClassifier
 from ops.cli import main
 from ops.registry import (
@@ -59,7 +59,7 @@ def test_models_commands_bootstrap_list_show_pull_promote_rollback(redis_server,
     b = json_out(capsys)["version"]
     assert main(["models", "promote", b, "--redis", url, "--json"]) == 0
     promoted = json_out(capsys)
-    assert promoted["previous"] == a and promoted["rescore_job"]
+    assert promoted["previous"] == a and promoted["rescore_mode"] == "now" and promoted["rescore"]["held"] == 0
 
     assert main(["models", "list", "--redis", url, "--json"]) == 0
     listing = json_out(capsys)
@@ -172,12 +172,12 @@ def test_model_source_hot_reloads_on_pubsub_and_refuses_a_corrupt_blob(redis_cli
     source = RegistryModelSource(client=redis_server_client(redis_client), keys=KEYS, poll_interval_s=60)
     assert source.current().version == a
     registry.promote(b)
-    reloaded = wait_for(lambda: source.poll(), seconds=2)
+    reloaded = wait_until(lambda: source.poll(), timeout=2, interval=0.02)
     assert reloaded is not None and reloaded.version == b and source.version == b
 
     redis_client.set(registry.blob_key(c), b"not an artifact at all")
     registry.promote(c)
-    assert wait_for(lambda: source.poll(), seconds=0.5) is None
+    assert wait_until(lambda: source.poll(), timeout=0.5, interval=0.02) is None
     assert source.version == b and source.current().version == b
     assert any("refused version" in r.getMessage() for r in caplog.records)
     source.close()
@@ -213,16 +213,6 @@ def test_model_source_validates_poll_interval(fake_redis, bad):
 
 def redis_server_client(client):
     return client.__class__(connection_pool=client.connection_pool)
-
-
-def wait_for(fn, *, seconds: float):
-    deadline = time.monotonic() + seconds
-    while time.monotonic() < deadline:
-        value = fn()
-        if value is not None:
-            return value
-        time.sleep(0.02)
-    return None
 
 
 def test_example_sets_keep_texts_with_unicode_line_separators(tmp_path):

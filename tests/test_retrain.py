@@ -4,6 +4,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import random
+import time
 
 import numpy as np
 import pytest
@@ -215,6 +216,7 @@ def test_retrain_promotes_a_better_model_and_records_why(redis_client):
     comments = stream()
     feedback, test = comments[:2500], comments[2500:]
     send_feedback(r, feedback)
+    started = time.time()
     report = retrain(r, KEYS, SETTINGS)
 
     assert report["decision"] == "promoted", report["reasons"]
@@ -222,6 +224,11 @@ def test_retrain_promotes_a_better_model_and_records_why(redis_client):
     assert registry.active() == new_version and registry.history() == [new_version, first]
     meta = registry.meta(new_version)
     assert meta["source"] == "retrain" and meta["parent"] == first
+    # The retrained model is new: its age (seawall_model_age_seconds, `seawall watch`) starts at the retrain,
+    # not at the first model's training.
+    assert float(registry.meta(first)["created_at"]) < started <= float(meta["created_at"])
+    assert float(meta["created_at"]) <= float(meta["promoted_at"]) <= time.time()
+    assert registry.load(new_version).created_at == pytest.approx(float(meta["created_at"]), abs=1e-3)
     assert meta["labels_cursor"] == report["labels"]["cursor_to"]
     labels = report["labels"]
     assert labels["drained"] == 2500 and labels["new"] == 2500

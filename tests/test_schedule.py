@@ -13,6 +13,7 @@ import fakeredis
 import pytest
 from rq.cron import CronScheduler
 
+from kit import rq_worker_argv, wait_until
 from ops.retrain import last_reports
 from retrain_kit import KEYS, send_feedback, stream
 from test_retrain import bootstrap
@@ -74,20 +75,18 @@ def test_a_real_rq_worker_runs_the_scheduled_retrain_and_the_rescore(redis_serve
     job = cron_job.enqueue(r)  # exactly what the scheduler does at 03:00
     env = dict(os.environ, SEAWALL_REDIS_URL=redis_server.url)
     env.pop("SEAWALL_CONFIG", None)
-    proc = subprocess.run(
-        [sys.executable, "-m", "rq.cli", "worker", "--burst", "--url", redis_server.url, "--name", "test-rq",
-         "seawall"],
-        cwd=ROOT, env=env, capture_output=True, text=True, timeout=150,
-    )
+    proc = subprocess.run(rq_worker_argv(redis_server.url, "seawall", "--name", "test-rq"),
+                          cwd=ROOT, env=env, capture_output=True, text=True, timeout=150)
     assert proc.returncode == 0, proc.stderr[-3000:]
 
     job.refresh()
     assert job.get_status() == "finished", proc.stderr[-3000:]
     assert job.return_value()["decision"] == "promoted"
+    assert job.return_value()["rescore"]["rescored"] == len(held)
     report = last_reports(r, KEYS)[0]
     assert report["decision"] == "promoted" and registry.active() == report["candidate"] != first
 
-    # The promotion queued the hold-queue re-score, which the same burst worker ran.
+    # The retrain job re-scored the hold queue right after the promotion.
     verdicts = [f for _i, f in r.xrange(KEYS.verdicts)]
     assert len(verdicts) == len(held)
     assert {v[b"rescored"] for v in verdicts} == {b"1"}
@@ -138,11 +137,7 @@ def test_rq_cron_command_starts_with_the_schedule_module(redis_server, redis_cli
     proc = subprocess.Popen([sys.executable, "-m", "rq.cli", "cron", "ops.schedule"], cwd=ROOT, env=env,
                             stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     try:
-        deadline = time.monotonic() + 30
-        schedulers = []
-        while time.monotonic() < deadline and not schedulers:
-            schedulers = CronScheduler.all(redis_client)
-            time.sleep(0.1)
+        schedulers = wait_until(lambda: CronScheduler.all(redis_client), timeout=60, interval=0.1)
     finally:
         proc.send_signal(signal.SIGTERM)
         err = proc.communicate(timeout=20)[1]

@@ -14,7 +14,8 @@ import sys
 import pytest
 import redis
 
-from faults_kit import KEYS, Worker, clean_env, comment_text, stop_all, verdict_ids, wait_until
+from faults_kit import KEYS, comment_text, verdict_ids
+from kit import Worker, clean_env, stop_all, wait_until
 from ops.registry import Registry
 from retrain_kit import model_bytes
 from servers import free_port
@@ -56,6 +57,7 @@ def cli(*argv) -> subprocess.CompletedProcess:
                           env=clean_env())
 
 
+@pytest.mark.slow
 def test_requirepass_worker_works_and_a_wrong_password_is_a_clear_error(redis_factory, tmp_path):
     server = redis_factory("auth", extra=["--requirepass", "right-pw-3"])
     admin = redis.Redis(host="127.0.0.1", port=server.port, password="right-pw-3")

@@ -13,9 +13,10 @@ import urllib.request
 
 import pytest
 import redis
-from rq import Queue, SimpleWorker
 
-from faults_kit import KEYS, Worker, stop_all, verdict_ids, wait_until, write_model
+from faults_kit import KEYS, verdict_ids, write_model
+from kit import Worker, run_rq_burst, stop_all, wait_until
+from ops.jobs import job_queue
 from ops.registry import Registry
 from retrain_kit import model_bytes
 from servers import free_port
@@ -45,6 +46,7 @@ def _address(hex_address: str) -> str:
     return "::" if set(hex_address) == {"0"} else hex_address
 
 
+@pytest.mark.slow
 def test_metrics_listen_on_loopback_unless_configured_otherwise_and_no_text_leaks(redis_server, tmp_path):
     admin = redis_server.client()
     marker = "leak" + secrets.token_hex(5)
@@ -112,28 +114,44 @@ def rq_env(redis_server, monkeypatch, tmp_path):
 
 
 class Opaque:
-    """Anything that is not a plain value (RQ would happily pickle it into a job)."""
+    """Anything that is not a plain value (RQ's default serializer would pickle it into a job)."""
+
+
+@pytest.mark.parametrize(
+    "func, kwargs",
+    [
+        ("ops.jobs.rescore_job", {"version": Opaque()}),
+        ("ops.jobs.rescore_job", {"config_file": b"/etc/seawall.toml"}),
+        ("worker.jobs.score_batch", {"comments": [Opaque()]}),
+        ("worker.jobs.score_batch", {"comments": [{"id": "a", "text": b"bytes"}]}),
+    ],
+    ids=["rescore-object", "rescore-bytes-path", "score-object", "score-bytes-text"],
+)
+def test_rq_jobs_cannot_even_carry_objects(rq_env, func, kwargs):
+    # Seawall's queues serialize with JSON: an object or bytes never becomes a job record.
+    with pytest.raises(TypeError, match="JSON serializable"):
+        job_queue(rq_env, "seawall").enqueue(func, kwargs=kwargs)
 
 
 @pytest.mark.parametrize(
     "func, kwargs, message",
     [
-        ("ops.jobs.rescore_job", {"version": Opaque()}, "re-score job: version must be a plain string"),
-        ("ops.jobs.rescore_job", {"config_file": b"/etc/seawall.toml"}, "config_file must be a plain string"),
+        ("ops.jobs.rescore_job", {"version": 12}, "re-score job: version must be a plain string"),
+        ("ops.jobs.rescore_job", {"config_file": {"path": "/etc/seawall.toml"}}, "config_file must be a plain string"),
         ("ops.jobs.retrain_job", {"config_file": ["a.toml"]}, "retrain job: config_file must be a plain string"),
-        ("worker.jobs.score_batch", {"comments": [Opaque()]}, "expected a plain dict"),
-        ("worker.jobs.score_batch", {"comments": [{"id": "a", "text": b"bytes"}]}, "score_batch"),
+        ("worker.jobs.score_batch", {"comments": [["id", "a"]]}, "expected a plain dict"),
+        ("worker.jobs.score_batch", {"comments": [{"id": "a", "text": ["free"]}]}, "score_batch"),
     ],
-    ids=["rescore-object", "rescore-bytes-path", "retrain-list-path", "score-object", "score-bytes-text"],
+    ids=["rescore-int-version", "rescore-dict-path", "retrain-list-path", "score-pair-list", "score-list-text"],
 )
 def test_rq_jobs_built_with_anything_but_plain_values_are_refused(rq_env, func, kwargs, message):
     connection = rq_env
     registry = Registry(client=connection, keys=KEYS)
     registry.promote(registry.push(model_bytes(0)))
-    queue = Queue("seawall", connection=connection)
+    queue = job_queue(connection, "seawall")
     bad = queue.enqueue(func, kwargs=kwargs)
     good = queue.enqueue("worker.jobs.score_batch", kwargs={"comments": [{"id": "a", "text": "free prize"}]})
-    assert SimpleWorker([queue], connection=connection).work(burst=True)
+    assert run_rq_burst(connection)
     bad.refresh()
     good.refresh()
     assert bad.get_status() == "failed"

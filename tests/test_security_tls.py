@@ -5,13 +5,15 @@ from __future__ import annotations
 import pytest
 import redis
 
-from faults_kit import KEYS, Worker, comment_text, stop_all, verdict_ids, wait_until, write_model
+from faults_kit import KEYS, comment_text, verdict_ids, write_model
+from kit import Worker, stop_all, wait_until
 from tlscerts import make_ca
 from worker.connection import connect
 
 pytestmark = pytest.mark.redis_server
 
 
+@pytest.mark.slow
 def test_worker_processes_comments_over_tls_with_the_certificate_verified(redis_factory, tmp_path):
     certs = make_ca(tmp_path / "pki")
     server = redis_factory("tls", tls={"ca": certs["ca"], "cert": certs["cert"], "key": certs["key"]})

@@ -5,10 +5,10 @@ import os
 import signal
 import subprocess
 import sys
-import time
 
 import pytest
 
+from kit import wait_for_progress
 from worker_models import tiny_model
 from ops.bench.stream import invented_comments
 from ops.cli import build_parser, main
@@ -37,6 +37,7 @@ def test_no_model_anywhere_is_one_line_and_exit_2(redis_server, capsys, monkeypa
     assert err[-1].startswith("seawall serve: error: ") and "model" in err[-1]
 
 
+@pytest.mark.slow
 @pytest.mark.redis_server
 def test_processes_runs_named_consumers_and_forwards_sigterm(redis_server, tmp_path):
     client = redis_server.client()
@@ -51,12 +52,15 @@ def test_processes_runs_named_consumers_and_forwards_sigterm(redis_server, tmp_p
                              str(model), "--consumer", "edge", "--processes", "2", "--block-ms", "50"],
                             env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     try:
-        deadline = time.monotonic() + 60
-        names = set()
-        while time.monotonic() < deadline and not (names == {b"edge-0", b"edge-1"} and client.xlen(KEYS.verdicts) == 600):
-            time.sleep(0.05)
+        def consumers():
             if client.exists(KEYS.comments) and client.xinfo_groups(KEYS.comments):
-                names = {c["name"] for c in client.xinfo_consumers(KEYS.comments, KEYS.group)}
+                return {c["name"] for c in client.xinfo_consumers(KEYS.comments, KEYS.group)}
+            return set()
+
+        wait_for_progress(lambda: consumers() == {b"edge-0", b"edge-1"} and client.xlen(KEYS.verdicts) == 600,
+                          lambda: (len(consumers()), client.xlen(KEYS.verdicts)), stall_s=60, interval=0.05,
+                          what="both children reading and every verdict (progress: consumers, verdicts)")
+        names = consumers()
         assert names == {b"edge-0", b"edge-1"}
         assert client.xlen(KEYS.verdicts) == 600
         proc.send_signal(signal.SIGTERM)

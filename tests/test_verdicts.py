@@ -15,7 +15,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from faults_kit import Worker, read_stream, stop_all, wait_until
+from faults_kit import read_stream
+from kit import Worker, stop_all, wait_until
 from model.classifier import EmbeddingClassifier
 from ops.bench.calibration import labelled, ordinary
 from ops.communities import CommunityScenario

@@ -83,3 +83,57 @@ def test_watch_once_on_a_real_redis_server(redis_server, capsys):
 def test_watch_refuses_a_bad_interval(capsys):
     assert main(["watch", "--redis", "redis://127.0.0.1:1/0", "--interval", "0"]) == 2
     assert "interval" in capsys.readouterr().err
+
+
+def test_events_read_as_sentences_not_json(fake_redis):
+    add_event(fake_redis, KEYS.events, "promote", {"version": "bbb222", "previous": "aaa111", "actor": "retrain",
+                                                   "reason": "gate passed"}, ts=NOW - 60)
+    add_event(fake_redis, KEYS.events, "retrain", {"decision": "promoted", "candidate": "bbb222", "labels_new": 812},
+              ts=NOW - 59)
+    add_event(fake_redis, KEYS.events, "campaign_start", {"id": "c9", "site": "news.example", "members": 10,
+                                                          "authors": 4}, ts=NOW - 30)
+    add_event(fake_redis, KEYS.events, "wave_end", {"site": "news.example", "minutes": 12, "peak_rate": 0.31},
+              ts=NOW - 20)
+    add_event(fake_redis, KEYS.events, "audit", {"who": "ops", "what": "drill"}, ts=NOW - 10)
+    frame = render(collect(fake_redis, KEYS, now=NOW))
+    events = frame.split("recent events\n", 1)[1].splitlines()
+    assert events == [
+        "  08:00    10s ago  audit           what=drill, who=ops",
+        "  08:00    20s ago  wave_end        wave over on news.example after 12 min, peak 31.0% flagged",
+        "  08:00    30s ago  campaign_start  campaign c9 on news.example: 10 near-duplicates from 4 authors",
+        "  07:59    59s ago  retrain         promoted bbb222 after 812 new labels",
+        "  07:59    60s ago  promote         promoted bbb222 (was aaa111) by retrain",
+    ]
+    assert "{" not in frame
+
+
+def test_model_line_says_when_the_model_was_trained_and_promoted(fake_redis):
+    fake_redis.set("seawall:models:active", "bbb222")
+    fake_redis.hset("seawall:models:meta:bbb222", mapping={"created_at": NOW - 40, "promoted_at": NOW - 33})
+    frame = render(collect(fake_redis, KEYS, now=NOW))
+    assert "model     bbb222  age 40s (trained or retrained), promoted 33s ago" in frame
+
+
+def test_live_view_redraws_in_place_without_clearing_the_screen(fake_redis):
+    import io
+
+    from rich.console import Console
+
+    from ops.commands.watch import live
+
+    fill(fake_redis)
+    out = io.StringIO()
+    console = Console(file=out, force_terminal=True, width=120, height=60)
+    live(fake_redis, KEYS, "prefix seawall:", interval=0.0, console=console, frames=3)
+    drawn = out.getvalue()
+    assert drawn.count("Seawall watch") == 3           # three frames ...
+    assert "\x1b[2J" not in drawn                       # ... and the screen is never erased between them
+    assert drawn.count("\x1b[H") >= 3                    # each one starts from the top-left corner
+    assert "\x1b[1;31mWAVE" in drawn                     # waves stand out on a terminal
+
+
+def test_hostile_names_cannot_inject_markup_into_the_live_view():
+    from ops.commands.watch import styled
+
+    text = styled("forum[bold red]x[/] 3\n")
+    assert text.plain == "forum[bold red]x[/] 3\n"

@@ -6,6 +6,7 @@ import json
 import numpy as np
 import pytest
 
+from kit import Clock
 from ops.cusum import CusumParams, WaveParams, WaveState, observe_minute
 from ops.metrics import SiteLabels
 from ops.waves import WaveDetector, parse_rates, read_active
@@ -15,14 +16,6 @@ from worker.settings import Keys
 KEYS = Keys()
 T0_MINUTE = 29_000_000  # an invented start, in epoch minutes
 SITES = ("news.example", "forum.example")
-
-
-class Clock:
-    def __init__(self, minute):
-        self.t = minute * 60.0
-
-    def __call__(self):
-        return self.t
 
 
 def write_minute(client, minute, counts):
@@ -54,7 +47,7 @@ def detector(client, clock, **params):
 
 
 def test_a_wave_is_detected_within_minutes_and_ends(fake_redis):
-    clock = Clock(T0_MINUTE)
+    clock = Clock(T0_MINUTE * 60.0)
     shares = [0.05] * 90 + [0.12] * 20 + [0.05] * 30
     events = simulate(fake_redis, [detector(fake_redis, clock)], shares)
     # forum.example stays at 5 %: a false alarm there is possible (ARL0 ~930 minutes), so only
@@ -74,7 +67,7 @@ def test_a_wave_is_detected_within_minutes_and_ends(fake_redis):
 
 
 def test_active_hash_lists_the_site_during_the_wave(fake_redis):
-    clock = Clock(T0_MINUTE)
+    clock = Clock(T0_MINUTE * 60.0)
     simulate(fake_redis, [detector(fake_redis, clock)], [0.05] * 40 + [0.3] * 5)
     active = read_active(fake_redis, KEYS)
     assert list(active) == ["news.example"] and active["news.example"]["rate"] > 0.2
@@ -109,28 +102,28 @@ def test_detectors_in_two_processes_share_one_state(fake_redis):
 
     shares = [0.05] * 60 + [0.15] * 10 + [0.05] * 20
     alone = fakeredis.FakeRedis(server=fakeredis.FakeServer())
-    one = simulate(alone, [detector(alone, Clock(T0_MINUTE))], shares, seed=3)
-    clock = Clock(T0_MINUTE)
+    one = simulate(alone, [detector(alone, Clock(T0_MINUTE * 60.0))], shares, seed=3)
+    clock = Clock(T0_MINUTE * 60.0)
     two = simulate(fake_redis, [detector(fake_redis, clock), detector(fake_redis, clock)], shares, seed=3)
     assert [(i, e["type"]) for i, e in one] == [(i, e["type"]) for i, e in two]
     assert len(one) == 2
 
 
 def test_a_held_lock_means_another_process_is_ticking(fake_redis):
-    clock = Clock(T0_MINUTE + 100)
+    clock = Clock((T0_MINUTE + 100) * 60.0)
     fake_redis.set("seawall:waves:lock", "someone-else")
     assert detector(fake_redis, clock).tick() == []
     assert fake_redis.get("seawall:waves:cursor") is None
 
 
 def test_catch_up_is_bounded_and_needs_no_history(fake_redis):
-    clock = Clock(T0_MINUTE + 10_000)
+    clock = Clock((T0_MINUTE + 10_000) * 60.0)
     assert detector(fake_redis, clock).tick() == []
     assert int(fake_redis.get("seawall:waves:cursor")) == T0_MINUTE + 10_000 - 2
 
 
 def test_detector_on_a_real_redis_server(redis_client):
-    clock = Clock(T0_MINUTE)
+    clock = Clock(T0_MINUTE * 60.0)
     events = simulate(redis_client, [detector(redis_client, clock)], [0.05] * 40 + [0.4] * 3)
     assert [e["type"] for _i, e in events] == ["wave_start"]
     assert redis_client.get("seawall:waves:lock") is None  # released by compare-and-delete

@@ -36,6 +36,7 @@ from concurrent.futures import ThreadPoolExecutor
 import redis
 
 from worker.commit import WRITTEN, BatchCommitter, Limits as CommitLimits, Scored
+from worker.deadletters import DeadLetterLog
 from worker.loader import ModelSource
 from worker.observer import NullObserver, WorkerObserver
 from worker.policies import BatchPolicy, apply_policies
@@ -129,6 +130,7 @@ class StreamConsumer:
         self._reports_verdicts = not isinstance(self.observer, NullObserver)
         self._executor: ThreadPoolExecutor | None = None
         self._inflight = None
+        self._deadletter_log = DeadLetterLog(logger=log, source=keys.comments, deadletter=keys.deadletter)
 
     # -- life cycle ---------------------------------------------------------------------------
 
@@ -235,6 +237,7 @@ class StreamConsumer:
 
     def step(self, *, overlap: bool = False) -> BatchResult:
         """Reload if due, reclaim if due, then read and process one batch."""
+        self._deadletter_log.flush()
         now = time.monotonic()
         if now >= self._next_reload:
             self._next_reload = now + self.settings.reload_poll_s
@@ -317,7 +320,8 @@ class StreamConsumer:
             pipe.execute()
         for _ in stream_ids:
             self.observer.on_deadletter("trimmed")
-        log.warning("%d pending entries were trimmed from %s before they were scored", len(stream_ids), self.keys.comments)
+        self._deadletter_log.add("trimmed", "the entry was deleted from the stream before it was scored",
+                                 count=len(stream_ids))
 
     def reload(self) -> None:
         model = self.model_source.poll()
@@ -403,6 +407,7 @@ class StreamConsumer:
             if code == WRITTEN:
                 result.dead[d.reason] = result.dead.get(d.reason, 0) + 1
                 self.observer.on_deadletter(d.reason)
+                self._deadletter_log.add(d.reason, d.detail)
         if self._reports_verdicts and written:
             now_ms = now * 1000.0
             self.observer.on_verdicts([

@@ -12,7 +12,10 @@ entry carries), and in ONE MULTI per batch:
 
 So an entry is either labelled or dead-lettered, never lost, and a crash
 between reading and EXEC leaves it pending to be read again.  Parsing and the
-join are pure functions, tested without a server.
+join are pure functions, tested without a server.  A dead letter keeps every
+field the moderator sent (a name Seawall writes itself, such as the
+moderator's ``reason`` note, is kept as ``orig_<name>``) and adds ``reason``,
+``detail``, ``stream_id`` and ``source``.
 
 The label record is a flat map of UTF-8 strings: ``id, text, label
 (spam|ham), moderator, reason, site, ts (epoch seconds), source
@@ -20,6 +23,7 @@ The label record is a flat map of UTF-8 strings: ``id, text, label
 """
 from __future__ import annotations
 
+import dataclasses
 import logging
 import os
 import socket
@@ -30,7 +34,9 @@ from dataclasses import dataclass
 
 import redis
 
+from worker.deadletters import DeadLetterLog
 from worker.settings import Keys
+from worker.validation import RESERVED, field_names, shown_name
 
 log = logging.getLogger(__name__)
 
@@ -56,11 +62,15 @@ class Feedback:
 
 @dataclass(frozen=True)
 class Rejected:
-    """A feedback entry that goes to the dead-letter stream, with its reason."""
+    """A feedback entry that goes to the dead-letter stream, with its reason and what is wrong.
+
+    ``detail`` names fields and sizes, never values: it is also logged.
+    """
 
     stream_id: str
     reason: str
     fields: Mapping[str, str]
+    detail: str = ""
 
 
 def labels_key(keys: Keys) -> str:
@@ -98,8 +108,12 @@ def parse_feedback(stream_id, fields: Mapping, *, text_max_bytes: int) -> Feedba
     ``feedback_text_too_large``, ``feedback_bad_field`` (moderator or reason too long).
     """
     sid = _raw(stream_id).decode("utf-8", "replace")
+
+    def rejected(reason: str, detail: str) -> Rejected:
+        return Rejected(sid, reason, _printable(fields), detail)
+
     if len(fields) > MAX_FIELDS:
-        return Rejected(sid, "feedback_too_many_fields", _printable(fields))
+        return rejected("feedback_too_many_fields", f"{len(fields)} fields, limit {MAX_FIELDS}")
     decoded: dict[str, str] = {}
     sizes: dict[str, int] = {}
     for k, v in fields.items():
@@ -108,22 +122,29 @@ def parse_feedback(stream_id, fields: Mapping, *, text_max_bytes: int) -> Feedba
             raw = _raw(v)
             value = raw.decode("utf-8")
         except UnicodeDecodeError:
-            return Rejected(sid, "feedback_invalid_utf8", _printable(fields))
+            return rejected("feedback_invalid_utf8",
+                            f"field {shown_name(_raw(k).decode('utf-8', 'replace'))} is not valid UTF-8")
         decoded[key] = value
         sizes[key] = len(raw)
     comment_id = decoded.get("id", "").strip()
     if not comment_id:
-        return Rejected(sid, "feedback_missing_id", _printable(fields))
+        return rejected("feedback_missing_id", "required field 'id' is missing or empty; "
+                        + field_names(decoded, wanted="id" if "id" not in decoded else ""))
     if sizes.get("id", 0) > ID_MAX_BYTES:
-        return Rejected(sid, "feedback_bad_id", _printable(fields))
+        return rejected("feedback_bad_id", f"id is {sizes['id']} bytes, limit {ID_MAX_BYTES}")
     label = decoded.get("label", "").strip().lower()
     if label not in LABELS:
-        return Rejected(sid, "feedback_unknown_label", _printable(fields))
-    if sizes.get("moderator", 0) > NAME_MAX_BYTES or sizes.get("reason", 0) > REASON_MAX_BYTES:
-        return Rejected(sid, "feedback_bad_field", _printable(fields))
+        what = ("is missing; " + field_names(decoded, wanted="label")) if "label" not in decoded else \
+            f"must be spam or ham (got {sizes['label']} bytes of something else)"
+        return rejected("feedback_unknown_label", f"label {what}")
+    if sizes.get("moderator", 0) > NAME_MAX_BYTES:
+        return rejected("feedback_bad_field", f"moderator is {sizes['moderator']} bytes, limit {NAME_MAX_BYTES}")
+    if sizes.get("reason", 0) > REASON_MAX_BYTES:
+        return rejected("feedback_bad_field", f"reason is {sizes['reason']} bytes, limit {REASON_MAX_BYTES}")
     text = decoded.get("text")
     if text is not None and sizes["text"] > text_max_bytes:
-        return Rejected(sid, "feedback_text_too_large", _printable(fields))
+        return rejected("feedback_text_too_large", f"text is {sizes['text']} bytes, "
+                                                   f"limit {text_max_bytes} (retrain.feedback_text_max_bytes)")
     if text is not None and not text.strip():
         text = None  # an empty text means "use the cache"
     return Feedback(
@@ -142,20 +163,25 @@ def join_label(fb: Feedback, cached: Mapping | None, *, now: float, text_max_byt
 
     ``cached`` is the ``text:{id}`` hash (bytes or str keys), or None/empty when
     the cache has no entry.  The entry's own text wins over the cache; the site
-    comes from the cache when it has one.
+    comes from the cache when it has one.  A :class:`Rejected` carries the
+    fields parsed from the entry; :meth:`FeedbackConsumer.handle` dead-letters
+    the entry's own fields, every one the moderator sent.
     """
     cache = {_raw(k).decode("utf-8", "replace"): v for k, v in (cached or {}).items()}
+    fields = {k: v for k, v in (("id", fb.id), ("label", fb.label), ("moderator", fb.moderator),
+                                ("reason", fb.reason), ("text", fb.text)) if v}
     text = fb.text
     if text is None and cache.get("text") is not None:
         raw = _raw(cache["text"])
         if len(raw) > text_max_bytes:
-            return Rejected(fb.stream_id, "feedback_text_too_large", {"id": fb.id, "label": fb.label})
+            return Rejected(fb.stream_id, "feedback_text_too_large", fields,
+                            f"the cached text is {len(raw)} bytes, limit {text_max_bytes} "
+                            "(retrain.feedback_text_max_bytes)")
         text = raw.decode("utf-8", "replace")
     if text is None or not text.strip():
-        fields = {"id": fb.id, "label": fb.label}
-        if fb.moderator:
-            fields["moderator"] = fb.moderator
-        return Rejected(fb.stream_id, "feedback_no_text", fields)
+        return Rejected(fb.stream_id, "feedback_no_text", fields,
+                        "the feedback has no text and none is cached for this id (the worker never scored it, "
+                        "or its text expired after worker.text_cache_ttl_s); send the text with the label")
     site = _raw(cache.get("site", b"")).decode("utf-8", "replace")
     return {
         "id": fb.id,
@@ -180,10 +206,19 @@ def write_label(client, keys: Keys, record: Mapping[str, str], *, labels_max: in
 
 
 def write_deadletter(client, keys: Keys, rejected: Rejected, *, maxlen: int = 100_000, pipeline=None):
-    """Dead-letter one feedback entry with its reason and its fields truncated."""
+    """Dead-letter one feedback entry: every field it had (values cut), its reason and detail.
+
+    A field named like one Seawall writes (``reason``, ``detail``, ``stream_id``,
+    ``source``, ``truncated``) is kept as ``orig_<name>``, as in comment dead letters.
+    """
     pipe = pipeline if pipeline is not None else client.pipeline(transaction=True)
-    entry = {f"field:{k}" if k in ("reason", "stream_id", "source") else k: v for k, v in rejected.fields.items()}
-    entry.update({"reason": rejected.reason, "stream_id": rejected.stream_id, "source": keys.feedback})
+    entry = {"reason": rejected.reason, "detail": rejected.detail, "stream_id": rejected.stream_id,
+             "source": keys.feedback}
+    for name, value in rejected.fields.items():
+        key = f"orig_{name}" if name in RESERVED else name
+        while key in entry:
+            key = "orig_" + key
+        entry[key] = value
     pipe.xadd(keys.deadletter, entry, maxlen=maxlen, approximate=True)
     if pipeline is None:
         return pipe.execute()
@@ -294,6 +329,7 @@ class FeedbackConsumer:
         self.clock = clock
         self._group_ready = False
         self._own_pending_done = False
+        self._deadletter_log = DeadLetterLog(logger=log, source=keys.feedback, deadletter=keys.deadletter)
 
     # -- Redis -----------------------------------------------------------------
     def ensure_group(self) -> None:
@@ -331,24 +367,27 @@ class FeedbackConsumer:
                 cached[fb.stream_id] = {k: v for k, v in (("text", text), ("site", site)) if v is not None}
         now = self.clock()
         counts = {"labelled": 0, "deadlettered": 0}
-        dead_reasons = []
+        dead = []
         pipe = self.client.pipeline(transaction=True)
-        for item in parsed:
+        for (_sid, sent), item in zip(entries, parsed):
             if isinstance(item, Feedback):
                 item = join_label(item, cached.get(item.stream_id), now=now, text_max_bytes=self.text_max_bytes)
+                if isinstance(item, Rejected):
+                    item = dataclasses.replace(item, fields=_printable(sent))  # every field the moderator sent
             if isinstance(item, Rejected):
                 write_deadletter(self.client, self.keys, item, maxlen=self.deadletter_maxlen, pipeline=pipe)
                 counts["deadlettered"] += 1
-                dead_reasons.append(item.reason)
+                dead.append(item)
             else:
                 write_label(self.client, self.keys, item, labels_max=self.labels_max, pipeline=pipe)
                 pipe.zrem(held_key(self.keys), item["id"])
                 counts["labelled"] += 1
         pipe.xack(self.keys.feedback, self.group, *[sid for sid, _ in entries])
         pipe.execute()
-        if self.observer is not None:
-            for reason in dead_reasons:
-                self.observer.on_deadletter(reason)
+        for item in dead:
+            self._deadletter_log.add(item.reason, item.detail)
+            if self.observer is not None:
+                self.observer.on_deadletter(item.reason)
         return counts
 
     def step(self, *, block_ms: int | None = None) -> int:
@@ -359,6 +398,7 @@ class FeedbackConsumer:
         """
         if not self._group_ready:
             self.ensure_group()
+        self._deadletter_log.flush()
         wait = self.block_ms if block_ms is None else block_ms
         try:
             entries = self._read(wait or None)

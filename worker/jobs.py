@@ -1,8 +1,10 @@
 """RQ jobs, for apps that already run RQ: score a list of comments, get verdicts back.
 
-Enqueue :func:`score_batch` by its dotted name with plain values only::
+Enqueue :func:`score_batch` by its dotted name with plain values only, on a
+queue that serializes with JSON (:data:`JOB_SERIALIZER`), and run the ``rq
+worker`` with ``--serializer json``::
 
-    Queue("seawall", connection=Redis()).enqueue("worker.jobs.score_batch", [{"id": "c1", "text": "..."}])
+    Queue("seawall", connection=Redis(), serializer="json").enqueue("worker.jobs.score_batch", [{"id": "c1", "text": "..."}])
 
 The job's return value is one dict per comment, in order, decided exactly like
 the stream worker (:class:`worker.routing.Router`: the deployment's targets
@@ -44,6 +46,9 @@ from worker.settings import WorkerSettings
 from worker.streams import Entry
 from worker.validation import Comment, Limits, validate
 
+#: RQ's JSON serializer (its alias, as ``Queue(serializer=...)`` and ``rq worker --serializer`` take it).
+#: Every job Seawall enqueues uses it, so a job record in Redis is data that cannot run code when read.
+JOB_SERIALIZER = "json"
 MODEL_PATH_ENV = "SEAWALL_MODEL_PATH"
 RELOAD_POLL_S = 2.0
 PLAIN_VALUES = (str, int, float)

@@ -22,6 +22,9 @@ OPTIONAL = ("site", "author", "ts")
 # Dead-letter fields the worker writes itself; original fields of the same name are kept as "orig_<name>".
 RESERVED = frozenset({"reason", "detail", "stream_id", "source", "truncated"})
 MAX_FIELD_NAME_BYTES = 64
+# Field names a detail lists (names, never values: details are logged, and a value may be comment text).
+NAMES_SHOWN = 8
+NAME_SHOWN_CHARS = 32
 
 
 @dataclass(frozen=True, slots=True)
@@ -109,6 +112,30 @@ def comment_dead_letter(comment: Comment, reason: str, detail: str, limits: Limi
     return dead_letter(entry, reason, detail, limits)
 
 
+def shown_name(name: str) -> str:
+    """A producer's field name as a detail shows it: printable, cut, quoted (pure)."""
+    safe = "".join(ch if ch.isprintable() else "?" for ch in name)
+    return repr(safe if len(safe) <= NAME_SHOWN_CHARS else safe[:NAME_SHOWN_CHARS - 1] + "…")
+
+
+def field_names(names, *, wanted: str = "") -> str:
+    """What a detail says about the fields an entry had: their names, cut and made printable (pure).
+
+    With ``wanted`` (``"id"`` or ``"text"``), a name that differs from it only
+    in case is pointed out, since that is the usual mistake.
+    """
+    shown = [shown_name(name) for name in sorted(names)[:NAMES_SHOWN]]
+    if not shown:
+        return "the entry has no fields"
+    more = len(names) - len(shown)
+    text = "the entry has field" + ("s " if len(names) > 1 else " ") + ", ".join(shown)
+    text += f" and {more} more" if more > 0 else ""
+    near = next((n for n in sorted(names) if wanted and n != wanted and n.lower() == wanted), None)
+    if near is not None:
+        text += f"; field names are case-sensitive: send {wanted!r}, not {shown_name(near)}"
+    return text
+
+
 def validate(entry: Entry, limits: Limits) -> Comment | DeadLetter:
     """Check one entry against the input contract; never raises on any entry."""
     if entry.fields is None:
@@ -133,9 +160,11 @@ def validate(entry: Entry, limits: Limits) -> Comment | DeadLetter:
         sizes[key] = len(value)
     comment_id = decoded.get("id")
     if not comment_id:
-        return dead_letter(entry, "missing_id", "required field 'id' is missing or empty", limits)
+        return dead_letter(entry, "missing_id", "required field 'id' is missing or empty; "
+                           + field_names(decoded, wanted="id" if "id" not in decoded else ""), limits)
     if "text" not in decoded:
-        return dead_letter(entry, "missing_text", "required field 'text' is missing", limits)
+        return dead_letter(entry, "missing_text", "required field 'text' is missing; "
+                           + field_names(decoded, wanted="text"), limits)
     id_bytes = sizes["id"]
     if id_bytes > limits.max_id_bytes:
         return dead_letter(entry, "id_too_large", f"id is {id_bytes} bytes, limit {limits.max_id_bytes}", limits)

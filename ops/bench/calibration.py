@@ -19,8 +19,6 @@ printed beside each.
 """
 from __future__ import annotations
 
-import numpy as np
-
 from ops.bench import report
 
 HOMES = ("hl", "sq", "lc", "kc")
@@ -63,6 +61,8 @@ def _offer(text: str) -> bool:
 
 def calibration_errors(p: np.ndarray, y: np.ndarray) -> tuple[float, float, float]:
     """Log loss, Brier score and expected calibration error (10 equal-width bins)."""
+    import numpy as np
+
     q = np.clip(p, 1e-7, 1 - 1e-7)
     log_loss = float(-np.mean(y * np.log(q) + (1 - y) * np.log(1 - q)))
     brier = float(np.mean((p - y) ** 2))
@@ -73,6 +73,7 @@ def calibration_errors(p: np.ndarray, y: np.ndarray) -> tuple[float, float, floa
 
 def sklearn_sigmoid(model, texts, labels):
     """scikit-learn's Platt scaling of ``model`` (frozen) fitted on ``texts``: a function texts -> probabilities."""
+    import numpy as np
     from sklearn.base import BaseEstimator, ClassifierMixin
     from sklearn.calibration import CalibratedClassifierCV
     from sklearn.frozen import FrozenEstimator
@@ -99,6 +100,8 @@ def sklearn_sigmoid(model, texts, labels):
 
 
 def measure(n_train: int, n_held: int, n_judge: int) -> dict:
+    import numpy as np
+
     from model.classifier import EmbeddingClassifier
     from worker.routing import Router, RoutingSettings
 

@@ -19,8 +19,6 @@ from __future__ import annotations
 
 import time
 
-import numpy as np
-
 from ops.bench import interleaved_medians, peak_rss_mb, report
 
 #: The settings of the corpus check (d = 8, buckets in fewer than 5 training
@@ -44,6 +42,8 @@ class CommentMaker:
     """
 
     def __init__(self, *, seed: int = 0):
+        import numpy as np
+
         rng = np.random.default_rng(seed)
         words = sorted({"".join(rng.choice(SYLLABLES, size=rng.integers(1, 4))) for _ in range(9000)})
         rng.shuffle(words)
@@ -55,7 +55,7 @@ class CommentMaker:
         self.ham_p = (1.0 / ranks**1.05) / np.sum(1.0 / ranks**1.05)
 
     def comment(self, spam: bool) -> str:
-        rng = self.rng
+        rng = self.rng  # numpy's Generator: numpy is imported by the first CommentMaker
         parts: list[str] = []
         size = 0
         while size < TARGET_CHARS:
@@ -113,6 +113,8 @@ def run(args) -> int:
 
 
 def measure(*, n_train: int, repeats: int, seed: int) -> dict:
+    import numpy as np
+
     from model.classifier import EmbeddingClassifier
     from model.evaluation import evaluate
 

@@ -31,8 +31,6 @@ import signal
 import tempfile
 import time
 
-import numpy as np
-
 from ops.bench import add_harness_arguments, peak_rss_mb, report
 from ops.bench.servers import LocalRedis
 
@@ -109,6 +107,8 @@ class NoopScorer:
         reject = 0.9
 
     def score_many(self, texts, *, top_k: int = 5, spamward_from=None):
+        import numpy as np
+
         return np.zeros(len(texts)), [[] for _ in texts]
 
 
@@ -287,6 +287,8 @@ def _latency(url, prefix, model_path, comments, *, rate, seconds, batch, block_m
         offered = total / (time.perf_counter() - t0)
         h.wait_verdicts(total, timeout_s=120)
         h.stop()
+        import numpy as np
+
         lat = np.array([v - c for v, c in h.verdict_ids()], dtype=float)
         return {"offered_per_s": offered, "p50_ms": float(np.percentile(lat, 50)),
                 "p99_ms": float(np.percentile(lat, 99)), "max_ms": float(lat.max()), "n": int(lat.size)}
@@ -298,7 +300,7 @@ def _latency(url, prefix, model_path, comments, *, rate, seconds, batch, block_m
 
 def run(args) -> int:
     comments = invented_comments(args.comments, seed=3)
-    mean_len = float(np.mean([len(t) for t, _ in comments]))
+    mean_len = sum(len(t) for t, _ in comments) / len(comments)
     with tempfile.TemporaryDirectory(prefix="seawall-bench-") as tmp:
         model_path = os.path.join(tmp, "model.bin")
         model = train_model(model_path)

@@ -25,9 +25,6 @@ from pathlib import Path
 
 from model.errors import SeawallError
 from ops.config import load_config
-from ops.demo import DEMO_SETTINGS, demo_scenario, run_demo
-from ops.demo_report import render_html, summary_text
-from ops.serving import configure_logging
 
 DEFAULT_PREFIX = "seawall-demo:"
 DEMO_ACCOUNT = "demo"
@@ -63,6 +60,10 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
+    from ops.demo import DEMO_SETTINGS, demo_scenario, run_demo
+    from ops.demo_report import render_html, summary_text
+    from ops.serving import configure_logging
+
     embedded = not args.redis
     if not args.prefix or not args.prefix.strip():
         raise DemoError("demo: --prefix must not be empty")

@@ -3,8 +3,6 @@ from __future__ import annotations
 
 import json
 
-from model.classifier import EmbeddingClassifier
-from model.evaluation import evaluate
 from ops.datafiles import read_examples, require_both_classes
 
 
@@ -20,6 +18,9 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
+    from model.classifier import EmbeddingClassifier
+    from model.evaluation import evaluate
+
     clf = EmbeddingClassifier.load(args.model)
     examples = read_examples(args.data, op="evaluate")
     require_both_classes(examples, args.data, op="evaluate")

@@ -17,14 +17,6 @@ from pathlib import Path
 
 from model.errors import DataError
 from ops.connection import add_connection_args, config_from_args, connect
-from worker.feedback import (
-    ID_MAX_BYTES,
-    NAME_MAX_BYTES,
-    REASON_MAX_BYTES,
-    held_key,
-    scan_labels,
-    write_label,
-)
 
 EXPORTED = ("id", "text", "label", "moderator", "reason", "site", "ts", "source")
 
@@ -53,6 +45,8 @@ def _label_name(value, where: str) -> str:
 
 def parse_label_line(line: str, where: str, *, text_max_bytes: int, now: float) -> dict[str, str]:
     """One JSONL line -> a label record (pure); raises DataError naming the line."""
+    from worker.feedback import ID_MAX_BYTES, NAME_MAX_BYTES, REASON_MAX_BYTES
+
     try:
         obj = json.loads(line)
     except json.JSONDecodeError as exc:
@@ -106,6 +100,8 @@ def read_label_file(path: str, *, text_max_bytes: int, now: float) -> list[dict[
 
 
 def run_import(args) -> int:
+    from worker.feedback import held_key, write_label
+
     config = config_from_args(args)
     records = read_label_file(args.file, text_max_bytes=config.retrain.feedback_text_max_bytes, now=time.time())
     client = connect(config)
@@ -123,6 +119,8 @@ def run_import(args) -> int:
 
 
 def run_export(args) -> int:
+    from worker.feedback import scan_labels
+
     config = config_from_args(args)
     client = connect(config)
     try:

@@ -5,18 +5,24 @@ A first model is bootstrapped with ``push`` then ``promote``.  ``push
 training data and, unless ``--canary`` names a file, carves the fixed canary
 set the retrain gate evaluates on from it.  ``promote`` and ``rollback``
 switch the active model atomically, tell every worker over pub/sub, and
-queue the hold-queue re-score (``--rescore now`` runs it in-process, ``off`` skips it).
+re-score the hold queue with the new model in this process (``--rescore
+queue`` hands it to an RQ worker when one listens, ``off`` skips it); they
+print which happened and how many held comments were re-scored.
 """
 from __future__ import annotations
 
 import json
 import os
 import sys
+import time
 from pathlib import Path
 
 from model.errors import DataError
 from ops.connection import add_connection_args, config_from_args, connect
-from ops.registry import Registry, read_examples, split_replay
+
+
+# Metadata fields that hold epoch seconds: shown to people as UTC times with their age (--json keeps the numbers).
+TIMES = ("created_at", "pushed_at", "promoted_at")
 
 
 def register(sub) -> None:
@@ -34,6 +40,8 @@ def register(sub) -> None:
                    help="original training data ({text, label} lines): a bounded replay sample is kept")
     p.add_argument("--canary", metavar="CANARY.jsonl", default=None,
                    help="fixed canary set for the retrain gate (default: carved from --replay)")
+    p.add_argument("--promote", action="store_true", help="make the pushed version active at once (as `promote`)")
+    add_rescore_arg(p)
     p.set_defaults(func=run_push)
     p = inner.add_parser("pull", help="write a version's artifact to a file")
     p.add_argument("version", nargs="?", default=None, help="default: the active version")
@@ -52,29 +60,15 @@ def register(sub) -> None:
 
 
 def add_rescore_arg(parser) -> None:
-    parser.add_argument("--rescore", choices=("queue", "now", "off"), default="queue",
-                        help="re-score the hold queue with the new model: as an RQ job (default), "
-                             "now in this process (no RQ worker needed), or not at all")
-
-
-def rescore_after_switch(mode: str, client, config, version: str) -> dict:
-    """Run or queue the hold-queue re-score after the active model changed."""
-    if mode == "off":
-        return {}
-    if mode == "queue":
-        from ops.jobs import enqueue_rescore
-
-        return {"rescore_job": enqueue_rescore(client, config, version).id}
-    from ops.registry import Registry
-    from ops.rescore import rescore_held
-
-    model = Registry(client=client, keys=config.keys).load(version)
-    return {"rescore": rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
-                                    settings=config.worker,
-                                    verdicts_maxlen=config.worker.verdicts_maxlen)}
+    parser.add_argument("--rescore", choices=("now", "queue", "off"), default="now",
+                        help="re-score the held comments with the new model: now, in this process (default); "
+                             "queue, as an RQ job when an RQ worker listens on retrain.queue (else now); "
+                             "or off")
 
 
 def _registry(args):
+    from ops.registry import Registry
+
     config = config_from_args(args)
     client = connect(config)
     return config, client, Registry(client=client, keys=config.keys)
@@ -94,23 +88,33 @@ def run_list(args) -> int:
     if not rows:
         print("models: the registry is empty; push a model with `seawall models push MODEL_FILE`")
         return 0
-    print(f"  {'VERSION':<14} {'SOURCE':<8} {'PARENT':<14} {'SIZE':>9}  PUSHED_AT")
+    from ops.times import moment
+
+    now = time.time()
+    print(f"  {'VERSION':<14} {'SOURCE':<8} {'PARENT':<14} {'SIZE':>9}  {'TRAINED':<30}  LAST PROMOTED")
     for row in rows:
         mark = "*" if row["active"] == "1" else " "
         print(f"{mark} {row['version']:<14} {row.get('source', ''):<8} {row.get('parent', '') or '-':<14} "
-              f"{int(row.get('size', 0)):>9}  {row.get('pushed_at', '')}")
+              f"{int(row.get('size', 0)):>9,}  {moment(row.get('created_at'), now):<30}  "
+              f"{moment(row.get('promoted_at'), now)}")
     return 0
 
 
 def run_show(args) -> int:
     _config, _client, registry = _registry(args)
+    from ops.times import moment
+
     meta = registry.meta(args.version)
     meta["active"] = "1" if registry.active() == args.version else "0"
-    _print(args, meta, "\n".join(f"{k}: {v}" for k, v in sorted(meta.items())))
+    now = time.time()
+    shown = {k: moment(v, now) if k in TIMES else v for k, v in meta.items()}
+    _print(args, meta, "\n".join(f"{k}: {v}" for k, v in sorted(shown.items())))
     return 0
 
 
 def run_push(args) -> int:
+    from ops.registry import Registry, read_examples, split_replay
+
     config = config_from_args(args)
     try:
         data = Path(args.model_file).read_bytes()
@@ -132,9 +136,15 @@ def run_push(args) -> int:
     pipe.execute()
     out = {"version": version, "size": len(data), "replay": len(replay or ()), "canary": len(canary or ())}
     extra = f", replay {out['replay']} rows, canary {out['canary']} rows" if (replay or canary) else ""
-    _print(args, out, f"models push: {version} ({len(data)} bytes{extra}); "
-                      f"make it active with `seawall models promote {version}`")
-    return 0
+    text = f"models push: {version} ({len(data):,} bytes{extra})"
+    if not args.promote:
+        _print(args, out, f"{text}; make it active with `seawall models promote {version}`")
+        return 0
+    if registry.active() == version:
+        _print(args, dict(out, previous=version), f"{text}; it was already the active model")
+        return 0
+    result = registry.promote(version, actor=os.environ.get("USER", ""), reason="seawall models push --promote")
+    return _after_switch(args, config, client, dict(out, **result), "push", head=text)
 
 
 def run_pull(args) -> int:
@@ -154,19 +164,18 @@ def run_pull(args) -> int:
     return 0
 
 
-def _after_switch(args, config, client, result: dict, kind: str) -> int:
+def _after_switch(args, config, client, result: dict, kind: str, *, head: str = "") -> int:
+    from ops.registry import Registry
+    from ops.rescore import describe_rescore, rescore_after_switch
     from ops.thresholds import describe, model_router, print_warnings
 
     result = dict(result, **rescore_after_switch(args.rescore, client, config, result["version"]))
     router = model_router(Registry(client=client, keys=config.keys).load(result["version"]), config.worker)
     result["thresholds"] = {"hold": router.cutoffs("").hold, "reject": router.cutoffs("").reject,
                             "warnings": router.warnings()}
-    text = f"models {kind}: {result['version']} is active (was {result['previous'] or 'none'}); {describe(router)}"
-    if "rescore_job" in result:
-        text += f"; hold-queue re-score queued on RQ queue {config.retrain.queue!r}"
-    if "rescore" in result:
-        done = result["rescore"]
-        text += f"; re-scored {done['rescored']} held comments, {done['released']} left the hold queue"
+    switched = f"is active (was {result['previous'] or 'none'})"
+    text = (f"{head}; it {switched}" if head else f"models {kind}: {result['version']} {switched}")
+    text += f"; {describe(router)}; " + describe_rescore(result, queue=config.retrain.queue)
     _print(args, result, text)
     print_warnings(router.warnings(), op=f"models {kind}")
     return 0

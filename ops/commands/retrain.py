@@ -11,9 +11,8 @@ from __future__ import annotations
 
 import json
 
-from ops.commands.models import add_rescore_arg, rescore_after_switch
+from ops.commands.models import add_rescore_arg
 from ops.connection import add_connection_args, config_from_args, connect
-from ops.thresholds import print_warnings
 
 
 def register(sub) -> None:
@@ -25,7 +24,9 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
+    from ops.rescore import describe_rescore, rescore_after_switch
     from ops.retrain import retrain
+    from ops.thresholds import print_warnings
 
     config = config_from_args(args)
     client = connect(config)
@@ -38,6 +39,8 @@ def run(args) -> int:
         print(json.dumps(report, sort_keys=True))
         return 0
     print(render(report))
+    if report["decision"] == "promoted":
+        print(f"  {describe_rescore(report, queue=config.retrain.queue)}")
     print_warnings(warnings, op="retrain")
     return 0
 

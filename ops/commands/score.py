@@ -12,9 +12,7 @@ from __future__ import annotations
 import json
 import sys
 
-from model.classifier import EmbeddingClassifier
 from model.errors import DataError
-from worker.routing import Router, score_and_decide
 
 CHUNK = 1024
 
@@ -61,7 +59,9 @@ def _chunks(items, size):
 
 
 def run(args) -> int:
+    from model.classifier import EmbeddingClassifier
     from ops.config import load_config
+    from worker.routing import Router, score_and_decide
 
     config = load_config(config_file=args.config)
     clf = EmbeddingClassifier.load(args.model)

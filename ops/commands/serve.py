@@ -12,11 +12,6 @@ import signal
 import sys
 
 from ops.config import load_config, settings_help
-from ops.labelling import start_feedback
-from ops.processes import ProcessGroup
-from ops.monitor import start_observability
-from ops.serving import build_consumer, configure_logging, model_source
-from worker.consumer import default_consumer_name
 
 # Flag -> dotted setting; a flag left out (None) leaves the setting to env, file and defaults.
 FLAGS = {
@@ -64,6 +59,11 @@ def run(args) -> int:
 
 def serve_one(config) -> int:
     """One consumer in this process until SIGTERM/SIGINT."""
+    from ops.labelling import start_feedback
+    from ops.monitor import start_observability
+    from ops.serving import build_consumer, configure_logging, model_source
+    from worker.consumer import default_consumer_name
+
     name = config.worker.consumer or default_consumer_name()
     configure_logging(config.log_level, tag=name)
     source = model_source(config)
@@ -84,6 +84,10 @@ def serve_one(config) -> int:
 
 def run_many(args, config) -> int:
     """N one-process children, each ``<consumer>-<i>``, supervised here."""
+    from ops.processes import ProcessGroup
+    from ops.serving import configure_logging
+    from worker.consumer import default_consumer_name
+
     base = config.worker.consumer or default_consumer_name()
     configure_logging(config.log_level, tag=f"{base}-supervisor")
     passed = []

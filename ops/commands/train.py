@@ -13,10 +13,26 @@ import argparse
 import os
 import sys
 
-from model.calibration import DEFAULT_METHOD, METHODS
-from model.classifier import EmbeddingClassifier
 from ops.datafiles import read_examples, require_both_classes
-from ops.thresholds import describe, model_router, print_warnings
+
+# model.calibration's DEFAULT_METHOD, named here so that `seawall --help` need not import numpy and
+# scipy to build this parser (tests/test_startup.py checks that the two agree).
+DEFAULT_CALIBRATION = "temperature"
+
+
+class _CalibrationMethods:
+    """model.calibration.METHODS, imported only when argparse checks a value given on the command line."""
+
+    def _methods(self) -> tuple[str, ...]:
+        from model.calibration import METHODS
+
+        return METHODS
+
+    def __contains__(self, value) -> bool:
+        return value in self._methods()
+
+    def __iter__(self):
+        return iter(self._methods())
 
 
 def _dim(value: str):
@@ -51,8 +67,9 @@ def register(sub) -> None:
     parser.add_argument("--epochs", type=_positive, default=10, help="maximum passes over the data (default 10)")
     parser.add_argument("--seed", type=int, default=0, help="seed of initialisation, shuffling and validation split")
     parser.add_argument("--min-df", type=_positive, default=2, help="buckets in fewer comments get no row (default 2)")
-    parser.add_argument("--calibration", choices=METHODS, default=DEFAULT_METHOD,
-                        help=f"probability calibration fitted on the held-out share (default {DEFAULT_METHOD})")
+    parser.add_argument("--calibration", choices=_CalibrationMethods(), default=DEFAULT_CALIBRATION, metavar="METHOD",
+                        help="probability calibration fitted on the held-out share: identity, platt, temperature or "
+                             f"isotonic (default {DEFAULT_CALIBRATION})")
     parser.add_argument("--config", metavar="FILE", default=None,
                         help="TOML config file whose [worker] targets and floors set the thresholds (default: SEAWALL_CONFIG)")
     parser.add_argument("--quiet", action="store_true", help="no per-epoch progress on stderr")
@@ -71,7 +88,9 @@ def _progress(epochs: int):
 
 
 def run(args) -> int:
+    from model.classifier import EmbeddingClassifier
     from ops.config import load_config
+    from ops.thresholds import describe, model_router, print_warnings
 
     worker = load_config(config_file=args.config).worker
     examples = read_examples(args.data, op="train")

@@ -569,7 +569,7 @@ class Console:
         seen = self._api_guard(request, admin=True)
         if not isinstance(seen, Seen):
             return seen
-        from ops.commands.models import rescore_after_switch
+        from ops.rescore import rescore_after_switch
 
         registry = self._registry
         actor = seen.account.name
