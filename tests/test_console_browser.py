@@ -40,7 +40,7 @@ from ops.scenario import Scenario
 from servers import RedisServer, free_port, require
 from worker.connection import connect as worker_connect
 
-pytestmark = pytest.mark.redis_server
+pytestmark = [pytest.mark.redis_server, pytest.mark.slow]  # about a minute: a demo hour, then a browser
 
 CHROMIUM = shutil.which("chromium") or "/usr/bin/chromium"  # Debian's; Playwright downloads no browser here
 CHROMIUM_ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",

@@ -65,6 +65,7 @@ def console_process(url: str, port: int, tmp_path, **env_extra) -> subprocess.Po
     return proc
 
 
+@pytest.mark.slow
 def test_serve_then_a_killed_console_writes_its_pending_decisions_when_it_starts_again(redis_server, redis_client,
                                                                                        tmp_path, capsys):
     url = redis_server.url
