@@ -328,6 +328,24 @@ def judgeable(labels) -> bool:
     return min(spam, len(labels) - spam) >= 2
 
 
+def recent_set_padding(holdout_labels, canary_labels) -> int | None:
+    """The class (0 ham, 1 spam) the recent set borrows from the canary set, if it must (pure).
+
+    Moderators mostly label what the worker held, so a night's holdout may be
+    all spam.  ROC-AUC needs both classes: such a holdout is judged together
+    with the canary set's rows of the class it lacks.  ``None`` when the
+    holdout needs nothing or the canary set cannot supply it.
+    """
+    if judgeable(holdout_labels):
+        return None
+    spam = sum(holdout_labels)
+    missing = 0 if spam >= 2 else 1 if len(holdout_labels) - spam >= 2 else None
+    if missing is None:
+        return None
+    supply = sum(1 for y in canary_labels if y == missing)
+    return missing if supply >= 2 else None
+
+
 def gate_rule(settings: RetrainSettings) -> str:
     """What "not worse" means, in one sentence for the report (pure)."""
     return (f"a candidate is not worse than the active model on a set when the one-sided "
@@ -560,13 +578,21 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
     # Every label left is from an untrimmed source or backed by one (step 3b), so all judge.
     labels["holdout_judging"] = len(holdout)
     holdout_y = [r.y for r in holdout]
-    if len(holdout) < settings.min_holdout or not judgeable(holdout_y):
+    padded = recent_set_padding(holdout_y, [y for _, y in canary])
+    if len(holdout) < settings.min_holdout or (not judgeable(holdout_y) and padded is None):
         report["decision"] = "refused"
         report["reasons"].append(
             f"the recent holdout has {len(holdout)} rows ({sum(holdout_y)} spam); the gate needs >= "
-            f"retrain.min_holdout={settings.min_holdout} with at least two of each class; the labels stay new "
-            "for the next retrain, or raise retrain.holdout_share")
+            f"retrain.min_holdout={settings.min_holdout} with at least two of each class (or one class and a "
+            "canary set holding the other); the labels stay new for the next retrain, or raise "
+            "retrain.holdout_share")
         return
+    if padded is not None:
+        missing = "ham" if padded == 0 else "spam"
+        report["reasons"].append(
+            f"the recent holdout holds no {missing} (moderators mostly label what was held): it is judged "
+            f"together with the canary set's {missing}, so it still shows whether the new comments are ranked "
+            f"against trusted {missing}")
 
     active = load_model(active_bytes)
     models, entries = {}, {}
@@ -633,10 +659,14 @@ def _gate(active, models: dict, entries: dict, holdout: list[LabelRow], canary: 
     and choose; fills ``report["gate"]`` and the candidates' entries."""
     # Canary rows are the tail of the gate rows: score every row once per model.
     gate_rows = [(r.text, r.y) for r in holdout] + list(canary)
-    texts, y_all = [t for t, _ in gate_rows], [y for _, y in gate_rows]
-    sets = {"holdout": slice(0, len(holdout))}
-    if judgeable([y for _, y in canary]):
-        sets["canary"] = slice(len(holdout), len(gate_rows))
+    texts, y_all = [t for t, _ in gate_rows], np.array([y for _, y in gate_rows], dtype=np.int64)
+    recent = np.arange(len(holdout))
+    missing = recent_set_padding(y_all[recent], y_all[len(holdout):])
+    if missing is not None:
+        recent = np.concatenate([recent, len(holdout) + np.flatnonzero(y_all[len(holdout):] == missing)])
+    sets = {"holdout": recent}
+    if judgeable(y_all[len(holdout):]):
+        sets["canary"] = np.arange(len(holdout), len(gate_rows))
     else:
         report["reasons"].append("no canary set with both classes: the gate judges the recent holdout only; "
                                  "push one with `seawall models push ... --replay` or --canary")
@@ -655,7 +685,7 @@ def _gate(active, models: dict, entries: dict, holdout: list[LabelRow], canary: 
                              "sets": {}}
     for set_name, rows in sets.items():
         y = y_all[rows]
-        figures = gate["sets"][set_name] = {"rows": len(y), "spam": sum(y)}
+        figures = gate["sets"][set_name] = {"rows": int(len(y)), "spam": int(y.sum())}
         for name, s in scores.items():
             figures[name] = ranking_figures(y, s[rows], settings.gate_fpr)
             if name != "active":

@@ -29,6 +29,7 @@ from ops.retrain import (
     last_reports,
     moderator_cap,
     near_duplicates,
+    recent_set_padding,
     retrain,
 )
 from retrain_kit import KEYS, bootstrap, model_bytes, send_feedback, stream
@@ -435,6 +436,33 @@ def test_retrain_without_enough_labels_does_nothing(fake_redis):
     report = retrain(fake_redis, KEYS, SETTINGS)
     assert report["decision"] == "skipped" and "min_new_labels" in report["reasons"][0]
     assert registry.active() == first
+
+
+@pytest.mark.parametrize(
+    "holdout, canary, expected",
+    [
+        ([1, 1, 0, 0], [0, 1], None),           # both classes: nothing borrowed
+        ([1] * 50, [0] * 3 + [1] * 9, 0),       # spam only: the canary set's ham
+        ([0] * 50, [0] * 9 + [1] * 3, 1),       # ham only: the canary set's spam
+        ([1] * 50, [0] + [1] * 9, None),        # the canary set holds too little ham
+        ([1] * 50, [], None),                   # no canary set
+    ],
+    ids=["both-classes", "spam-only", "ham-only", "canary-too-thin", "no-canary"],
+)
+def test_a_one_class_holdout_borrows_the_missing_class_from_the_canary_set(holdout, canary, expected):
+    assert recent_set_padding(holdout, canary) == expected
+
+
+def test_a_night_of_spam_labels_only_is_judged_against_the_canary_ham(fake_redis):
+    # Moderators mostly label what the worker held: a night of feedback can be all spam.
+    registry, first = bootstrap(fake_redis)
+    spam = [c for c in stream() if c.label == 1][:400]
+    send_feedback(fake_redis, spam)
+    report = retrain(fake_redis, KEYS, SETTINGS)
+    assert report["decision"] != "refused" or "min_holdout" not in report["reasons"][-1], report["reasons"]
+    holdout = report["gate"]["sets"]["holdout"]
+    assert holdout["spam"] == report["labels"]["holdout"] and holdout["rows"] > holdout["spam"]
+    assert any("judged together with the canary set's ham" in r for r in report["reasons"])
 
 
 def test_gate_refuses_on_a_holdout_too_small(fake_redis):
