@@ -2,7 +2,7 @@
 
 One module-scoped story: the invented Hedgerow Lane forum's demo hour plays through the real workers on a real
 redis-server, with the simulated moderators leaving the last 25 minutes of the hold queue (the campaign's
-near-duplicates, a few hundred of them), then comments of two strict sections and hostile comments go through the
+near-duplicates, a few hundred of them; with so few labels the nightly retrain is refused), then comments of two strict sections and hostile comments go through the
 worker too.  One browser serves every test; each test signs in with its own context.
 
 The tests work the queue with the keyboard and the mouse, bulk-reject the campaign and undo it, and check the

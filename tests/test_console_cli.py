@@ -127,10 +127,10 @@ def test_demo_console_opens_on_the_held_comments_it_left(tmp_path):
         b = Browser(port)
         b.sign_in("demo", password)
         status = json.loads(b.request("GET", "/api/queue/status")[1])
-        assert status["held"] >= 100  # the story's last held comments, the campaign among them
+        assert status["held"] >= 10  # the story's last held comments, the campaign among them
         page = b.request("GET", "/queue")[1].decode()
         size = int(page.split('data-size="', 1)[1].split('"', 1)[0])
-        assert size >= 100  # the first row is the campaign's family
+        assert size >= 10  # the first row is the campaign
         ids = page.split('data-ids="', 1)[1].split('"', 1)[0].split()
         res, body = b.post_json("/api/decide", json.dumps({"ids": ids, "action": "reject"}).encode())
         assert res.status == 200 and len(json.loads(body)["decided"]) == size

@@ -12,7 +12,7 @@ network).  ``--redis URL`` plays the same story on a real server, under its
 own key prefix (``--prefix``, default ``seawall-demo:``); it refuses to touch
 a prefix that already holds keys unless ``--reset`` is given.
 
-``--console`` leaves the hold queue of the story's last 25 minutes to you
+``--console`` leaves the hold queue to you once the nightly retrain has run
 (the simulated moderators stop working it, and the retrain does not re-score
 it), then opens the moderators' console on it: a one-time account ``demo``
 is made and its password printed; Ctrl-C ends the demo.
@@ -28,7 +28,9 @@ from ops.config import load_config
 
 DEFAULT_PREFIX = "seawall-demo:"
 DEMO_ACCOUNT = "demo"
-LEAVE_QUEUE_AT_MIN = 35  # the story's last 25 minutes of held comments stay for the console
+# The moderators' last round is the one at 03:00, just before the nightly retrain (so it has its labels);
+# what is held from then on, and what that round left, stays for the console.
+LEAVE_QUEUE_AT_MIN = 41
 
 
 class DemoError(SeawallError):
