@@ -34,6 +34,7 @@ COMMANDS = (
     "retrain",
     "models",
     "watch",
+    "console",
     "demo",
     "bench",
 )

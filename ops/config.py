@@ -23,7 +23,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from ops.settings import MetricsSettings, RetrainSettings, WaveSettings
+from ops.settings import ConsoleSettings, MetricsSettings, RetrainSettings, WaveSettings
 from worker.settings import Keys, WorkerSettings, setting
 
 ENV_PREFIX = "SEAWALL_"
@@ -51,6 +51,7 @@ class Config:
     retrain: RetrainSettings = field(default_factory=RetrainSettings, metadata={"help": "retraining"})
     metrics: MetricsSettings = field(default_factory=MetricsSettings, metadata={"help": "metrics"})
     waves: WaveSettings = field(default_factory=WaveSettings, metadata={"help": "waves and campaigns"})
+    console: ConsoleSettings = field(default_factory=ConsoleSettings, metadata={"help": "moderators' console"})
 
 
 def _is_section(tp) -> bool:

@@ -287,9 +287,9 @@ class ReaderReports:
 
 
 def moderate(client, config: Config, rng: random.Random, truth: dict[str, ScenarioComment],
-             published_spam: list[str], sent: Counter) -> int:
+             published_spam: list[str], sent: Counter, *, review_held: bool = True) -> int:
     """One review round: label the oldest held comments and a sample of the published spam readers report."""
-    held = [_text(m) for m in client.zrange(config.keys.held, 0, HELD_REVIEWED_PER_ROUND - 1)]
+    held = [_text(m) for m in client.zrange(config.keys.held, 0, HELD_REVIEWED_PER_ROUND - 1)] if review_held else []
     reported = [cid for cid in published_spam if rng.random() < REPORTED_SHARE]
     pipe = client.pipeline(transaction=False)
     n = 0
@@ -322,8 +322,13 @@ def demo_scenario(config: Config, *, seed: int = 7) -> Scenario:
 
 
 def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None = None,
-             progress: Callable[[str], None] = lambda line: None) -> DemoResult:
+             progress: Callable[[str], None] = lambda line: None, leave_queue_at_min: int | None = None) -> DemoResult:
     """Play the whole story; see the module docstring.
+
+    ``leave_queue_at_min`` (for ``seawall demo --console``): from that minute
+    on the simulated moderators stop working the hold queue (they still label
+    what readers report) and the retrain does not re-score it, so the comments
+    held from then on stay for a person to decide in the console.
 
     ``worker_client`` is the workers' client (raw stream replies,
     :func:`worker.connection.raw_stream_replies`); ``client`` is an ordinary
@@ -418,14 +423,16 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
 
         # published spam since the last round is what readers may report
         if (minute + 1) % MODERATION_EVERY_MIN == 0:
-            moderate(client, config, rng, truth, reports.since_last(client), result.labels_sent)
+            leave = leave_queue_at_min is not None and minute + 1 >= leave_queue_at_min
+            moderate(client, config, rng, truth, reports.since_last(client), result.labels_sent, review_held=not leave)
             feedback.drain()
             if (minute + 1) % STATUS_EVERY_MIN == 0:
                 progress(f"{stamp(clock.now)} {_status(client, keys)}; "
                          f"moderators labelled {sum(result.labels_sent.values())} so far")
 
         if not result.retrain_ts and clock.now >= retrain_at:
-            _nightly_retrain(client, config, workers, result, clock, progress, stamp)
+            _nightly_retrain(client, config, workers, result, clock, progress, stamp,
+                             rescore=leave_queue_at_min is None)
 
     result.verdicts = _read_verdicts(client, keys, truth, minute_of)
     result.metrics = metric_samples(registry)
@@ -435,7 +442,8 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
     return result
 
 
-def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimClock, progress, stamp) -> None:
+def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimClock, progress, stamp, *,
+                     rescore: bool = True) -> None:
     result.retrain_ts = clock.now
     promoted: list[str] = []
     report = retrain(client, config.keys, config.retrain, clock=clock, on_promoted=promoted.append)
@@ -455,11 +463,15 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
              f"{gate.get('active', {}).get('roc_auc', float('nan')):.3f} -> "
              f"{gate.get(report.get('chosen'), {}).get('roc_auc', float('nan')):.3f}; promoted {version} "
              f"({report.get('chosen', '').replace('_', ' ')})")
-    result.rescore = rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
-                                  settings=config.worker,
-                                  verdicts_maxlen=config.worker.verdicts_maxlen)
-    progress(f"{stamp(clock.now)} re-scored the hold queue: {result.rescore.get('held', 0)} held, "
-             f"{result.rescore.get('released', 0)} released by the new model")
+    if not rescore:
+        progress(f"{stamp(clock.now)} the hold queue is left for you ({client.zcard(config.keys.held)} held): "
+                 "no re-score, no more simulated review")
+    else:
+        result.rescore = rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
+                                      settings=config.worker,
+                                      verdicts_maxlen=config.worker.verdicts_maxlen)
+        progress(f"{stamp(clock.now)} re-scored the hold queue: {result.rescore.get('held', 0)} held, "
+                 f"{result.rescore.get('released', 0)} released by the new model")
     for w in workers:
         w.reload()  # what step() does every reload_poll_s: RegistryModelSource.poll() sees the promotion
     progress(f"{stamp(clock.now)} workers now serve {', '.join(sorted({str(w.model.version) for w in workers}))}")

@@ -36,7 +36,8 @@ for i = 0, n - 1 do
                'rule', rule, 'model', model, 'reasons', reasons, 'site', site, 'stream_id', stream_id,
                'version', version, 'digest', digest, 'rescored', '1')
     if redis.call('EXISTS', KEYS[3 + i]) == 1 then
-      redis.call('HSET', KEYS[3 + i], 'score', score, 'action', action, 'rule', rule, 'model', model)
+      redis.call('HSET', KEYS[3 + i], 'score', score, 'action', action, 'rule', rule, 'model', model,
+                 'reasons', reasons)
     end
     if action ~= 'hold' then
       redis.call('ZREM', held, id)

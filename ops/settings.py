@@ -189,3 +189,35 @@ def _check_bounds(section, bounds) -> None:
         value = getattr(section, name)
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not low <= value <= high:
             raise ValueError(f"{type(section).__name__}: {name} must be in [{low}, {high}], got {value!r}")
+
+
+@dataclass(frozen=True, kw_only=True)
+class ConsoleSettings:
+    """The moderators' console in the browser (`seawall console serve`)."""
+
+    host: str = setting("127.0.0.1", "console bind address; loopback unless you put it behind a TLS proxy on purpose")
+    port: int = setting(9320, "console port")
+    allowed_hosts: tuple[str, ...] = setting(
+        (), "extra Host header names the console answers to (e.g. the proxy's name); loopback names always work"
+    )
+    secure_cookies: bool = setting(False, "mark the session cookie Secure (set this when the console is served over https)")
+    session_hours: float = setting(12.0, "a sign-in lasts this many hours")
+    undo_s: float = setting(5.0, "seconds a moderator can undo a decision before it is final and sent to the site")
+    page_size: int = setting(500, "held comments (or families) shown on one queue page")
+    scan_max: int = setting(5000, "newest held comments read for filters and families; older ones are reached by paging")
+    poll_s: float = setting(5.0, "how often open pages refresh their live figures, in seconds")
+    signin_attempts: int = setting(10, "failed sign-ins for one account within 15 minutes before it is locked for the rest of them")
+
+    def __post_init__(self):
+        _check_bounds(self, _CONSOLE_BOUNDS)
+
+
+_CONSOLE_BOUNDS = (
+    ("port", 0, 65535),
+    ("session_hours", 0.01, 24 * 30),
+    ("undo_s", 0.0, 600.0),
+    ("page_size", 1, 5000),
+    ("scan_max", 1, 100_000),
+    ("poll_s", 0.2, 3600.0),
+    ("signin_attempts", 1, 10_000),
+)

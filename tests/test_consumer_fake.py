@@ -100,6 +100,7 @@ def test_verdict_cache_rates_and_ack_commit_together(client):
     assert "rescored" not in got["r1"]
     cache = client.hgetall(KEYS.text("h2"))
     assert cache[b"text"] == b"bonus garden party tonight" and cache[b"action"] == b"hold"
+    assert json.loads(cache[b"reasons"]) == [["bonus", 0.25]]  # the verdict's reasons, for the console
     assert 0 < client.ttl(KEYS.text("h2")) <= 14 * 86400
     assert client.zrange(KEYS.held, 0, -1) == [b"h2"]
     (rates_key,) = client.keys(KEYS.key("rates", "*"))

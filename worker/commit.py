@@ -103,7 +103,8 @@ for i = 1, n do
       redis.call('HSET', done, digest, version)
       redis.call('EXPIRE', done, done_ttl)
       redis.call('HSET', cache, 'text', text, 'site', site, 'author', author, 'ts', ts, 'stream_id', sid,
-                 'score', score, 'action', action, 'rule', rule, 'model', model, 'version', version, 'digest', digest)
+                 'score', score, 'action', action, 'rule', rule, 'model', model, 'version', version, 'digest', digest,
+                 'reasons', reasons, 'campaign', campaign)
       redis.call('EXPIRE', cache, text_ttl)
       if action == 'hold' then set_held(id, 'add') elseif version > 1 then set_held(id, 'rem') end
       count(site .. ':total')

@@ -78,6 +78,40 @@ class Keys:
         """Campaign detection state; :func:`worker.campaigns.campaign_keys` and its policy name each key."""
         return self.key("campaigns", *parts)
 
+    # -- moderators' decisions (worker/decisions.py) and the console's accounts --
+    @property
+    def decisions(self) -> str:
+        """Stream of final moderator decisions, for the site's application."""
+        return self.key("decisions")
+
+    @property
+    def deciding(self) -> str:
+        """Sorted set of decided comments still inside their undo window (score = when final)."""
+        return self.key("decisions", "pending")
+
+    def decision(self, comment_id: str) -> str:
+        """Hash of one decision inside its undo window."""
+        return self.key("decisions", "pending", comment_id)
+
+    @property
+    def audit(self) -> str:
+        """Stream of who did what in the console (sign-ins, decisions, undos, promotions)."""
+        return self.key("audit")
+
+    @property
+    def accounts(self) -> str:
+        """Hash of console accounts: name -> JSON record (role, salted scrypt hash)."""
+        return self.key("console", "accounts")
+
+    def signin_failures(self, account: str) -> str:
+        """Counter of one account's failed console sign-ins (TTL: the lockout window)."""
+        return self.key("console", "failures", account)
+
+    @property
+    def session_secret(self) -> str:
+        """The key that signs console session cookies, shared by every console process."""
+        return self.key("console", "secret")
+
 
 @dataclass(frozen=True, kw_only=True)
 class WorkerSettings:

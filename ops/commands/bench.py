@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import importlib
 
-BENCHES = ("model", "score", "stream", "retrain", "soak", "campaigns", "calibration", "startup")
+BENCHES = ("model", "score", "stream", "retrain", "soak", "campaigns", "calibration", "startup", "console")
 
 
 def register(sub) -> None:

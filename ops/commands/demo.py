@@ -11,6 +11,11 @@ By default everything runs on fakeredis inside this process (no server, no
 network).  ``--redis URL`` plays the same story on a real server, under its
 own key prefix (``--prefix``, default ``seawall-demo:``); it refuses to touch
 a prefix that already holds keys unless ``--reset`` is given.
+
+``--console`` leaves the hold queue to you once the nightly retrain has run
+(the simulated moderators stop working it, and the retrain does not re-score
+it), then opens the moderators' console on it: a one-time account ``demo``
+is made and its password printed; Ctrl-C ends the demo.
 """
 from __future__ import annotations
 
@@ -22,6 +27,10 @@ from model.errors import SeawallError
 from ops.config import load_config
 
 DEFAULT_PREFIX = "seawall-demo:"
+DEMO_ACCOUNT = "demo"
+# The moderators' last round is the one at 03:00, just before the nightly retrain (so it has its labels);
+# what is held from then on, and what that round left, stays for the console.
+LEAVE_QUEUE_AT_MIN = 41
 
 
 class DemoError(SeawallError):
@@ -45,6 +54,10 @@ def register(sub) -> None:
     parser.add_argument("--seed", type=int, default=7, help="seed of the invented data (default 7)")
     parser.add_argument("--config", metavar="FILE", help="TOML config file (else $SEAWALL_CONFIG)")
     parser.add_argument("--quiet", action="store_true", help="print only the summary")
+    parser.add_argument("--console", action="store_true",
+                        help="leave the last held comments to you and open the moderators' console on them")
+    parser.add_argument("--console-port", type=int, default=9320, metavar="PORT",
+                        help="port of the console on 127.0.0.1 (default 9320)")
     parser.set_defaults(func=run)
 
 
@@ -76,18 +89,50 @@ def run(args) -> int:
         scenario = demo_scenario(config, seed=args.seed)
         progress(f"seawall demo on {backend}: the Hedgerow Lane forum (invented), seed {args.seed}")
         result = run_demo(client=client, worker_client=worker_client, config=config, scenario=scenario,
-                          progress=progress)
+                          progress=progress, leave_queue_at_min=LEAVE_QUEUE_AT_MIN if args.console else None)
+        print()
+        print(summary_text(result, backend=backend))
+        report_path.write_text(render_html(result, backend=backend), encoding="utf-8")
+        print(f"\nreport: {report_path}")
+        if not embedded:
+            print(f"the demo's keys stay under {args.prefix!r} for you to look at "
+                  f"(e.g. XRANGE {config.keys.events} - +); run with --reset to start over")
+        if args.console:
+            open_console(client, config, story_end=scenario.start_ts + scenario.duration_s, port=args.console_port)
     finally:
         client.close()
         worker_client.close()
-    print()
-    print(summary_text(result, backend=backend))
-    report_path.write_text(render_html(result, backend=backend), encoding="utf-8")
-    print(f"\nreport: {report_path}")
-    if not embedded:
-        print(f"the demo's keys stay under {args.prefix!r} for you to look at "
-              f"(e.g. XRANGE {config.keys.events} - +); run with --reset to start over")
     return 0
+
+
+def open_console(client, config, *, story_end: float, port: int, on_ready=None) -> None:
+    """Serve the console on the demo's Redis until Ctrl-C, on the story's clock, with a one-time account."""
+    import secrets
+    import time
+    import webbrowser
+
+    from ops.console.accounts import Accounts
+    from ops.console.app import Console, serve
+
+    offset = story_end - time.time()  # ages and the overview's hours read as at the story's end
+    accounts = Accounts(client=client, keys=config.keys)
+    password = secrets.token_urlsafe(12)
+    accounts.remove(DEMO_ACCOUNT)
+    accounts.add(DEMO_ACCOUNT, password, role="admin", now=time.time())
+    console = Console(client=client, config=config, accounts=accounts, clock=lambda: time.time() + offset)
+    url = f"http://127.0.0.1:{port}/queue"
+
+    def ready(server):
+        held = client.zcard(config.keys.held)
+        print(f"\nconsole: {url}  ({held} held comments left for you)\n"
+              f"  sign in as {DEMO_ACCOUNT!r} with the password {password}  (made for this run only)\n"
+              "  Ctrl-C ends the demo", flush=True)
+        if on_ready is not None:
+            on_ready(server, password)
+        else:
+            webbrowser.open(url)
+
+    serve(console, host="127.0.0.1", port=port, on_ready=ready)
 
 
 def _clients(config, *, embedded: bool):

@@ -2,6 +2,9 @@
 
 For scripts and tests; a moderation tool would XADD the same flat fields
 (``id``, ``label``, optional ``moderator``, ``reason``, ``text``) itself.
+It goes through the same helper as the console (:func:`worker.decisions.label_now`):
+a comment still held also leaves the hold queue, and its final decision
+(``ham`` publishes, ``spam`` rejects) goes to the decisions stream.
 
 A label needs the comment's text.  Without ``--text`` the worker's cache
 must hold it (``text:{id}``, kept ``worker.text_cache_ttl_s``); when it does
@@ -12,6 +15,7 @@ be dead-lettered.
 from __future__ import annotations
 
 import json
+import time
 
 from model.errors import SeawallError
 from ops.connection import add_connection_args, config_from_args, connect
@@ -41,6 +45,7 @@ def feedback_fields(args) -> dict[str, str]:
 
 
 def run(args) -> int:
+    from worker.decisions import label_now
     from worker.feedback import Rejected, parse_feedback
 
     config = config_from_args(args)
@@ -55,10 +60,13 @@ def run(args) -> int:
         raise SeawallError(f"feedback: no cached text for comment {args.id!r} (Seawall never scored that id, or its "
                            "text expired after worker.text_cache_ttl_s); nothing sent; check the id, or pass "
                            "--text with the comment's text")
-    entry_id = client.xadd(config.keys.feedback, fields)
-    entry_id = entry_id.decode() if isinstance(entry_id, bytes) else entry_id
+    # The console's helper: its script uses only commands of that rule too (ZSCORE, ZREM, HMGET, XADD).
+    sent = label_now(client, config.keys, args.id, args.label, moderator=args.moderator or "",
+                     reason=args.reason or "", text=args.text, now=time.time())
+    entry_id = sent["feedback_id"]
     if args.json:
-        print(json.dumps({"stream_id": entry_id, "id": args.id, "label": args.label}))
+        print(json.dumps({"stream_id": entry_id, "id": args.id, "label": args.label, "decided": sent["decided"]}))
     else:
-        print(f"feedback {entry_id}: {args.id} -> {args.label}")
+        decided = "; it left the hold queue" if sent["decided"] else ""
+        print(f"feedback {entry_id}: {args.id} -> {args.label}{decided}")
     return 0
