@@ -54,6 +54,15 @@ def hostile_comments() -> list[dict[str, str]]:
     return out
 
 
+def late_campaign_comments(n: int = 24) -> list[dict[str, str]]:
+    """A second, invented campaign still posting when the story ends: near-duplicates from fresh accounts."""
+    crafts = ("pottery", "weaving", "candle", "basket", "quilting", "woodturning")
+    return [{"id": f"late-camp-{i:03d}", "site": "swap-shop", "author": f"fresh-crafter-{i}",
+             "text": f"only a few seats left at the riverside {crafts[i % len(crafts)]} workshop this weekend, "
+                     f"ask the organiser for the members price before the list closes tonight"}
+            for i in range(n)]
+
+
 def hold(client, n: int, *, start: int = 0, keys: Keys = Keys()) -> list[str]:
     """``n`` held comments as the worker's commit leaves them: the held entry and the text cache."""
     ids = []
