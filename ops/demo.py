@@ -45,11 +45,12 @@ from model.classifier import EmbeddingClassifier
 from ops.config import Config
 from ops.cusum import WaveParams
 from ops.metrics import PrometheusObserver, build_metrics
-from ops.monitor import Monitor, campaign_policy
+from ops.monitor import Monitor
 from ops.registry import Registry, RegistryModelSource, split_replay
 from ops.rescore import rescore_held
 from ops.retrain import retrain
 from ops.scenario import SITES, Scenario, ScenarioComment
+from ops.serving import build_consumer, campaign_policy
 from ops.waves import WaveDetector
 from worker.campaigns import campaign_keys
 from worker.consumer import StreamConsumer
@@ -250,18 +251,15 @@ def bootstrap_registry(client, config: Config, model, rows, *, clock) -> str:
 def build_workers(client, config: Config, *, clock, observer=None) -> list[StreamConsumer]:
     """Two consumers of one group, each with its own registry model source and the campaign policy.
 
-    The policy is what :func:`ops.monitor.campaign_policy` builds for ``seawall
-    serve``, with the story's clock.
+    Built by :func:`ops.serving.build_consumer`, as ``seawall serve`` builds its
+    worker, on the story's client and clock.
     """
-    w = config.waves
     workers = []
     for name in WORKERS:
-        policies = []
-        if w.enabled:
-            policies.append(campaign_policy(config, clock=clock))
+        policies = [campaign_policy(config, clock=clock)] if config.waves.enabled else []
         source = RegistryModelSource(client=client, keys=config.keys, poll_interval_s=config.retrain.registry_poll_s)
-        workers.append(StreamConsumer(client=client, keys=config.keys, settings=config.worker, model_source=source,
-                                      consumer=name, policies=policies, observer=observer, clock=clock))
+        workers.append(build_consumer(config, source=source, consumer=name, policies=policies, observer=observer,
+                                      client=client, clock=clock))
     return workers
 
 

@@ -116,7 +116,7 @@ def run_worker(overrides: dict, model_path: str, noop: bool, campaigns: bool, na
     """One worker process (spawned): the consumer `seawall serve` builds, optionally with the campaign
     policy; runs until SIGTERM and reports its peak RSS and CPU time."""
     from ops.config import load_config
-    from ops.monitor import campaign_policy
+    from ops.serving import campaign_policy
     from ops.serving import build_consumer
     from worker.loader import FileModelSource, StaticModelSource
 
