@@ -6,7 +6,7 @@ import shutil
 
 import pytest
 
-from servers import RedisServer, require
+from servers import RabbitServer, RedisServer, rabbitmq_server_path, require
 
 
 @pytest.fixture
@@ -47,3 +47,13 @@ def redis_client(redis_server):
     client = redis_server.client()
     yield client
     client.close()
+
+
+@pytest.fixture
+def rabbit_server(tmp_path) -> RabbitServer:
+    """A real rabbitmq-server node on a free loopback port, stopped after the test."""
+    require(shutil.which("rabbitmq-server") is not None and rabbitmq_server_path() is not None,
+            "rabbitmq-server not installed")
+    server = RabbitServer(tmp_path / "rabbitmq").start()
+    yield server
+    server.stop()

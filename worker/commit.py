@@ -197,12 +197,14 @@ class BatchCommitter:
     limits : stream caps and TTLs.
     acknowledges : False when the entries did not come from the ``comments`` stream (a RabbitMQ
         source acknowledges its own messages): no pending check, no XACK; the done markers decide.
+    source : what dead letters name as their ``source`` (default: the ``comments`` stream).
     """
 
-    def __init__(self, *, keys: Keys, limits: Limits, acknowledges: bool = True):
+    def __init__(self, *, keys: Keys, limits: Limits, acknowledges: bool = True, source: str = ""):
         self.keys = keys
         self.limits = limits
         self.acknowledges = acknowledges
+        self.source = source or keys.comments
         self._sha = None
 
     def arguments(self, scored: Sequence[Scored], dead: Sequence[DeadLetter], *, model: str, now: float,
@@ -223,7 +225,7 @@ class BatchCommitter:
             args += (c.stream_id, c.id, s.score, s.action, s.reasons, c.site, c.text, c.author, c.ts, s.rule,
                      s.campaign, text_digest(c.text))
         args.append(len(dead))
-        source = k.comments
+        source = self.source
         for d in dead:
             fields = d.as_fields(source)
             args += (d.stream_id, len(fields))
