@@ -71,6 +71,10 @@ def amqp_errors():
         raise TransientError("lost connection to RabbitMQ") from exc
 
 
+class _Pairs(list):
+    """A JSON object's (name, value) pairs in order (a JSON array decodes to a plain list)."""
+
+
 def message_entry(body: bytes, stream_id: bytes, limits: InputLimits) -> Entry | DeadLetter:
     """A message body as a stream entry (pure): a JSON object of strings, or a ``malformed`` dead letter.
 
@@ -81,10 +85,10 @@ def message_entry(body: bytes, stream_id: bytes, limits: InputLimits) -> Entry |
         return dead_letter(Entry(stream_id, ((b"body", bytes(body)),)), "malformed", detail, limits)
 
     try:
-        pairs = json.loads(body, object_pairs_hook=lambda items: items)
+        pairs = json.loads(body, object_pairs_hook=_Pairs)
     except (UnicodeDecodeError, ValueError):
         return malformed("the message body is not JSON in UTF-8")
-    if not isinstance(pairs, list) or not all(isinstance(k, str) and isinstance(v, str) for k, v in pairs):
+    if type(pairs) is not _Pairs or not all(isinstance(k, str) and isinstance(v, str) for k, v in pairs):
         return malformed("the message body must be a JSON object whose values are all strings")
     try:
         fields = tuple((k.encode(), v.encode()) for k, v in pairs)
