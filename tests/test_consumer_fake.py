@@ -143,10 +143,10 @@ def test_two_consumers_committing_the_same_entries_write_once(client):
     """The reclaim race: a slow consumer and the one that took its entries over both finish."""
     send(client, 20, id="c{i}")
     slow, fast = make(client, name="slow"), make(client, name="fast", claim_idle_ms=1)
-    entries = slow.source.read_from(b">", block=False)                       # slow reads, then stalls
+    entries = slow.source.reader.read_from(b">", block=False)                       # slow reads, then stalls
     assert len(entries) == 20
     client.execute_command("XAUTOCLAIM", KEYS.comments, KEYS.group, "fast", 0, "0-0")   # fast takes them over
-    taken = fast.source.read_from(b"0", block=False)
+    taken = fast.source.reader.read_from(b"0", block=False)
     assert fast.process(taken).written == 20
     late = slow.process(entries)                                 # the slow one finishes too
     assert (late.written, late.duplicates) == (0, 20)
@@ -158,7 +158,7 @@ def test_two_consumers_committing_the_same_entries_write_once(client):
 def test_xack_guards_even_when_the_marker_is_gone(client):
     send(client, 5, id="c{i}")
     a, b = make(client, name="a"), make(client, name="b")
-    entries = a.source.read_from(b">", block=False)
+    entries = a.source.reader.read_from(b">", block=False)
     assert a.process(entries).written == 5
     for i in range(5):
         client.delete(KEYS.done(f"c{i}"))   # e.g. expired
@@ -169,7 +169,7 @@ def test_xack_guards_even_when_the_marker_is_gone(client):
 def test_idle_entries_of_a_dead_consumer_are_reclaimed(client):
     send(client, 7, id="c{i}")
     dead = make(client, name="dead")
-    assert len(dead.source.read_from(b">", block=False)) == 7                # read, then the process dies
+    assert len(dead.source.reader.read_from(b">", block=False)) == 7                # read, then the process dies
     alive = make(client, name="alive", claim_idle_ms=1, claim_every_s=0.01)
     time.sleep(0.01)                                             # idle longer than claim_idle_ms
     result = alive.reclaim()
@@ -180,10 +180,10 @@ def test_idle_entries_of_a_dead_consumer_are_reclaimed(client):
 def test_entries_delivered_too_often_are_poison(client):
     send(client, 2, id="c{i}")
     w = make(client, max_deliveries=3)
-    w.source.read_from(b">", block=False)
+    w.source.reader.read_from(b">", block=False)
     for _ in range(3):                                           # the worker "crashed" on them 3 more times
-        w.source.read_from(b"0", block=False)
-    result = w.process(w.source.read_from(b"0", block=False), deliveries=w.source.deliveries([e for e, _ in
+        w.source.reader.read_from(b"0", block=False)
+    result = w.process(w.source.reader.read_from(b"0", block=False), deliveries=w.source.reader.deliveries([e for e, _ in
                        client.xrange(KEYS.comments)]))
     assert result.dead == {"poison": 2}
     dl = deadletters(client)
@@ -195,7 +195,7 @@ def test_entries_delivered_too_often_are_poison(client):
 def test_own_backlog_is_read_first_after_a_restart(client):
     send(client, 5, id="c{i}")
     first = make(client, name="w1", batch=2)
-    first.source.read_from(b">", block=False)                                # read 2 and died
+    first.source.reader.read_from(b">", block=False)                                # read 2 and died
     again = make(client, name="w1", batch=2)                     # same consumer name restarts
     drain(again)
     assert sorted(v["id"] for v in verdicts(client)) == [f"c{i}" for i in range(5)]

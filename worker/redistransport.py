@@ -1,10 +1,10 @@
 """Redis Streams behind the transport seam: a consumer group in, the one Lua commit out.
 
 :class:`RedisStreamSource` reads the ``comments`` stream as one consumer of
-the ``workers`` group: its own pending entries first (left by a crash or a lost
-connection), then new ones (``>``); every ``claim_every_s`` it takes over
-entries idle longer than ``claim_idle_ms`` on other consumers (XAUTOCLAIM,
-at most :data:`MAX_CLAIM_ROUNDS` rounds so fresh entries are never starved).
+the ``workers`` group through a :class:`worker.groupreader.GroupReader`: its
+own pending entries first (left by a crash or a lost connection), then new
+ones; when the worker asks, it takes over entries idle longer than
+``claim_idle_ms`` on other consumers (XAUTOCLAIM, with a round cap).
 :class:`RedisStreamSink` commits a batch with :class:`worker.commit.BatchCommitter`,
 whose script also acknowledges (XACK) what it wrote, atomically; so
 :meth:`RedisStreamSource.acknowledge` has nothing left to do.
@@ -21,14 +21,12 @@ from collections.abc import Sequence
 import redis
 
 from worker.commit import BatchCommitter, Limits as CommitLimits
+from worker.groupreader import GroupReader
 from worker.settings import Keys, WorkerSettings
-from worker.streams import Entry, parse_xautoclaim, parse_xinfo_group, parse_xpending_range, parse_xreadgroup
 from worker.transport import Batch, Lag, TransientError
 
 log = logging.getLogger("seawall.worker")
 
-# Upper bound on XAUTOCLAIM rounds per reclaim pass, so that fresh entries are never starved.
-MAX_CLAIM_ROUNDS = 20
 TRIMMED_DETAIL = "the entry was deleted from the stream before it was scored"
 
 
@@ -50,7 +48,7 @@ def redis_errors():
 
 
 class RedisStreamSource:
-    """One consumer of ``keys.comments`` in group ``keys.group``; see the module docstring.
+    """One consumer of ``keys.comments`` in group ``keys.group``, on a :class:`worker.groupreader.GroupReader`.
 
     Parameters
     ----------
@@ -67,55 +65,20 @@ class RedisStreamSource:
         self.settings = settings
         self.consumer = consumer
         self.describe = f"{keys.comments} as group {keys.group}"
-        self._stream = keys.comments.encode()
-        self._backlog_from: bytes | None = b"0"
+        self.reader = GroupReader(client=client, stream=keys.comments, group=keys.group, consumer=consumer,
+                                  batch=settings.batch, block_ms=settings.block_ms,
+                                  claim_idle_ms=settings.claim_idle_ms)
 
     def prepare(self) -> None:
         """Create the group if missing, and go back to this consumer's own pending entries."""
         with redis_errors():
-            self.ensure_group()
-        self._backlog_from = b"0"
-
-    def ensure_group(self) -> None:
-        """XGROUP CREATE ... 0 MKSTREAM: entries sent before the first worker started are scored too."""
-        try:
-            self.client.xgroup_create(self.keys.comments, self.keys.group, id="0", mkstream=True)
-            log.info("created consumer group %s on %s", self.keys.group, self.keys.comments)
-        except redis.ResponseError as exc:
-            if "BUSYGROUP" not in str(exc):
-                raise
+            self.reader.ensure_group()
 
     def read(self, *, block: bool = True) -> Batch:
         """This consumer's pending entries first (with delivery counts), then new ones."""
         with redis_errors():
-            if self._backlog_from is not None:
-                entries = self.read_from(self._backlog_from, block=False)
-                if entries:
-                    self._backlog_from = entries[-1].stream_id
-                    return Batch(entries, self.deliveries([e.stream_id for e in entries]))
-                self._backlog_from = None
-            return Batch(self.read_from(b">", block=block))
-
-    def read_from(self, start: bytes, *, block: bool) -> list[Entry]:
-        """One XREADGROUP from ``start`` (``b">"``: new entries; an id: this consumer's pending ones)."""
-        args = ["XREADGROUP", "GROUP", self.keys.group, self.consumer, "COUNT", self.settings.batch]
-        if block:
-            args += ["BLOCK", self.settings.block_ms]
-        args += ["STREAMS", self.keys.comments, start]
-        return parse_xreadgroup(self.client.execute_command(*args), self._stream)
-
-    def deliveries(self, stream_ids: Sequence[bytes]) -> dict[bytes, int]:
-        """Delivery counts of pending entries (XPENDING, one row per id, one round trip)."""
-        if not stream_ids:
-            return {}
-        pipe = self.client.pipeline(transaction=False)
-        for sid in stream_ids:
-            pipe.execute_command("XPENDING", self.keys.comments, self.keys.group, sid, sid, 1)
-        counts = {}
-        for reply in pipe.execute():
-            for row in parse_xpending_range(reply):
-                counts[row.stream_id] = row.deliveries
-        return counts
+            entries, deliveries = self.reader.read(block=block)
+        return Batch(entries, deliveries)
 
     def claim(self):
         """Batches taken over from consumers idle longer than ``claim_idle_ms`` (a generator).
@@ -123,22 +86,17 @@ class RedisStreamSource:
         Entries deleted from the stream before they were scored come back in
         ``Batch.gone``; they are already written to the dead-letter stream.
         """
-        cursor = b"0-0"
-        for _ in range(MAX_CLAIM_ROUNDS):
+        claims = self.reader.claim()
+        while True:
             with redis_errors():
-                reply = self.client.execute_command(
-                    "XAUTOCLAIM", self.keys.comments, self.keys.group, self.consumer,
-                    self.settings.claim_idle_ms, cursor, "COUNT", self.settings.batch,
-                )
-                claimed = parse_xautoclaim(reply)
+                claimed = next(claims, None)
+                if claimed is None:
+                    return
                 if claimed.deleted:
                     self._dead_letter_trimmed(claimed.deleted)
-                deliveries = self.deliveries([e.stream_id for e in claimed.entries]) if claimed.entries else None
-            if claimed.entries or claimed.deleted:
-                yield Batch(claimed.entries, deliveries, claimed=True, gone=list(claimed.deleted))
-            cursor = claimed.cursor
-            if cursor in (b"0-0", b"0"):
-                break
+                ids = [e.stream_id for e in claimed.entries]
+                deliveries = self.reader.deliveries(ids) if ids else None
+            yield Batch(claimed.entries, deliveries, claimed=True, gone=list(claimed.deleted))
 
     def _dead_letter_trimmed(self, stream_ids: Sequence[bytes]) -> None:
         # XAUTOCLAIM already dropped these from the pending list, and only this
@@ -155,9 +113,8 @@ class RedisStreamSource:
 
     def lag(self) -> Lag:
         with redis_errors():
-            reply = self.client.execute_command("XINFO GROUPS", self.keys.comments)
-        info = parse_xinfo_group(reply, self.keys.group)
-        return Lag(info["lag"], info["pending"])
+            lag = self.reader.lag()
+        return Lag(lag.lag, lag.pending)
 
 
 class RedisStreamSink:
