@@ -45,6 +45,7 @@ from model.classifier import EmbeddingClassifier
 from ops.config import Config
 from ops.cusum import WaveParams
 from ops.metrics import PrometheusObserver, build_metrics
+from ops.labelling import build_feedback_consumer, feedback_settings
 from ops.monitor import Monitor
 from ops.registry import Registry, RegistryModelSource, split_replay
 from ops.rescore import rescore_held
@@ -55,7 +56,6 @@ from ops.waves import WaveDetector
 from worker.campaigns import campaign_keys
 from worker.consumer import StreamConsumer
 from worker.events import parse_event
-from worker.feedback import FeedbackConsumer
 
 log = logging.getLogger("seawall.demo")
 
@@ -358,11 +358,7 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
     workers = build_workers(worker_client, config, clock=clock, observer=observer)
     for w in workers:
         w.prepare()
-    feedback = FeedbackConsumer(
-        client=client, keys=keys, group=config.retrain.feedback_group, consumer="hedgerow-feedback",
-        batch=config.retrain.feedback_batch, text_max_bytes=config.retrain.feedback_text_max_bytes,
-        labels_max=config.retrain.labels_max, deadletter_maxlen=config.worker.deadletter_maxlen, clock=clock,
-    )
+    feedback = build_feedback_consumer(config, consumer="hedgerow-feedback", client=client, clock=clock)
     detector = WaveDetector(client=client, keys=keys, params=WaveParams.from_settings(config.waves),
                             sites=config.metrics.sites, clock=clock)
     monitor = Monitor(client=client, keys=keys, observer=observer, detector=detector,
@@ -444,7 +440,8 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
                      rescore: bool = True) -> None:
     result.retrain_ts = clock.now
     promoted: list[str] = []
-    report = retrain(client, config.keys, config.retrain, clock=clock, on_promoted=promoted.append)
+    report = retrain(client, config.keys, config.retrain, clock=clock, on_promoted=promoted.append,
+                     feedback=feedback_settings(config.retrain, config.worker))
     result.retrain_report = report
     labels = report.get("labels", {})
     if not report.get("promoted"):

@@ -226,3 +226,30 @@ def test_redis_consumer_commits_each_comment_once_through_the_seam(fake_redis):
     actions = {f[b"id"].decode(): f[b"action"].decode() for _, f in fake_redis.xrange(KEYS.verdicts)}
     assert actions == {"c0": "publish", "c1": "reject", "c2": "publish", "c3": "reject", "c4": "publish"}
     assert c.source.lag().pending == 0
+
+
+def test_the_group_reader_caps_its_claim_rounds_so_new_entries_are_not_starved(fake_redis):
+    from worker.groupreader import GroupReader
+
+    client = raw_stream_replies(fake_redis)
+    for i in range(5):
+        client.xadd(KEYS.comments, {"id": f"c{i}", "text": "hello"})
+    dead = GroupReader(client=client, stream=KEYS.comments, group=KEYS.group, consumer="dead", batch=5, block_ms=1,
+                       claim_idle_ms=0)
+    dead.ensure_group()
+    assert len(dead.read(block=False)[0]) == 5
+    alive = GroupReader(client=client, stream=KEYS.comments, group=KEYS.group, consumer="alive", batch=2, block_ms=1,
+                        claim_idle_ms=0)
+    assert [len(c.entries) for c in alive.claim(rounds=2)] == [2, 2]  # two rounds of two, one entry left for later
+    assert [len(c.entries) for c in alive.claim()] == [2, 2, 1]  # claimed again: idle 0 takes every one
+
+
+@pytest.mark.parametrize("bad", [{"batch": 0}, {"block_ms": -1}, {"stream": ""}, {"claim_idle_ms": 1.5}],
+                         ids=["batch-zero", "block-negative", "stream-empty", "idle-float"])
+def test_the_group_reader_checks_its_arguments(fake_redis, bad):
+    from worker.groupreader import GroupReader
+
+    args = dict(client=fake_redis, stream="s", group="g", consumer="c", batch=1, block_ms=1, claim_idle_ms=0)
+    args.update(bad)
+    with pytest.raises(ValueError, match="GroupReader"):
+        GroupReader(**args)

@@ -181,6 +181,50 @@ class WorkerSettings:
                              f"{self.hold_floor!r} > {self.reject_floor!r}")
 
 
+# (field, lowest, highest) of every numeric feedback setting: the one table, used by FeedbackSettings
+# and by ops.settings.RetrainSettings, whose feedback_* fields are the same settings under the [retrain] section.
+FEEDBACK_BOUNDS = (
+    ("batch", 1, 100000),
+    ("block_ms", 1, 600000),
+    ("claim_idle_ms", 0, 86400000),
+    ("text_max_bytes", 1, 64 * 2**20),
+    ("labels_max", 1, 10**8),
+    ("deadletter_maxlen", 1, 10**9),
+    ("backoff_initial_s", 0.001, 60.0),
+    ("backoff_factor", 1.0, 10.0),
+    ("backoff_cap_s", 0.001, 3600.0),
+)
+
+
+@dataclass(frozen=True, kw_only=True)
+class FeedbackSettings:
+    """What the feedback consumer runs with; built once from the Config by ``ops.labelling.feedback_settings``."""
+
+    group: str = "labellers"
+    batch: int = 256
+    block_ms: int = 1000
+    claim_idle_ms: int = 60000
+    text_max_bytes: int = 262144
+    labels_max: int = 200000
+    deadletter_maxlen: int = 100_000
+    backoff_initial_s: float = 0.1
+    backoff_factor: float = 2.0
+    backoff_cap_s: float = 10.0
+
+    def __post_init__(self):
+        if not isinstance(self.group, str) or not self.group:
+            raise ValueError(f"FeedbackSettings: group must be a non-empty string, got {self.group!r}")
+        for name, low, high in FEEDBACK_BOUNDS:
+            value = getattr(self, name)
+            integral = isinstance(low, int) and isinstance(high, int)
+            kinds = (int,) if integral else (int, float)
+            if isinstance(value, bool) or not isinstance(value, kinds) or not low <= value <= high:
+                raise ValueError(f"FeedbackSettings: {name} must be a number in [{low}, {high}], got {value!r}")
+        if self.backoff_cap_s < self.backoff_initial_s:
+            raise ValueError(f"FeedbackSettings: backoff_cap_s ({self.backoff_cap_s!r}) must be >= backoff_initial_s "
+                             f"({self.backoff_initial_s!r})")
+
+
 @dataclass(frozen=True, kw_only=True)
 class AmqpSettings:
     """Where comments come from when they come by RabbitMQ (see :mod:`worker.amqp`)."""
