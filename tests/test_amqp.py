@@ -13,7 +13,6 @@ import pytest
 
 from scorers import WordScorer
 from worker.amqp import AmqpSource, amqp_consumer, message_entry
-from worker.commit import DUPLICATE
 from worker.connection import connect
 from worker.loader import StaticModelSource
 from worker.settings import AmqpSettings, Keys, WorkerSettings
