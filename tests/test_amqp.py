@@ -206,3 +206,65 @@ def test_lag_reports_the_messages_waiting_in_the_queue(rabbit_node, redis_server
     lag = source.lag()
     assert len(batch.entries) == 1 and lag.lag == 4 and lag.pending == 0  # prefetch 1: the rest wait in the queue
     source.close()
+
+
+class _Frame:
+    def __init__(self, method):
+        self.method = method
+
+
+class _StubBroker:
+    """A channel whose broker confirms the way it is told: ``plan`` maps a publish count to the frames it sends."""
+
+    def __init__(self, plan):
+        self.plan = plan
+        self.sent = 0
+        self._impl = self
+        self.on_confirm = None
+        self.pending = []
+
+    def channel(self):
+        return self
+
+    def confirm_delivery(self, *, ack_nack_callback, callback):
+        self.on_confirm = ack_nack_callback
+        callback(_Frame(pika.spec.Confirm.SelectOk()))
+
+    def basic_publish(self, exchange, routing_key, body, properties):
+        self.sent += 1
+        self.pending.extend(self.plan.get(self.sent, ()))
+
+    def process_data_events(self, time_limit=0):
+        frames, self.pending = self.pending, []
+        for method in frames:
+            self.on_confirm(_Frame(method))
+
+
+@pytest.mark.parametrize("plan, refused", [
+    ({3: [pika.spec.Basic.Ack(delivery_tag=3, multiple=True)]}, 0),
+    ({1: [pika.spec.Basic.Ack(delivery_tag=1)], 3: [pika.spec.Basic.Ack(delivery_tag=3),
+                                                   pika.spec.Basic.Ack(delivery_tag=2)]}, 0),
+    ({3: [pika.spec.Basic.Ack(delivery_tag=1), pika.spec.Basic.Nack(delivery_tag=3, multiple=True)]}, 2),
+], ids=["one-multiple-ack", "out-of-order-acks", "nack"])
+def test_a_batch_of_verdicts_waits_once_for_every_confirm_and_a_nack_fails_it(plan, refused):
+    from worker.amqp import ConfirmedPublisher
+    from worker.transport import TransientError
+
+    broker = _StubBroker(plan)
+    publisher = ConfirmedPublisher(broker, timeout_s=1.0)
+    messages = [(f"c{i}:d", b"{}") for i in range(3)]
+    if refused:
+        with pytest.raises(TransientError, match=f"refused {refused} verdict"):
+            publisher.publish("x", messages)
+    else:
+        publisher.publish("x", messages)
+    assert broker.sent == 3
+
+
+def test_a_verdict_the_broker_never_confirms_fails_the_batch_in_time():
+    from worker.amqp import ConfirmedPublisher
+    from worker.transport import TransientError
+
+    publisher = ConfirmedPublisher(_StubBroker({}), timeout_s=0.2)
+    with pytest.raises(TransientError, match="did not confirm"):
+        publisher.publish("x", [("c1:d", b"{}")])

@@ -16,7 +16,8 @@ A worker consumes with manual acknowledgements and a prefetch of
    already have a marker gets no second verdict;
 2. each verdict is published to the fanout exchange ``amqp.verdicts_exchange``
    (default ``seawall.verdicts``) with publisher confirms, ``message_id``
-   ``<comment id>:<digest>``;
+   ``<comment id>:<digest>``; the batch's messages are published together and
+   their confirms awaited once (:class:`ConfirmedPublisher`);
 3. the batch's messages are acknowledged (one ``basic.ack`` with ``multiple``).
 
 A worker killed between 1 and 3 leaves its messages unacknowledged; the broker
@@ -42,6 +43,7 @@ from dataclasses import dataclass, field
 
 import pika
 import pika.exceptions
+import pika.spec
 
 from worker.commit import WRITTEN, BatchCommitter, Limits as CommitLimits, text_digest
 from worker.redistransport import RedisState, redis_errors
@@ -110,6 +112,57 @@ def connection_parameters(settings: AmqpSettings) -> pika.URLParameters:
     return params
 
 
+class ConfirmedPublisher:
+    """Publishes a batch of messages on a channel in confirm mode and waits once for the broker's confirms.
+
+    pika's blocking channel waits for each message's confirm before the next
+    publish, a round trip per verdict; the channel underneath it
+    (``pika.channel.Channel``) streams publishes and reports confirms to a
+    callback, so a batch costs one wait.  A nack, or no confirm within
+    ``timeout_s``, raises :class:`TransientError`: the batch is not
+    acknowledged, and its messages come back (their verdicts are published again).
+    """
+
+    def __init__(self, connection, *, timeout_s: float):
+        self.connection = connection
+        self.timeout_s = timeout_s
+        self.channel = connection.channel()
+        self._impl = self.channel._impl  # the blocking wrapper has no way to publish without waiting
+        self._outstanding: set[int] = set()
+        self._nacked = 0
+        self._published = 0
+        selected = []
+        self._impl.confirm_delivery(ack_nack_callback=self._on_confirm, callback=selected.append)
+        self._wait(lambda: bool(selected), "confirm mode")
+
+    def _on_confirm(self, frame) -> None:
+        method = frame.method
+        tags = {t for t in self._outstanding if t <= method.delivery_tag} if method.multiple else {method.delivery_tag}
+        self._outstanding -= tags
+        if isinstance(method, pika.spec.Basic.Nack):
+            self._nacked += len(tags)
+
+    def _wait(self, done, what: str) -> None:
+        deadline = time.monotonic() + self.timeout_s
+        while not done():
+            left = deadline - time.monotonic()
+            if left <= 0:
+                raise TransientError(f"RabbitMQ did not confirm {what} within {self.timeout_s:.0f}s")
+            self.connection.process_data_events(time_limit=min(left, 0.05))
+
+    def publish(self, exchange: str, messages) -> None:
+        """``messages``: ``(message_id, body)`` pairs, persistent JSON; returns once the broker confirmed all."""
+        for message_id, body in messages:
+            self._published += 1
+            self._outstanding.add(self._published)
+            self._impl.basic_publish(exchange, "", body, pika.BasicProperties(
+                message_id=message_id, content_type="application/json", delivery_mode=2))
+        self._wait(lambda: not self._outstanding, "the verdicts it was sent")
+        if self._nacked:
+            nacked, self._nacked = self._nacked, 0
+            raise TransientError(f"RabbitMQ refused {nacked} verdict message(s) (nack)")
+
+
 @dataclass(slots=True)
 class Delivery:
     """What acknowledging a batch needs: its last delivery tag and the verdicts to publish first."""
@@ -138,6 +191,7 @@ class AmqpSource:
         self._limits = InputLimits.from_settings(worker)
         self._connection = None
         self._channel = None
+        self._publisher: ConfirmedPublisher | None = None
         self._buffer: list = []
         self._seq = itertools.count()
         self._tags = itertools.count(1)
@@ -156,10 +210,11 @@ class AmqpSource:
             connection = pika.BlockingConnection(connection_parameters(s))
             try:
                 channel = connection.channel()
-                channel.confirm_delivery()
                 channel.queue_declare(s.queue, durable=True, arguments=QUEUE_ARGUMENTS)
+                publisher = None
                 if s.verdicts_exchange:
                     channel.exchange_declare(s.verdicts_exchange, exchange_type="fanout", durable=True)
+                    publisher = ConfirmedPublisher(connection, timeout_s=max(30.0, s.connect_timeout_s))
                 channel.basic_qos(prefetch_count=s.prefetch)
                 channel.basic_consume(s.queue, self._on_message, auto_ack=False,
                                       consumer_tag=f"{self.consumer}-{next(self._tags)}")
@@ -167,11 +222,11 @@ class AmqpSource:
                 with contextlib.suppress(Exception):
                     connection.close()
                 raise
-        self._connection, self._channel = connection, channel
+        self._connection, self._channel, self._publisher = connection, channel, publisher
         log.info("consuming %s (prefetch %d)", self.describe, s.prefetch)
 
     def close(self) -> None:
-        connection, self._connection, self._channel = self._connection, None, None
+        connection, self._connection, self._channel, self._publisher = self._connection, None, None, None
         self._buffer.clear()
         if connection is not None and connection.is_open:
             with contextlib.suppress(Exception):
@@ -225,12 +280,9 @@ class AmqpSource:
         channel = self._channel
         if channel is None:
             raise TransientError("not connected to RabbitMQ")
-        exchange = self.settings.verdicts_exchange
         with amqp_errors():
-            if exchange:
-                for message_id, body in delivery.verdicts:
-                    channel.basic_publish(exchange, "", body, pika.BasicProperties(
-                        message_id=message_id, content_type="application/json", delivery_mode=2))
+            if self._publisher is not None and delivery.verdicts:
+                self._publisher.publish(self.settings.verdicts_exchange, delivery.verdicts)
             channel.basic_ack(delivery_tag=delivery.last_tag, multiple=True)
 
     def lag(self) -> Lag | None:
