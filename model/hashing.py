@@ -2,7 +2,7 @@
 
 Every token is hashed with MurmurHash3 (x86, 32-bit; Appleby's SMHasher
 reference, computed by the ``mmh3`` package for strings and by a numpy
-transcription of the same rounds for 4-byte integer keys) into one of ``B``
+re-implementation of the same rounds for 4-byte integer keys) into one of ``B``
 buckets.  A never-seen word of a new spam wave therefore still lands in a bucket
 the model can learn overnight, with no vocabulary to grow or ship.
 

@@ -6,7 +6,7 @@ drift: a command renamed, an option dropped or an output changed fails here.
 client (pointed at the test's server with ``-p``), and a line ending in ``&``
 runs in the background as it would in a shell.  Before reading the verdicts
 the test waits for the worker to write them, as a person would wait a moment.
-The whole transcript is printed (``pytest -s`` shows it).
+The whole session is printed (``pytest -s`` shows it).
 """
 from __future__ import annotations
 
@@ -55,7 +55,7 @@ class Shell:
         self.env = {k: v for k, v in __import__("os").environ.items() if not k.startswith("SEAWALL_")}
         self.env.update(SEAWALL_REDIS_URL=f"redis://127.0.0.1:{port}/0", SEAWALL_METRICS_PORT=str(metrics_port))
         self.background: list = []
-        self.transcript: list[str] = []
+        self.record: list[str] = []
         seawall = Path(sys.executable).with_name("seawall")
         self.seawall = [str(seawall)] if seawall.exists() else [sys.executable, "-m", "ops.cli"]
 
@@ -68,7 +68,7 @@ class Shell:
         raise AssertionError(f"the walkthrough runs only seawall and redis-cli, not {words[0]!r}")
 
     def run(self, line: str) -> str:
-        self.transcript.append(f"$ {line}")
+        self.record.append(f"$ {line}")
         if line.endswith("&"):
             log = open(self.cwd / f"background-{len(self.background)}.log", "wb")
             proc = subprocess.Popen(self.argv(line), cwd=self.cwd, env=self.env, stdout=log, stderr=subprocess.STDOUT)
@@ -76,7 +76,7 @@ class Shell:
             return ""
         done = subprocess.run(self.argv(line), cwd=self.cwd, env=self.env, capture_output=True, text=True,
                               timeout=600)
-        self.transcript.append(done.stdout.rstrip())
+        self.record.append(done.stdout.rstrip())
         assert done.returncode == 0, f"{line!r} exited {done.returncode}:\n{done.stdout}\n{done.stderr}"
         return done.stdout
 
@@ -111,7 +111,7 @@ def test_your_own_redis_in_five_commands(redis_server, tmp_path):
         codes = stop_all(shell.background)
     finally:
         stop_all([b for b in shell.background if b.proc.poll() is None])
-        print("\n".join(shell.transcript))
+        print("\n".join(shell.record))
     assert codes == [0]  # the worker stops cleanly on SIGTERM
 
     assert "it is active (was none)" in outputs["seawall models"]
