@@ -148,7 +148,9 @@ class ConfirmedPublisher:
             left = deadline - time.monotonic()
             if left <= 0:
                 raise TransientError(f"RabbitMQ did not confirm {what} within {self.timeout_s:.0f}s")
-            self.connection.process_data_events(time_limit=min(left, 0.05))
+            # Confirms reach a callback of the channel underneath, which does not end a blocking wait
+            # early (a message delivery would): wait in short steps.
+            self.connection.process_data_events(time_limit=min(left, 0.001))
 
     def publish(self, exchange: str, messages) -> None:
         """``messages``: ``(message_id, body)`` pairs, persistent JSON; returns once the broker confirmed all."""
