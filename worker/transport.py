@@ -20,7 +20,7 @@ acknowledged after it).  In both, Redis holds the state: verdict records,
 """
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import Protocol, runtime_checkable
 
@@ -109,7 +109,7 @@ class CommentSource(Protocol):
 
     def read(self, *, block: bool = True) -> Batch: ...
 
-    def claim(self) -> Sequence[Batch]: ...
+    def claim(self) -> Iterable[Batch]: ...
 
     def acknowledge(self, batch: Batch) -> None: ...
 
