@@ -24,7 +24,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from ops.settings import ConsoleSettings, MetricsSettings, RetrainSettings, WaveSettings
-from worker.settings import Keys, WorkerSettings, setting
+from worker.settings import AmqpSettings, Keys, WorkerSettings, setting
 
 ENV_PREFIX = "SEAWALL_"
 
@@ -48,6 +48,7 @@ class Config:
     log_level: str = setting("INFO", "log level: DEBUG, INFO, WARNING or ERROR")
     keys: Keys = field(default_factory=Keys, metadata={"help": "Redis key names"})
     worker: WorkerSettings = field(default_factory=WorkerSettings, metadata={"help": "stream worker"})
+    amqp: AmqpSettings = field(default_factory=AmqpSettings, metadata={"help": "RabbitMQ source (serve --source)"})
     retrain: RetrainSettings = field(default_factory=RetrainSettings, metadata={"help": "retraining"})
     metrics: MetricsSettings = field(default_factory=MetricsSettings, metadata={"help": "metrics"})
     waves: WaveSettings = field(default_factory=WaveSettings, metadata={"help": "waves and campaigns"})

@@ -45,16 +45,17 @@ from model.classifier import EmbeddingClassifier
 from ops.config import Config
 from ops.cusum import WaveParams
 from ops.metrics import PrometheusObserver, build_metrics
-from ops.monitor import Monitor, campaign_policy
+from ops.labelling import build_feedback_consumer, feedback_settings
+from ops.monitor import Monitor
 from ops.registry import Registry, RegistryModelSource, split_replay
 from ops.rescore import rescore_held
 from ops.retrain import retrain
 from ops.scenario import SITES, Scenario, ScenarioComment
+from ops.serving import build_consumer, campaign_policy
 from ops.waves import WaveDetector
 from worker.campaigns import campaign_keys
 from worker.consumer import StreamConsumer
 from worker.events import parse_event
-from worker.feedback import FeedbackConsumer
 
 log = logging.getLogger("seawall.demo")
 
@@ -250,18 +251,15 @@ def bootstrap_registry(client, config: Config, model, rows, *, clock) -> str:
 def build_workers(client, config: Config, *, clock, observer=None) -> list[StreamConsumer]:
     """Two consumers of one group, each with its own registry model source and the campaign policy.
 
-    The policy is what :func:`ops.monitor.campaign_policy` builds for ``seawall
-    serve``, with the story's clock.
+    Built by :func:`ops.serving.build_consumer`, as ``seawall serve`` builds its
+    worker, on the story's client and clock.
     """
-    w = config.waves
     workers = []
     for name in WORKERS:
-        policies = []
-        if w.enabled:
-            policies.append(campaign_policy(config, clock=clock))
+        policies = [campaign_policy(config, clock=clock)] if config.waves.enabled else []
         source = RegistryModelSource(client=client, keys=config.keys, poll_interval_s=config.retrain.registry_poll_s)
-        workers.append(StreamConsumer(client=client, keys=config.keys, settings=config.worker, model_source=source,
-                                      consumer=name, policies=policies, observer=observer, clock=clock))
+        workers.append(build_consumer(config, source=source, consumer=name, policies=policies, observer=observer,
+                                      client=client, clock=clock))
     return workers
 
 
@@ -360,11 +358,7 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
     workers = build_workers(worker_client, config, clock=clock, observer=observer)
     for w in workers:
         w.prepare()
-    feedback = FeedbackConsumer(
-        client=client, keys=keys, group=config.retrain.feedback_group, consumer="hedgerow-feedback",
-        batch=config.retrain.feedback_batch, text_max_bytes=config.retrain.feedback_text_max_bytes,
-        labels_max=config.retrain.labels_max, deadletter_maxlen=config.worker.deadletter_maxlen, clock=clock,
-    )
+    feedback = build_feedback_consumer(config, consumer="hedgerow-feedback", client=client, clock=clock)
     detector = WaveDetector(client=client, keys=keys, params=WaveParams.from_settings(config.waves),
                             sites=config.metrics.sites, clock=clock)
     monitor = Monitor(client=client, keys=keys, observer=observer, detector=detector,
@@ -446,7 +440,8 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
                      rescore: bool = True) -> None:
     result.retrain_ts = clock.now
     promoted: list[str] = []
-    report = retrain(client, config.keys, config.retrain, clock=clock, on_promoted=promoted.append)
+    report = retrain(client, config.keys, config.retrain, clock=clock, on_promoted=promoted.append,
+                     feedback=feedback_settings(config.retrain, config.worker))
     result.retrain_report = report
     labels = report.get("labels", {})
     if not report.get("promoted"):

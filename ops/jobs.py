@@ -61,13 +61,14 @@ def retrain_job(config_file: str | None = None) -> dict:
     job already runs on an RQ worker, and a second job would only wait for one.
     """
     from ops.rescore import rescore_after_switch
+    from ops.labelling import feedback_settings
     from ops.retrain import retrain
 
     plain_arguments("retrain job", config_file=config_file)
     config = load_config(config_file=config_file)
     client = connect(config)
     after = {}
-    report = retrain(client, config.keys, config.retrain,
+    report = retrain(client, config.keys, config.retrain, feedback=feedback_settings(config.retrain, config.worker),
                      on_promoted=lambda version: after.update(rescore_after_switch("now", client, config, version)))
     summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "chosen", "reasons",
                                           "seconds")}

@@ -13,25 +13,33 @@ import logging
 import threading
 
 from ops.config import Config
+from ops.settings import FEEDBACK_FIELDS, RetrainSettings
 from worker.connection import connect
 from worker.feedback import FeedbackConsumer
+from worker.settings import FeedbackSettings, WorkerSettings
 
 log = logging.getLogger(__name__)
 
 
-def build_feedback_consumer(config: Config, *, consumer: str = "", client=None, observer=None) -> FeedbackConsumer:
-    s = config.retrain
+def feedback_settings(retrain: RetrainSettings, worker: WorkerSettings) -> FeedbackSettings:
+    """The feedback consumer's settings, from ``[retrain]`` and the worker's dead-letter cap: the one place they are built.
+
+    ``seawall serve``'s feedback thread and the retrain's drain both use them.
+    """
+    return FeedbackSettings(deadletter_maxlen=worker.deadletter_maxlen,
+                            **{name: getattr(retrain, field) for name, field in FEEDBACK_FIELDS.items()})
+
+
+def build_feedback_consumer(config: Config, *, consumer: str = "", client=None, observer=None,
+                            clock=None) -> FeedbackConsumer:
+    settings = feedback_settings(config.retrain, config.worker)
     if client is None:
         client = connect(config.redis_url, tls_ca=config.redis_tls_ca, tls_cert=config.redis_tls_cert,
                          tls_key=config.redis_tls_key, socket_timeout=config.worker.socket_timeout_s
-                         + s.feedback_block_ms / 1000.0, client_name="seawall-feedback")
-    return FeedbackConsumer(
-        client=client, keys=config.keys, group=s.feedback_group, consumer=consumer, batch=s.feedback_batch,
-        block_ms=s.feedback_block_ms, text_max_bytes=s.feedback_text_max_bytes, labels_max=s.labels_max,
-        claim_idle_ms=s.feedback_claim_idle_ms, deadletter_maxlen=config.worker.deadletter_maxlen,
-        backoff_initial_s=s.backoff_initial_s, backoff_factor=s.backoff_factor, backoff_cap_s=s.backoff_cap_s,
-        observer=observer,
-    )
+                         + settings.block_ms / 1000.0, client_name="seawall-feedback")
+    extra = {"clock": clock} if clock is not None else {}
+    return FeedbackConsumer(client=client, keys=config.keys, settings=settings, consumer=consumer, observer=observer,
+                            **extra)
 
 
 class FeedbackThread:

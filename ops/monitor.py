@@ -7,8 +7,10 @@ process runs beside its consumer:
 * the HTTP endpoint (``metrics.host``:``metrics.port``; port 0 turns it off);
 * a :class:`Monitor` thread that every ``metrics.poll_s`` seconds advances the
   shared wave detector, ends idle campaigns, and refreshes the gauges whose
-  truth lives in Redis (active waves and campaigns, the last retrain, feedback);
-* the :class:`worker.campaigns.CampaignPolicy` for the worker's comment path.
+  truth lives in Redis (active waves and campaigns, the last retrain, feedback).
+
+It only observes: the campaign policy, which changes verdicts, is built with the
+worker in :mod:`ops.serving`.
 
 The gauges read from Redis are the same on every process; dashboards and
 alert rules aggregate them with ``max``.
@@ -18,17 +20,16 @@ from __future__ import annotations
 import logging
 import threading
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from prometheus_client import CollectorRegistry
 from redis.exceptions import RedisError
 
-from model.minhash import MinHasher
 from ops.cusum import WaveParams
 from ops.httpserver import MetricsServer, redis_model_ready
 from ops.metrics import OTHER, RETRAIN_OUTCOMES, PrometheusObserver, build_metrics
 from ops.waves import WaveDetector, read_active
-from worker.campaigns import CampaignPolicy, end_idle_campaigns, read_campaigns
+from worker.campaigns import end_idle_campaigns, read_campaigns
 from worker.events import parse_event
 
 log = logging.getLogger("seawall.monitor")
@@ -154,27 +155,12 @@ class Observability:
     observer: PrometheusObserver
     server: MetricsServer | None = None
     monitor: Monitor | None = None
-    policies: tuple = field(default_factory=tuple)
 
     def stop(self) -> None:
         if self.monitor is not None:
             self.monitor.stop()
         if self.server is not None:
             self.server.stop()
-
-
-def campaign_policy(config, *, clock=time.time) -> CampaignPolicy:
-    """The campaign policy of ``[waves]``, as ``seawall serve``, the demo and the benchmarks run it."""
-    w = config.waves
-    return CampaignPolicy(
-        keys=config.keys, hasher=MinHasher(num_perm=w.campaign_perm, shingle=w.campaign_shingle),
-        bands=w.campaign_bands, min_size=w.campaign_min_size, min_authors=w.campaign_min_authors,
-        window_s=w.campaign_window_s, min_words=w.campaign_min_words, hold=w.campaign_hold,
-        baseline_days=w.campaign_baseline_days, burst_ratio=w.campaign_burst_ratio, peak_ratio=w.campaign_peak_ratio,
-        signals=w.campaign_signals,
-        new_author_s=w.campaign_new_author_s, warmup_s=w.campaign_warmup_s, new_author_share=w.campaign_new_author_share,
-        lean_share=w.campaign_lean_share, lean_quantile=w.campaign_lean_quantile, clock=clock,
-    )
 
 
 def start_observability(config, *, client=None, registry: CollectorRegistry | None = None) -> Observability:
@@ -186,8 +172,6 @@ def start_observability(config, *, client=None, registry: CollectorRegistry | No
                                   flagged_window_s=config.metrics.flagged_window_s)
     client = client if client is not None else connect(config, socket_timeout=5.0, client_name="seawall-monitor")
     out = Observability(registry=registry, observer=observer)
-    if config.waves.enabled and config.waves.campaigns:
-        out.policies = (campaign_policy(config),)
     detector = None
     if config.waves.enabled:
         detector = WaveDetector(client=client, keys=config.keys, params=WaveParams.from_settings(config.waves),

@@ -80,10 +80,11 @@ from model.errors import DataError, SeawallError
 from model.comparison import bootstrap_recall_difference, delong_difference
 from model.evaluation import evaluate, recall_at_fpr
 from model.minhash import MinHasher, band_hashes, exact_jaccard
+from ops.labelling import feedback_settings
 from ops.registry import Registry, load_model
 from ops.settings import RetrainSettings
 from worker.feedback import FeedbackConsumer, scan_labels
-from worker.settings import Keys
+from worker.settings import FeedbackSettings, Keys, WorkerSettings
 
 log = logging.getLogger(__name__)
 
@@ -471,8 +472,13 @@ def last_reports(client, keys: Keys, n: int = 1) -> list[dict]:
     return [json.loads(x) for x in client.lrange(reports_key(keys), 0, n - 1)]
 
 
-def retrain(client, keys: Keys, settings: RetrainSettings, *, clock=time.time, on_promoted=None) -> dict:
+def retrain(client, keys: Keys, settings: RetrainSettings, *, clock=time.time, on_promoted=None,
+            feedback: FeedbackSettings | None = None) -> dict:
     """Run one gated retrain now; returns the report (also stored in Redis).
+
+    ``feedback`` is what drains the feedback stream first (built by
+    :func:`ops.labelling.feedback_settings` from the Config; default: from
+    ``settings`` and the default worker settings).
 
     ``on_promoted(version)`` runs after a successful promotion (the hold-queue
     re-score is enqueued there).  Raises :class:`RetrainBusy` when another
@@ -482,7 +488,9 @@ def retrain(client, keys: Keys, settings: RetrainSettings, *, clock=time.time, o
         report = _now_report(clock)
         t0 = time.perf_counter()
         try:
-            _retrain_locked(client, keys, settings, report, clock=clock)
+            if feedback is None:
+                feedback = feedback_settings(settings, WorkerSettings())
+            _retrain_locked(client, keys, settings, report, clock=clock, feedback=feedback)
         except Exception as exc:
             # Recorded (report and event say "failed" and why), then raised to the caller.
             report.update(decision="failed", promoted=False, error=f"{type(exc).__name__}: {exc}")
@@ -496,13 +504,12 @@ def retrain(client, keys: Keys, settings: RetrainSettings, *, clock=time.time, o
     return report
 
 
-def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict, *, clock) -> None:
+def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict, *, clock,
+                    feedback: FeedbackSettings) -> None:
     registry = Registry(client=client, keys=keys, clock=clock)
     drained = FeedbackConsumer(
-        client=client, keys=keys, group=settings.feedback_group,
-        consumer=f"retrain-{socket.gethostname()}-{os.getpid()}", batch=settings.feedback_batch,
-        text_max_bytes=settings.feedback_text_max_bytes, labels_max=settings.labels_max,
-        claim_idle_ms=settings.feedback_claim_idle_ms, clock=clock,
+        client=client, keys=keys, settings=feedback, consumer=f"retrain-{socket.gethostname()}-{os.getpid()}",
+        clock=clock,
     ).drain()
 
     active_version = registry.active()

@@ -1,12 +1,17 @@
-"""Wiring a stream worker from the one Config: client, model source, observer, consumer.
+"""The composition root: a worker wired from the one Config.
 
-``seawall serve`` and the benchmarks build their consumers here, so both run
-the same code.  Two hooks for other parts of ops:
+``seawall serve``, the demo and the benchmarks build their consumers with
+:func:`build_consumer`, so all of them run the same code:
 
-* :func:`model_source` picks where the model comes from: the ``--model`` file
-  when one is named, else the registry's active model (``ops.registry.RegistryModelSource``).
-* :func:`build_observer` is where the metrics observer (and its HTTP server)
-  plug in; until then the worker reports to a :class:`worker.observer.NullObserver`.
+* the transport: Redis Streams (:mod:`worker.redistransport`) unless
+  ``amqp.url`` (``serve --source amqp://...``) names a RabbitMQ broker
+  (:mod:`worker.amqp`); Redis keeps the state either way;
+* the batch policies that change verdicts (:func:`campaign_policy` when
+  ``[waves]`` turns campaigns on);
+* :func:`model_source`: the ``--model`` file when one is named, else the
+  registry's active model (``ops.registry.RegistryModelSource``);
+* the observer: metrics plug in through ``observer=`` (``ops.monitor`` only
+  observes); without one the worker reports to a :class:`worker.observer.NullObserver`.
 """
 from __future__ import annotations
 
@@ -19,9 +24,10 @@ import redis
 
 from ops.config import Config, ConfigError
 from worker.connection import connect
-from worker.consumer import StreamConsumer
+from worker.consumer import StreamConsumer, default_consumer_name
 from worker.loader import FileModelSource, ModelSource
 from worker.observer import NullObserver, WorkerObserver
+from worker.transport import TransientError
 
 log = logging.getLogger("seawall.serve")
 
@@ -81,7 +87,11 @@ class WaitForRedis:
                 self.sleep(delay)
 
     def poll(self):
-        return self.source.poll()
+        # A reload that meets a lost connection is retried by the worker loop, like a read.
+        try:
+            return self.source.poll()
+        except (redis.ConnectionError, redis.TimeoutError) as exc:
+            raise TransientError("lost connection to Redis") from exc
 
     def __getattr__(self, name):
         return getattr(self.source, name)
@@ -92,25 +102,64 @@ def build_observer(config: Config) -> WorkerObserver:
     return NullObserver()
 
 
+def campaign_policy(config: Config, *, clock=time.time):
+    """The campaign policy of ``[waves]``, as ``seawall serve``, the demo and the benchmarks run it."""
+    from model.minhash import MinHasher
+    from worker.campaigns import CampaignPolicy
+
+    w = config.waves
+    return CampaignPolicy(
+        keys=config.keys, hasher=MinHasher(num_perm=w.campaign_perm, shingle=w.campaign_shingle),
+        bands=w.campaign_bands, min_size=w.campaign_min_size, min_authors=w.campaign_min_authors,
+        window_s=w.campaign_window_s, min_words=w.campaign_min_words, hold=w.campaign_hold,
+        baseline_days=w.campaign_baseline_days, burst_ratio=w.campaign_burst_ratio, peak_ratio=w.campaign_peak_ratio,
+        signals=w.campaign_signals,
+        new_author_s=w.campaign_new_author_s, warmup_s=w.campaign_warmup_s, new_author_share=w.campaign_new_author_share,
+        lean_share=w.campaign_lean_share, lean_quantile=w.campaign_lean_quantile, clock=clock,
+    )
+
+
+def default_policies(config: Config, *, clock=time.time) -> tuple:
+    """The batch policies ``[waves]`` turns on (today: the campaign policy)."""
+    if config.waves.enabled and config.waves.campaigns:
+        return (campaign_policy(config, clock=clock),)
+    return ()
+
+
 def build_consumer(
     config: Config,
     *,
     source: ModelSource | None = None,
     observer: WorkerObserver | None = None,
-    policies=(),
+    policies=None,
     consumer: str = "",
+    client=None,
+    clock=time.time,
 ) -> StreamConsumer:
-    name = consumer or config.worker.consumer
-    client = redis_client(config, blocking_ms=config.worker.block_ms, client_name="seawall-worker")
-    return StreamConsumer(
-        client=client,
+    """One worker from the Config.
+
+    ``policies=None`` builds :func:`default_policies`; ``client`` (a raw-stream
+    Redis client, e.g. a fakeredis one in the demo) replaces the one built
+    from ``redis_url``.
+    """
+    name = consumer or config.worker.consumer or default_consumer_name()
+    if client is None:
+        client = redis_client(config, blocking_ms=config.worker.block_ms, client_name="seawall-worker")
+    common = dict(
         keys=config.keys,
         settings=config.worker,
         model_source=source if source is not None else model_source(config),
-        consumer=name,
         observer=observer if observer is not None else build_observer(config),
-        policies=policies,
+        policies=default_policies(config, clock=clock) if policies is None else policies,
+        clock=clock,
     )
+    if config.amqp.url:
+        from worker.amqp import amqp_consumer
+
+        return amqp_consumer(client=client, amqp=config.amqp, consumer=name, **common)
+    from worker.redistransport import redis_consumer
+
+    return redis_consumer(client=client, consumer=name, **common)
 
 
 def configure_logging(level: str, *, tag: str = "") -> None:

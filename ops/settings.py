@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from worker.settings import setting
+from worker.settings import FEEDBACK_BOUNDS, setting
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -59,18 +59,25 @@ class RetrainSettings:
                 raise ValueError(f"RetrainSettings: {name} must be in [{low}, {high}], got {value!r}")
 
 
+# The [retrain] fields that are the feedback consumer's settings: FeedbackSettings field -> RetrainSettings field.
+# Their bounds are worker.settings.FEEDBACK_BOUNDS (one table); ops.labelling.feedback_settings builds from these.
+FEEDBACK_FIELDS = {
+    "group": "feedback_group",
+    "batch": "feedback_batch",
+    "block_ms": "feedback_block_ms",
+    "claim_idle_ms": "feedback_claim_idle_ms",
+    "text_max_bytes": "feedback_text_max_bytes",
+    "labels_max": "labels_max",
+    "backoff_initial_s": "backoff_initial_s",
+    "backoff_factor": "backoff_factor",
+    "backoff_cap_s": "backoff_cap_s",
+}
+
 # (field, lowest, highest) of every numeric retrain setting; checked once at start-up.
-_RETRAIN_BOUNDS = (
+_RETRAIN_BOUNDS = tuple((FEEDBACK_FIELDS[name], low, high) for name, low, high in FEEDBACK_BOUNDS
+                        if name in FEEDBACK_FIELDS) + (
     ("job_timeout_s", 1, 7 * 86400),
     ("lock_ttl_s", 1, 7 * 86400),
-    ("feedback_batch", 1, 100000),
-    ("feedback_block_ms", 1, 600000),
-    ("feedback_claim_idle_ms", 0, 86400000),
-    ("feedback_text_max_bytes", 1, 64 * 2**20),
-    ("backoff_initial_s", 0.001, 60.0),
-    ("backoff_factor", 1.0, 10.0),
-    ("backoff_cap_s", 0.001, 3600.0),
-    ("labels_max", 1, 10**8),
     ("min_new_labels", 1, 10**8),
     ("holdout_share", 0.01, 0.9),
     ("min_holdout", 1, 10**8),

@@ -6,7 +6,7 @@ import shutil
 
 import pytest
 
-from servers import RedisServer, require
+from servers import RabbitServer, RedisServer, rabbitmq_server_path, require
 
 
 @pytest.fixture
@@ -47,3 +47,25 @@ def redis_client(redis_server):
     client = redis_server.client()
     yield client
     client.close()
+
+
+def _rabbit(path) -> RabbitServer:
+    require(shutil.which("rabbitmq-server") is not None and rabbitmq_server_path() is not None,
+            "rabbitmq-server not installed")
+    return RabbitServer(path).start()
+
+
+@pytest.fixture
+def rabbit_server(tmp_path) -> RabbitServer:
+    """A real rabbitmq-server node on a free loopback port, stopped after the test (tests that restart it)."""
+    server = _rabbit(tmp_path / "rabbitmq")
+    yield server
+    server.stop()
+
+
+@pytest.fixture(scope="module")
+def rabbit_node(tmp_path_factory) -> RabbitServer:
+    """One rabbitmq-server node for a whole module (it takes seconds to start); tests use their own queues."""
+    server = _rabbit(tmp_path_factory.mktemp("rabbitmq"))
+    yield server
+    server.stop()

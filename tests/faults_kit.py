@@ -170,3 +170,81 @@ def model_version(seed: int = 0) -> str:
     from retrain_kit import model_bytes
 
     return EmbeddingClassifier.from_bytes(model_bytes(seed)).version
+
+
+def amqp_comment(i: int, prefix: str = "c") -> bytes:
+    """Comment ``i`` as the JSON body a RabbitMQ producer sends (same fields as a stream entry)."""
+    import json
+
+    return json.dumps({"id": f"{prefix}{i}", "text": comment_text(i), "site": f"site{i % 3}.example",
+                       "author": f"member{i % 97}"}).encode()
+
+
+class AmqpProducer(threading.Thread):
+    """Publishes comments to a quorum queue with publisher confirms, surviving broker outages.
+
+    A message whose publish was not confirmed is published again once the
+    broker answers, as a careful producer would; so a comment may reach the
+    queue twice, and the done markers must keep it to one verdict.
+    ``accepted`` counts the ids the broker confirmed.
+    """
+
+    def __init__(self, *, url: str, n: int, rate: float, queue: str = "seawall.comments", prefix: str = "c"):
+        super().__init__(name="amqp-producer", daemon=True)
+        self.url, self.n, self.rate, self.queue, self.prefix = url, n, rate, queue, prefix
+        self.accepted: set[str] = set()
+        self.errors = 0
+        self.done = threading.Event()
+        self.abort = threading.Event()
+
+    def _channel(self):
+        import pika
+
+        connection = pika.BlockingConnection(pika.URLParameters(self.url + "?connection_attempts=1&socket_timeout=2"))
+        channel = connection.channel()
+        channel.confirm_delivery()
+        channel.queue_declare(self.queue, durable=True, arguments={"x-queue-type": "quorum"})
+        return connection, channel
+
+    def run(self) -> None:
+        import pika
+
+        t0 = time.monotonic()
+        i, connection, channel = 0, None, None
+        while i < self.n and not self.abort.is_set():
+            pause = t0 + i / self.rate - time.monotonic()
+            if pause > 0:
+                time.sleep(pause)
+            try:
+                if channel is None:
+                    connection, channel = self._channel()
+                channel.basic_publish("", self.queue, amqp_comment(i, self.prefix),
+                                      pika.BasicProperties(delivery_mode=2))
+            except (pika.exceptions.AMQPError, OSError):
+                self.errors += 1
+                channel = None
+                if connection is not None:
+                    try:
+                        connection.close()
+                    except Exception:  # noqa: BLE001 - already gone
+                        pass
+                    connection = None
+                time.sleep(0.1)
+                continue
+            self.accepted.add(f"{self.prefix}{i}")
+            i += 1
+        if connection is not None and connection.is_open:
+            connection.close()
+        self.done.set()
+
+
+def amqp_queue_depth(url: str, queue: str = "seawall.comments") -> tuple[int, int]:
+    """(messages ready, consumers) of ``queue``; unacknowledged messages are in neither."""
+    import pika
+
+    connection = pika.BlockingConnection(pika.URLParameters(url))
+    try:
+        method = connection.channel().queue_declare(queue, passive=True).method
+        return method.message_count, method.consumer_count
+    finally:
+        connection.close()

@@ -16,7 +16,7 @@ import pytest
 from model.tokens import Tokenizer
 from ops.board import DAY_S, SITES, Board, blind_scores, obfuscate, play
 from ops.config import load_config
-from ops.monitor import campaign_policy
+from ops.serving import campaign_policy
 
 SMALL = dict(history_days=3, chatter_per_day=800)
 

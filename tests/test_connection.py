@@ -14,7 +14,7 @@ import redis
 from scorers import WordScorer
 from servers import require
 from worker.connection import connect
-from worker.consumer import StreamConsumer
+from worker.redistransport import redis_consumer
 from worker.loader import StaticModelSource
 from worker.settings import Keys, WorkerSettings
 
@@ -36,7 +36,7 @@ def test_connect_checks_arguments_before_connecting(url, kwargs, needle):
 def one_round_trip(client) -> None:
     """A consumer scores one comment through ``client``: the whole worker path works on it."""
     client.xadd(KEYS.comments, {"id": "c1", "text": "free bonus"})
-    consumer = StreamConsumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5),
+    consumer = redis_consumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5),
                               model_source=StaticModelSource(model=WordScorer()), consumer="w")
     consumer.prepare()
     assert consumer.step().written == 1

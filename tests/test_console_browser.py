@@ -34,7 +34,7 @@ from ops.connection import connect
 from ops.console.accounts import Accounts
 from ops.console.app import Console
 from ops.demo import DEMO_SETTINGS, demo_scenario, run_demo
-from ops.monitor import campaign_policy
+from ops.serving import campaign_policy
 from ops.registry import Registry
 from ops.retrain import last_reports
 from ops.scenario import Scenario

@@ -10,7 +10,8 @@ import pytest
 
 from scorers import StandInThresholds, WordScorer
 from worker.connection import raw_stream_replies
-from worker.consumer import StreamConsumer, format_reasons
+from worker.consumer import format_reasons
+from worker.redistransport import redis_consumer
 from worker.loader import FileModelSource, StaticModelSource
 from worker.routing import Decision
 from worker.settings import Keys, WorkerSettings
@@ -54,7 +55,7 @@ def make(client, *, name="w1", model=None, observer=None, policies=(), **setting
     # The stand-in's scores are word shares, not probabilities: its own thresholds route them, no floors.
     settings.setdefault("hold_floor", 0.0)
     settings.setdefault("reject_floor", 0.0)
-    c = StreamConsumer(client=client, keys=KEYS, settings=WorkerSettings(**settings),
+    c = redis_consumer(client=client, keys=KEYS, settings=WorkerSettings(**settings),
                        model_source=StaticModelSource(model=model or WordScorer()), consumer=name,
                        observer=observer, policies=policies)
     c.prepare()
@@ -142,10 +143,10 @@ def test_two_consumers_committing_the_same_entries_write_once(client):
     """The reclaim race: a slow consumer and the one that took its entries over both finish."""
     send(client, 20, id="c{i}")
     slow, fast = make(client, name="slow"), make(client, name="fast", claim_idle_ms=1)
-    entries = slow.read(b">", block=False)                       # slow reads, then stalls
+    entries = slow.source.reader.read_from(b">", block=False)                       # slow reads, then stalls
     assert len(entries) == 20
     client.execute_command("XAUTOCLAIM", KEYS.comments, KEYS.group, "fast", 0, "0-0")   # fast takes them over
-    taken = fast.read(b"0", block=False)
+    taken = fast.source.reader.read_from(b"0", block=False)
     assert fast.process(taken).written == 20
     late = slow.process(entries)                                 # the slow one finishes too
     assert (late.written, late.duplicates) == (0, 20)
@@ -157,7 +158,7 @@ def test_two_consumers_committing_the_same_entries_write_once(client):
 def test_xack_guards_even_when_the_marker_is_gone(client):
     send(client, 5, id="c{i}")
     a, b = make(client, name="a"), make(client, name="b")
-    entries = a.read(b">", block=False)
+    entries = a.source.reader.read_from(b">", block=False)
     assert a.process(entries).written == 5
     for i in range(5):
         client.delete(KEYS.done(f"c{i}"))   # e.g. expired
@@ -168,7 +169,7 @@ def test_xack_guards_even_when_the_marker_is_gone(client):
 def test_idle_entries_of_a_dead_consumer_are_reclaimed(client):
     send(client, 7, id="c{i}")
     dead = make(client, name="dead")
-    assert len(dead.read(b">", block=False)) == 7                # read, then the process dies
+    assert len(dead.source.reader.read_from(b">", block=False)) == 7                # read, then the process dies
     alive = make(client, name="alive", claim_idle_ms=1, claim_every_s=0.01)
     time.sleep(0.01)                                             # idle longer than claim_idle_ms
     result = alive.reclaim()
@@ -179,10 +180,10 @@ def test_idle_entries_of_a_dead_consumer_are_reclaimed(client):
 def test_entries_delivered_too_often_are_poison(client):
     send(client, 2, id="c{i}")
     w = make(client, max_deliveries=3)
-    w.read(b">", block=False)
+    w.source.reader.read_from(b">", block=False)
     for _ in range(3):                                           # the worker "crashed" on them 3 more times
-        w.read(b"0", block=False)
-    result = w.process(w.read(b"0", block=False), deliveries=w.deliveries([e for e, _ in
+        w.source.reader.read_from(b"0", block=False)
+    result = w.process(w.source.reader.read_from(b"0", block=False), deliveries=w.source.reader.deliveries([e for e, _ in
                        client.xrange(KEYS.comments)]))
     assert result.dead == {"poison": 2}
     dl = deadletters(client)
@@ -194,7 +195,7 @@ def test_entries_delivered_too_often_are_poison(client):
 def test_own_backlog_is_read_first_after_a_restart(client):
     send(client, 5, id="c{i}")
     first = make(client, name="w1", batch=2)
-    first.read(b">", block=False)                                # read 2 and died
+    first.source.reader.read_from(b">", block=False)                                # read 2 and died
     again = make(client, name="w1", batch=2)                     # same consumer name restarts
     drain(again)
     assert sorted(v["id"] for v in verdicts(client)) == [f"c{i}" for i in range(5)]
@@ -339,7 +340,7 @@ def test_hot_reload_from_file_and_corrupt_file_refused(client, tmp_path):
         return WordScorer(version=text, thresholds=StandInThresholds())
 
     rec = Recorder()
-    c = StreamConsumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, reload_poll_s=0.01),
+    c = redis_consumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, reload_poll_s=0.01),
                        model_source=FileModelSource(path=path, loader=loader), consumer="w", observer=rec)
     c.prepare()
     send(client, 1, id="a")
@@ -376,15 +377,17 @@ def test_a_refused_commit_backs_off_and_the_batch_stays_pending(client):
     client.set(KEYS.verdicts, "not a stream")
     sleeps = []
 
-    class Once(StreamConsumer):
-        def _sleep(self, seconds):
-            sleeps.append(seconds)
-            client.delete(KEYS.verdicts)                          # the operator fixes it
-            if len(sleeps) > 1:
-                self.stop()
+    c = redis_consumer(client=client, keys=KEYS,
+                       settings=WorkerSettings(block_ms=5, backoff_base_s=0.25, overlap_commit=False),
+                       model_source=StaticModelSource(model=WordScorer()), consumer="w")
 
-    c = Once(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, backoff_base_s=0.25, overlap_commit=False),
-             model_source=StaticModelSource(model=WordScorer()), consumer="w")
+    def sleep(seconds):
+        sleeps.append(seconds)
+        client.delete(KEYS.verdicts)                              # the operator fixes it
+        if len(sleeps) > 1:
+            c.stop()
+
+    c._sleep = sleep
     original_step = c.step
 
     def step(**kwargs):

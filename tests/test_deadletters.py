@@ -10,7 +10,7 @@ import pytest
 from kit import Clock
 from ops.cli import main
 from worker.connection import raw_stream_replies
-from worker.consumer import StreamConsumer
+from worker.redistransport import redis_consumer
 from worker.deadletters import DeadLetterLog
 from worker.feedback import FeedbackConsumer
 from worker.loader import StaticModelSource
@@ -84,7 +84,7 @@ def test_eight_bad_entries_make_one_warning_per_reason_and_no_comment_text(fake_
     client.xadd(KEYS.comments, {"ID": "u1", "TEXT": secret})
     client.xadd(KEYS.comments, {"id": "e1", "text": "   "})
     client.xadd(KEYS.comments, {"id": "e2", "text": "  "})
-    consumer = StreamConsumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, overlap_commit=False),
+    consumer = redis_consumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, overlap_commit=False),
                               model_source=StaticModelSource(model=WordScorer()), consumer="w1")
     consumer.prepare()
     caplog.set_level(logging.WARNING, logger="seawall.worker")

@@ -17,7 +17,7 @@ from worker import decisions
 from worker.feedback import FeedbackConsumer, scan_labels
 from worker.holdqueue import CACHED_FIELDS, parse_held, parse_reasons, read_held, read_held_by_id
 from console_kit import NOW, hold
-from worker.settings import Keys
+from worker.settings import FeedbackSettings, Keys
 
 KEYS = Keys()
 
@@ -211,7 +211,7 @@ def test_console_labels_reach_the_labelled_store_through_the_feedback_consumer(r
     decisions.claim(redis_client, KEYS, ["c0", "c1"], action="reject", moderator="mod-ana", now=NOW, undo_s=0)
     decisions.claim(redis_client, KEYS, ["c2"], action="publish", moderator="mod-bo", now=NOW, undo_s=0)
     decisions.finalize_due(redis_client, KEYS, now=NOW)
-    consumer = FeedbackConsumer(client=redis_client, keys=KEYS, consumer="t", block_ms=10)
+    consumer = FeedbackConsumer(client=redis_client, keys=KEYS, consumer="t", settings=FeedbackSettings(block_ms=10))
     assert consumer.drain() == 3
     records = {r["id"]: r for _sid, r in scan_labels(redis_client, KEYS)}
     assert {cid: (r["label"], r["moderator"]) for cid, r in records.items()} == {

@@ -12,6 +12,7 @@ from scorers import WordScorer
 from worker.commit import text_digest
 from worker.connection import raw_stream_replies
 from worker.consumer import StreamConsumer
+from worker.redistransport import redis_consumer
 from worker.loader import StaticModelSource
 from worker.settings import Keys, WorkerSettings
 
@@ -26,7 +27,7 @@ def client(request):
 
 
 def worker(client, **settings) -> StreamConsumer:
-    c = StreamConsumer(client=client, keys=KEYS,
+    c = redis_consumer(client=client, keys=KEYS,
                        settings=WorkerSettings(block_ms=5, overlap_commit=False, hold_floor=0.0, reject_floor=0.0,
                                                **settings),
                        model_source=StaticModelSource(model=WordScorer()), consumer="w")

@@ -18,13 +18,14 @@ from worker.feedback import (
     scan_labels,
     text_key,
 )
-from worker.settings import Keys
+from worker.settings import FeedbackSettings, Keys
 
 KEYS = Keys()
 
 
 def consumer(client, **kw):
-    return FeedbackConsumer(client=client, keys=KEYS, consumer="t1", block_ms=10, clock=lambda: 1700000000.0, **kw)
+    return FeedbackConsumer(client=client, keys=KEYS, consumer="t1", settings=FeedbackSettings(block_ms=10, **kw),
+                            clock=lambda: 1700000000.0)
 
 
 @pytest.mark.parametrize(
@@ -121,7 +122,7 @@ def test_drain_claims_entries_stuck_on_a_dead_consumer(redis_client):
     r.xadd(KEYS.feedback, {"id": "c1", "label": "spam", "text": "win a prize"})
     consumer(r).ensure_group()
     r.xreadgroup("labellers", "dead-one", {KEYS.feedback: ">"}, count=10)
-    retrain = FeedbackConsumer(client=r, keys=KEYS, consumer="retrain", claim_idle_ms=0)
+    retrain = FeedbackConsumer(client=r, keys=KEYS, consumer="retrain", settings=FeedbackSettings(claim_idle_ms=0))
     assert retrain.drain() == 1
     assert r.xpending(KEYS.feedback, "labellers")["pending"] == 0
     assert r.xlen(labels_key(KEYS)) == 1
@@ -133,7 +134,7 @@ def test_run_thread_consumes_on_a_real_server(redis_client):
     r.hset(text_key(KEYS, "c7"), mapping={"text": "a kind reply", "site": "blog.example"})
     r.zadd(held_key(KEYS), {"c7": 1.0})
     stop = threading.Event()
-    c = FeedbackConsumer(client=r, keys=KEYS, consumer="serve-1", block_ms=50)
+    c = FeedbackConsumer(client=r, keys=KEYS, consumer="serve-1", settings=FeedbackSettings(block_ms=50))
     thread = threading.Thread(target=c.run, args=(stop,), daemon=True)
     thread.start()
     try:
@@ -154,8 +155,8 @@ def test_run_thread_consumes_on_a_real_server(redis_client):
 @pytest.mark.parametrize("bad", [{"batch": 0}, {"block_ms": -1}, {"labels_max": "10"}, {"group": ""}],
                          ids=["batch-zero", "block-negative", "labels-max-str", "group-empty"])
 def test_constructor_validates(fake_redis, bad):
-    with pytest.raises(ValueError, match="FeedbackConsumer"):
-        FeedbackConsumer(client=fake_redis, keys=KEYS, **bad)
+    with pytest.raises(ValueError, match="FeedbackSettings"):
+        FeedbackSettings(**bad)
 
 
 @pytest.mark.redis_server
@@ -209,7 +210,7 @@ def test_consumer_works_on_a_client_with_raw_stream_replies(redis_server):
     r = connect(redis_server.url)
     r.xadd(KEYS.feedback, {"id": "c1", "label": "spam", "text": "buy followers"})
     r.xadd(KEYS.feedback, {"id": "c2", "label": "nope"})
-    c = FeedbackConsumer(client=r, keys=KEYS, consumer="raw", claim_idle_ms=0)
+    c = FeedbackConsumer(client=r, keys=KEYS, consumer="raw", settings=FeedbackSettings(claim_idle_ms=0))
     assert c.drain() == 2
     assert [rec["id"] for _s, rec in scan_labels(r, KEYS)] == ["c1"]
     assert r.xlen(KEYS.deadletter) == 1
@@ -227,3 +228,22 @@ def test_consumer_reports_dead_letters_to_its_observer(fake_redis):
     fake_redis.xadd(KEYS.feedback, {"id": "c3", "label": "ham", "text": "fine"})
     FeedbackConsumer(client=fake_redis, keys=KEYS, observer=Observer()).drain()
     assert seen == ["feedback_unknown_label", "feedback_no_text"]
+
+
+def test_serve_and_the_retrain_drain_get_the_same_feedback_settings_from_one_function():
+    from ops.config import load_config
+    from ops.labelling import feedback_settings
+
+    config = load_config({"worker.deadletter_maxlen": 77, "retrain.backoff_cap_s": 3.0, "retrain.feedback_batch": 9},
+                         environ={})
+    settings = feedback_settings(config.retrain, config.worker)
+    # The retrain's drain once ignored the dead-letter cap and the backoff; now both come from the Config.
+    assert (settings.deadletter_maxlen, settings.backoff_cap_s, settings.batch) == (77, 3.0, 9)
+    assert settings.group == config.retrain.feedback_group
+
+
+def test_the_feedback_bounds_are_checked_by_the_retrain_section_too():
+    from ops.settings import RetrainSettings
+
+    with pytest.raises(ValueError, match="feedback_batch"):
+        RetrainSettings(feedback_batch=0)

@@ -27,6 +27,7 @@ from faults_kit import KEYS, group_pending, read_stream, write_model
 from kit import Worker, stop_all, wait_until
 from worker.connection import connect
 from worker.consumer import StreamConsumer
+from worker.redistransport import redis_consumer
 from worker.loader import FileModelSource
 from worker.settings import WorkerSettings
 
@@ -223,7 +224,7 @@ def drain(consumer: StreamConsumer) -> int:
 def test_ten_thousand_fuzzed_entries_through_the_batch_processing(redis_server, tmp_path):
     client = connect(redis_server.url)
     model = write_model(tmp_path / "model.bin")
-    consumer = StreamConsumer(client=client, keys=KEYS, settings=SETTINGS, model_source=FileModelSource(path=model),
+    consumer = redis_consumer(client=client, keys=KEYS, settings=SETTINGS, model_source=FileModelSource(path=model),
                               consumer="fuzz")
     consumer.prepare()
     sender = Sender(client)

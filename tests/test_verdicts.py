@@ -135,7 +135,7 @@ def test_held_and_rejected_comments_list_spamward_tokens_first(quay_model):
 def test_the_worker_explains_a_campaign_hold_with_spamward_tokens(fake_redis, quay_model):
     from worker.campaigns import CampaignPolicy
     from worker.connection import raw_stream_replies
-    from worker.consumer import StreamConsumer
+    from worker.redistransport import redis_consumer
     from worker.loader import StaticModelSource
     from worker.settings import WorkerSettings
 
@@ -152,7 +152,7 @@ def test_the_worker_explains_a_campaign_hold_with_spamward_tokens(fake_redis, qu
     for i, text in enumerate(texts):
         client.xadd(KEYS.comments, {"id": f"c{i}", "text": text, "site": "a.example"})
     policy = EveryOtherIsAMember(keys=KEYS, hasher=MinHasher(num_perm=64, shingle=3))
-    consumer = StreamConsumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, overlap_commit=False),
+    consumer = redis_consumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, overlap_commit=False),
                               model_source=StaticModelSource(model=quay_model), consumer="w", policies=[policy])
     consumer.prepare()
     consumer.step()
@@ -344,7 +344,7 @@ def test_one_text_on_two_sites_is_explained_for_each_sites_action(fake_redis, qu
     # The worker scores a text once per batch; here it is held on one site and published on a
     # site that only holds from 0.95: each verdict's reasons must explain its own action.
     from worker.connection import raw_stream_replies
-    from worker.consumer import StreamConsumer
+    from worker.redistransport import redis_consumer
     from worker.loader import StaticModelSource
     from worker.settings import WorkerSettings
 
@@ -356,7 +356,7 @@ def test_one_text_on_two_sites_is_explained_for_each_sites_action(fake_redis, qu
     client.xadd(KEYS.comments, {"id": "busy", "text": text, "site": "busy.example"})
     client.xadd(KEYS.comments, {"id": "calm", "text": text, "site": "calm.example"})
     settings = WorkerSettings(block_ms=5, overlap_commit=False, site_thresholds={"calm.example": {"hold": 0.95}})
-    consumer = StreamConsumer(client=client, keys=KEYS, settings=settings,
+    consumer = redis_consumer(client=client, keys=KEYS, settings=settings,
                               model_source=StaticModelSource(model=quay_model), consumer="w")
     consumer.prepare()
     consumer.step()

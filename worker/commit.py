@@ -56,10 +56,14 @@ local out, acks, counts, fields = {}, {}, {}, {}
 local held_state, held_ids = {}, {}  -- id -> 'add' | 'rem', the id's latest version wins
 local a = 14
 -- The batch's entries this consumer still owns: one read of its pending list over the batch's id range.
-local mine = {}
-for _, row in ipairs(redis.call('XPENDING', stream, group, first, last, span, consumer)) do mine[row[1]] = true end
+-- An empty group: the transport acknowledges outside Redis, and the done markers alone decide.
+local mine = nil
+if group ~= '' then
+  mine = {}
+  for _, row in ipairs(redis.call('XPENDING', stream, group, first, last, span, consumer)) do mine[row[1]] = true end
+end
 local function still_pending(sid)
-  return mine[sid] == true
+  return mine == nil or mine[sid] == true
 end
 local function count(field)
   if counts[field] == nil then counts[field] = 0; fields[#fields + 1] = field end
@@ -126,7 +130,7 @@ if #fields > 0 then
   redis.call('EXPIRE', rates, rates_ttl)
 end
 -- Acked last: a script stopped by a refused command leaves no comment acked without its verdict.
-if #acks > 0 then redis.call('XACK', stream, group, unpack(acks)) end
+if #acks > 0 and mine then redis.call('XACK', stream, group, unpack(acks)) end
 local m = tonumber(ARGV[a])
 a = a + 1
 for j = 1, m do
@@ -137,7 +141,7 @@ for j = 1, m do
     local cmd = {'XADD', deadletter, 'MAXLEN', '~', dmax, '*'}
     for k = 0, 2 * np - 1 do cmd[#cmd + 1] = ARGV[a + k] end
     redis.call(unpack(cmd))
-    redis.call('XACK', stream, group, sid)
+    if mine then redis.call('XACK', stream, group, sid) end
     out[n + j] = 1
   end
   a = a + 2 * np
@@ -191,11 +195,16 @@ class BatchCommitter:
     ----------
     keys : the deployment's key names.
     limits : stream caps and TTLs.
+    acknowledges : False when the entries did not come from the ``comments`` stream (a RabbitMQ
+        source acknowledges its own messages): no pending check, no XACK; the done markers decide.
+    source : what dead letters name as their ``source`` (default: the ``comments`` stream).
     """
 
-    def __init__(self, *, keys: Keys, limits: Limits):
+    def __init__(self, *, keys: Keys, limits: Limits, acknowledges: bool = True, source: str = ""):
         self.keys = keys
         self.limits = limits
+        self.acknowledges = acknowledges
+        self.source = source or keys.comments
         self._sha = None
 
     def arguments(self, scored: Sequence[Scored], dead: Sequence[DeadLetter], *, model: str, now: float,
@@ -207,7 +216,7 @@ class BatchCommitter:
         ids = [s.comment.stream_id for s in scored] + [d.stream_id for d in dead]
         first, last = min(ids, key=_id_order), max(ids, key=_id_order)
         span = 2 * len(ids) + 64  # room for leftovers of an earlier failed commit in the same range
-        args = [k.group, lim.verdicts_maxlen, lim.text_cache_ttl_s, lim.done_ttl_s, lim.rates_ttl_s,
+        args = [k.group if self.acknowledges else "", lim.verdicts_maxlen, lim.text_cache_ttl_s, lim.done_ttl_s, lim.rates_ttl_s,
                 f"{now:.3f}", model, lim.deadletter_maxlen, consumer, first, last, span, len(scored)]
         for s in scored:
             c = s.comment
@@ -216,7 +225,7 @@ class BatchCommitter:
             args += (c.stream_id, c.id, s.score, s.action, s.reasons, c.site, c.text, c.author, c.ts, s.rule,
                      s.campaign, text_digest(c.text))
         args.append(len(dead))
-        source = k.comments
+        source = self.source
         for d in dead:
             fields = d.as_fields(source)
             args += (d.stream_id, len(fields))

@@ -1,25 +1,27 @@
-"""The stream worker: read a batch, score it in one model call, route, commit.
+"""The worker loop: read a batch, score it in one model call, route, commit, acknowledge.
 
+The loop knows its transport only through the seam of :mod:`worker.transport`:
+a :class:`~worker.transport.CommentSource` and a :class:`~worker.transport.VerdictSink`
+(Redis Streams: :mod:`worker.redistransport`; RabbitMQ: :mod:`worker.amqp`).
 One loop iteration (:meth:`StreamConsumer.step`):
 
-1. every ``claim_every_s``, take over entries idle longer than
-   ``claim_idle_ms`` on other consumers (XAUTOCLAIM) and process them;
-2. read up to ``batch`` entries (XREADGROUP COUNT/BLOCK) - first this
-   consumer's own pending entries (left by a crash or a lost connection),
-   then new ones (``>``);
+1. every ``claim_every_s``, take over entries other consumers left stale
+   (``source.claim()``) and process them;
+2. read up to ``batch`` entries (``source.read()``): first this consumer's own
+   unfinished entries (left by a crash or a lost connection), then new ones;
 3. validate each entry; bad ones become dead letters with their reason, and
    entries delivered more than ``max_deliveries`` times become ``poison``;
 4. score all valid comments in ONE ``score_many`` call, decide each by the
    effective cutoffs of its site (:class:`worker.routing.Router`), let the
    batch policies adjust the decisions, and make sure the reasons of held and
    rejected comments list their spam-ward tokens first;
-5. commit the whole batch in one Lua script call (see :mod:`worker.commit`).
+5. commit the whole batch once (``sink.commit``), then ``source.acknowledge``.
 
 :meth:`StreamConsumer.run` repeats this until :meth:`stop` is called (the
 signal handler of ``seawall serve`` does), finishing the batch in hand.  A
-lost connection is logged and retried with capped exponential backoff; the
-batch in hand stays pending in Redis and is read again from this consumer's
-pending list, so nothing the server kept is lost.
+:class:`~worker.transport.TransientError` (and nothing else) is logged and
+retried with capped exponential backoff; the batch in hand stays unacknowledged
+and is read again, so nothing the transport kept is lost.
 """
 from __future__ import annotations
 
@@ -33,22 +35,19 @@ from dataclasses import dataclass, field
 
 from concurrent.futures import ThreadPoolExecutor
 
-import redis
-
-from worker.commit import WRITTEN, BatchCommitter, Limits as CommitLimits, Scored
+from worker.commit import WRITTEN, Scored
 from worker.deadletters import DeadLetterLog
 from worker.loader import ModelSource
 from worker.observer import NullObserver, WorkerObserver
-from worker.policies import BatchPolicy, apply_policies
+from worker.policies import BatchPolicy, PolicyState, apply_policies
 from worker.routing import Router, explain_decisions
 from worker.settings import Keys, WorkerSettings
-from worker.streams import Entry, parse_xautoclaim, parse_xinfo_group, parse_xpending_range, parse_xreadgroup, stream_id_ms
+from worker.streams import Entry, stream_id_ms
+from worker.transport import Backoff, Batch, CommentSource, TransientError, VerdictSink
 from worker.validation import Comment, DeadLetter, Limits as InputLimits, comment_dead_letter, dead_letter, validate
 
 log = logging.getLogger("seawall.worker")
 
-# Upper bound on XAUTOCLAIM rounds per reclaim pass, so that fresh entries are never starved.
-MAX_CLAIM_ROUNDS = 20
 # Tokens in each verdict's reasons.
 TOP_K = 5
 
@@ -65,6 +64,13 @@ class BatchResult:
     written: int = 0
     duplicates: int = 0
     dead: dict = field(default_factory=dict)
+
+    def add(self, other: "BatchResult") -> None:
+        self.read += other.read
+        self.written += other.written
+        self.duplicates += other.duplicates
+        for reason, n in other.dead.items():
+            self.dead[reason] = self.dead.get(reason, 0) + n
 
 
 def format_reasons(reasons) -> str:
@@ -83,47 +89,53 @@ def format_reasons(reasons) -> str:
 
 
 class StreamConsumer:
-    """One consumer of the ``comments`` stream inside the ``workers`` group.
+    """One worker: comments from a source, verdicts to a sink.
 
     Parameters
     ----------
-    client : a redis-py client from :func:`worker.connection.connect` (raw stream replies).
-    keys : key names (``Config.keys``).
+    source : where batches come from (its ``consumer`` names this worker).
+    sink : where their verdicts and dead letters are committed.
+    state : the batch policies' state port (see :mod:`worker.policies`).
+    keys : key names (``Config.keys``), for the dead-letter log.
     settings : ``Config.worker``.
     model_source : where the model comes from; polled for hot reloads.
-    consumer : consumer name; empty means ``settings.consumer`` or ``<hostname>-<pid>``.
     observer : receives batch, verdict, dead-letter, model, lag and reconnect reports.
     policies : batch policies run after routing and before the commit.
+
+    :func:`worker.redistransport.redis_consumer` builds one on Redis Streams.
     """
 
     def __init__(
         self,
         *,
-        client,
+        source: CommentSource,
+        sink: VerdictSink,
         keys: Keys,
         settings: WorkerSettings,
         model_source: ModelSource,
-        consumer: str = "",
+        state: PolicyState | None = None,
         observer: WorkerObserver | None = None,
         policies: Sequence[BatchPolicy] = (),
         clock=time.time,
     ):
-        self.client = client
+        self.source = source
+        self.sink = sink
+        self.state = state
         self.keys = keys
         self.settings = settings
         self.model_source = model_source
-        self.consumer = consumer or settings.consumer or default_consumer_name()
+        self.consumer = source.consumer
         self.observer = observer if observer is not None else NullObserver()
         self.policies = tuple(policies)
         self.clock = clock
+        if self.policies and state is None:
+            raise ValueError("StreamConsumer: policies need a state port (state=...)")
         self._input_limits = InputLimits.from_settings(settings)
-        self._committer = BatchCommitter(keys=keys, limits=CommitLimits.from_settings(settings))
-        self._stream = keys.comments.encode()
+        self._backoff = Backoff.from_settings(settings)
         self._model = None
         self._router = None
         self._stopping = False
         self._ready = False
-        self._backlog_from: bytes | None = b"0"
         self._next_claim = 0.0
         self._next_reload = 0.0
         self._next_lag = 0.0
@@ -147,31 +159,21 @@ class StreamConsumer:
         return self._model
 
     def prepare(self) -> None:
-        """Load the model, create the group if missing, and go back to this consumer's own backlog."""
+        """Load the model, then let the source create its group or queue and go back to its own backlog."""
         if self._model is None:
             self._install(self.model_source.current())
-        self.ensure_group()
-        self._backlog_from = b"0"
+        self.source.prepare()
         self._ready = True
-
-    def ensure_group(self) -> None:
-        """XGROUP CREATE ... 0 MKSTREAM: entries sent before the first worker started are scored too."""
-        try:
-            self.client.xgroup_create(self.keys.comments, self.keys.group, id="0", mkstream=True)
-            log.info("created consumer group %s on %s", self.keys.group, self.keys.comments)
-        except redis.ResponseError as exc:
-            if "BUSYGROUP" not in str(exc):
-                raise
 
     def run(self) -> int:
         """Process batches until :meth:`stop`; returns the exit code (0).
 
         With ``settings.overlap_commit`` a batch is committed on a second
-        connection while the next one is read and scored; commits still happen
-        one at a time and in order, and the last one is waited for before
-        returning.
+        thread while the next one is read and scored; commits still happen
+        one at a time and in order, each batch is acknowledged on this thread
+        after its commit, and the last one is waited for before returning.
         """
-        log.info("consumer %s reading %s as group %s", self.consumer, self.keys.comments, self.keys.group)
+        log.info("consumer %s reading %s", self.consumer, self.source.describe)
         if self.settings.overlap_commit:
             self._executor = ThreadPoolExecutor(max_workers=1, thread_name_prefix="seawall-commit")
         try:
@@ -186,44 +188,33 @@ class StreamConsumer:
 
     def _loop(self) -> None:
         failures = 0
+        service = ""
         while not self._stopping:
             try:
                 if not self._ready:
                     self.prepare()
                 self.step(overlap=True)
-            except (redis.ConnectionError, redis.TimeoutError) as exc:
-                self._abandon_inflight()
-                failures += 1
-                self._ready = False
-                delay = self.backoff(failures)
-                what = ("Redis refused the credentials; check the user and password in the URL"
-                        if isinstance(exc, redis.AuthenticationError) else "lost connection to Redis")
-                log.warning("%s (%s: %s); retrying in %.2fs (attempt %d)",
-                            what, type(exc).__name__, exc, delay, failures)
-                self._sleep(delay)
-                continue
-            except redis.ResponseError as exc:
+            except TransientError as exc:
                 self._abandon_inflight()
                 self._ready = False
-                if "NOGROUP" in str(exc):
-                    # The server came back without the group (no persistence): make it again.
-                    log.warning("consumer group %s is gone; creating it again", self.keys.group)
+                cause = exc.__cause__ if exc.__cause__ is not None else exc
+                service = getattr(self.source, "service", "the transport")
+                if exc.regroup:
+                    log.warning("%s (%s); preparing the source again", exc.what, self.source.describe)
                     continue
-                # OOM, BUSY, a key of the wrong type...: the batch stays pending; back off and retry.
                 failures += 1
                 delay = self.backoff(failures)
-                log.error("Redis refused a command (%s); the batch stays pending; retrying in %.2fs (attempt %d)",
-                          exc, delay, failures)
+                log.warning("%s (%s: %s); retrying in %.2fs (attempt %d)",
+                            exc.what, type(cause).__name__, cause, delay, failures)
                 self._sleep(delay)
                 continue
             if failures:
-                log.info("reconnected to Redis after %d failed attempt(s)", failures)
+                log.info("reconnected to %s after %d failed attempt(s)", service, failures)
                 self.observer.on_reconnect()
                 failures = 0
 
     def backoff(self, failures: int) -> float:
-        s = self.settings
-        return min(s.backoff_cap_s, s.backoff_base_s * s.backoff_factor ** max(0, failures - 1))
+        return self._backoff.delay(failures)
 
     def _sleep(self, seconds: float) -> None:
         deadline = time.monotonic() + seconds
@@ -248,80 +239,24 @@ class StreamConsumer:
         if self._reports_verdicts and now >= self._next_lag:
             self._next_lag = now + self.settings.lag_every_s
             self.report_lag()
-        if self._backlog_from is not None:
-            entries = self.read(self._backlog_from, block=False)
-            if entries:
-                self._backlog_from = entries[-1].stream_id
-                return self.process(entries, deliveries=self.deliveries([e.stream_id for e in entries]),
-                                    overlap=overlap)
-            self._backlog_from = None
-        entries = self.read(b">", block=True)
-        return self.process(entries, overlap=overlap)
-
-    def read(self, start: bytes, *, block: bool) -> list[Entry]:
-        args = ["XREADGROUP", "GROUP", self.keys.group, self.consumer, "COUNT", self.settings.batch]
-        if block:
-            args += ["BLOCK", self.settings.block_ms]
-        args += ["STREAMS", self.keys.comments, start]
-        return parse_xreadgroup(self.client.execute_command(*args), self._stream)
-
-    def deliveries(self, stream_ids: Sequence[bytes]) -> dict[bytes, int]:
-        """Delivery counts of pending entries (XPENDING, one row per id, one round trip)."""
-        if not stream_ids:
-            return {}
-        pipe = self.client.pipeline(transaction=False)
-        for sid in stream_ids:
-            pipe.execute_command("XPENDING", self.keys.comments, self.keys.group, sid, sid, 1)
-        counts = {}
-        for reply in pipe.execute():
-            for row in parse_xpending_range(reply):
-                counts[row.stream_id] = row.deliveries
-        return counts
+        return self.process_batch(self.source.read(block=True), overlap=overlap)
 
     def reclaim(self) -> BatchResult:
-        """Take over entries idle longer than ``claim_idle_ms`` and process them."""
+        """Take over entries other consumers left stale and process them."""
         self.settle()
         total = BatchResult()
-        cursor = b"0-0"
-        for _ in range(MAX_CLAIM_ROUNDS):
-            reply = self.client.execute_command(
-                "XAUTOCLAIM", self.keys.comments, self.keys.group, self.consumer,
-                self.settings.claim_idle_ms, cursor, "COUNT", self.settings.batch,
-            )
-            claimed = parse_xautoclaim(reply)
-            if claimed.deleted:
-                self._dead_letter_trimmed(claimed.deleted)
-            if claimed.entries:
-                log.info("took over %d idle entries", len(claimed.entries))
-                ids = [e.stream_id for e in claimed.entries]
-                result = self.process(claimed.entries, deliveries=self.deliveries(ids))
-                total.read += result.read
-                total.written += result.written
-                total.duplicates += result.duplicates
-                for reason, n in result.dead.items():
-                    total.dead[reason] = total.dead.get(reason, 0) + n
-            cursor = claimed.cursor
-            if cursor in (b"0-0", b"0") or self._stopping:
+        for batch in self.source.claim():
+            if batch.gone:
+                for _ in batch.gone:
+                    self.observer.on_deadletter("trimmed")
+                self._deadletter_log.add("trimmed", "the entry was deleted from the stream before it was scored",
+                                         count=len(batch.gone))
+            if batch.entries:
+                log.info("took over %d idle entries", len(batch.entries))
+                total.add(self.process_batch(batch))
+            if self._stopping:
                 break
         return total
-
-    def _dead_letter_trimmed(self, stream_ids: Sequence[bytes], pipeline=None) -> None:
-        # XAUTOCLAIM already dropped these from the pending list, and only this
-        # consumer saw them go, so no XACK guard is needed (or possible).
-        pipe = pipeline if pipeline is not None else self.client.pipeline(transaction=False)
-        for sid in stream_ids:
-            pipe.xadd(
-                self.keys.deadletter,
-                {"reason": "trimmed", "detail": "the entry was deleted from the stream before it was scored",
-                 "stream_id": sid, "source": self.keys.comments},
-                maxlen=self.settings.deadletter_maxlen, approximate=True,
-            )
-        if pipeline is None:
-            pipe.execute()
-        for _ in stream_ids:
-            self.observer.on_deadletter("trimmed")
-        self._deadletter_log.add("trimmed", "the entry was deleted from the stream before it was scored",
-                                 count=len(stream_ids))
 
     def reload(self) -> None:
         model = self.model_source.poll()
@@ -338,28 +273,32 @@ class StreamConsumer:
         self.observer.on_model(str(model.version), float(getattr(model, "created_at", 0.0) or 0.0))
 
     def report_lag(self) -> None:
-        reply = self.client.execute_command("XINFO GROUPS", self.keys.comments)
-        info = parse_xinfo_group(reply, self.keys.group)
-        self.observer.on_lag(info["lag"], info["pending"])
+        lag = self.source.lag()
+        if lag is not None:
+            self.observer.on_lag(lag.lag, lag.pending)
 
     # -- one batch ------------------------------------------------------------------------------
 
-    def process(self, entries: Sequence[Entry], *, deliveries: dict[bytes, int] | None = None,
-                overlap: bool = False) -> BatchResult:
-        """Validate, score, route and commit ``entries``; never raises on bad input.
+    def process(self, entries: Sequence[Entry], *, deliveries: dict[bytes, int] | None = None) -> BatchResult:
+        """:meth:`process_batch` for entries in hand (tests and tools)."""
+        return self.process_batch(Batch(list(entries), deliveries))
+
+    def process_batch(self, batch: Batch, *, overlap: bool = False) -> BatchResult:
+        """Validate, score, route, commit and acknowledge ``batch``; never raises on bad input.
 
         With ``overlap`` (used by :meth:`run`), the commit goes to the commit
         thread and this returns once the batch is scored; the counts of the
         returned result are filled in when the commit settles (see :meth:`settle`).
         """
-        result = BatchResult(read=len(entries))
-        if not entries:
+        entries, deliveries = batch.entries, batch.deliveries
+        result = BatchResult(read=len(batch))
+        if not len(batch):
             return result
         t0 = time.perf_counter()
         limits = self._input_limits
         max_deliveries = self.settings.max_deliveries
         comments: list[Comment] = []
-        dead: list[DeadLetter] = []
+        dead: list[DeadLetter] = list(batch.dead)
         for entry in entries:
             checked = validate(entry, limits)
             count = deliveries.get(entry.stream_id, 1) if deliveries else 1
@@ -371,34 +310,35 @@ class StreamConsumer:
         dead.extend(failed)
         model = self._model
         now = self.clock()
-        batch = (scored, dead, model, now, result, t0, len(entries))
+        done = (batch, scored, dead, model, now, result, t0, len(batch))
         if overlap and self._executor is not None:
             self.settle()  # commits stay in order: one in flight at a time
-            self._inflight = (self._executor.submit(self._commit, scored, dead, model, now), batch)
+            self._inflight = (self._executor.submit(self._commit, batch, scored, dead, model, now), done)
             return result
-        return self._finish(self._commit(scored, dead, model, now), *batch)
+        return self._finish(self._commit(batch, scored, dead, model, now), *done)
 
-    def _commit(self, scored, dead, model, now) -> list[int]:
-        return self._committer.commit(self.client, scored, dead, model=str(model.version), now=now,
-                                      consumer=self.consumer)
+    def _commit(self, batch: Batch, scored, dead, model, now) -> list[int]:
+        return self.sink.commit(batch, scored, dead, model=str(model.version), now=now)
 
     def settle(self) -> BatchResult | None:
         """Wait for the commit in flight, if any, and report it; its errors are raised here."""
         if self._inflight is None:
             return None
-        future, batch = self._inflight
+        future, done = self._inflight
         self._inflight = None
-        return self._finish(future.result(), *batch)
+        return self._finish(future.result(), *done)
 
     def _abandon_inflight(self) -> None:
         # After a failure elsewhere: let the commit in flight end; if it failed too, its
-        # entries are still pending and are read again from this consumer's backlog.
+        # entries are still unacknowledged and are read again from this consumer's backlog.
         try:
             self.settle()
-        except (redis.RedisError, OSError) as exc:
-            log.warning("the batch being committed did not commit (%s); it stays pending", exc)
+        except TransientError as exc:
+            log.warning("the batch being committed did not commit (%s); it stays pending", exc.what)
 
-    def _finish(self, codes, scored, dead, model, now, result: BatchResult, t0: float, size: int) -> BatchResult:
+    def _finish(self, codes, batch: Batch, scored, dead, model, now, result: BatchResult, t0: float,
+                size: int) -> BatchResult:
+        self.source.acknowledge(batch)
         n = len(scored)
         written = [s for s, code in zip(scored, codes[:n]) if code == WRITTEN]
         result.written = len(written)
@@ -484,7 +424,7 @@ class StreamConsumer:
             ranked_from = [ranked_from[i] for i in keep]
         decisions = self._router.decide_many(scores, [c.site for c in comments])
         if self.policies:
-            decisions = apply_policies(self.policies, self.client, comments, scores, decisions)
+            decisions = apply_policies(self.policies, self.state, comments, scores, decisions)
         try:
             reasons = explain_decisions(self._model, [c.text for c in comments], scores, decisions, list(reasons),
                                         ranked_from, top_k=TOP_K)

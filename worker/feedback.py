@@ -11,7 +11,9 @@ entry carries), and in ONE MULTI per batch:
 * and acknowledges every entry it handled.
 
 So an entry is either labelled or dead-lettered, never lost, and a crash
-between reading and EXEC leaves it pending to be read again.  Parsing and the
+between reading and EXEC leaves it pending to be read again.  Reading (own
+pending entries first, new ones, taking over stale ones) is the
+:class:`worker.groupreader.GroupReader` every consumer group uses.  Parsing and the
 join are pure functions, tested without a server.  A dead letter keeps every
 field the moderator sent (a name Seawall writes itself, such as the
 moderator's ``reason`` note, is kept as ``orig_<name>``) and adds ``reason``,
@@ -35,7 +37,9 @@ from dataclasses import dataclass
 import redis
 
 from worker.deadletters import DeadLetterLog
-from worker.settings import Keys
+from worker.groupreader import GroupReader
+from worker.settings import FeedbackSettings, Keys
+from worker.transport import Backoff
 from worker.validation import RESERVED, field_names, shown_name
 
 log = logging.getLogger(__name__)
@@ -225,138 +229,51 @@ def write_deadletter(client, keys: Keys, rejected: Rejected, *, maxlen: int = 10
     return None
 
 
-def parse_read_reply(reply) -> list[tuple[str, dict]]:
-    """Flatten an XREADGROUP/XAUTOCLAIM reply into ``[(stream_id, fields)]`` (pure).
-
-    Entries deleted while pending come back with ``None`` fields; they are
-    kept with an empty map so that they are acknowledged, not read forever.
-    """
-    out = []
-    for _stream, entries in reply or ():
-        out.extend(parse_entries(entries))
-    return out
-
-
-def _field_map(fields) -> dict:
-    # redis-py folds fields into a dict; a client with raw stream replies
-    # (worker.connection) gives the wire's flat [k1, v1, k2, v2, ...] list.
-    if fields is None:
-        return {}
-    if isinstance(fields, Mapping):
-        return dict(fields)
-    flat = list(fields)
-    return dict(zip(flat[0::2], flat[1::2]))
-
-
-def parse_entries(entries) -> list[tuple[str, dict]]:
-    """``[(id, fields)]`` of one stream's entries, parsed or raw (pure)."""
-    return [(_raw(sid).decode(), _field_map(fields)) for sid, fields in entries or ()]
-
-
-# Constructor parameters of FeedbackConsumer: (type, lowest, highest); None = unbounded.
-_PARAMS = {
-    "group": (str, None, None),
-    "consumer": (str, None, None),
-    "batch": (int, 1, 100000),
-    "block_ms": (int, 1, 600000),
-    "text_max_bytes": (int, 1, 64 * 2**20),
-    "labels_max": (int, 1, 10**8),
-    "claim_idle_ms": (int, 0, 86400000),
-    "deadletter_maxlen": (int, 1, 10**9),
-    "backoff_initial_s": (float, 0.001, 60.0),
-    "backoff_factor": (float, 1.0, 10.0),
-    "backoff_cap_s": (float, 0.001, 3600.0),
-}
-
-
-def _check(name: str, value):
-    tp, low, high = _PARAMS[name]
-    ok_type = isinstance(value, tp) and not isinstance(value, bool)
-    if tp is float and isinstance(value, int) and not isinstance(value, bool):
-        ok_type = True
-    if not ok_type or (low is not None and value < low) or (high is not None and value > high):
-        raise ValueError(f"FeedbackConsumer: bad {name}={value!r}")
-
-
 class FeedbackConsumer:
-    """Consumer-group reader of the feedback stream that writes the labelled store.
+    """The feedback stream's handler on a :class:`worker.groupreader.GroupReader`: labels in, labelled store out.
 
     Parameters
     ----------
     client : redis.Redis
     keys : the deployment's :class:`Keys`.
-    group : consumer group name on the feedback stream.
+    settings : :class:`worker.settings.FeedbackSettings` (``ops.labelling.feedback_settings`` builds them
+        from the Config, for ``seawall serve`` and the retrain's drain alike).
     consumer : consumer name; empty means ``<hostname>-<pid>-feedback``.
-    batch, block_ms : entries per read and how long a read blocks.
-    text_max_bytes : largest text a label may carry.
-    labels_max : bound of the labelled store.
-    deadletter_maxlen : approximate cap of the dead-letter stream (``worker.deadletter_maxlen``).
-    claim_idle_ms : :meth:`drain` claims entries pending this long on other consumers.
-    backoff_initial_s, backoff_factor, backoff_cap_s : reconnect back-off of :meth:`run`.
     observer : optional :class:`worker.observer.WorkerObserver`; gets ``on_deadletter(reason)``
         for each dead-lettered feedback entry and ``on_reconnect()``.
     clock : returns epoch seconds (tests pass a fixed one).
     """
 
-    def __init__(self, *, client, keys: Keys, group: str = "labellers", consumer: str = "",
-                 batch: int = 256, block_ms: int = 1000, text_max_bytes: int = 262144,
-                 labels_max: int = 200000, claim_idle_ms: int = 60000, deadletter_maxlen: int = 100_000,
-                 backoff_initial_s: float = 0.1, backoff_factor: float = 2.0,
-                 backoff_cap_s: float = 10.0, observer=None, clock=time.time):
-        for name, value in (("group", group), ("consumer", consumer), ("batch", batch),
-                            ("block_ms", block_ms), ("text_max_bytes", text_max_bytes),
-                            ("labels_max", labels_max), ("claim_idle_ms", claim_idle_ms),
-                            ("deadletter_maxlen", deadletter_maxlen),
-                            ("backoff_initial_s", backoff_initial_s), ("backoff_factor", backoff_factor),
-                            ("backoff_cap_s", backoff_cap_s)):
-            _check(name, value)
-        if not group:
-            raise ValueError("FeedbackConsumer: bad group=''")
+    def __init__(self, *, client, keys: Keys, settings: FeedbackSettings = FeedbackSettings(), consumer: str = "",
+                 observer=None, clock=time.time):
+        if not isinstance(settings, FeedbackSettings):
+            raise ValueError(f"FeedbackConsumer: settings must be FeedbackSettings, got {type(settings).__name__}")
         self.client = client
         self.keys = keys
-        self.group = group
+        self.settings = settings
         self.consumer = consumer or f"{socket.gethostname()}-{os.getpid()}-feedback"
-        self.batch = batch
-        self.block_ms = block_ms
-        self.text_max_bytes = text_max_bytes
-        self.labels_max = labels_max
-        self.claim_idle_ms = claim_idle_ms
-        self.deadletter_maxlen = deadletter_maxlen
-        self.backoff_initial_s = float(backoff_initial_s)
-        self.backoff_factor = float(backoff_factor)
-        self.backoff_cap_s = float(backoff_cap_s)
         self.observer = observer
         self.clock = clock
+        self.reader = GroupReader(client=client, stream=keys.feedback, group=settings.group, consumer=self.consumer,
+                                  batch=settings.batch, block_ms=settings.block_ms,
+                                  claim_idle_ms=settings.claim_idle_ms)
+        self._backoff = Backoff(base_s=settings.backoff_initial_s, factor=settings.backoff_factor,
+                                cap_s=settings.backoff_cap_s)
         self._group_ready = False
-        self._own_pending_done = False
         self._deadletter_log = DeadLetterLog(logger=log, source=keys.feedback, deadletter=keys.deadletter)
 
     # -- Redis -----------------------------------------------------------------
     def ensure_group(self) -> None:
         """Create the consumer group (from the stream's start) if it is missing."""
-        try:
-            self.client.xgroup_create(self.keys.feedback, self.group, id="0", mkstream=True)
-        except redis.exceptions.ResponseError as exc:
-            if "BUSYGROUP" not in str(exc):
-                raise
+        self.reader.ensure_group()
         self._group_ready = True
 
-    def _read(self, block_ms: int | None) -> list[tuple[str, dict]]:
-        if not self._own_pending_done:
-            # Entries this consumer read before a crash or reconnect come first.
-            entries = parse_read_reply(self.client.xreadgroup(
-                self.group, self.consumer, {self.keys.feedback: "0"}, count=self.batch))
-            if entries:
-                return entries
-            self._own_pending_done = True
-        return parse_read_reply(self.client.xreadgroup(
-            self.group, self.consumer, {self.keys.feedback: ">"}, count=self.batch, block=block_ms))
-
     def handle(self, entries: list[tuple[str, dict]]) -> dict[str, int]:
-        """Label or dead-letter ``entries`` and ack them, all in one MULTI."""
+        """Label or dead-letter ``entries`` (``(stream_id, fields)``) and ack them, all in one MULTI."""
         if not entries:
             return {"labelled": 0, "deadlettered": 0}
-        parsed = [parse_feedback(sid, fields, text_max_bytes=self.text_max_bytes) for sid, fields in entries]
+        s = self.settings
+        parsed = [parse_feedback(sid, fields, text_max_bytes=s.text_max_bytes) for sid, fields in entries]
         valid = [p for p in parsed if isinstance(p, Feedback)]
         cached = {}
         if valid:
@@ -371,18 +288,18 @@ class FeedbackConsumer:
         pipe = self.client.pipeline(transaction=True)
         for (_sid, sent), item in zip(entries, parsed):
             if isinstance(item, Feedback):
-                item = join_label(item, cached.get(item.stream_id), now=now, text_max_bytes=self.text_max_bytes)
+                item = join_label(item, cached.get(item.stream_id), now=now, text_max_bytes=s.text_max_bytes)
                 if isinstance(item, Rejected):
                     item = dataclasses.replace(item, fields=_printable(sent))  # every field the moderator sent
             if isinstance(item, Rejected):
-                write_deadletter(self.client, self.keys, item, maxlen=self.deadletter_maxlen, pipeline=pipe)
+                write_deadletter(self.client, self.keys, item, maxlen=s.deadletter_maxlen, pipeline=pipe)
                 counts["deadlettered"] += 1
                 dead.append(item)
             else:
-                write_label(self.client, self.keys, item, labels_max=self.labels_max, pipeline=pipe)
+                write_label(self.client, self.keys, item, labels_max=s.labels_max, pipeline=pipe)
                 pipe.zrem(held_key(self.keys), item["id"])
                 counts["labelled"] += 1
-        pipe.xack(self.keys.feedback, self.group, *[sid for sid, _ in entries])
+        pipe.xack(self.keys.feedback, s.group, *[sid for sid, _ in entries])
         pipe.execute()
         for item in dead:
             self._deadletter_log.add(item.reason, item.detail)
@@ -390,73 +307,67 @@ class FeedbackConsumer:
                 self.observer.on_deadletter(item.reason)
         return counts
 
-    def step(self, *, block_ms: int | None = None) -> int:
-        """Read and handle one batch; returns how many entries it handled.
+    def step(self, *, block: bool = True) -> int:
+        """Read and handle one batch (own pending entries first); returns how many entries it handled.
 
-        ``block_ms=None`` uses the consumer's own ``block_ms``; ``0`` does not block.
-        An empty read is a normal outcome and returns 0.
+        ``block=False`` does not wait for new entries.  An empty read is a
+        normal outcome and returns 0.
         """
         if not self._group_ready:
             self.ensure_group()
         self._deadletter_log.flush()
-        wait = self.block_ms if block_ms is None else block_ms
         try:
-            entries = self._read(wait or None)
+            entries, _ = self.reader.read(block=block, count_deliveries=False)
         except redis.exceptions.ResponseError as exc:
             if "NOGROUP" not in str(exc):
                 raise
             # The stream or group vanished (a Redis restart without persistence).
             self._group_ready = False
-            self._own_pending_done = False
             return 0
-        self.handle(entries)
+        self.handle(_pairs(entries))
         return len(entries)
 
-    def claim_stale(self) -> list[tuple[str, dict]]:
-        """Claim entries pending longer than ``claim_idle_ms`` on other consumers."""
-        claimed: list[tuple[str, dict]] = []
-        start = "0-0"
-        while True:
-            reply = self.client.xautoclaim(self.keys.feedback, self.group, self.consumer,
-                                           min_idle_time=self.claim_idle_ms, start_id=start, count=self.batch)
-            cursor, entries = reply[0], reply[1]
-            claimed.extend(parse_entries(entries))
-            start = _raw(cursor).decode()
-            if start == "0-0":
-                return claimed
-
     def drain(self, *, max_batches: int = 10000) -> int:
-        """Handle every feedback entry available now, without blocking (retrain's first step)."""
+        """Handle every feedback entry available now, without blocking (retrain's first step).
+
+        Entries pending on other consumers for ``claim_idle_ms`` are taken over first.
+        """
         if not self._group_ready:
             self.ensure_group()
         total = 0
-        stale = self.claim_stale()
-        for i in range(0, len(stale), self.batch):
-            self.handle(stale[i:i + self.batch])
-            total += len(stale[i:i + self.batch])
+        for claimed in self.reader.claim(rounds=max_batches):
+            # Entries deleted while pending were dropped by XAUTOCLAIM itself: they never were labels.
+            self.handle(_pairs(claimed.entries))
+            total += len(claimed.entries)
         for _ in range(max_batches):
-            n = self.step(block_ms=0)
-            if n == 0 and self._own_pending_done:
+            n = self.step(block=False)
+            if n == 0 and self.reader.backlog_done:
                 break
             total += n
         return total
 
     def run(self, stop: threading.Event, *, on_reconnect=None) -> None:
         """Consume until ``stop`` is set; reconnects back off (capped, exponential)."""
-        delay = self.backoff_initial_s
+        failures = 0
         while not stop.is_set():
             try:
                 self.step()
-                delay = self.backoff_initial_s
+                failures = 0
             except (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError) as exc:
+                failures += 1
+                delay = self._backoff.delay(failures)
                 log.warning("feedback: Redis unavailable (%s); retrying in %.2fs", type(exc).__name__, delay)
-                self._own_pending_done = False
+                self.reader.restart()
                 if on_reconnect is not None:
                     on_reconnect()
                 elif self.observer is not None:
                     self.observer.on_reconnect()
                 stop.wait(delay)
-                delay = min(delay * self.backoff_factor, self.backoff_cap_s)
+
+
+def _pairs(entries) -> list[tuple[str, dict]]:
+    """Entries as ``(stream_id, fields)``; one deleted while pending has no fields and is dead-lettered."""
+    return [(e.stream_id.decode(), dict(e.fields or ())) for e in entries]
 
 
 def iter_label_records(entries: Iterable[tuple[str, Mapping]]) -> Iterable[tuple[str, dict[str, str]]]:

@@ -4,10 +4,14 @@ A :class:`BatchPolicy` sees the batch's comments, their scores and the
 :class:`worker.routing.Decision` routing made for each, and returns the
 decisions to use (same length).  A policy that changes an action says so in
 the decision's ``rule`` (campaign detection holds members of an active
-near-duplicate campaign with rule ``campaign`` and the campaign's id).  A
-policy may read or write Redis through the client it is given; its writes are
-not part of the comments' exactly-once commit, so they must be safe to repeat
-(SET with TTL, set adds, counters that tolerate a rare double count).
+near-duplicate campaign with rule ``campaign`` and the campaign's id).
+
+Policies keep their state through a :class:`PolicyState` port, whatever
+transport the comments came by: its ``client`` is the state store (Redis), and
+its ``guard()`` turns a lost connection into a :class:`worker.transport.TransientError`
+so that the batch is read again.  A policy's writes are not part of the
+comments' exactly-once commit, so they must be safe to repeat (SET with TTL,
+set adds, counters that tolerate a rare double count).
 """
 from __future__ import annotations
 
@@ -16,8 +20,18 @@ from collections.abc import Sequence
 from typing import Protocol, runtime_checkable
 
 from worker.routing import Decision
+from worker.transport import TransientError
 
 log = logging.getLogger("seawall.worker.policies")
+
+
+@runtime_checkable
+class PolicyState(Protocol):
+    """Where batch policies keep their state (see :class:`worker.redistransport.RedisState`)."""
+
+    client: object
+
+    def guard(self): ...
 
 
 @runtime_checkable
@@ -26,20 +40,20 @@ class BatchPolicy(Protocol):
               decisions: list[Decision]) -> list[Decision]: ...
 
 
-def apply_policies(policies: Sequence[BatchPolicy], client, comments, scores,
+def apply_policies(policies: Sequence[BatchPolicy], state: PolicyState, comments, scores,
                    decisions: list[Decision]) -> list[Decision]:
     """Run each policy in turn; a policy that returns a malformed answer is ignored and logged.
 
-    Connection errors propagate (the worker reconnects and retries the batch);
-    a bug in a policy must not stop moderation, so other exceptions keep the
-    decisions as they were and are logged with their traceback.
+    A lost connection to the state store propagates as :class:`TransientError`
+    (the worker reconnects and retries the batch); a bug in a policy must not
+    stop moderation, so other exceptions keep the decisions as they were and
+    are logged with their traceback.
     """
-    import redis
-
     for policy in policies:
         try:
-            proposed = policy.apply(client, comments, scores, list(decisions))
-        except (redis.ConnectionError, redis.TimeoutError):
+            with state.guard():
+                proposed = policy.apply(state.client, comments, scores, list(decisions))
+        except TransientError:
             raise
         except Exception:  # a policy's bug: keep routing's decisions, say so loudly
             log.exception("batch policy %s failed; keeping the decisions it was given", type(policy).__name__)

@@ -6,7 +6,7 @@ free port unless ``--redis`` is given; each run under its own key prefix).
 **board** (quality): the invented board of :mod:`ops.board` (recurring formats
 posted by established members over simulated days, then a test day with
 campaigns from new accounts, plain and obfuscated) replayed through the
-campaign policy ``seawall serve`` builds (:func:`ops.monitor.campaign_policy`,
+campaign policy ``seawall serve`` builds (:func:`ops.serving.campaign_policy`,
 two simulated workers taking turns) on its simulated clock, with the scores of
 a model trained on the board's history.  Twice: with the model *blind* to the
 campaigns (each campaign comment gets the score of a random ham comment; the
@@ -223,7 +223,7 @@ def _replay(url: str, board, comments, scores, overrides: dict, label: str) -> d
 
     from ops.board import play
     from ops.config import load_config
-    from ops.monitor import campaign_policy
+    from ops.serving import campaign_policy
 
     config = load_config({**overrides, "keys.prefix": f"seawall-bench-board-{os.getpid()}-{label}:"}, environ={})
     clock = _Clock()

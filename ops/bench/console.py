@@ -51,8 +51,9 @@ def fill_queue(url: str, keys, comments, model, *, site_thresholds=None, policie
     what gets held; ``policies`` are worker batch policies such as the
     campaign policy.
     """
+    from ops.config import Config
+    from ops.serving import build_consumer
     from worker.connection import connect
-    from worker.consumer import StreamConsumer
     from worker.loader import StaticModelSource
     from worker.settings import WorkerSettings
 
@@ -64,8 +65,9 @@ def fill_queue(url: str, keys, comments, model, *, site_thresholds=None, policie
             pipe.xadd(keys.comments, c)
         pipe.execute()
         settings = WorkerSettings(batch=256, block_ms=10, site_thresholds=site_thresholds or {})
-        consumer = StreamConsumer(client=raw, keys=keys, settings=settings, model_source=StaticModelSource(model=model),
-                                  consumer="fill-queue", policies=list(policies), clock=clock)
+        config = Config(redis_url=url, keys=keys, worker=settings)
+        consumer = build_consumer(config, source=StaticModelSource(model=model), consumer="fill-queue",
+                                  policies=list(policies), client=raw, clock=clock)
         consumer.prepare()
         written, idle = 0, 0
         while idle < 3:

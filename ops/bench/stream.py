@@ -17,7 +17,11 @@ port unless ``--redis`` is given; each measurement uses its own key prefix):
 * **CPU per comment** of the worker process (``time.process_time``) and of
   Redis (``INFO cpu``): unlike rates, these do not depend on how
   busy a shared machine is, and ``1e6 / max(worker, redis)`` estimates the
-  rate on one uncontended core for each.
+  rate on one uncontended core for each;
+* with ``--amqp URL``, **RabbitMQ**: the throughput and no-op runs again with
+  comments from a quorum queue of that broker (``serve --source``), Redis
+  still the state store; rates and CPU per comment beside the Redis Streams
+  ones of the same run.
 
 Worker processes are started with the ``spawn`` method and build their
 consumer with :func:`ops.serving.build_consumer`, as ``seawall serve`` does.
@@ -116,8 +120,7 @@ def run_worker(overrides: dict, model_path: str, noop: bool, campaigns: bool, na
     """One worker process (spawned): the consumer `seawall serve` builds, optionally with the campaign
     policy; runs until SIGTERM and reports its peak RSS and CPU time."""
     from ops.config import load_config
-    from ops.monitor import campaign_policy
-    from ops.serving import build_consumer
+    from ops.serving import build_consumer, campaign_policy
     from worker.loader import FileModelSource, StaticModelSource
 
     config = load_config(overrides, environ={})
@@ -152,14 +155,18 @@ def own_peak_rss_mb() -> float:
 class Harness:
     """Starts workers against ``url`` under one key prefix and reads back what they wrote."""
 
-    def __init__(self, *, url: str, prefix: str, model_path: str, batch: int, block_ms: int):
+    def __init__(self, *, url: str, prefix: str, model_path: str, batch: int, block_ms: int, amqp: str = ""):
         import redis
 
         self.url = url
         self.prefix = prefix
         self.model_path = model_path
+        self.amqp = amqp
         self.overrides = {"redis_url": url, "keys.prefix": prefix, "worker.batch": batch, "worker.block_ms": block_ms,
                           "worker.claim_every_s": 3600.0}
+        if amqp:
+            self.overrides.update({"amqp.url": amqp, "amqp.queue": prefix + "comments",
+                                   "amqp.verdicts_exchange": prefix + "verdicts", "amqp.prefetch": 2 * batch})
         self.client = redis.Redis.from_url(url)
         self.ctx = multiprocessing.get_context("spawn")
         self.procs = []
@@ -201,6 +208,8 @@ class Harness:
         return out
 
     def enqueue(self, comments, start: int = 0) -> None:
+        if self.amqp:
+            return self._publish(comments, start)
         pipe = self.client.pipeline(transaction=False)
         stream = self.key("comments")
         for i, (text, _label) in enumerate(comments, start):
@@ -208,6 +217,26 @@ class Harness:
             if len(pipe) >= 1000:
                 pipe.execute()
         pipe.execute()
+
+    def _publish(self, comments, start: int) -> None:
+        """The comments as persistent JSON messages on the quorum queue, each confirmed by the broker."""
+        import json
+
+        import pika
+
+        from worker.amqp import QUEUE_ARGUMENTS
+
+        connection = pika.BlockingConnection(pika.URLParameters(self.amqp))
+        try:
+            channel = connection.channel()
+            channel.confirm_delivery()
+            queue = self.overrides["amqp.queue"]
+            channel.queue_declare(queue, durable=True, arguments=QUEUE_ARGUMENTS)
+            for i, (text, _label) in enumerate(comments, start):
+                body = json.dumps({"id": f"b{i}", "text": text, "site": f"site{i % 4}.example"}).encode()
+                channel.basic_publish("", queue, body, pika.BasicProperties(delivery_mode=2))
+        finally:
+            connection.close()
 
     def wait_verdicts(self, n: int, *, timeout_s: float) -> int:
         deadline = time.monotonic() + timeout_s
@@ -235,14 +264,22 @@ class Harness:
             last = page[-1][0].decode()
 
     def cleanup(self) -> None:
+        if self.amqp:
+            import pika
+
+            connection = pika.BlockingConnection(pika.URLParameters(self.amqp))
+            channel = connection.channel()
+            channel.queue_delete(self.overrides["amqp.queue"])
+            channel.exchange_delete(self.overrides["amqp.verdicts_exchange"])
+            connection.close()
         keys = list(self.client.scan_iter(match=self.prefix + "*", count=1000))
         for i in range(0, len(keys), 1000):
             self.client.unlink(*keys[i : i + 1000])
         self.client.close()
 
 
-def _throughput(url, prefix, model_path, comments, *, processes, noop, batch, block_ms) -> dict:
-    h = Harness(url=url, prefix=prefix, model_path=model_path, batch=batch, block_ms=block_ms)
+def _throughput(url, prefix, model_path, comments, *, processes, noop, batch, block_ms, amqp: str = "") -> dict:
+    h = Harness(url=url, prefix=prefix, model_path=model_path, batch=batch, block_ms=block_ms, amqp=amqp)
     try:
         h.enqueue(comments)
         h.start(processes, noop=noop)
@@ -328,6 +365,20 @@ def _measure(url: str, model_path: str, comments, args) -> dict:
     ceiling = _throughput(url, f"{tag}-noop:", model_path, comments, processes=1, noop=True, **kw)
     two = _throughput(url, f"{tag}-two:", model_path, comments, processes=2, noop=False, **kw)
     lat = _latency(url, f"{tag}-lat:", model_path, comments, rate=args.rate, seconds=args.seconds, **kw)
+    by_amqp = {}
+    if args.amqp:
+        a_real = _throughput(url, f"{tag}-amqp-real:", model_path, comments, processes=1, noop=False, amqp=args.amqp,
+                             **kw)
+        a_noop = _throughput(url, f"{tag}-amqp-noop:", model_path, comments, processes=1, noop=True, amqp=args.amqp,
+                             **kw)
+        by_amqp = {
+            "amqp_real_per_s": a_real["per_s"],
+            "amqp_ceiling_per_s": a_noop["per_s"],
+            "amqp_real_to_redis_real": a_real["per_s"] / real["per_s"],
+            "amqp_real_worker_cpu_us_per_comment": a_real["worker_cpu_us"],
+            "amqp_noop_worker_cpu_us_per_comment": a_noop["worker_cpu_us"],
+            "amqp_redis_cpu_us_per_comment": a_real["redis_cpu_us"],
+        }
     return {
         "real_per_s": real["per_s"],
         "ceiling_per_s": ceiling["per_s"],
@@ -346,6 +397,7 @@ def _measure(url: str, model_path: str, comments, args) -> dict:
         "latency_p99_ms": lat["p99_ms"],
         "latency_max_ms": lat["max_ms"],
         "worker_peak_rss_mb": real["peak_rss_mb"],
+        **by_amqp,
     }
 
 
@@ -354,4 +406,6 @@ def register(sub) -> None:
     add_harness_arguments(parser, comments=50_000)
     parser.add_argument("--rate", type=float, default=2000.0, help="offered comments/s for the latency run")
     parser.add_argument("--seconds", type=float, default=5.0, help="length of the latency run")
+    parser.add_argument("--amqp", metavar="URL", default="",
+                        help="also measure comments from a RabbitMQ quorum queue at this amqp:// URL")
     parser.set_defaults(func=run)

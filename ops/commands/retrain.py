@@ -25,13 +25,14 @@ def register(sub) -> None:
 
 def run(args) -> int:
     from ops.rescore import describe_rescore, rescore_after_switch
+    from ops.labelling import feedback_settings
     from ops.retrain import retrain
     from ops.thresholds import print_warnings
 
     config = config_from_args(args)
     client = connect(config)
     after = {}
-    report = retrain(client, config.keys, config.retrain,
+    report = retrain(client, config.keys, config.retrain, feedback=feedback_settings(config.retrain, config.worker),
                      on_promoted=lambda version: after.update(rescore_after_switch(args.rescore, client, config, version)))
     report.update(after)
     warnings = _active_thresholds(client, config, report)

@@ -16,6 +16,7 @@ from ops.config import load_config, settings_help
 # Flag -> dotted setting; a flag left out (None) leaves the setting to env, file and defaults.
 FLAGS = {
     "redis": "redis_url",
+    "source": "amqp.url",
     "model": "model_path",
     "consumer": "worker.consumer",
     "batch": "worker.batch",
@@ -36,6 +37,9 @@ def register(sub) -> None:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     parser.add_argument("--redis", metavar="URL", help="Redis URL (redis://, rediss://, unix://); sets redis_url")
+    parser.add_argument("--source", metavar="URL",
+                        help="where comments come from: an amqp:// or amqps:// RabbitMQ URL; sets amqp.url "
+                             "(default: the Redis stream)")
     parser.add_argument("--model", metavar="MODEL_FILE", help="model file to serve; reloaded when it changes")
     parser.add_argument("--consumer", metavar="NAME", help="consumer name in the group (default <hostname>-<pid>)")
     parser.add_argument("--batch", type=int, metavar="N", help="entries per read and per model call")
@@ -68,9 +72,8 @@ def serve_one(config) -> int:
     configure_logging(config.log_level, tag=name)
     source = model_source(config)
     source.current()  # a bad model file fails here, before anything is read
-    observability = start_observability(config)  # metrics endpoint, wave detector, campaign policy
-    consumer = build_consumer(config, source=source, observer=observability.observer, consumer=name,
-                              policies=observability.policies)
+    observability = start_observability(config)  # metrics endpoint, wave detector (it only observes)
+    consumer = build_consumer(config, source=source, observer=observability.observer, consumer=name)
     feedback = start_feedback(config, worker_consumer=name, observer=observability.observer)  # labels -> labelled store
     for sig in (signal.SIGTERM, signal.SIGINT):
         signal.signal(sig, lambda *_: consumer.stop())
