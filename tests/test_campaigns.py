@@ -211,6 +211,19 @@ def test_comments_with_no_near_duplicate_cost_no_bucket_of_their_own(shared_redi
     assert 0 < shared_redis.ttl(seen) <= 600 + 1  # until the end of the next half-window slot, plus 1 s
 
 
+def test_a_sighting_by_another_worker_counts_from_the_next_batch(fake_redis):
+    """Each worker keeps its own copy of the sightings: what another worker saw in its last batch is a hit."""
+    clock = Clock()
+    a, b = policy(clock), policy(clock)
+    rng = np.random.default_rng(5)
+    b.observe(fake_redis, comments([ordinary_text(rng)], start=0))  # b has read this slot before a's sighting
+    a.observe(fake_redis, comments([campaign_text(1)], start=1))
+    buckets = a.state_keys(clock())[2]
+    assert not fake_redis.exists(buckets)  # a first sighting: no bucket yet
+    b.observe(fake_redis, comments([campaign_text(2)], start=2))
+    assert fake_redis.hlen(buckets) >= 8  # b found a's band keys: a bucket per shared band (and its authors)
+
+
 def test_near_duplicates_either_side_of_a_slot_boundary_all_count(fake_redis):
     """First sightings live in half-window slots; the previous slot is read too, so none is missed.
 

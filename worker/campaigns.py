@@ -489,25 +489,24 @@ class Sightings:
     sightings, 8 bytes a key.  A worker reads what the others added since its
     last batch (its offset into each list) in the same script call that adds
     its own, so Redis never tests membership: the worker does, on sorted numpy
-    chunks (merged as they pile up, so a slot costs O(log n) searches).  A slot this
-    worker has not read yet is read whole first (a start, a new slot).  A key
-    two workers first see in batches that overlap in time is a first sighting
-    for both: its bucket misses that one hit.
+    chunks (merged as they pile up, so a slot costs O(log n) searches).  Before
+    each batch the worker reads what was appended since (one LRANGE per slot,
+    pipelined: a start or a new slot reads the whole list), so a key another
+    worker saw in its last batch is a hit here.  A key two workers first see
+    between that read and their script calls, within a millisecond, is a first
+    sighting for both: its bucket misses that one hit.
     """
 
     def __init__(self):
         self._slots: dict[int, list] = {}  # slot -> [sorted unique uint64 chunks, entries read from its list]
 
     def catch_up(self, client, lists: dict[int, str]) -> None:
-        """Read the whole list of each slot this worker has not read yet (a new slot, a start): one round trip."""
-        missing = [(slot, key) for slot, key in lists.items() if slot not in self._slots]
-        if not missing:
-            return
+        """Read what was appended to each slot's list since this worker last read it (all of a slot it has not
+        read yet: a start, a new slot), in one round trip."""
         pipe = client.pipeline(transaction=False)
-        for _slot, key in missing:
-            pipe.lrange(key, 0, -1)
-        for (slot, _key), blobs in zip(missing, pipe.execute()):
-            self._slots[slot] = [[], 0]
+        for slot, key in lists.items():
+            pipe.lrange(key, self._slots.setdefault(slot, [[], 0])[1], -1)
+        for slot, blobs in zip(lists, pipe.execute()):
             self.add(slot, blobs)
 
     def find(self, slot: int, values: np.ndarray) -> tuple[np.ndarray, int]:
