@@ -417,3 +417,24 @@ def test_run_commits_every_batch_with_or_without_the_commit_thread(client, overl
     assert consumer.run() == 0
     assert sorted(v["id"] for v in rec.verdicts) == sorted(f"c{i}" for i in range(500))
     assert len(verdicts(client)) == 500 and pending(client) == 0
+
+
+def test_the_commit_script_takes_flags_not_action_names_and_keeps_any_text(client):
+    from worker.commit import COMMIT_LUA, COUNT_FLAG, HOLD_FLAG, action_flags
+
+    for name in ("publish", "hold", "reject"):
+        assert f"'{name}'" not in COMMIT_LUA and f'"{name}"' not in COMMIT_LUA
+    assert (action_flags("publish"), action_flags("hold"), action_flags("reject")) == (0, HOLD_FLAG | COUNT_FLAG,
+                                                                                       COUNT_FLAG)
+    # Quotes, backslashes, a JSON-looking text, accents and an emoji survive the one JSON argument as they are.
+    texts = ['she said "free" \\ not \\"free\\"', '[1, {"a": null}]', "café au lait près du pont 🌉 bonus garden"]
+    for i, text in enumerate(texts):
+        client.xadd(KEYS.comments, {"id": f"t{i}", "text": text, "site": "a.example", "author": "Zoë"})
+    client.xadd(KEYS.comments, {"id": "d1", "site": "a.example", "note": "ünïcode \"quoted\""})  # no text: dead letter
+    make(client).step()
+    for i, text in enumerate(texts):
+        assert client.hget(KEYS.text(f"t{i}"), "text").decode() == text
+        assert client.hget(KEYS.text(f"t{i}"), "author").decode() == "Zoë"
+    (dead,) = deadletters(client)
+    assert dead["note"] == 'ünïcode "quoted"' and dead["id"] == "d1"
+    assert pending(client) == 0

@@ -33,7 +33,7 @@ WORKER_COMMANDS = (
     "xreadgroup", "xautoclaim", "xpending", "xack", "xadd", "xgroup|create", "xinfo|groups", "xrange", "xrevrange",
     # the commit, campaign and wave scripts and the keys they touch
     "evalsha", "eval", "script|load", "set", "get", "del", "exists", "expire", "hset", "hget", "hgetall", "hmget",
-    "hkeys", "hdel", "hincrby", "hlen", "hsetnx", "sadd", "smismember", "zadd", "zrem", "zcard", "zscore",
+    "hkeys", "hdel", "hincrby", "hlen", "hsetnx", "rpush", "lrange", "zadd", "zrem", "zcard", "zscore",
     "zrevrange", "zremrangebyscore",
     # feedback batches are MULTI/EXEC transactions
     "multi", "exec", "discard",

@@ -11,9 +11,11 @@ For each batch, :class:`CampaignPolicy`:
    family and every worker computes the same shingles;
 2. computes their MinHash signatures and LSH band keys (:mod:`model.minhash`);
    a band key names a *bucket*, a family of comments that agree on that band;
-3. sends the whole batch to Redis in one script call, which records each
-   author's first sighting, adds every band key to the current slot's set of
-   sightings, and counts the buckets seen twice within the window;
+3. finds which band keys were seen before in the window in its own copy of
+   the recent sightings (:class:`Sightings`), then sends the batch to Redis
+   in one script call, which records each author's first sighting, appends
+   the batch's first sightings to the current slot's list (returning what
+   other workers appended since), and counts the buckets hit;
 4. decides in the worker, from the buckets the script returns, which comments
    are campaign members.
 
@@ -50,8 +52,11 @@ Redis keys (all named by :class:`worker.settings.Keys`, all passed to the
 script in KEYS; the band state is under a tag of the shingling scheme, so
 workers that shingle differently never mix their buckets):
 
-* ``campaigns:{tag}:seen:{slot}``: set of the band keys seen in a slot
-  (8 bytes each, hashes of MinHash bands, never text);
+* ``campaigns:{tag}:sightings:{slot}``: list of the band keys first seen in
+  a slot, one string per batch (8 bytes a key, hashes of MinHash bands, never
+  text).  Seawall before this layout kept a set, ``campaigns:{tag}:seen:{slot}``:
+  it is ignored (and expires within a window), so workers of both layouts must
+  not serve one deployment together; buckets and history keep their layout;
 * ``campaigns:{tag}:buckets:{slot}``: one hash per slot; per band key seen
   twice within the window a packed field of its figures, the campaign it is
   linked to and the authors (by hash) counted in it;
@@ -109,9 +114,10 @@ SIGNALS = ("either", "authors", "lean", "both")
 # author is new when first seen less than new_author_s ago and after the site's warm-up (the first
 # warmup_s after the detector first saw the site, while everyone it sees is a first sighting).
 #
-# Band keys: most are seen once, and a first sighting only joins the slot's set (two SMISMEMBERs and one SADD
-# for the whole batch).  A key already in either slot's set (or earlier in the batch) is a *hit* on its bucket
-# (unless the worker knows the key linked and leaves it out).  A bucket is one field of the current slot's hash,
+# Band keys: most are seen once, and a first sighting only joins the slot's list (one RPUSH of one string for
+# the whole batch; the worker tests membership in its own copy).  A key already seen in either slot (or earlier
+# in the batch) is a *hit* on its bucket (unless the worker knows the key linked and leaves it out); only hits
+# are sent.  A bucket is one field of the current slot's hash,
 # named by its key, holding "t p e m a w x h y c": the window's count t (the previous slot's own count p carried
 # in, plus this slot's), the baseline (e: the history's count, m: its busiest window), distinct authors a (each
 # recorded in a field <key><author key>) until there are min_authors, hits by new authors w and spam-ward hits h
@@ -126,19 +132,21 @@ SIGNALS = ("either", "authors", "lean", "both")
 # history's average and its busiest window) as {key, window count, authors, new-author hits, spam-ward hits,
 # history count, busiest window}; the worker decides the rest.
 #
-# KEYS: seen (this slot), seen (previous slot), buckets (this slot), buckets (previous slot),
+# KEYS: sightings (this slot), sightings (previous slot), buckets (this slot), buckets (previous slot),
 #       authors (this generation), authors (previous generation), sites, scheme start,
 #       history (this generation), history (previous generation), active campaigns.
 # ARGV: 1 now, 2 min_size, 3 bands, 4 slot TTL, 5 author TTL, 6 history TTL, 7 new_author_s,
-#       8 min_authors, 9 band keys (8 bytes each, bands per row), 10 author keys (8 bytes, one per
-#       comment), 11 each row's comment (0-based), 12 each comment's site (1-based), 13 a byte per place
-#       (1: the key occurs earlier in the batch, +2: a known link's hit left uncounted), 14 a byte per row
-#       (1: spam-ward, +2: a known member), 15 link_size, 16 warmup_s, 17 window_s, 18 burst_ratio,
-#       19 peak_ratio, 20 start of the previous history generation, 21 "place hits" pairs: places that
-#       count for several (the ones left out), 22 "1" if the worker knows members in the batch, 23... the
-#       batch's sites.
+#       8 min_authors, 9 the hits' band keys (8 bytes each), 10 author keys (8 bytes, one per
+#       comment), 11 each row's comment (0-based), 12 each comment's site (1-based), 13 a byte per hit
+#       (1: the key occurs earlier in the batch, +2: seen in this slot, +4: seen in the previous slot),
+#       14 a byte per row (1: spam-ward, +2: a known member), 15 link_size, 16 warmup_s, 17 window_s,
+#       18 burst_ratio, 19 peak_ratio, 20 start of the previous history generation, 21 "row hits" pairs per
+#       hit: its row (0-based) and the hits it stands for (more than 1 for the ones left out), 22 "1" if the
+#       worker knows members in the batch, 23 the batch's first sightings in this slot (8 bytes each),
+#       24 and 25 the worker's offsets into the two sightings lists, 26... the batch's sites.
 # Reply: {scheme start, active campaigns (when anything below or a known member needs them),
-#         {key, campaign, key, campaign, ...}, bucket, bucket, ...}.
+#         {key, campaign, key, campaign, ...}, sightings added to this slot's list since the offset (before
+#         this batch's), the same for the previous slot's, bucket, bucket, ...}.
 _STATE_SCRIPT = """
 local CHUNK = 7000  -- unpack() is bounded by the Lua stack (8000)
 local function chunked(cmd, key, list)
@@ -186,7 +194,7 @@ if #authors > 0 then
 end
 local newer_than = {}  -- per site: an author first seen at or after this is new
 local sites = {}
-for s = 23, #ARGV do sites[#sites + 1] = ARGV[s] end
+for s = 26, #ARGV do sites[#sites + 1] = ARGV[s] end
 if #sites > 0 then
   local since = redis.call('HMGET', KEYS[7], unpack(sites))
   for s = 1, #sites do
@@ -198,27 +206,36 @@ end
 local site_of = numbers(ARGV[12])
 redis.call('SET', KEYS[8], now_s, 'NX')
 local since = redis.call('GET', KEYS[8])
-local out = {since, {}, {}}
+local out = {since, {}, {}, {}, {}}
 local function finish()  -- the active campaigns come along whenever the worker will need them
-  if #out > 3 or #out[3] > 0 or ARGV[22] == '1' then out[2] = redis.call('HKEYS', KEYS[11]) end
+  if #out > 5 or #out[3] > 0 or ARGV[22] == '1' then out[2] = redis.call('HKEYS', KEYS[11]) end
   return out
 end
 
-local fields = cut(ARGV[9])
+-- sightings: what other workers added to the two slots' lists since this worker last read them, then the
+-- batch's first sightings in this slot (one string), so the worker's copy stays whole
+out[4] = redis.call('LRANGE', KEYS[1], tonumber(ARGV[24]), -1)
+out[5] = redis.call('LRANGE', KEYS[2], tonumber(ARGV[25]), -1)
+if #ARGV[23] > 0 then
+  redis.call('RPUSH', KEYS[1], ARGV[23])
+  redis.call('EXPIRE', KEYS[1], tonumber(ARGV[4]))
+end
+local fields = cut(ARGV[9])  -- the batch's hits only: the worker found them in its copy of the sightings
 if #fields == 0 then return finish() end
-local cur = chunked('SMISMEMBER', KEYS[1], fields)
-local prev = chunked('SMISMEMBER', KEYS[2], fields)
-chunked('SADD', KEYS[1], fields)
-redis.call('EXPIRE', KEYS[1], tonumber(ARGV[4]))
 local row_comment = numbers(ARGV[11])
--- one byte per place: 1 the key occurs earlier in the batch, 2 the worker knows it linked and leaves it out;
+-- one byte per hit: 1 the key occurs earlier in the batch, 2 it was seen in this slot, 4 in the previous slot;
 -- one byte per row: 1 the score leans spam-ward, 2 the worker knows the comment as a campaign member
-local place_flags, row_flags = ARGV[13], ARGV[14]
-local function repeated(f) return string.byte(place_flags, f) % 2 == 1 end
+local hit_flags, row_flags = ARGV[13], ARGV[14]
+local function repeated(f) return string.byte(hit_flags, f) % 2 == 1 end
+local function in_cur(f) return math.floor(string.byte(hit_flags, f) / 2) % 2 == 1 end
+local function in_prev(f) return string.byte(hit_flags, f) >= 4 end
 local function lean(r) return string.byte(row_flags, r + 1) % 2 == 1 end
 local function member(r) return string.byte(row_flags, r + 1) >= 2 end
-local weight = {}
-for p, w in string.gmatch(ARGV[21], '(%d+) (%d+)') do weight[tonumber(p)] = tonumber(w) end
+local hit_row, weight = {}, {}  -- each hit's row, and the hits it stands for (a known link's others left out)
+do
+  local rw = numbers(ARGV[21])
+  for f = 1, #fields do hit_row[f] = rw[2 * f - 1]; weight[f] = rw[2 * f] end
+end
 local link_size = tonumber(ARGV[15])
 local B, P, H, G = KEYS[3], KEYS[4], KEYS[9], KEYS[10]
 -- the bursty test's first half (the worker checks it again): far above the history's average and peak
@@ -228,13 +245,10 @@ local history_s = math.max(now - math.max(tonumber(since), tonumber(ARGV[20])) -
 -- the batch's hits and their distinct buckets
 local hits, order, state = {}, {}, {}
 for f = 1, #fields do
-  if (cur[f] == 1 or prev[f] == 1 or repeated(f)) and string.byte(place_flags, f) < 2 then
-    hits[#hits + 1] = f
-    local k = fields[f]
-    if not state[k] then state[k] = {}; order[#order + 1] = k end
-  end
+  hits[f] = f
+  local k = fields[f]
+  if not state[k] then state[k] = {}; order[#order + 1] = k end
 end
-if #hits == 0 then return finish() end
 local PACKED = '^(%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+)$'
 local function read(key, list)  -- each bucket's packed figures and link
   local names = {}
@@ -296,7 +310,7 @@ local anames, named = {}, {}
 for _, f in ipairs(hits) do
   local k = fields[f]
   if state[k].a < min_authors then
-    local nm = k .. authors[row_comment[math.floor((f - 1) / bands) + 1] + 1]
+    local nm = k .. authors[row_comment[hit_row[f] + 1] + 1]
     if not named[nm] then named[nm] = true; anames[#anames + 1] = nm end
   end
 end
@@ -309,16 +323,16 @@ end
 local fresh_of = {}
 local writes = {}
 for _, f in ipairs(hits) do
-  local r = math.floor((f - 1) / bands)
+  local r = hit_row[f]
   local k = fields[f]
   local s = state[k]
   local i = row_comment[r + 1] + 1
   if s.opened and not s.started then
     s.started = true
-    if not s.prev_bucket and prev[f] == 1 then s.t, s.p = s.t + 1, s.p + 1 end  -- a first sighting last slot
-    if cur[f] == 1 or repeated(f) then s.t = s.t + 1 end  -- a first sighting earlier in this slot
+    if not s.prev_bucket and in_prev(f) then s.t, s.p = s.t + 1, s.p + 1 end  -- a first sighting last slot
+    if in_cur(f) or repeated(f) then s.t = s.t + 1 end  -- a first sighting earlier in this slot
   end
-  local n = weight[f] or 1  -- a hit may stand for others of its bucket left out
+  local n = weight[f]  -- a hit may stand for others of its bucket left out
   s.t = s.t + n
   if s.a < min_authors then
     local nm = k .. authors[i]
@@ -458,6 +472,75 @@ class SiteScores:
             state[1] = min(self.size, state[1] + values.size)
 
 
+def _sorted_unique(values: np.ndarray, kind: str | None = None) -> np.ndarray:
+    values = np.sort(values, kind=kind)
+    if values.size < 2:
+        return values
+    keep = np.empty(values.size, dtype=bool)
+    keep[0] = True
+    np.not_equal(values[1:], values[:-1], out=keep[1:])
+    return values[keep]
+
+
+class Sightings:
+    """One worker's copy of the band keys seen in the recent slots, in step with the slots' lists in Redis.
+
+    Each slot's list in Redis holds one string per batch: that batch's first
+    sightings, 8 bytes a key.  A worker reads what the others added since its
+    last batch (its offset into each list) in the same script call that adds
+    its own, so Redis never tests membership: the worker does, on sorted numpy
+    chunks (merged as they pile up, so a slot costs O(log n) searches).  Before
+    each batch the worker reads what was appended since (one LRANGE per slot,
+    pipelined: a start or a new slot reads the whole list), so a key another
+    worker saw in its last batch is a hit here.  A key two workers first see
+    between that read and their script calls, within a millisecond, is a first
+    sighting for both: its bucket misses that one hit.
+    """
+
+    def __init__(self):
+        self._slots: dict[int, list] = {}  # slot -> [sorted unique uint64 chunks, entries read from its list]
+
+    def catch_up(self, client, lists: dict[int, str]) -> None:
+        """Read what was appended to each slot's list since this worker last read it (all of a slot it has not
+        read yet: a start, a new slot), in one round trip."""
+        pipe = client.pipeline(transaction=False)
+        for slot, key in lists.items():
+            pipe.lrange(key, self._slots.setdefault(slot, [[], 0])[1], -1)
+        for slot, blobs in zip(lists, pipe.execute()):
+            self.add(slot, blobs)
+
+    def find(self, slot: int, values: np.ndarray) -> tuple[np.ndarray, int]:
+        """Which ``values`` the slot has seen, and this worker's offset into the slot's list."""
+        for old in [s for s in self._slots if s < slot - 1]:
+            del self._slots[old]
+        chunks, offset = self._slots.setdefault(slot, [[], 0])
+        found = np.zeros(values.size, dtype=bool)
+        if chunks:
+            order = np.argsort(values)  # sorted queries: searches that walk each chunk once
+            ordered = values[order]
+            hit = np.zeros(values.size, dtype=bool)
+            for chunk in chunks:
+                at = np.searchsorted(chunk, ordered)
+                np.minimum(at, chunk.size - 1, out=at)
+                hit |= chunk[at] == ordered
+            found[order] = hit
+        return found, offset
+
+    def add(self, slot: int, blobs, own: np.ndarray | None = None, *, pushed: bool = False) -> None:
+        """Add the list entries read (``blobs``) and this worker's own first sightings (``own``, pushed last)."""
+        entry = self._slots.setdefault(slot, [[], 0])
+        entry[1] += len(blobs) + (1 if pushed else 0)
+        parts = [np.frombuffer(b, dtype=">u8") for b in blobs] + ([own] if own is not None and own.size else [])
+        if not parts:
+            return
+        chunks = entry[0]
+        chunks.append(_sorted_unique(np.concatenate(parts).astype(np.uint64)))
+        while len(chunks) > 1 and chunks[-2].size <= 2 * chunks[-1].size:
+            last = chunks.pop()
+            # two sorted runs: a stable sort merges them in linear time
+            chunks[-1] = _sorted_unique(np.concatenate((chunks[-1], last)), kind="stable")
+
+
 class CampaignPolicy:
     """A :class:`worker.policies.BatchPolicy` that finds campaigns (see the module doc).
 
@@ -528,6 +611,7 @@ class CampaignPolicy:
         # other buckets are linked from link_size comments on, so the campaign follows its variants.
         self._links: dict[int, tuple[str, float]] = {}
         self._pending: dict[int, tuple[int, float]] = {}  # linked band key -> (hits left uncounted, last counted)
+        self._sightings = Sightings()
         self._purge_at = -np.inf
 
     def apply(self, client, comments: Sequence, scores: Sequence[float], decisions: list[Decision]) -> list[Decision]:
@@ -552,7 +636,7 @@ class CampaignPolicy:
         history = int(now // (self.baseline_days * DAY_S))
         generation = int(now // self._author_generation_s())
         k = self.keys.campaigns
-        return [k(self.tag, "seen", str(slot)), k(self.tag, "seen", str(slot - 1)),
+        return [k(self.tag, "sightings", str(slot)), k(self.tag, "sightings", str(slot - 1)),
                 k(self.tag, "buckets", str(slot)), k(self.tag, "buckets", str(slot - 1)),
                 k("authors", str(generation)), k("authors", str(generation - 1)), k("sites"), k(self.tag, "since"),
                 k(self.tag, "history", str(history)), k(self.tag, "history", str(history - 1)),
@@ -578,18 +662,28 @@ class CampaignPolicy:
         if scores is not None and len(scores) != len(comments):
             raise ValueError(f"campaigns: {len(scores)} scores for {len(comments)} comments")
         eligible, keys = self.band_keys(texts)
-        blob = keys.ravel().astype(">u8").tobytes()
-        _, first_places = np.unique(keys.ravel(), return_index=True)
-        place_flags = np.ones(keys.size, dtype=np.uint8)  # 1: the key occurs earlier in the batch
-        place_flags[first_places] = 0
+        flat = keys.ravel()
+        _, first_places = np.unique(flat, return_index=True)
+        repeated = np.ones(flat.size, dtype=bool)  # the key occurs earlier in the batch
+        repeated[first_places] = False
         known, skip, weights = self._known_members(keys, now)
-        place_flags[skip] += 2  # 2: a hit this worker leaves uncounted
+        slot = int(now // (self.window_s / 2.0))
+        state_keys = self.state_keys(now)
+        self._sightings.catch_up(client, {slot: state_keys[0], slot - 1: state_keys[1]})
+        in_cur, cur_offset = self._sightings.find(slot, flat)
+        in_prev, prev_offset = self._sightings.find(slot - 1, flat)
+        hit = repeated | in_cur | in_prev
+        hit[skip] = False  # hits this worker leaves uncounted
+        hit_places = np.flatnonzero(hit)
+        hit_flags = (repeated[hit_places] * 1 + in_cur[hit_places] * 2 + in_prev[hit_places] * 4).astype(np.uint8)
+        hit_weights = [weights.get(p, 1) for p in (hit_places + 1).tolist()] if weights else [1] * hit_places.size
+        hit_rows = " ".join(f"{r} {w}" for r, w in zip((hit_places // self.bands).tolist(), hit_weights))
+        firsts = flat[first_places[~in_cur[first_places]]]  # first sightings in this slot, once each
         row_flags = self._lean_rows(eligible, sites, scores).astype(np.uint8)  # 1: leans spam-ward
         row_flags[list(known)] += 2  # 2: a known member
         site_list = list(dict.fromkeys(sites))
         site_index = {s: n for n, s in enumerate(site_list, 1)}
         authors = b"".join(author_key(site, _get(c, "author"), _get(c, "id")) for site, c in zip(sites, comments))
-        state_keys = self.state_keys(now)
         slot_s = self.window_s / 2.0
         slot_ttl = max(1, int((int(now // slot_s) + 2) * slot_s - now) + 1)  # relative: the server's clock may differ
         if self._script is None:
@@ -597,12 +691,16 @@ class CampaignPolicy:
         reply = self._script(
             keys=state_keys,
             args=[f"{now:.3f}", self.min_size, self.bands, slot_ttl, 2 * self._author_generation_s(),
-                  2 * self.baseline_days * DAY_S + 3600, self.new_author_s, self.min_authors, blob, authors,
+                  2 * self.baseline_days * DAY_S + 3600, self.new_author_s, self.min_authors,
+                  flat[hit_places].astype(">u8").tobytes(), authors,
                   " ".join(map(str, eligible.tolist())), " ".join(str(site_index[s]) for s in sites),
-                  place_flags.tobytes(), row_flags.tobytes(), self.link_size, self.warmup_s, self.window_s,
-                  self.burst_ratio, self.peak_ratio, self._history_start(now),
-                  " ".join(f"{p} {w}" for p, w in weights.items()), "1" if known else "0", *site_list],
+                  hit_flags.tobytes(), row_flags.tobytes(), self.link_size, self.warmup_s, self.window_s,
+                  self.burst_ratio, self.peak_ratio, self._history_start(now), hit_rows, "1" if known else "0",
+                  firsts.astype(">u8").tobytes(), cur_offset, prev_offset, *site_list],
             client=client)
+        self._sightings.add(slot, reply[3], firsts, pushed=firsts.size > 0)
+        self._sightings.add(slot - 1, reply[4])
+        reply = [*reply[:3], *reply[5:]]
         members = self._decide(client, comments, eligible, keys, known, reply, state_keys[2], now)
         if scores is not None and self.signals != "authors":
             plain = [i for i in range(len(comments)) if i not in members]

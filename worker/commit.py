@@ -31,30 +31,53 @@ cannot write a second verdict), one XACK of the whole batch last (a comment
 is never acked without its verdict).  Holds, counters and acks are batched
 into one command each (the hold queue follows each id's latest version: an
 edit that is not held leaves it).  Dead letters: XADD, then XACK, one by one.
+
+The batch's rows travel as one JSON argument that the script decodes with
+``cjson``, and what an action means (held? counted?) comes as per-row flags
+computed in Python (:func:`action_flags`): the script never compares action names.
 """
 from __future__ import annotations
 
 import hashlib
+import json
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 from redis.exceptions import NoScriptError
 
+from worker.routing import HOLD, PUBLISH, REJECT
 from worker.settings import Keys
 from worker.validation import Comment, DeadLetter
 
 WRITTEN = 1
 DUPLICATE = 0
 
+# Per-row flags of the commit script, computed here from the action: the script never reads an action.
+HOLD_FLAG = 1  # the comment joins the hold queue
+COUNT_FLAG = 2  # the comment counts under "<site>:<action>" in rates:{minute} besides "<site>:total"
+_ACTION_FLAGS = {PUBLISH: 0, HOLD: HOLD_FLAG | COUNT_FLAG, REJECT: COUNT_FLAG}
+
+# Rows travel as one JSON argument (decoded by the script with cjson) instead of a dozen arguments each:
+# a fraction of the encoding and parsing on both sides.  Text goes as UTF-8, not as \u escapes.
+_dumps = json.JSONEncoder(ensure_ascii=False, separators=(",", ":"), check_circular=False).encode
+
+
+def action_flags(action: str) -> int:
+    """The commit script's flags for ``action``: an action this table does not know is counted, never held."""
+    return _ACTION_FLAGS.get(action, COUNT_FLAG)
+
 COMMIT_LUA = r"""
 local stream, verdicts, held, rates, deadletter = KEYS[1], KEYS[2], KEYS[3], KEYS[4], KEYS[5]
 local group, vmax, text_ttl, done_ttl, rates_ttl, now, model, dmax =
     ARGV[1], ARGV[2], ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7], ARGV[8]
 local consumer, first, last, span = ARGV[9], ARGV[10], ARGV[11], ARGV[12]
-local n = tonumber(ARGV[13])
+-- One JSON array of rows: {stream id, id, score, flags, reasons, site, text, author, ts, rule, campaign,
+-- digest, action, counter}; flags (from Python): 1 hold the comment, 2 count it under its counter field.
+local rows = cjson.decode(ARGV[13])
+local dead = cjson.decode(ARGV[14])  -- {stream id, {name, value, ...}} per dead letter
+local n = #rows
 local out, acks, counts, fields = {}, {}, {}, {}
-local held_state, held_ids = {}, {}  -- id -> 'add' | 'rem', the id's latest version wins
-local a = 14
+local held_state, held_ids = {}, {}  -- id -> true (add) | false (remove), the id's latest version wins
 -- The batch's entries this consumer still owns: one read of its pending list over the batch's id range.
 -- An empty group: the transport acknowledges outside Redis, and the done markers alone decide.
 local mine = nil
@@ -74,10 +97,9 @@ local function set_held(id, state)
   held_state[id] = state
 end
 for i = 1, n do
-  local sid, id, score, action, reasons, site, text, author, ts, rule, campaign, digest =
-      ARGV[a], ARGV[a + 1], ARGV[a + 2], ARGV[a + 3], ARGV[a + 4], ARGV[a + 5], ARGV[a + 6], ARGV[a + 7], ARGV[a + 8],
-      ARGV[a + 9], ARGV[a + 10], ARGV[a + 11]
-  a = a + 12
+  local r = rows[i]
+  local sid, id, score, flags, reasons, site, text, author, ts, rule, campaign, digest, action, counter =
+      r[1], r[2], r[3], r[4], r[5], r[6], r[7], r[8], r[9], r[10], r[11], r[12], r[13], r[14]
   local done, cache = KEYS[4 + 2 * i], KEYS[5 + 2 * i]
   out[i] = 0
   if still_pending(sid) then
@@ -110,9 +132,9 @@ for i = 1, n do
                  'score', score, 'action', action, 'rule', rule, 'model', model, 'version', version, 'digest', digest,
                  'reasons', reasons, 'campaign', campaign)
       redis.call('EXPIRE', cache, text_ttl)
-      if action == 'hold' then set_held(id, 'add') elseif version > 1 then set_held(id, 'rem') end
+      if flags % 2 == 1 then set_held(id, true) elseif version > 1 then set_held(id, false) end
       count(site .. ':total')
-      if action ~= 'publish' then count(site .. ':' .. action) end
+      if flags >= 2 then count(counter) end
       out[i] = 1
     end
     acks[#acks + 1] = sid
@@ -120,7 +142,7 @@ for i = 1, n do
 end
 local holds, releases = {}, {}
 for _, id in ipairs(held_ids) do
-  if held_state[id] == 'add' then holds[#holds + 1] = now; holds[#holds + 1] = id
+  if held_state[id] then holds[#holds + 1] = now; holds[#holds + 1] = id
   else releases[#releases + 1] = id end
 end
 if #holds > 0 then redis.call('ZADD', held, unpack(holds)) end
@@ -131,20 +153,15 @@ if #fields > 0 then
 end
 -- Acked last: a script stopped by a refused command leaves no comment acked without its verdict.
 if #acks > 0 and mine then redis.call('XACK', stream, group, unpack(acks)) end
-local m = tonumber(ARGV[a])
-a = a + 1
-for j = 1, m do
-  local sid, np = ARGV[a], tonumber(ARGV[a + 1])
-  a = a + 2
+for j, d in ipairs(dead) do
   out[n + j] = 0
-  if still_pending(sid) then
+  if still_pending(d[1]) then
     local cmd = {'XADD', deadletter, 'MAXLEN', '~', dmax, '*'}
-    for k = 0, 2 * np - 1 do cmd[#cmd + 1] = ARGV[a + k] end
+    for _, v in ipairs(d[2]) do cmd[#cmd + 1] = v end
     redis.call(unpack(cmd))
-    if mine then redis.call('XACK', stream, group, sid) end
+    if mine then redis.call('XACK', stream, group, d[1]) end
     out[n + j] = 1
   end
-  a = a + 2 * np
 end
 return out
 """
@@ -217,20 +234,19 @@ class BatchCommitter:
         first, last = min(ids, key=_id_order), max(ids, key=_id_order)
         span = 2 * len(ids) + 64  # room for leftovers of an earlier failed commit in the same range
         args = [k.group if self.acknowledges else "", lim.verdicts_maxlen, lim.text_cache_ttl_s, lim.done_ttl_s, lim.rates_ttl_s,
-                f"{now:.3f}", model, lim.deadletter_maxlen, consumer, first, last, span, len(scored)]
+                f"{now:.3f}", model, lim.deadletter_maxlen, consumer, first, last, span]
+        rows = []
         for s in scored:
             c = s.comment
             keys.append(k.done(c.id))
             keys.append(k.text(c.id))
-            args += (c.stream_id, c.id, s.score, s.action, s.reasons, c.site, c.text, c.author, c.ts, s.rule,
-                     s.campaign, text_digest(c.text))
-        args.append(len(dead))
+            flags = action_flags(s.action)
+            rows.append((c.stream_id, c.id, s.score, flags, s.reasons, c.site, c.text, c.author, c.ts, s.rule,
+                         s.campaign, text_digest(c.text), s.action, f"{c.site}:{s.action}" if flags & COUNT_FLAG else ""))
         source = self.source
-        for d in dead:
-            fields = d.as_fields(source)
-            args += (d.stream_id, len(fields))
-            for name, value in fields.items():
-                args += (name, value)
+        packed_dead = [(d.stream_id, [x for pair in d.as_fields(source).items() for x in pair]) for d in dead]
+        args.append(_dumps(rows))
+        args.append(_dumps(packed_dead))
         return keys, args
 
     def commit(self, client, scored, dead, *, model: str, now: float, consumer: str, pipeline=None):
