@@ -29,9 +29,9 @@ from dataclasses import dataclass
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, Info
 
+from model.actions import ACTIONS, FLAGGED_ACTIONS
+
 OTHER = "other"
-ACTIONS = ("publish", "hold", "reject")
-FLAGGED_ACTIONS = frozenset({"hold", "reject"})
 FEEDBACK_LABELS = ("spam", "ham")
 RETRAIN_OUTCOMES = ("promoted", "refused", "failed", "skipped")
 _REASON = re.compile(r"[a-z][a-z0-9_]{0,39}")

@@ -161,17 +161,18 @@ def test_targets_are_validated(kwargs, match):
         ({"hold": -0.1, "reject": 0.5}, ValueError, "hold"),
         ({"hold": 0.1, "reject": 1.5}, ValueError, "reject"),
         ({"hold": float("nan"), "reject": 0.5}, ValueError, "hold"),
+        ({"hold": True, "reject": 0.5}, ValueError, "hold"),
+        ({"hold": 0.1, "reject": "0.9"}, ValueError, "reject"),
     ],
-    ids=["hold-above-reject", "negative", "above-one", "nan"],
+    ids=["hold-above-reject", "negative", "above-one", "nan", "bool", "string"],
 )
 def test_thresholds_are_validated(kwargs, error, match):
     with pytest.raises(error, match=match):
         Thresholds(**kwargs)
 
 
-def test_actions_and_overrides():
+def test_overrides_and_dict_round_trip():
     t = Thresholds(hold=0.6, reject=0.95)
-    assert t.actions(np.array([0.1, 0.6, 0.94, 0.95, 1.0])) == ["publish", "hold", "hold", "reject", "reject"]
     assert t.with_overrides(hold=0.5) == Thresholds(hold=0.5, reject=0.95)
     assert t.with_overrides() == t
     assert Thresholds.from_dict(t.to_dict()) == t

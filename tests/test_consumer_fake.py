@@ -10,7 +10,8 @@ import pytest
 
 from scorers import StandInThresholds, WordScorer
 from worker.connection import raw_stream_replies
-from worker.consumer import StreamConsumer, format_reasons
+from worker.consumer import StreamConsumer
+from worker.verdicts import format_reasons
 from worker.loader import FileModelSource, StaticModelSource
 from worker.routing import Decision
 from worker.settings import Keys, WorkerSettings

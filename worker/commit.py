@@ -41,7 +41,8 @@ from dataclasses import dataclass
 from redis.exceptions import NoScriptError
 
 from worker.settings import Keys
-from worker.validation import Comment, DeadLetter
+from worker.validation import DeadLetter
+from worker.verdicts import Verdict as Scored  # the verdict record; its home is worker/verdicts.py
 
 WRITTEN = 1
 DUPLICATE = 0
@@ -144,18 +145,6 @@ for j = 1, m do
 end
 return out
 """
-
-
-@dataclass(frozen=True, slots=True)
-class Scored:
-    """One comment ready to commit: its score, action and reasons already formatted, and the rule that decided."""
-
-    comment: Comment
-    score: str
-    action: str
-    reasons: str
-    rule: str = "model"
-    campaign: str = ""
 
 
 def text_digest(text: str) -> str:

@@ -34,10 +34,10 @@ import secrets
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
+from model.actions import Action
 from worker.settings import Keys
 
-PUBLISH = "publish"
-REJECT = "reject"
+PUBLISH, REJECT = Action.PUBLISH, Action.REJECT
 LABEL_OF = {PUBLISH: "ham", REJECT: "spam"}
 ACTION_OF = {label: action for action, label in LABEL_OF.items()}
 DECISIONS_MAXLEN = 1_000_000
