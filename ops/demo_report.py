@@ -11,6 +11,7 @@ import html
 import math
 from datetime import datetime, timezone
 
+from model.actions import THRESHOLD_ACTIONS, Action
 from ops.demo import DemoResult
 
 WIDTH, HEIGHT = 960, 300
@@ -58,8 +59,8 @@ def summary_text(result: DemoResult, *, backend: str) -> str:
     report = result.retrain_report
     lines += [
         "",
-        f"actions: {actions.get('publish', 0):,} published, {actions.get('hold', 0):,} held, "
-        f"{actions.get('reject', 0):,} rejected of {f['comments']:,} comments "
+        f"actions: {actions.get(Action.PUBLISH, 0):,} published, {actions.get(Action.HOLD, 0):,} held, "
+        f"{actions.get(Action.REJECT, 0):,} rejected of {f['comments']:,} comments "
         f"({f['kinds'].get('ham', 0):,} ham, {f['kinds'].get('spam', 0):,} background spam, "
         f"{f['kinds'].get('wave', 0):,} wave)",
         f"detection delay after the wave began: campaign {_delay(delays['campaign_start'])}, "
@@ -219,11 +220,11 @@ def score_histogram_svg(result: DemoResult, phase: str, *, bins: int = 36) -> st
         th = result.thresholds.get(model)
         if not th:
             continue
-        for k, name in enumerate(("hold", "reject")):
-            x = sx(_logit(th[name]))
+        for k, name in enumerate(THRESHOLD_ACTIONS):
+            x = sx(_logit(getattr(th, name)))
             body.append(f'<line x1="{x:.1f}" x2="{x:.1f}" y1="{PAD_T}" y2="{height - PAD_B}" stroke="#555" '
                         f'stroke-dasharray="4,3"/>')
-            body.append(f'<text x="{x + 3:.1f}" y="{PAD_T + 30 + 13 * k}" font-size="10">{name} {th[name]:.4g}</text>')
+            body.append(f'<text x="{x + 3:.1f}" y="{PAD_T + 30 + 13 * k}" font-size="10">{name} {getattr(th, name):.4g}</text>')
     label = "before the retrain (first model)" if phase == "before" else "after the retrain (new model)"
     body.append(f'<text x="{width - PAD_R - 4}" y="{PAD_T + 14}" text-anchor="end" font-size="12" '
                 f'font-weight="bold">{html.escape(label)}</text>')

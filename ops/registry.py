@@ -33,6 +33,7 @@ from pathlib import Path
 
 import redis
 
+from model.actions import THRESHOLD_ACTIONS
 from model.errors import ArtifactError, DataError, SeawallError
 from worker.settings import Keys
 
@@ -265,8 +266,8 @@ class Registry:
             "source": source,
             "parent": parent,
             "labels_cursor": labels_cursor,
-            "hold": f"{float(thresholds.hold):.6f}" if thresholds is not None else "",
-            "reject": f"{float(thresholds.reject):.6f}" if thresholds is not None else "",
+            **{a.value: f"{float(getattr(thresholds, a)):.6f}" if thresholds is not None else ""
+               for a in THRESHOLD_ACTIONS},
         }
         pipe = pipeline if pipeline is not None else self.client.pipeline(transaction=True)
         pipe.set(self.blob_key(version), bytes(data))

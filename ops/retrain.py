@@ -685,7 +685,7 @@ def _gate(active, models: dict, entries: dict, holdout: list[LabelRow], canary: 
     for name, model in models.items():
         try:
             thresholds = model.calibrate(texts, y_all, reject_fpr=settings.reject_fpr, hold_fpr=settings.hold_fpr)
-            entries[name]["thresholds"] = {"hold": float(thresholds.hold), "reject": float(thresholds.reject)}
+            entries[name]["thresholds"] = thresholds.to_dict()
         except DataError as exc:
             report["reasons"].append(f"{_NAMES[name]}: thresholds kept from the active model: {exc}")
         entries[name]["version"] = model.version

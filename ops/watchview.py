@@ -18,6 +18,7 @@ from ops.times import age, clock
 from ops.waves import read_active
 from worker.campaigns import read_campaigns
 from worker.events import Event, parse_event
+from worker.rates import rate_counts
 from worker.settings import Keys
 
 SPARK = "▁▂▃▄▅▆▇█"
@@ -82,19 +83,10 @@ def _site_rows(hashes) -> list[SiteRow]:
     per_site: dict[str, SiteRow] = {}
     n = len(hashes)
     for idx, raw in enumerate(hashes):
-        for k, v in raw.items():
-            site, sep, kind = _text(k).rpartition(":")
-            if not sep or kind not in ("total", "hold", "reject"):
-                continue
-            try:
-                count = int(v)
-            except ValueError:
-                continue
+        for site, (total, flagged) in rate_counts(raw).items():
             row = per_site.setdefault(site, SiteRow(site=site, totals=[0] * n, flagged=[0] * n))
-            if kind == "total":
-                row.totals[idx] += count
-            else:
-                row.flagged[idx] += count
+            row.totals[idx] += total
+            row.flagged[idx] += flagged
     return sorted(per_site.values(), key=lambda r: (-sum(r.totals), r.site))
 
 

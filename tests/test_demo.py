@@ -13,6 +13,7 @@ import re
 
 import pytest
 
+from model.calibration import Thresholds
 import ops.demo as demo_module  # `seawall demo` imports run_demo from here when it runs
 from ops.cli import main
 from ops.scenario import WAVE_SITES
@@ -187,7 +188,7 @@ def test_report_of_a_refused_retrain_says_so_and_shows_no_after_figures():
 
     scenario = Scenario(duration_s=300.0, wave_start_s=120.0, wave_end_s=300.0)
     comments = list(scenario.stream())
-    result = DemoResult(scenario=scenario, first_model="m1", thresholds={"m1": {"hold": 0.5, "reject": 0.9}},
+    result = DemoResult(scenario=scenario, first_model="m1", thresholds={"m1": Thresholds(hold=0.5, reject=0.9)},
                         retrain_report={"decision": "refused", "reasons": ["holdout too small"]})
     result.verdicts = [Verdict(c, "hold" if c.label else "publish", 0.7 if c.label else 0.1, "m1",
                                int((c.ts - scenario.start_ts) // 60)) for c in comments]

@@ -81,6 +81,7 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 
+from model.actions import Action
 from model.minhash import MinHasher, band_hashes
 from model.tokens import Tokenizer
 from worker.events import EVENTS_MAXLEN, add_event
@@ -538,8 +539,8 @@ class CampaignPolicy:
         out = list(decisions)
         for i, campaign in members.items():
             d = out[i]
-            if self.hold and d.action == "publish":
-                out[i] = Decision("hold", CAMPAIGN_RULE, campaign)
+            if self.hold and d.action == Action.PUBLISH:
+                out[i] = Decision(Action.HOLD, CAMPAIGN_RULE, campaign)
             else:
                 out[i] = Decision(d.action, d.rule, campaign)
         return out

@@ -102,6 +102,7 @@ def sklearn_sigmoid(model, texts, labels):
 def measure(n_train: int, n_held: int, n_judge: int) -> dict:
     import numpy as np
 
+    from model.actions import FLAGGED_ACTIONS
     from model.classifier import EmbeddingClassifier
     from worker.routing import Router, RoutingSettings
 
@@ -126,9 +127,9 @@ def measure(n_train: int, n_held: int, n_judge: int) -> dict:
             for method, model in models.items():
                 router = Router.for_model(model, RoutingSettings())
                 p = model.predict_proba_many(texts)
-                flagged = [d.action != "publish" for d in router.decide_many(p, [""] * len(p))]
+                flagged = [d.action in FLAGGED_ACTIONS for d in router.decide_many(p, [""] * len(p))]
                 plain_p = model.predict_proba_many(plain)
-                plain_flagged = [d.action != "publish" for d in router.decide_many(plain_p, [""] * len(plain_p))]
+                plain_flagged = [d.action in FLAGGED_ACTIONS for d in router.decide_many(plain_p, [""] * len(plain_p))]
                 figures[method].append((*calibration_errors(p, y), float(np.mean(plain_flagged)),
                                         float(np.mean(np.array(flagged)[y == 1]))))
     rows = {}

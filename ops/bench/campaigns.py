@@ -46,6 +46,7 @@ import os
 import random
 import tempfile
 
+from model.actions import Action
 from ops.bench import add_harness_arguments, report
 from ops.bench.servers import LocalRedis
 from ops.bench.stream import Harness, invented_comments, run_worker, train_model
@@ -151,7 +152,7 @@ def _count_actions(h: Harness) -> int:
             page = page[1:]
         if not page:
             return held
-        held += sum(1 for _id, f in page if f.get(b"action") == b"hold")
+        held += sum(1 for _id, f in page if f.get(b"action") == Action.HOLD.value.encode())
         last = page[-1][0].decode()
 
 
