@@ -85,38 +85,11 @@ def decode_examples(blob: bytes | None) -> list[tuple[str, int]]:
     return out
 
 
-def _label_value(value, where: str) -> int:
-    if value in (1, "1", "spam", True):
-        return 1
-    if value in (0, "0", "ham", False):
-        return 0
-    raise DataError(f"{where}: label must be spam, ham, 1 or 0, got {value!r}")
-
-
 def read_examples(path: str | Path, *, operation: str) -> list[tuple[str, int]]:
-    """Read a JSON-lines file of ``{"text", "label"}`` objects; errors name the line."""
-    p = Path(path)
-    try:
-        lines = p.read_text(encoding="utf-8").split("\n")
-    except OSError as exc:
-        raise DataError(f"{operation}: cannot read {p}: {exc.strerror}") from None
-    except UnicodeDecodeError:
-        raise DataError(f"{operation}: {p} is not UTF-8") from None
-    out = []
-    for lineno, line in enumerate(lines, 1):
-        if not line.strip():
-            continue
-        where = f"{operation}: {p}:{lineno}"
-        try:
-            obj = json.loads(line)
-        except json.JSONDecodeError as exc:
-            raise DataError(f"{where}: not JSON ({exc.msg}); one object per line") from None
-        if not isinstance(obj, dict) or not isinstance(obj.get("text"), str):
-            raise DataError(f"{where}: expected an object with a text and a label")
-        out.append((obj["text"], _label_value(obj.get("label"), where)))
-    if not out:
-        raise DataError(f"{operation}: {p} has no examples")
-    return out
+    """``[(text, label)]`` of a JSON-lines file of ``{"text", "label"}`` objects (:mod:`ops.datafiles`)."""
+    from ops.datafiles import read_examples as read_data
+
+    return [(e.text, e.label) for e in read_data([path], op=operation)]
 
 
 def split_replay(examples: Sequence[tuple[str, int]], *, replay_max: int, canary_size: int,

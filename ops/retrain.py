@@ -82,8 +82,10 @@ from model.evaluation import evaluate, recall_at_fpr
 from model.minhash import MinHasher, band_hashes, exact_jaccard
 from ops.registry import Registry, load_model
 from ops.settings import RetrainSettings
-from worker.feedback import FeedbackConsumer, scan_labels
+from worker.feedback import FeedbackConsumer
+from worker.labels import label_value, scan_labels
 from worker.settings import Keys
+from worker.streams import stream_id_order
 
 log = logging.getLogger(__name__)
 
@@ -118,24 +120,14 @@ def reports_key(keys: Keys) -> str:
 
 # -- pure steps ---------------------------------------------------------------------
 
-def stream_id_after(a: str, b: str) -> bool:
-    """``a > b`` for Redis stream ids ``ms-seq``."""
-    ams, _, aseq = a.partition("-")
-    bms, _, bseq = b.partition("-")
-    return (int(ams), int(aseq or 0)) > (int(bms), int(bseq or 0))
-
-
 def label_rows(entries) -> list[LabelRow]:
-    """Label records -> rows, the latest label of an id winning, in stream order (pure)."""
+    """``(stream_id, LabelRecord)`` -> rows, the latest label of an id winning, in stream order (pure)."""
     latest: dict[str, LabelRow] = {}
     for sid, rec in entries:
-        label = rec.get("label")
-        text = rec.get("text", "")
-        if label not in ("spam", "ham") or not rec.get("id") or not text.strip():
+        if not rec.usable:
             continue
-        latest.pop(rec["id"], None)  # re-insert so that dict order is the latest label's order
-        latest[rec["id"]] = LabelRow(sid, rec["id"], text, 1 if label == "spam" else 0,
-                                     rec.get("moderator", "") or UNATTRIBUTED)
+        latest.pop(rec.id, None)  # re-insert so that dict order is the latest label's order
+        latest[rec.id] = LabelRow(sid, rec.id, rec.text, label_value(rec.label), rec.moderator or UNATTRIBUTED)
     return list(latest.values())
 
 
@@ -284,7 +276,7 @@ def guard_labels(rows: list[LabelRow], entries, settings: RetrainSettings,
     # A source the cap had to trim is suspect: what it kept trains and judges only
     # where another moderator backs it (see the module docstring, step 3b).
     witnesses = label_rows([(sid, rec) for sid, rec in entries
-                            if (rec.get("moderator", "") or UNATTRIBUTED) not in dropped])
+                            if (rec.moderator or UNATTRIBUTED) not in dropped])
     kept, guard = corroborate(capped, witnesses, set(dropped), similarity=settings.corroboration_similarity)
     for m, n in dropped.items():
         aside = guard[m]["set_aside"]
@@ -516,8 +508,9 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
     report["active"] = active_version
 
     everything = list(scan_labels(client, keys))
-    new_entries = [(sid, rec) for sid, rec in everything if stream_id_after(sid, cursor)]
-    old_entries = [(sid, rec) for sid, rec in everything if not stream_id_after(sid, cursor)]
+    after = stream_id_order(cursor)
+    new_entries = [(sid, rec) for sid, rec in everything if stream_id_order(sid) > after]
+    old_entries = [(sid, rec) for sid, rec in everything if stream_id_order(sid) <= after]
     new_rows = label_rows(new_entries)
     new_ids = {r.id for r in new_rows}
     old_rows = [r for r in label_rows(old_entries) if r.id not in new_ids]
@@ -527,7 +520,7 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
         report["reasons"].append(f"{len(new_rows)} new labels since the last promotion; "
                                  f"retrain.min_new_labels is {settings.min_new_labels}")
         return
-    new_cursor = max((sid for sid, _ in new_entries), key=lambda s: tuple(int(x) for x in s.split("-")))
+    new_cursor = max((sid for sid, _ in new_entries), key=stream_id_order)
     labels["cursor_to"] = new_cursor
 
     rng = random.Random(settings.seed)

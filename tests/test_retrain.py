@@ -32,6 +32,7 @@ from ops.retrain import (
     recent_set_padding,
     retrain,
 )
+from worker.labels import iter_label_records
 from retrain_kit import KEYS, bootstrap, model_bytes, send_feedback, stream
 
 SETTINGS = load_config(environ={}).retrain
@@ -129,12 +130,12 @@ def test_corroboration_sets_aside_a_trimmed_sources_unbacked_labels_only():
 
 
 def test_latest_label_of_an_id_wins_and_bad_records_are_skipped():
-    entries = [("1-0", {"id": "c1", "label": "spam", "text": "x", "moderator": "ana"}),
-               ("2-0", {"id": "c2", "label": "ham", "text": "y"}),
-               ("3-0", {"id": "c1", "label": "ham", "text": "x", "moderator": "bo"}),
-               ("4-0", {"id": "c3", "label": "eh", "text": "z"}),
-               ("5-0", {"id": "c4", "label": "ham", "text": "  "})]
-    rows = label_rows(entries)
+    stored = [("1-0", {"id": "c1", "label": "spam", "text": "x", "moderator": "ana"}),
+              ("2-0", {"id": "c2", "label": "ham", "text": "y"}),
+              ("3-0", {"id": "c1", "label": "ham", "text": "x", "moderator": "bo"}),
+              ("4-0", {"id": "c3", "label": "eh", "text": "z"}),
+              ("5-0", {"id": "c4", "label": "ham", "text": "  "})]
+    rows = label_rows(list(iter_label_records(stored)))
     assert [(r.id, r.y, r.moderator) for r in rows] == [("c2", 0, "(unattributed)"), ("c1", 0, "bo")]
 
 

@@ -41,6 +41,7 @@ from dataclasses import dataclass
 from redis.exceptions import NoScriptError
 
 from worker.settings import Keys
+from worker.streams import stream_id_order as _id_order
 from worker.validation import DeadLetter
 from worker.verdicts import Verdict as Scored  # the verdict record; its home is worker/verdicts.py
 
@@ -233,9 +234,3 @@ class BatchCommitter:
             self._sha = client.script_load(COMMIT_LUA)
             reply = client.evalsha(self._sha, len(keys), *keys, *args)
         return [int(x) for x in reply]
-
-
-def _id_order(stream_id: str) -> tuple[int, int]:
-    """Stream ids order by (ms, seq) as numbers, not as strings ("9-0" < "10-0")."""
-    ms, _, seq = stream_id.partition("-")
-    return int(ms), int(seq or 0)

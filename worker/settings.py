@@ -62,6 +62,11 @@ class Keys:
     def held(self) -> str:
         return self.key("held")
 
+    @property
+    def labels(self) -> str:
+        """The labelled store: a bounded stream of label records (worker/labels.py)."""
+        return self.key("labels")
+
     def text(self, comment_id: str) -> str:
         """Hash caching one comment's text and verdict (TTL ``worker.text_cache_ttl_s``)."""
         return self.key("text", comment_id)
