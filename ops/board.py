@@ -491,7 +491,7 @@ def play(client, policies: Sequence, comments: Sequence[BoardComment], scores: S
     import time
 
     from worker.campaigns import end_idle_campaigns
-    from worker.events import parse_event
+    from worker.events import read_events
 
     scores = [float(s) for s in scores]
     out = Replay(comments=list(comments))
@@ -513,8 +513,5 @@ def play(client, policies: Sequence, comments: Sequence[BoardComment], scores: S
             out.members[comments[i + k].id] = campaign
         i, turn = j, turn + 1
     out.seconds = time.perf_counter() - t0
-    for stream_id, fields in client.xrange(keys.events):
-        event = parse_event(stream_id, fields)
-        if event is not None and event.type == "campaign_start":
-            out.starts.append(event.data)
+    out.starts += [e.data for e in read_events(client, keys.events) if e.type == "campaign_start"]
     return out

@@ -54,7 +54,7 @@ from ops.scenario import SITES, Scenario, ScenarioComment
 from ops.waves import WaveDetector
 from worker.campaigns import campaign_keys
 from worker.consumer import StreamConsumer
-from worker.events import parse_event
+from worker.events import read_events
 from worker.feedback import FeedbackConsumer
 
 log = logging.getLogger("seawall.demo")
@@ -479,12 +479,7 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
 
 
 def _read_events(client, keys) -> list[dict]:
-    out = []
-    for sid, fields in client.xrange(keys.events):
-        event = parse_event(sid, fields)
-        if event is not None:
-            out.append({"id": event.stream_id, "type": event.type, "ts": event.ts, "data": event.data})
-    return out
+    return [{"id": e.stream_id, "type": e.type, "ts": e.ts, "data": e.data} for e in read_events(client, keys.events)]
 
 
 def narrate(event: dict, result: DemoResult, seen: set) -> str:

@@ -30,7 +30,7 @@ from dataclasses import dataclass
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, Info
 
 from model.actions import ACTIONS, FLAGGED_ACTIONS
-from worker.labels import LABELS as FEEDBACK_LABELS, parse_label
+from worker.labels import parse_label
 
 OTHER = "other"
 RETRAIN_OUTCOMES = ("promoted", "refused", "failed", "skipped")

@@ -29,7 +29,7 @@ from ops.httpserver import MetricsServer, redis_model_ready
 from ops.metrics import OTHER, RETRAIN_OUTCOMES, PrometheusObserver, build_metrics
 from ops.waves import WaveDetector, read_active
 from worker.campaigns import CampaignPolicy, end_idle_campaigns, read_campaigns
-from worker.events import parse_event
+from worker.events import parse_event, read_events
 
 log = logging.getLogger("seawall.monitor")
 
@@ -96,9 +96,8 @@ class Monitor:
         for name, stream in (("events", self.keys.events), ("feedback", self.keys.feedback)):
             last = self.client.xrevrange(stream, count=1)
             cursors[name] = _text(last[0][0]) if last else "0-0"
-        for stream_id, fields in self.client.xrevrange(self.keys.events, count=RETRAIN_LOOKBACK):
-            event = parse_event(stream_id, fields)
-            if event is not None and event.type == "retrain":
+        for event in read_events(self.client, self.keys.events, newest_first=True, count=RETRAIN_LOOKBACK):
+            if event.type == "retrain":
                 self.observer.on_retrain(retrain_outcome(event.data), ts=event.ts, count=False)
                 break
         return cursors

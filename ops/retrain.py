@@ -82,6 +82,7 @@ from model.evaluation import evaluate, recall_at_fpr
 from model.minhash import MinHasher, band_hashes, exact_jaccard
 from ops.registry import Registry, load_model
 from ops.settings import RetrainSettings
+from worker.events import add_event
 from worker.feedback import FeedbackConsumer
 from worker.labels import label_value, scan_labels
 from worker.settings import Keys
@@ -452,9 +453,7 @@ def store_report(client, keys: Keys, report: dict, *, kept: int, clock=time.time
     summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "chosen", "reasons", "error")
                if k in report}
     summary["labels_new"] = report.get("labels", {}).get("new", 0)
-    pipe.xadd(keys.events, {"type": "retrain", "ts": f"{clock():.3f}",
-                            "data": json.dumps(summary, sort_keys=True, separators=(",", ":"))},
-              maxlen=100_000, approximate=True)
+    add_event(client, keys.events, "retrain", summary, ts=clock(), pipeline=pipe)
     if pipeline is None:
         pipe.execute()
 

@@ -60,7 +60,7 @@ def collect(client, keys: Keys, *, now: float | None = None, minutes: int = HIST
     pipe = client.pipeline(transaction=False)
     for m in span:
         pipe.hgetall(keys.rates(m))
-    pipe.get(keys.key("models", "active"))
+    pipe.get(keys.models_active)
     pipe.xrevrange(keys.events, count=EVENT_LOOKBACK)
     *hashes, active, raw_events = pipe.execute()
 
@@ -71,7 +71,7 @@ def collect(client, keys: Keys, *, now: float | None = None, minutes: int = HIST
     snap.lag, snap.pending, snap.consumers = _group(client, keys)
     if active:
         snap.model_version = _text(active)
-        created, promoted = client.hmget(keys.key("models", "meta", snap.model_version), ["created_at", "promoted_at"])
+        created, promoted = client.hmget(keys.model_meta(snap.model_version), ["created_at", "promoted_at"])
         snap.model_created, snap.model_promoted = _seconds(created), _seconds(promoted)
     events = [e for e in (parse_event(i, f) for i, f in raw_events) if e is not None]
     snap.retrain = next((e for e in events if e.type == "retrain"), None)

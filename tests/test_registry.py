@@ -175,7 +175,7 @@ def test_model_source_hot_reloads_on_pubsub_and_refuses_a_corrupt_blob(redis_cli
     reloaded = wait_until(lambda: source.poll(), timeout=2, interval=0.02)
     assert reloaded is not None and reloaded.version == b and source.version == b
 
-    redis_client.set(registry.blob_key(c), b"not an artifact at all")
+    redis_client.set(registry.keys.model_blob(c), b"not an artifact at all")
     registry.promote(c)
     assert wait_until(lambda: source.poll(), timeout=0.5, interval=0.02) is None
     assert source.version == b and source.current().version == b

@@ -419,7 +419,7 @@ class Console:
 
     def _model_hold(self, version: str) -> float | None:
         if version not in self._model_holds:
-            raw = self.client.hget(self._registry.meta_key(version), Action.HOLD) if version else None
+            raw = self.client.hget(self.keys.model_meta(version), Action.HOLD) if version else None
             try:
                 self._model_holds[version] = float(raw) if raw else None
             except ValueError:
