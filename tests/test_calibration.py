@@ -282,7 +282,7 @@ def test_a_model_that_ranks_spam_below_ham_is_not_calibrated():
 
 @pytest.fixture(scope="module")
 def trained():
-    from ops.communities import CommunityScenario
+    from ops.lab.communities import CommunityScenario
     from model.classifier import EmbeddingClassifier
 
     rows = CommunityScenario("sq", seed=1).labelled(1500)
@@ -291,7 +291,7 @@ def trained():
 
 @pytest.fixture(scope="module")
 def held():
-    from ops.communities import CommunityScenario
+    from ops.lab.communities import CommunityScenario
 
     rows = CommunityScenario("sq", seed=2).labelled(400)
     return [c.text for c in rows], [c.label for c in rows]
@@ -338,7 +338,7 @@ def test_classifier_platt_matches_scikit_learn_on_the_same_held_out_comments(tra
 
     ref = CalibratedClassifierCV(FrozenEstimator(RawLogOdds().fit(None, None)), method="sigmoid")
     ref.fit(np.asarray(texts, dtype=object), np.asarray(labels))
-    from ops.communities import CommunityScenario
+    from ops.lab.communities import CommunityScenario
 
     other = [c.text for c in CommunityScenario("lc", seed=3).labelled(300)]
     np.testing.assert_allclose(model.predict_proba_many(other), ref.predict_proba(np.asarray(other, dtype=object))[:, 1],

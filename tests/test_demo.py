@@ -14,9 +14,9 @@ import re
 import pytest
 
 from model.calibration import Thresholds
-import ops.demo as demo_module  # `seawall demo` imports run_demo from here when it runs
+import ops.lab.demo as demo_module  # `seawall demo` imports run_demo from here when it runs
 from ops.cli import main
-from ops.scenario import WAVE_SITES
+from ops.lab.scenario import WAVE_SITES
 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory):
@@ -182,9 +182,9 @@ def test_bad_arguments_fail_before_anything_runs(argv, message, capsys):
 
 
 def test_report_of_a_refused_retrain_says_so_and_shows_no_after_figures():
-    from ops.demo import DemoResult, Verdict
-    from ops.demo_report import render_html, summary_text
-    from ops.scenario import Scenario
+    from ops.lab.demo import DemoResult, Verdict
+    from ops.lab.demo_report import render_html, summary_text
+    from ops.lab.scenario import Scenario
 
     scenario = Scenario(duration_s=300.0, wave_start_s=120.0, wave_end_s=300.0)
     comments = list(scenario.stream())

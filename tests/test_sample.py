@@ -7,7 +7,7 @@ import re
 from ops.cli import main
 from ops.commands.labels import parse_label_line
 from ops.datafiles import read_examples
-from ops.scenario import WAVE_TERMS
+from ops.lab.scenario import WAVE_TERMS
 
 
 def rows(path) -> list[dict]:

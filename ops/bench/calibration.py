@@ -1,7 +1,7 @@
 """``seawall bench calibration``: which probability calibration holds up off the model's home ground.
 
-A model is trained on one invented community (the demo's forum, ops/scenario.py,
-or one of ops/communities.py) and calibrated on a held-out share of that same
+A model is trained on one invented community (the demo's forum, ops/lab/scenario.py,
+or one of ops/lab/communities.py) and calibrated on a held-out share of that same
 community, once per method (identity, Platt, temperature, isotonic).  Each is
 then judged on the *other* communities' labelled comments, which it never saw:
 
@@ -36,8 +36,8 @@ def register(sub) -> None:
 
 def labelled(home: str, seed: int, n: int):
     """``n`` labelled comments of community ``home`` (``hl`` is the demo's forum)."""
-    from ops.communities import CommunityScenario
-    from ops.scenario import Scenario
+    from ops.lab.communities import CommunityScenario
+    from ops.lab.scenario import Scenario
 
     if home == "hl":
         return Scenario(seed=seed).training_set(n)
@@ -46,8 +46,8 @@ def labelled(home: str, seed: int, n: int):
 
 def ordinary(home: str, seed: int, n: int):
     """``n`` ordinary comments (no link, price or offer) of community ``home``."""
-    from ops.communities import CommunityScenario
-    from ops.scenario import Scenario
+    from ops.lab.communities import CommunityScenario
+    from ops.lab.scenario import Scenario
 
     if home == "hl":
         rows = [c for c in Scenario(seed=seed).training_set(4 * n) if c.label == 0 and not _offer(c.text)]

@@ -1,6 +1,6 @@
 """``seawall bench retrain``: one gated retrain with both candidates, against the warm start alone.
 
-The data are invented (ops/scenario.py): the first model is trained on the
+The data are invented (ops/lab/scenario.py): the first model is trained on the
 forum's pre-stream training set; 10,000 short labelled comments from the
 stream (with the campaign in it) go through the feedback stream of an
 in-process fakeredis, and one whole ``retrain()`` runs: drain, guard, the
@@ -37,7 +37,7 @@ def register(sub) -> None:
 def _data(n: int, replay_n: int):
     import random
 
-    from ops.scenario import Scenario
+    from ops.lab.scenario import Scenario
 
     scenario = Scenario(seed=11, wave_start_s=600.0, duration_s=48 * 3600.0)
     original = [(c.text, c.label) for c in scenario.training_set(3000)]

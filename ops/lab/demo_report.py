@@ -1,6 +1,6 @@
 """The demo's summary table (text) and its report page (one HTML file, inline SVG, no scripts).
 
-Both are pure functions of a :class:`ops.demo.DemoResult`.  The page has no
+Both are pure functions of a :class:`ops.lab.demo.DemoResult`.  The page has no
 external assets and no JavaScript: it opens from disk anywhere, and a
 headless browser can screenshot it.  It never shows comment text or authors
 beyond the demo's own invented ones, and only in aggregate.
@@ -12,7 +12,7 @@ import math
 from datetime import datetime, timezone
 
 from model.actions import THRESHOLD_ACTIONS, Action
-from ops.demo import DemoResult
+from ops.lab.demo import DemoResult
 
 WIDTH, HEIGHT = 960, 300
 PAD_L, PAD_R, PAD_T, PAD_B = 56, 20, 20, 40
@@ -353,6 +353,6 @@ lines are the serving model's hold and reject thresholds. Before the retrain the
 comments and only the campaign policy holds it; after it, the model scores it like spam.</p>
 <h2>Before and after</h2>
 {before_after_svg(result)}
-<p class="note">All data on this page is invented (see <code>ops/scenario.py</code>); no real people, sites or products.</p>
+<p class="note">All data on this page is invented (see <code>ops/lab/scenario.py</code>); no real people, sites or products.</p>
 </body></html>
 """

@@ -1,6 +1,6 @@
 """The whole story on one command: a forum, a spam wave, the alarms, the retrain, the wave caught.
 
-:func:`run_demo` plays the invented Hedgerow Lane forum (:mod:`ops.scenario`)
+:func:`run_demo` plays the invented Hedgerow Lane forum (:mod:`ops.lab.scenario`)
 through the real parts of Seawall, in-process, on an accelerated clock:
 
 1. a first model is trained on the forum's labelled history, pushed to the
@@ -26,7 +26,7 @@ The simulated clock is injected into every part that reads the time (the
 workers' commit, the detectors, the feedback consumer, the retrain), so the
 per-minute counts and windows follow the story's time, not the wall clock.
 What comes back is a :class:`DemoResult` with every figure the summary table
-and the HTML report (:mod:`ops.demo_report`) show.
+and the HTML report (:mod:`ops.lab.demo_report`) show.
 """
 from __future__ import annotations
 
@@ -50,7 +50,7 @@ from ops.monitor import Monitor, campaign_policy
 from ops.registry import Registry, RegistryModelSource, split_replay
 from ops.rescore import rescore_held
 from ops.retrain import retrain
-from ops.scenario import SITES, Scenario, ScenarioComment
+from ops.lab.scenario import SITES, Scenario, ScenarioComment
 from ops.waves import WaveDetector
 from worker.campaigns import campaign_keys
 from worker.consumer import StreamConsumer

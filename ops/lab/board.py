@@ -36,7 +36,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ops.scenario import ScenarioComment
+from ops.lab.scenario import ScenarioComment
 
 YARD = "larkspur-yard.example"
 KITCHEN = "larkspur-kitchen.example"
@@ -47,7 +47,7 @@ _ALTERNATIVES = re.compile(r"\[([^\[\]]*)\]")
 
 @dataclass(frozen=True)
 class BoardComment(ScenarioComment):
-    """One invented comment with its truth (see :class:`ops.scenario.ScenarioComment`).
+    """One invented comment with its truth (see :class:`ops.lab.scenario.ScenarioComment`).
 
     ``kind`` is the format (``dish``, ``puzzle``, ...), ``chatter``, ``spam``
     (background spam) or ``campaign``; ``campaign`` names the campaign (empty
