@@ -339,6 +339,11 @@ class RegistryModelSource:
     def version(self) -> str | None:
         return self._version
 
+    @property
+    def refused(self) -> frozenset[str]:
+        """Versions that became active but failed to load here; each is tried once, the model in hand stays."""
+        return frozenset(self._refused)
+
     def current(self):
         if self._model is None:
             version = self.registry.active()
