@@ -24,6 +24,7 @@ from prometheus_client import CollectorRegistry
 from redis.exceptions import RedisError
 
 from model.minhash import MinHasher
+from model.params import integer, positive, set_params
 from ops.cusum import WaveParams
 from ops.httpserver import MetricsServer, redis_model_ready
 from ops.metrics import OTHER, RETRAIN_OUTCOMES, PrometheusObserver, build_metrics
@@ -49,6 +50,9 @@ def retrain_outcome(data: dict) -> str:
     return decision if decision in RETRAIN_OUTCOMES else OTHER
 
 
+_PARAMS = {"campaign_window_s": integer(1), "poll_s": positive()}
+
+
 class Monitor:
     """The periodic control-plane pass of one process (see the module doc).
 
@@ -64,14 +68,11 @@ class Monitor:
 
     def __init__(self, *, client, keys, observer: PrometheusObserver, detector: WaveDetector | None = None,
                  campaign_window_s: int = 600, poll_s: float = 5.0, clock=time.time):
-        if not poll_s > 0:
-            raise ValueError(f"Monitor: poll_s must be > 0, got {poll_s!r}")
+        set_params(self, _PARAMS, locals())
         self.client = client
         self.keys = keys
         self.observer = observer
         self.detector = detector
-        self.campaign_window_s = campaign_window_s
-        self.poll_s = poll_s
         self.clock = clock
         self._cursors: dict[str, str] | None = None
         self._stop = threading.Event()
