@@ -13,7 +13,7 @@ from pathlib import Path
 
 import redis
 
-from kit import wait_until
+from kit import Worker, wait_for_progress, wait_until
 from worker.settings import Keys
 
 KEYS = Keys()
@@ -154,6 +154,25 @@ class Producer(threading.Thread):
             i += len(ids)
         self.done.set()
         self.client.close()
+
+
+def start_workers(url: str, tmp_path, *, env: dict | None = None, n: int = 2) -> list[Worker]:
+    """``n`` ``seawall serve`` workers named w0, w1, ... on one real model file written into ``tmp_path``."""
+    model = write_model(tmp_path / "model.bin")
+    return [Worker(url=url, name=f"w{i}", log_dir=tmp_path, model_path=model, env=env).start() for i in range(n)]
+
+
+def wait_for_verdicts(client, n: int, *, stall_s: float = 60.0, keys: Keys = KEYS) -> Counter:
+    """Wait, as long as verdicts keep coming, until ``n`` are written and nothing is pending; the count per id."""
+    wait_for_progress(lambda: client.xlen(keys.verdicts) >= n and group_pending(client, keys) == 0,
+                      lambda: (client.xlen(keys.verdicts), group_pending(client, keys)), stall_s=stall_s,
+                      interval=0.2, what=f"{n} verdicts and nothing pending (progress: verdicts, pending)")
+    return verdict_ids(client, keys)
+
+
+def doubled(counts: Counter) -> int:
+    """Verdicts beyond the first of each id."""
+    return sum(v - 1 for v in counts.values() if v > 1)
 
 
 def write_model(path, seed: int = 0) -> Path:

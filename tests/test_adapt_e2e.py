@@ -4,14 +4,13 @@ from __future__ import annotations
 
 import itertools
 import os
-import signal
 import subprocess
 import sys
 from pathlib import Path
 
 import pytest
 
-from kit import wait_until
+from kit import terminate, wait_until
 from ops.cli import main
 from ops.registry import Registry
 from retrain_kit import KEYS, MODERATORS, stream
@@ -91,12 +90,7 @@ def test_feedback_retrain_promote_hot_reload_and_rollback_with_a_running_worker(
         assert switches_to(r, first, stream()[2200:3200]), log()
         assert worker.poll() is None, log()
     finally:
-        worker.send_signal(signal.SIGTERM)
-        try:
-            code = worker.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            worker.kill()
-            code = worker.wait(timeout=10)
+        code = terminate(worker)
         log_file.close()
     assert code == 0, log()
     assert Registry(client=r, keys=KEYS).active() == first
