@@ -13,7 +13,7 @@ from pathlib import Path
 
 import redis
 
-from kit import Worker, wait_for_progress, wait_until
+from kit import Worker, stop_all, wait_for_progress, wait_until
 from worker.settings import Keys
 
 KEYS = Keys()
@@ -168,6 +168,12 @@ def wait_for_verdicts(client, n: int, *, stall_s: float = 60.0, keys: Keys = KEY
                       lambda: (client.xlen(keys.verdicts), group_pending(client, keys)), stall_s=stall_s,
                       interval=0.2, what=f"{n} verdicts and nothing pending (progress: verdicts, pending)")
     return verdict_ids(client, keys)
+
+
+def stop_run(producer: "Producer", workers) -> list[int]:
+    """Teardown of a run: stop the producer, then every worker; the workers' exit codes."""
+    producer.abort.set()
+    return stop_all(workers)
 
 
 def doubled(counts: Counter) -> int:

@@ -21,6 +21,8 @@ from faults_kit import (
 from kit import stop_all, wait_for_progress, wait_until
 from worker.commit import text_digest
 
+pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
+
 COMMENTS = 4_000
 KILLS = 8
 
@@ -54,8 +56,6 @@ def entries(rng: random.Random) -> list[dict]:
     return out
 
 
-@pytest.mark.redis_server
-@pytest.mark.slow
 def test_sigkills_while_comments_are_edited_give_one_verdict_per_version(redis_server, tmp_path):
     client = redis_server.client()
     rng = random.Random(12)

@@ -10,7 +10,7 @@ import pytest
 import redis
 
 from faults_kit import (KEYS, Producer, consumer_seen, deadletters, doubled, group_pending, start_workers,
-                        wait_for_verdicts, write_model)
+                        stop_run, wait_for_verdicts, write_model)
 from kit import Worker, stop_all, wait_until
 from ops.registry import Registry
 from retrain_kit import model_bytes
@@ -51,8 +51,7 @@ def test_redis_restarts_mid_stream_every_accepted_comment_gets_one_verdict(redis
         assert producer.done.is_set()
         counts = wait_for_verdicts(admin, len(producer.accepted))
     finally:
-        producer.abort.set()
-        codes = stop_all(workers)
+        codes = stop_run(producer, workers)
     entries = admin.xlen(KEYS.comments)
     duplicates = doubled(counts)
     print("faults:", json.dumps({"test": "redis_restarts", "restarts": 2, "accepted": len(producer.accepted),
@@ -131,8 +130,7 @@ def test_client_kill_of_the_workers_connections_reconnects_without_loss(redis_se
         producer.join(timeout=120)
         counts = wait_for_verdicts(admin, n)
     finally:
-        producer.abort.set()
-        codes = stop_all(workers)
+        codes = stop_run(producer, workers)
     duplicates = doubled(counts)
     print("faults:", json.dumps({"test": "client_kill", "cuts": cuts, "connections_killed": killed,
                                  "comments": n, "lost": n - len(counts), "duplicates": duplicates}))

@@ -15,15 +15,15 @@ import time
 import pytest
 
 from faults_kit import (KEYS, Producer, consumer_pending, consumer_seen, deadletters, doubled, group_pending,
-                        start_workers, wait_for_verdicts)
-from kit import stop_all, wait_until
+                        start_workers, stop_run, wait_for_verdicts)
+from kit import wait_until
+
+pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
 
 STALLS = 6
 CLAIM_IDLE_MS = 800
 
 
-@pytest.mark.redis_server
-@pytest.mark.slow
 def test_stalled_workers_past_the_reclaim_time_write_no_duplicate_verdicts(redis_server, tmp_path):
     admin = redis_server.client()
     workers = start_workers(redis_server.url, tmp_path, env={
@@ -60,8 +60,7 @@ def test_stalled_workers_past_the_reclaim_time_write_no_duplicate_verdicts(redis
         producer.join(timeout=60)
         counts = wait_for_verdicts(admin, n)
     finally:
-        producer.abort.set()
-        codes = stop_all(workers)
+        codes = stop_run(producer, workers)
     duplicates = doubled(counts)
     late = sum(w.output().count("already had a verdict") for w in workers)
     print("faults:", json.dumps({"test": "stalls", "stalls": len(stalls),

@@ -10,14 +10,14 @@ import pytest
 from faults_kit import KEYS, Producer, deadletters, group_lag, group_pending, kill_mid_batch, start_workers, verdict_ids
 from kit import stop_all, wait_for_progress, wait_until
 
+pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
+
 COMMENTS = 20_000
 KILLS = 20
 # The run may take as long as the machine needs; it fails only if the verdict count stands still this long.
 STALL_S = 60.0
 
 
-@pytest.mark.redis_server
-@pytest.mark.slow
 def test_twenty_sigkills_during_a_20000_comment_run_lose_and_double_nothing(redis_server, tmp_path):
     client = redis_server.client()
     rng = random.Random(20)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Mapping
 from dataclasses import astuple, dataclass, fields
+from typing import Literal
 
 from worker.settings import Keys
 
@@ -56,7 +57,7 @@ class LabelRecord:
 
     id: str
     text: str
-    label: str
+    label: Literal["spam", "ham", ""]  # "" only for a stored entry whose label does not parse
     moderator: str = ""
     reason: str = ""
     site: str = ""
