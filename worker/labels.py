@@ -47,6 +47,11 @@ def label_value(label: str) -> int:
     return 1 if label == SPAM else 0
 
 
+def label_name(value: int) -> str:
+    """``spam`` for 1, ``ham`` for 0: a 0/1 label as moderators and files spell it."""
+    return SPAM if value else HAM
+
+
 @dataclass(frozen=True, slots=True)
 class LabelRecord:
     """One entry of the labelled store; every field is a string, as Redis keeps it.

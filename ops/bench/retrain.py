@@ -65,6 +65,7 @@ def _one_retrain(active: bytes, original, update, settings):
 
     from ops.registry import Registry, split_replay
     from ops.retrain import retrain
+    from worker.labels import label_name
     from worker.settings import Keys
 
     client = fakeredis.FakeRedis(server=fakeredis.FakeServer())
@@ -75,7 +76,7 @@ def _one_retrain(active: bytes, original, update, settings):
     registry.set_examples(replay=replay_rows, canary=canary)
     pipe = client.pipeline(transaction=False)
     for i, (text, label) in enumerate(update):
-        pipe.xadd(keys.feedback, {"id": f"bench-{i}", "label": "spam" if label else "ham", "text": text,
+        pipe.xadd(keys.feedback, {"id": f"bench-{i}", "label": label_name(label), "text": text,
                                   "moderator": f"mod-{i % 4}"})
     pipe.execute()
     t0 = time.perf_counter()

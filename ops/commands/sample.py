@@ -23,6 +23,8 @@ import json
 import sys
 from pathlib import Path
 
+from worker.labels import label_name
+
 MODERATORS = ("mod-ana", "mod-bo", "mod-cy")
 HISTORY = 3000
 LATER = 600
@@ -61,7 +63,7 @@ def later(n: int, seed: int) -> list[dict]:
 
 
 def _record(c) -> dict:
-    return {"id": c.id, "text": c.text, "label": "spam" if c.label else "ham", "site": c.site, "author": c.author}
+    return {"id": c.id, "text": c.text, "label": label_name(c.label), "site": c.site, "author": c.author}
 
 
 def run(args) -> int:

@@ -56,6 +56,7 @@ from worker.campaigns import campaign_keys
 from worker.consumer import StreamConsumer
 from worker.events import read_events
 from worker.feedback import FeedbackConsumer
+from worker.labels import label_name
 
 log = logging.getLogger("seawall.demo")
 
@@ -298,7 +299,7 @@ def moderate(client, config: Config, rng: random.Random, truth: dict[str, Scenar
         comment = truth.get(cid)
         if comment is None:
             continue
-        label = "spam" if comment.label else "ham"
+        label = label_name(comment.label)
         moderator = MODERATORS[n % len(MODERATORS)]
         pipe.xadd(config.keys.feedback, {"id": cid, "label": label, "moderator": moderator,
                                          "reason": "reported" if cid in reported else "hold queue"})
