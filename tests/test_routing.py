@@ -168,3 +168,12 @@ def test_routing_settings_come_from_the_environment_and_the_config_file(tmp_path
     assert dict(routing_settings_from_environment(env).site_thresholds) == {"a.example": {"hold_floor": 0.8}}
     with pytest.raises(ValueError, match="SEAWALL_WORKER_HOLD_FLOOR"):
         routing_settings_from_environment({"SEAWALL_WORKER_HOLD_FLOOR": "high"})
+
+
+def test_numpy_scores_route_like_floats():
+    router = Router(thresholds=MODEL, settings=NO_FLOORS, site_overrides={"s.example": {"hold": 0.1}})
+    scores = np.array([0.05, 0.2, 0.5, 0.95])
+    sites = ["s.example", "s.example", "", ""]
+    assert [(d.action, d.rule) for d in router.decide_many(scores, sites)] == \
+        [(d.action, d.rule) for d in router.decide_many([float(s) for s in scores], sites)] == \
+        [(PUBLISH, "model"), (HOLD, "site"), (HOLD, "model"), (REJECT, "model")]

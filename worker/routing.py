@@ -66,13 +66,19 @@ class Decision:
             raise ValueError(f"Decision: a campaign decision names its campaign, got {self.campaign!r}")
 
 
-# The six decisions routing can make, shared (a Decision is immutable): no allocation per comment.
-_ROUTED = {(a, r): Decision(a, r) for a in ACTIONS for r in (MODEL_RULE, SITE_RULE)}
+# The six decisions routing can make, shared (a Decision is immutable): no allocation per comment.  Each
+# tuple is indexed by how many thresholds a score reached (0 publish, 1 hold, 2 reject: ACTIONS is mildest first).
+_BY_MODEL = tuple(Decision(a, MODEL_RULE) for a in ACTIONS)
+_BY_SITE = tuple(Decision(a, SITE_RULE) for a in ACTIONS)
 
 
 def route(score: float, thresholds: Thresholds) -> Action:
-    """The action for one score under ``thresholds``: the rule :meth:`Router.decide_many` applies to each comment."""
-    return REJECT if score >= thresholds.reject else HOLD if score >= thresholds.hold else PUBLISH
+    """The action for one score under ``thresholds``: the rule :meth:`Router.decide_many` applies to each comment.
+
+    A score at or above a threshold moves one step up from publish, so the action
+    is :data:`ACTIONS` at the number of thresholds reached.
+    """
+    return ACTIONS[2 if score >= thresholds.reject else 1 if score >= thresholds.hold else 0]
 
 
 def _number(site, name: str, value, low: float, high: float, low_open: bool = False) -> float:
@@ -264,20 +270,20 @@ class Router:
 
         The only path from a score to an action (:func:`route` is the same rule
         for one score); the comparison is written out here because this loop
-        runs for every comment.
+        runs for every comment.  Scores may be floats or numpy floats.
         """
-        default = self._default
+        hold, reject = self._default.hold, self._default.reject
         by_site = self._by_site
         out = []
         for score, site in zip(scores, sites):
-            action = REJECT if score >= default.reject else HOLD if score >= default.hold else PUBLISH
+            reached = 2 if score >= reject else 1 if score >= hold else 0
             c = by_site.get(site) if by_site else None
             if c is not None:
-                own = REJECT if score >= c.reject else HOLD if score >= c.hold else PUBLISH
-                if own != action:
-                    out.append(_ROUTED[own, SITE_RULE])
+                own = 2 if score >= c.reject else 1 if score >= c.hold else 0
+                if own != reached:
+                    out.append(_BY_SITE[own])
                     continue
-            out.append(_ROUTED[action, MODEL_RULE])
+            out.append(_BY_MODEL[reached])
         return out
 
 
