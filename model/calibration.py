@@ -37,7 +37,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from model.actions import Action
+from model.actions import THRESHOLD_ACTIONS, Action
 from model.errors import DataError
 from model.network import sigmoid  # the scoring paths' own logistic: numpy only, fast on a few values
 
@@ -87,7 +87,7 @@ class Thresholds:
     reject: float
 
     def __post_init__(self) -> None:
-        for name in (Action.HOLD, Action.REJECT):
+        for name in (a.value for a in THRESHOLD_ACTIONS):
             object.__setattr__(self, name, _check_threshold(name, getattr(self, name)))
         if self.hold > self.reject:
             raise ValueError(f"thresholds: hold ({self.hold!r}) must not exceed reject ({self.reject!r})")
@@ -100,12 +100,13 @@ class Thresholds:
             reject=self.reject if reject is None else reject,
         )
 
-    def to_dict(self) -> dict:
-        return {Action.HOLD: self.hold, Action.REJECT: self.reject}
+    def to_dict(self) -> dict[str, float]:
+        """``{"hold": ..., "reject": ...}``: each threshold under the name of the action it leads to."""
+        return {a.value: getattr(self, a) for a in THRESHOLD_ACTIONS}
 
     @classmethod
     def from_dict(cls, data: dict) -> "Thresholds":
-        return cls(hold=data[Action.HOLD], reject=data[Action.REJECT])
+        return cls(**{a.value: data[a] for a in THRESHOLD_ACTIONS})
 
 
 #: The probability floors; also the thresholds of a model with no held-out data.
@@ -530,8 +531,8 @@ def choose_thresholds(ham: HeldOutHam | None, targets: ThresholdTargets = DEFAUL
         return Cutoff(name, max(from_target, floor), fpr, from_target, floor, ham.measurable(fpr))
 
     stored = DEFAULT_THRESHOLDS if stored is None else stored
-    hold = one(Action.HOLD, targets.hold_fpr, targets.hold_floor, stored.hold)
-    reject = one(Action.REJECT, targets.reject_fpr, targets.reject_floor, stored.reject)
+    hold = one(Action.HOLD.value, targets.hold_fpr, targets.hold_floor, stored.hold)
+    reject = one(Action.REJECT.value, targets.reject_fpr, targets.reject_floor, stored.reject)
     if hold.value > reject.value:  # only with stored thresholds under crossed floors
         hold = replace(hold, value=reject.value)
     return ThresholdChoice(hold, reject, None if ham is None else ham.n)
