@@ -8,6 +8,7 @@ the command line can print it on one line and the user can go straight there.
 from __future__ import annotations
 
 import json
+import sys
 from collections.abc import Iterable
 from dataclasses import dataclass
 from pathlib import Path
@@ -30,7 +31,14 @@ class Example:
     source: str = ""
 
 
-def _lines(path: Path, op: str):
+def iter_lines(path: str | Path, op: str):
+    """``(number, line)`` of a UTF-8 text file, numbered from 1 (``-`` reads standard input).
+
+    Lines end at ``\n`` only: texts may hold U+2028 and other separators.
+    """
+    if str(path) == "-":
+        yield from _numbered(sys.stdin.buffer, "stdin", op)
+        return
     try:
         fh = open(path, "rb")
     except FileNotFoundError:
@@ -40,11 +48,15 @@ def _lines(path: Path, op: str):
     except OSError as exc:
         raise DataError(f"{op}: {path}: cannot read it ({exc.strerror or exc})") from None
     with fh:
-        for number, raw in enumerate(fh, start=1):
-            try:
-                yield number, raw.decode("utf-8")
-            except UnicodeDecodeError:
-                raise DataError(f"{op}: {path}:{number}: not valid UTF-8; save the file as UTF-8") from None
+        yield from _numbered(fh, path, op)
+
+
+def _numbered(fh, name, op: str):
+    for number, raw in enumerate(fh, start=1):
+        try:
+            yield number, raw.decode("utf-8")
+        except UnicodeDecodeError:
+            raise DataError(f"{op}: {name}:{number}: not valid UTF-8; save the file as UTF-8") from None
 
 
 def parse_object(line: str, where: str, op: str, *, wanted: str = '"text" and "label"') -> dict:
@@ -94,7 +106,7 @@ def read_examples(paths: Iterable[str | Path], *, op: str = "read data") -> list
         raise DataError(f"{op}: no data files given; pass one or more JSON Lines files")
     examples: list[Example] = []
     for path in paths:
-        for number, line in _lines(path, op):
+        for number, line in iter_lines(path, op):
             example = parse_line(line, f"{path}:{number}", op)
             if example is not None:
                 examples.append(example)

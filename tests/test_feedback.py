@@ -253,3 +253,15 @@ def test_a_label_record_round_trips_through_its_stream_fields(fake_redis):
     fake_redis.xadd(KEYS.labels, record.as_fields())
     assert [rec for _s, rec in scan_labels(fake_redis, KEYS)] == [record]
     assert LabelRecord.from_fields({b"id": b"c2", b"label": b"eggs", b"text": b"t"}).usable is False
+
+
+def test_a_label_file_on_standard_input_is_read_like_any_other(monkeypatch):
+    import io
+
+    from ops.commands.labels import read_label_file
+
+    lines = b'{"id": "c1", "label": 1, "text": "win big\\u2028now"}\n\n{"id": "c2", "label": "ham", "text": "ok"}\n'
+    monkeypatch.setattr("sys.stdin", io.TextIOWrapper(io.BytesIO(lines)))
+    records = read_label_file("-", text_max_bytes=100, now=5.0)
+    assert [(r.id, r.label, r.text, r.source) for r in records] == [("c1", "spam", "win big\u2028now", "import"),
+                                                                     ("c2", "ham", "ok", "import")]

@@ -68,19 +68,11 @@ def parse_label_line(line: str, where: str, *, text_max_bytes: int, now: float):
 
 
 def read_label_file(path: str, *, text_max_bytes: int, now: float) -> list:
-    try:
-        handle = contextlib.nullcontext(sys.stdin) if path == "-" else Path(path).open(encoding="utf-8")
-    except OSError as exc:
-        raise DataError(f"labels import: cannot read {path}: {exc.strerror}") from None
-    records = []
-    with handle as lines:
-        try:
-            for lineno, line in enumerate(lines, 1):
-                if line.strip():
-                    records.append(parse_label_line(line, f"{path}:{lineno}", text_max_bytes=text_max_bytes, now=now))
-        except UnicodeDecodeError:
-            raise DataError(f"labels import: {path} is not UTF-8") from None
-    return records
+    """Every record of a label file (``-``: standard input), checked before anything is written."""
+    from ops.datafiles import iter_lines
+
+    return [parse_label_line(line, f"{path}:{number}", text_max_bytes=text_max_bytes, now=now)
+            for number, line in iter_lines(path, "labels import") if line.strip()]
 
 
 def run_import(args) -> int:
