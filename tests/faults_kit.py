@@ -50,8 +50,10 @@ def kill_mid_batch(client, workers, rng, kill_number: int) -> tuple[str, int]:
     new name, so the others must reclaim what the dead one held.  Returns the victim's name at the
     kill and how many entries it held then.
     """
+    # Generous: on a loaded machine the workers restarted by earlier kills may take a while to load the
+    # model and hold a batch again; the kill should still land mid-batch rather than on an idle worker.
     busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name)],
-                      timeout=5, interval=0.01)
+                      timeout=60, interval=0.01)
     victim = rng.choice(busy or workers)
     name, held = victim.name, consumer_pending(client, victim.name)
     assert victim.kill() == -signal.SIGKILL
