@@ -37,10 +37,10 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
+from model.actions import THRESHOLD_ACTIONS, Action
 from model.errors import DataError
 from model.network import sigmoid  # the scoring paths' own logistic: numpy only, fast on a few values
 
-ACTIONS = ("publish", "hold", "reject")
 DEFAULT_REJECT_FPR = 0.001
 DEFAULT_HOLD_FPR = 0.02
 DEFAULT_HOLD_FLOOR = 0.5
@@ -59,21 +59,26 @@ def _expit(z):
 
 
 def _check_threshold(name: str, value: float) -> float:
-    value = float(value)
-    if not (math.isfinite(value) and 0.0 <= value <= 1.0):
-        raise ValueError(f"Thresholds: {name} must be a probability in [0, 1], got {value!r}")
-    return value
+    try:
+        number = float(value) if not isinstance(value, (bool, str, bytes)) else math.nan
+    except (TypeError, ValueError):
+        number = math.nan
+    if not (math.isfinite(number) and 0.0 <= number <= 1.0):
+        raise ValueError(f"thresholds: {name} must be a probability in [0, 1], got {value!r}")
+    return number
 
 
 @dataclass(frozen=True)
 class Thresholds:
     """Scores at or above ``reject`` are rejected, at or above ``hold`` held.
 
+    The one thresholds type: a model's stored thresholds, a router's effective
+    cutoffs for a site.  Which action a score gets is the router's to say
+    (:class:`worker.routing.Router`).
+
     Examples
     --------
     >>> t = Thresholds(hold=0.6, reject=0.95)
-    >>> [t.action(s) for s in (0.1, 0.7, 0.99)]
-    ['publish', 'hold', 'reject']
     >>> t.with_overrides(reject=0.9).reject
     0.9
     """
@@ -82,10 +87,10 @@ class Thresholds:
     reject: float
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "hold", _check_threshold("hold", self.hold))
-        object.__setattr__(self, "reject", _check_threshold("reject", self.reject))
+        for name in (a.value for a in THRESHOLD_ACTIONS):
+            object.__setattr__(self, name, _check_threshold(name, getattr(self, name)))
         if self.hold > self.reject:
-            raise ValueError(f"Thresholds: hold ({self.hold!r}) must not exceed reject ({self.reject!r})")
+            raise ValueError(f"thresholds: hold ({self.hold!r}) must not exceed reject ({self.reject!r})")
 
     def with_overrides(self, hold: float | None = None, reject: float | None = None) -> "Thresholds":
         """A copy with the given thresholds replaced (``None`` keeps the stored one)."""
@@ -95,26 +100,13 @@ class Thresholds:
             reject=self.reject if reject is None else reject,
         )
 
-    def action(self, score: float) -> str:
-        """``publish``, ``hold`` or ``reject`` for one score."""
-        if score >= self.reject:
-            return "reject"
-        if score >= self.hold:
-            return "hold"
-        return "publish"
-
-    def actions(self, scores: np.ndarray) -> list[str]:
-        """:meth:`action` for many scores."""
-        scores = np.asarray(scores, dtype=np.float64)
-        codes = (scores >= self.hold).astype(np.int8) + (scores >= self.reject).astype(np.int8)
-        return [ACTIONS[c] for c in codes]
-
-    def to_dict(self) -> dict:
-        return {"hold": self.hold, "reject": self.reject}
+    def to_dict(self) -> dict[str, float]:
+        """``{"hold": ..., "reject": ...}``: each threshold under the name of the action it leads to."""
+        return {a.value: getattr(self, a) for a in THRESHOLD_ACTIONS}
 
     @classmethod
     def from_dict(cls, data: dict) -> "Thresholds":
-        return cls(hold=data["hold"], reject=data["reject"])
+        return cls(**{a.value: data[a] for a in THRESHOLD_ACTIONS})
 
 
 #: The probability floors; also the thresholds of a model with no held-out data.
@@ -539,8 +531,8 @@ def choose_thresholds(ham: HeldOutHam | None, targets: ThresholdTargets = DEFAUL
         return Cutoff(name, max(from_target, floor), fpr, from_target, floor, ham.measurable(fpr))
 
     stored = DEFAULT_THRESHOLDS if stored is None else stored
-    hold = one("hold", targets.hold_fpr, targets.hold_floor, stored.hold)
-    reject = one("reject", targets.reject_fpr, targets.reject_floor, stored.reject)
+    hold = one(Action.HOLD.value, targets.hold_fpr, targets.hold_floor, stored.hold)
+    reject = one(Action.REJECT.value, targets.reject_fpr, targets.reject_floor, stored.reject)
     if hold.value > reject.value:  # only with stored thresholds under crossed floors
         hold = replace(hold, value=reject.value)
     return ThresholdChoice(hold, reject, None if ham is None else ham.n)

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from model.actions import THRESHOLD_ACTIONS
 from model.calibration import Thresholds
 from model.errors import DataError
 
@@ -148,6 +149,6 @@ def evaluate(labels, scores, thresholds: Thresholds | None = None) -> dict:
         "recall_at_0_1pct_fpr": recall_at_fpr(labels, scores, 0.001),
     }
     if thresholds is not None:
-        out["hold"] = at_threshold(labels, scores, thresholds.hold)
-        out["reject"] = at_threshold(labels, scores, thresholds.reject)
+        for action in THRESHOLD_ACTIONS:
+            out[action.value] = at_threshold(labels, scores, getattr(thresholds, action))
     return out

@@ -28,14 +28,16 @@ from itertools import chain
 
 import numpy as np
 
+from model.params import integer, set_params
+
 EMPTY = 0xFFFFFFFF  # every entry of a comment with no shingles; such signatures match nothing
 _WORD = re.compile(r"\w+")
 
 _PARAMS = {
-    "num_perm": lambda v: isinstance(v, int) and 1 <= v <= 4096,
-    "shingle": lambda v: isinstance(v, int) and 1 <= v <= 16,
-    "seed": lambda v: isinstance(v, int) and v >= 0,
-    "max_words": lambda v: isinstance(v, int) and v >= 1,
+    "num_perm": integer(1, 4096),
+    "shingle": integer(1, 16),
+    "seed": integer(0, 2**63 - 1),
+    "max_words": integer(1),
 }
 
 
@@ -70,15 +72,8 @@ class MinHasher:
 
     def __init__(self, *, num_perm: int = 128, shingle: int = 3, seed: int = 0,
                  words: Callable[[str], list[str]] = default_words, max_words: int = 64):
-        for name, ok in _PARAMS.items():
-            value = locals()[name]
-            if isinstance(value, bool) or not ok(value):
-                raise ValueError(f"MinHasher: bad {name} {value!r}")
-        self.num_perm = num_perm
-        self.shingle = shingle
-        self.seed = seed
+        set_params(self, _PARAMS, locals())
         self.words = words
-        self.max_words = max_words
         rng = np.random.default_rng(seed)
         self._a = rng.integers(0, 1 << 63, size=num_perm, dtype=np.uint64) * np.uint64(2) + np.uint64(1)
         self._b = rng.integers(0, 1 << 63, size=num_perm, dtype=np.uint64)

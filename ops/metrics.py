@@ -29,10 +29,10 @@ from dataclasses import dataclass
 
 from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, Info
 
+from model.actions import ACTIONS, FLAGGED_ACTIONS
+from worker.labels import parse_label
+
 OTHER = "other"
-ACTIONS = ("publish", "hold", "reject")
-FLAGGED_ACTIONS = frozenset({"hold", "reject"})
-FEEDBACK_LABELS = ("spam", "ham")
 RETRAIN_OUTCOMES = ("promoted", "refused", "failed", "skipped")
 _REASON = re.compile(r"[a-z][a-z0-9_]{0,39}")
 
@@ -258,7 +258,11 @@ class PrometheusObserver:
 
     # -- beyond the worker's protocol ---------------------------------------
     def on_feedback(self, label) -> None:
-        self.metrics.feedback.labels(bounded(label, FEEDBACK_LABELS)).inc()
+        try:
+            name = parse_label(label)
+        except ValueError:
+            name = OTHER
+        self.metrics.feedback.labels(name).inc()
 
     def on_retrain(self, outcome, ts: float | None = None, *, count: bool = True) -> None:
         """A retrain finished with ``outcome``; it becomes the last outcome (``count=False``: seen before start-up)."""

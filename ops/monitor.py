@@ -25,12 +25,13 @@ from dataclasses import dataclass
 from prometheus_client import CollectorRegistry
 from redis.exceptions import RedisError
 
+from model.params import integer, positive, set_params
 from ops.cusum import WaveParams
 from ops.httpserver import MetricsServer, redis_model_ready
 from ops.metrics import OTHER, RETRAIN_OUTCOMES, PrometheusObserver, build_metrics
 from ops.waves import WaveDetector, read_active
 from worker.campaigns import end_idle_campaigns, read_campaigns
-from worker.events import parse_event
+from worker.events import parse_event, read_events
 
 log = logging.getLogger("seawall.monitor")
 
@@ -50,6 +51,9 @@ def retrain_outcome(data: dict) -> str:
     return decision if decision in RETRAIN_OUTCOMES else OTHER
 
 
+_PARAMS = {"campaign_window_s": integer(1), "poll_s": positive()}
+
+
 class Monitor:
     """The periodic control-plane pass of one process (see the module doc).
 
@@ -65,14 +69,11 @@ class Monitor:
 
     def __init__(self, *, client, keys, observer: PrometheusObserver, detector: WaveDetector | None = None,
                  campaign_window_s: int = 600, poll_s: float = 5.0, clock=time.time):
-        if not poll_s > 0:
-            raise ValueError(f"Monitor: poll_s must be > 0, got {poll_s!r}")
+        set_params(self, _PARAMS, locals())
         self.client = client
         self.keys = keys
         self.observer = observer
         self.detector = detector
-        self.campaign_window_s = campaign_window_s
-        self.poll_s = poll_s
         self.clock = clock
         self._cursors: dict[str, str] | None = None
         self._stop = threading.Event()
@@ -97,9 +98,8 @@ class Monitor:
         for name, stream in (("events", self.keys.events), ("feedback", self.keys.feedback)):
             last = self.client.xrevrange(stream, count=1)
             cursors[name] = _text(last[0][0]) if last else "0-0"
-        for stream_id, fields in self.client.xrevrange(self.keys.events, count=RETRAIN_LOOKBACK):
-            event = parse_event(stream_id, fields)
-            if event is not None and event.type == "retrain":
+        for event in read_events(self.client, self.keys.events, newest_first=True, count=RETRAIN_LOOKBACK):
+            if event.type == "retrain":
                 self.observer.on_retrain(retrain_outcome(event.data), ts=event.ts, count=False)
                 break
         return cursors

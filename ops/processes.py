@@ -13,7 +13,11 @@ import subprocess
 import time
 from collections.abc import Callable, Sequence
 
+from model.params import integer, positive, real, set_params
+
 log = logging.getLogger("seawall.processes")
+
+_PARAMS = {"n": integer(1, 1024), "restart_delay_s": real(0.0, 3600.0), "stop_timeout_s": positive()}
 
 
 class ProcessGroup:
@@ -29,12 +33,8 @@ class ProcessGroup:
 
     def __init__(self, *, n: int, argv_for: Callable[[int], Sequence[str]], restart_delay_s: float = 1.0,
                  stop_timeout_s: float = 30.0):
-        if isinstance(n, bool) or not isinstance(n, int) or n < 1:
-            raise ValueError(f"ProcessGroup: n must be an integer >= 1, got {n!r}")
-        self.n = n
+        set_params(self, _PARAMS, locals())
         self.argv_for = argv_for
-        self.restart_delay_s = restart_delay_s
-        self.stop_timeout_s = stop_timeout_s
         self._stopping = False
         self._children: dict[int, subprocess.Popen] = {}
 

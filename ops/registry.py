@@ -33,7 +33,9 @@ from pathlib import Path
 
 import redis
 
+from model.actions import THRESHOLD_ACTIONS
 from model.errors import ArtifactError, DataError, SeawallError
+from worker.events import add_event
 from worker.settings import Keys
 
 log = logging.getLogger(__name__)
@@ -84,38 +86,11 @@ def decode_examples(blob: bytes | None) -> list[tuple[str, int]]:
     return out
 
 
-def _label_value(value, where: str) -> int:
-    if value in (1, "1", "spam", True):
-        return 1
-    if value in (0, "0", "ham", False):
-        return 0
-    raise DataError(f"{where}: label must be spam, ham, 1 or 0, got {value!r}")
-
-
 def read_examples(path: str | Path, *, operation: str) -> list[tuple[str, int]]:
-    """Read a JSON-lines file of ``{"text", "label"}`` objects; errors name the line."""
-    p = Path(path)
-    try:
-        lines = p.read_text(encoding="utf-8").split("\n")
-    except OSError as exc:
-        raise DataError(f"{operation}: cannot read {p}: {exc.strerror}") from None
-    except UnicodeDecodeError:
-        raise DataError(f"{operation}: {p} is not UTF-8") from None
-    out = []
-    for lineno, line in enumerate(lines, 1):
-        if not line.strip():
-            continue
-        where = f"{operation}: {p}:{lineno}"
-        try:
-            obj = json.loads(line)
-        except json.JSONDecodeError as exc:
-            raise DataError(f"{where}: not JSON ({exc.msg}); one object per line") from None
-        if not isinstance(obj, dict) or not isinstance(obj.get("text"), str):
-            raise DataError(f"{where}: expected an object with a text and a label")
-        out.append((obj["text"], _label_value(obj.get("label"), where)))
-    if not out:
-        raise DataError(f"{operation}: {p} has no examples")
-    return out
+    """``[(text, label)]`` of a JSON-lines file of ``{"text", "label"}`` objects (:mod:`ops.datafiles`)."""
+    from ops.datafiles import read_examples as read_data
+
+    return [(e.text, e.label) for e in read_data([path], op=operation)]
 
 
 def split_replay(examples: Sequence[tuple[str, int]], *, replay_max: int, canary_size: int,
@@ -157,47 +132,16 @@ class Registry:
         self.keys = keys
         self.clock = clock
 
-    # -- key names ---------------------------------------------------------------
-    def blob_key(self, version: str) -> str:
-        return self.keys.key("models", "blob", version)
-
-    def meta_key(self, version: str) -> str:
-        return self.keys.key("models", "meta", version)
-
-    @property
-    def active_key(self) -> str:
-        return self.keys.key("models", "active")
-
-    @property
-    def history_key(self) -> str:
-        return self.keys.key("models", "history")
-
-    @property
-    def versions_key(self) -> str:
-        return self.keys.key("models", "versions")
-
-    @property
-    def channel(self) -> str:
-        return self.keys.key("models", "changed")
-
-    @property
-    def replay_key(self) -> str:
-        return self.keys.key("models", "replay")
-
-    @property
-    def canary_key(self) -> str:
-        return self.keys.key("models", "canary")
-
     # -- reads -------------------------------------------------------------------
     def active(self) -> str | None:
-        v = self.client.get(self.active_key)
+        v = self.client.get(self.keys.models_active)
         return _s(v) if v is not None else None
 
     def history(self) -> list[str]:
-        return [_s(v) for v in self.client.lrange(self.history_key, 0, -1)]
+        return [_s(v) for v in self.client.lrange(self.keys.models_history, 0, -1)]
 
     def meta(self, version: str) -> dict[str, str]:
-        raw = self.client.hgetall(self.meta_key(version))
+        raw = self.client.hgetall(self.keys.model_meta(version))
         if not raw:
             raise RegistryError(f"models: no version {version!r} in the registry; see `seawall models list`")
         return {_s(k): _s(v) for k, v in raw.items()}
@@ -206,9 +150,9 @@ class Registry:
         """Every pushed version's metadata, newest push first, with ``active`` marked."""
         active = self.active()
         out = []
-        for v in self.client.zrevrange(self.versions_key, 0, -1):
+        for v in self.client.zrevrange(self.keys.models_versions, 0, -1):
             version = _s(v)
-            raw = self.client.hgetall(self.meta_key(version))
+            raw = self.client.hgetall(self.keys.model_meta(version))
             if raw:
                 meta = {_s(k): _s(x) for k, x in raw.items()}
                 meta["active"] = "1" if version == active else "0"
@@ -216,7 +160,7 @@ class Registry:
         return out
 
     def blob(self, version: str) -> bytes:
-        data = self.client.get(self.blob_key(version))
+        data = self.client.get(self.keys.model_blob(version))
         if data is None:
             raise RegistryError(f"models: no artifact for version {version!r}; see `seawall models list`")
         return data
@@ -224,7 +168,7 @@ class Registry:
     def checked_blob(self, version: str) -> bytes:
         """The artifact bytes, refused when they do not match the sha256 recorded at push."""
         data = self.blob(version)
-        expected = self.client.hget(self.meta_key(version), "sha256")
+        expected = self.client.hget(self.keys.model_meta(version), "sha256")
         if expected is not None and hashlib.sha256(data).hexdigest() != _s(expected):
             raise ArtifactError(f"models: artifact {version} does not match its recorded sha256; "
                                 "push the model file again")
@@ -239,10 +183,10 @@ class Registry:
         return load_model(self.checked_blob(version))
 
     def replay(self) -> list[tuple[str, int]]:
-        return decode_examples(self.client.get(self.replay_key))
+        return decode_examples(self.client.get(self.keys.models_replay))
 
     def canary(self) -> list[tuple[str, int]]:
-        return decode_examples(self.client.get(self.canary_key))
+        return decode_examples(self.client.get(self.keys.models_canary))
 
     # -- writes ------------------------------------------------------------------
     def push(self, data: bytes, *, source: str = "push", parent: str = "", labels_cursor: str = "0-0",
@@ -265,13 +209,13 @@ class Registry:
             "source": source,
             "parent": parent,
             "labels_cursor": labels_cursor,
-            "hold": f"{float(thresholds.hold):.6f}" if thresholds is not None else "",
-            "reject": f"{float(thresholds.reject):.6f}" if thresholds is not None else "",
+            **{a.value: f"{float(getattr(thresholds, a)):.6f}" if thresholds is not None else ""
+               for a in THRESHOLD_ACTIONS},
         }
         pipe = pipeline if pipeline is not None else self.client.pipeline(transaction=True)
-        pipe.set(self.blob_key(version), bytes(data))
-        pipe.hset(self.meta_key(version), mapping=meta)
-        pipe.zadd(self.versions_key, {version: float(meta["pushed_at"])})
+        pipe.set(self.keys.model_blob(version), bytes(data))
+        pipe.hset(self.keys.model_meta(version), mapping=meta)
+        pipe.zadd(self.keys.models_versions, {version: float(meta["pushed_at"])})
         if pipeline is None:
             pipe.execute()
         return version
@@ -280,7 +224,7 @@ class Registry:
                      canary: Sequence[tuple[str, int]] | None = None, pipeline=None) -> None:
         """Replace the stored replay sample and/or canary set."""
         pipe = pipeline if pipeline is not None else self.client.pipeline(transaction=True)
-        for key, rows in ((self.replay_key, replay), (self.canary_key, canary)):
+        for key, rows in ((self.keys.models_replay, replay), (self.keys.models_canary, canary)):
             if rows is None:
                 continue
             blob = encode_examples(rows)
@@ -292,8 +236,7 @@ class Registry:
             pipe.execute()
 
     def _event(self, pipe, kind: str, data: dict) -> None:
-        pipe.xadd(self.keys.events, {"type": kind, "ts": f"{self.clock():.3f}", "data": json.dumps(data)},
-                  maxlen=100_000, approximate=True)
+        add_event(None, self.keys.events, kind, data, ts=self.clock(), pipeline=pipe)
 
     def _switch(self, kind: str, choose, *, actor: str, reason: str) -> dict:
         """Run one WATCH/MULTI switch of the active pointer.
@@ -303,22 +246,22 @@ class Registry:
         """
         with self.client.pipeline(transaction=True) as pipe:
             try:
-                pipe.watch(self.active_key, self.history_key)
-                active = pipe.get(self.active_key)
+                pipe.watch(self.keys.models_active, self.keys.models_history)
+                active = pipe.get(self.keys.models_active)
                 active = _s(active) if active is not None else None
-                history = [_s(v) for v in pipe.lrange(self.history_key, 0, 1)]
+                history = [_s(v) for v in pipe.lrange(self.keys.models_history, 0, 1)]
                 target, pop = choose(active, history)
                 self._verify(pipe, target)
                 now = self.clock()
                 pipe.multi()
-                pipe.set(self.active_key, target)
+                pipe.set(self.keys.models_active, target)
                 if pop:
-                    pipe.lpop(self.history_key)  # the head was the active version; the target is next
+                    pipe.lpop(self.keys.models_history)  # the head was the active version; the target is next
                 else:
-                    pipe.lpush(self.history_key, target)
-                    pipe.ltrim(self.history_key, 0, HISTORY_MAX - 1)
-                pipe.hset(self.meta_key(target), mapping={"promoted_at": f"{now:.3f}"})
-                pipe.publish(self.channel, target)
+                    pipe.lpush(self.keys.models_history, target)
+                    pipe.ltrim(self.keys.models_history, 0, HISTORY_MAX - 1)
+                pipe.hset(self.keys.model_meta(target), mapping={"promoted_at": f"{now:.3f}"})
+                pipe.publish(self.keys.models_changed, target)
                 data = {"version": target, "previous": active, "actor": actor, "reason": reason}
                 self._event(pipe, kind, data)
                 pipe.execute()
@@ -332,7 +275,7 @@ class Registry:
 
     def _verify(self, client, version: str) -> None:
         # Runs between WATCH and MULTI: reads only, so a concurrent switch still aborts us.
-        if not client.exists(self.blob_key(version)):
+        if not client.exists(self.keys.model_blob(version)):
             raise RegistryError(f"models: no artifact for version {version!r}; push it first "
                                 "(`seawall models push MODEL_FILE`)")
 
@@ -396,6 +339,11 @@ class RegistryModelSource:
     def version(self) -> str | None:
         return self._version
 
+    @property
+    def refused(self) -> frozenset[str]:
+        """Versions that became active but failed to load here; each is tried once, the model in hand stays."""
+        return frozenset(self._refused)
+
     def current(self):
         if self._model is None:
             version = self.registry.active()
@@ -411,7 +359,7 @@ class RegistryModelSource:
     def _subscribe(self) -> None:
         try:
             pubsub = self.client.pubsub(ignore_subscribe_messages=True)
-            pubsub.subscribe(self.registry.channel)
+            pubsub.subscribe(self.registry.keys.models_changed)
             self._pubsub = pubsub
         except (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError):
             self._pubsub = None  # the polling fallback covers it; retried on the next check

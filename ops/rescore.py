@@ -14,32 +14,38 @@ has expired stay held for a moderator.
 """
 from __future__ import annotations
 
-import json
 import time
 
-from worker.routing import Router, score_and_decide
+from model.actions import Action
 from worker.commit import text_digest
+from worker.routing import Router, score_and_decide
 from worker.settings import Keys
+from worker.validation import Comment
+from worker.verdicts import Verdict
 
-# KEYS: held, verdicts, text:{id}...   ARGV: maxlen, then 10 values per comment.
+# KEYS: held, verdicts, text:{id}...
+# ARGV: maxlen, then per comment: id, stays_held ('1' or '0', decided in Python), n, then the verdict's n
+# field/value pairs (as Verdict.as_fields gives them).  The cache keeps the judgement fields of the new verdict.
 _WRITE = """
 local held, verdicts = KEYS[1], KEYS[2]
 local maxlen = ARGV[1]
+local judged = {score = true, action = true, rule = true, model = true, reasons = true}
 local written, released = 0, 0
-local n = (#ARGV - 1) / 10
-for i = 0, n - 1 do
-  local a = 2 + i * 10
-  local id, score, action, model, reasons, site, stream_id, rule, version, digest =
-    ARGV[a], ARGV[a+1], ARGV[a+2], ARGV[a+3], ARGV[a+4], ARGV[a+5], ARGV[a+6], ARGV[a+7], ARGV[a+8], ARGV[a+9]
+local a, i = 2, 0
+while a <= #ARGV do
+  local id, stays_held, n = ARGV[a], ARGV[a + 1], tonumber(ARGV[a + 2])
+  local first = a + 3
+  a = first + 2 * n
+  i = i + 1
   if redis.call('ZSCORE', held, id) then
-    redis.call('XADD', verdicts, 'MAXLEN', '~', maxlen, '*', 'id', id, 'score', score, 'action', action,
-               'rule', rule, 'model', model, 'reasons', reasons, 'site', site, 'stream_id', stream_id,
-               'version', version, 'digest', digest, 'rescored', '1')
-    if redis.call('EXISTS', KEYS[3 + i]) == 1 then
-      redis.call('HSET', KEYS[3 + i], 'score', score, 'action', action, 'rule', rule, 'model', model,
-                 'reasons', reasons)
+    local entry, cache = {'XADD', verdicts, 'MAXLEN', '~', maxlen, '*'}, {'HSET', KEYS[2 + i]}
+    for k = first, a - 1, 2 do
+      entry[#entry + 1] = ARGV[k]; entry[#entry + 1] = ARGV[k + 1]
+      if judged[ARGV[k]] then cache[#cache + 1] = ARGV[k]; cache[#cache + 1] = ARGV[k + 1] end
     end
-    if action ~= 'hold' then
+    redis.call(unpack(entry))
+    if redis.call('EXISTS', KEYS[2 + i]) == 1 then redis.call(unpack(cache)) end
+    if stays_held ~= '1' then
       redis.call('ZREM', held, id)
       released = released + 1
     end
@@ -75,23 +81,25 @@ def rescore_held(client, keys: Keys, model, *, batch: int = 500, settings=None, 
         lookup = client.pipeline(transaction=False)
         for comment_id in chunk:
             lookup.hmget(keys.text(comment_id), ["text", "site", "stream_id", "version", "digest"])
-        found = []
+        found, marks = [], []
         for comment_id, (text, site, stream_id, version, digest) in zip(chunk, lookup.execute()):
             if text is None:
                 counts["no_text"] += 1
                 continue
             text = _s(text)
-            found.append((comment_id, text, _s(site or b""), _s(stream_id or b""), _s(version or b"1"),
-                          _s(digest) if digest else text_digest(text)))
+            found.append(Comment(_s(stream_id or b""), comment_id, text, _s(site or b"")))
+            marks.append({"version": _s(version or b"1"), "digest": _s(digest) if digest else text_digest(text),
+                          "rescored": "1"})
         if not found:
             continue
-        scores, decisions, reasons = score_and_decide(model, router, [f[1] for f in found], [f[2] for f in found])
+        scores, decisions, reasons = score_and_decide(model, router, [c.text for c in found], [c.site for c in found])
         args = [verdicts_maxlen]
-        for (comment_id, _text, site, stream_id, version, digest), score, why, d in zip(found, scores, reasons,
-                                                                                         decisions):
-            args += [comment_id, f"{float(score):.4f}", d.action, model.version,
-                     json.dumps([[t, round(float(c), 4)] for t, c in why]), site, stream_id, d.rule, version, digest]
-        written, released = script(keys=[keys.held, keys.verdicts] + [keys.text(f[0]) for f in found], args=args)
+        for comment, score, why, d, mark in zip(found, scores, reasons, decisions, marks):
+            fields = Verdict.of(comment, score, d, why).as_fields(model=str(model.version), **mark)
+            args += [comment.id, "1" if d.action == Action.HOLD else "0", len(fields)]
+            for pair in fields.items():
+                args += pair
+        written, released = script(keys=[keys.held, keys.verdicts] + [keys.text(c.id) for c in found], args=args)
         counts["rescored"] += int(written)
         counts["released"] += int(released)
     counts["seconds"] = round(time.perf_counter() - t0, 3)

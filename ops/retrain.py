@@ -83,8 +83,11 @@ from model.minhash import MinHasher, band_hashes, exact_jaccard
 from ops.labelling import feedback_settings
 from ops.registry import Registry, load_model
 from ops.settings import RetrainSettings
-from worker.feedback import FeedbackConsumer, scan_labels
+from worker.events import add_event
+from worker.feedback import FeedbackConsumer
+from worker.labels import label_value, scan_labels
 from worker.settings import FeedbackSettings, Keys, WorkerSettings
+from worker.streams import stream_id_order
 
 log = logging.getLogger(__name__)
 
@@ -119,24 +122,14 @@ def reports_key(keys: Keys) -> str:
 
 # -- pure steps ---------------------------------------------------------------------
 
-def stream_id_after(a: str, b: str) -> bool:
-    """``a > b`` for Redis stream ids ``ms-seq``."""
-    ams, _, aseq = a.partition("-")
-    bms, _, bseq = b.partition("-")
-    return (int(ams), int(aseq or 0)) > (int(bms), int(bseq or 0))
-
-
 def label_rows(entries) -> list[LabelRow]:
-    """Label records -> rows, the latest label of an id winning, in stream order (pure)."""
+    """``(stream_id, LabelRecord)`` -> rows, the latest label of an id winning, in stream order (pure)."""
     latest: dict[str, LabelRow] = {}
     for sid, rec in entries:
-        label = rec.get("label")
-        text = rec.get("text", "")
-        if label not in ("spam", "ham") or not rec.get("id") or not text.strip():
+        if not rec.usable:
             continue
-        latest.pop(rec["id"], None)  # re-insert so that dict order is the latest label's order
-        latest[rec["id"]] = LabelRow(sid, rec["id"], text, 1 if label == "spam" else 0,
-                                     rec.get("moderator", "") or UNATTRIBUTED)
+        latest.pop(rec.id, None)  # re-insert so that dict order is the latest label's order
+        latest[rec.id] = LabelRow(sid, rec.id, rec.text, label_value(rec.label), rec.moderator or UNATTRIBUTED)
     return list(latest.values())
 
 
@@ -285,7 +278,7 @@ def guard_labels(rows: list[LabelRow], entries, settings: RetrainSettings,
     # A source the cap had to trim is suspect: what it kept trains and judges only
     # where another moderator backs it (see the module docstring, step 3b).
     witnesses = label_rows([(sid, rec) for sid, rec in entries
-                            if (rec.get("moderator", "") or UNATTRIBUTED) not in dropped])
+                            if (rec.moderator or UNATTRIBUTED) not in dropped])
     kept, guard = corroborate(capped, witnesses, set(dropped), similarity=settings.corroboration_similarity)
     for m, n in dropped.items():
         aside = guard[m]["set_aside"]
@@ -461,9 +454,7 @@ def store_report(client, keys: Keys, report: dict, *, kept: int, clock=time.time
     summary = {k: report.get(k) for k in ("decision", "promoted", "active", "candidate", "chosen", "reasons", "error")
                if k in report}
     summary["labels_new"] = report.get("labels", {}).get("new", 0)
-    pipe.xadd(keys.events, {"type": "retrain", "ts": f"{clock():.3f}",
-                            "data": json.dumps(summary, sort_keys=True, separators=(",", ":"))},
-              maxlen=100_000, approximate=True)
+    add_event(client, keys.events, "retrain", summary, ts=clock(), pipeline=pipe)
     if pipeline is None:
         pipe.execute()
 
@@ -523,8 +514,9 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
     report["active"] = active_version
 
     everything = list(scan_labels(client, keys))
-    new_entries = [(sid, rec) for sid, rec in everything if stream_id_after(sid, cursor)]
-    old_entries = [(sid, rec) for sid, rec in everything if not stream_id_after(sid, cursor)]
+    after = stream_id_order(cursor)
+    new_entries = [(sid, rec) for sid, rec in everything if stream_id_order(sid) > after]
+    old_entries = [(sid, rec) for sid, rec in everything if stream_id_order(sid) <= after]
     new_rows = label_rows(new_entries)
     new_ids = {r.id for r in new_rows}
     old_rows = [r for r in label_rows(old_entries) if r.id not in new_ids]
@@ -534,7 +526,7 @@ def _retrain_locked(client, keys: Keys, settings: RetrainSettings, report: dict,
         report["reasons"].append(f"{len(new_rows)} new labels since the last promotion; "
                                  f"retrain.min_new_labels is {settings.min_new_labels}")
         return
-    new_cursor = max((sid for sid, _ in new_entries), key=lambda s: tuple(int(x) for x in s.split("-")))
+    new_cursor = max((sid for sid, _ in new_entries), key=stream_id_order)
     labels["cursor_to"] = new_cursor
 
     rng = random.Random(settings.seed)
@@ -692,7 +684,7 @@ def _gate(active, models: dict, entries: dict, holdout: list[LabelRow], canary: 
     for name, model in models.items():
         try:
             thresholds = model.calibrate(texts, y_all, reject_fpr=settings.reject_fpr, hold_fpr=settings.hold_fpr)
-            entries[name]["thresholds"] = {"hold": float(thresholds.hold), "reject": float(thresholds.reject)}
+            entries[name]["thresholds"] = thresholds.to_dict()
         except DataError as exc:
             report["reasons"].append(f"{_NAMES[name]}: thresholds kept from the active model: {exc}")
         entries[name]["version"] = model.version

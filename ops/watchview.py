@@ -18,6 +18,7 @@ from ops.times import age, clock
 from ops.waves import read_active
 from worker.campaigns import read_campaigns
 from worker.events import Event, parse_event
+from worker.rates import rate_counts
 from worker.settings import Keys
 
 SPARK = "▁▂▃▄▅▆▇█"
@@ -59,7 +60,7 @@ def collect(client, keys: Keys, *, now: float | None = None, minutes: int = HIST
     pipe = client.pipeline(transaction=False)
     for m in span:
         pipe.hgetall(keys.rates(m))
-    pipe.get(keys.key("models", "active"))
+    pipe.get(keys.models_active)
     pipe.xrevrange(keys.events, count=EVENT_LOOKBACK)
     *hashes, active, raw_events = pipe.execute()
 
@@ -70,7 +71,7 @@ def collect(client, keys: Keys, *, now: float | None = None, minutes: int = HIST
     snap.lag, snap.pending, snap.consumers = _group(client, keys)
     if active:
         snap.model_version = _text(active)
-        created, promoted = client.hmget(keys.key("models", "meta", snap.model_version), ["created_at", "promoted_at"])
+        created, promoted = client.hmget(keys.model_meta(snap.model_version), ["created_at", "promoted_at"])
         snap.model_created, snap.model_promoted = _seconds(created), _seconds(promoted)
     events = [e for e in (parse_event(i, f) for i, f in raw_events) if e is not None]
     snap.retrain = next((e for e in events if e.type == "retrain"), None)
@@ -82,19 +83,10 @@ def _site_rows(hashes) -> list[SiteRow]:
     per_site: dict[str, SiteRow] = {}
     n = len(hashes)
     for idx, raw in enumerate(hashes):
-        for k, v in raw.items():
-            site, sep, kind = _text(k).rpartition(":")
-            if not sep or kind not in ("total", "hold", "reject"):
-                continue
-            try:
-                count = int(v)
-            except ValueError:
-                continue
+        for site, (total, flagged) in rate_counts(raw).items():
             row = per_site.setdefault(site, SiteRow(site=site, totals=[0] * n, flagged=[0] * n))
-            if kind == "total":
-                row.totals[idx] += count
-            else:
-                row.flagged[idx] += count
+            row.totals[idx] += total
+            row.flagged[idx] += flagged
     return sorted(per_site.values(), key=lambda r: (-sum(r.totals), r.site))
 
 

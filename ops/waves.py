@@ -25,6 +25,7 @@ from typing import TYPE_CHECKING
 
 from ops.cusum import WaveParams, WaveState, observe_minute
 from worker.events import EVENTS_MAXLEN, add_event
+from worker.rates import rate_counts
 from worker.settings import Keys
 
 if TYPE_CHECKING:  # ops.metrics imports prometheus-client, which `seawall watch` (a reader of this module) never needs
@@ -55,25 +56,16 @@ def wave_keys(keys: Keys) -> dict[str, str]:
 
 
 def parse_rates(raw: Mapping, site_label: SiteLabels) -> dict[str, tuple[int, int]]:
-    """``{site_label: (total, flagged)}`` from one ``rates:{minute}`` hash.
+    """``{site_label: (total, flagged)}`` from one ``rates:{minute}`` hash (:func:`worker.rates.rate_counts`).
 
-    Fields are ``{site}:{kind}``; the site itself may contain colons.
-    Unlisted sites add up under ``other``; unknown kinds and non-numbers are
-    ignored, never raised on.
+    Unlisted sites add up under ``other``.
     """
     out: dict[str, list[int]] = {}
-    for field, value in raw.items():
-        field = field.decode("utf-8", "replace") if isinstance(field, bytes) else str(field)
-        site, sep, kind = field.rpartition(":")
-        if not sep or kind not in ("total", "hold", "reject"):
-            continue
-        try:
-            n = int(value)
-        except (TypeError, ValueError):
-            continue
+    for site, (total, flagged) in rate_counts(raw).items():
         counts = out.setdefault(site_label(site), [0, 0])
-        counts[0 if kind == "total" else 1] += n
-    return {site: (t, min(f, t)) for site, (t, f) in out.items()}
+        counts[0] += total
+        counts[1] += flagged
+    return {site: (t, f) for site, (t, f) in out.items()}
 
 
 def last_complete_minute(now: float) -> int:

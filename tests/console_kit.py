@@ -35,7 +35,7 @@ STRICT_SECTIONS = {"cycling": {"hold": 0.0, "reject": 1.0}, "events": {"hold": 0
 
 def strict_section_comments(n: int = 24) -> list[dict[str, str]]:
     """The first ``n`` comments of the strict sections from another hour of the invented forum."""
-    from ops.scenario import Scenario
+    from ops.lab.scenario import Scenario
 
     out = []
     for c in Scenario(seed=13, wave_rate_per_min=0.0).stream():

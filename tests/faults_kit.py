@@ -13,7 +13,7 @@ from pathlib import Path
 
 import redis
 
-from kit import wait_until
+from kit import Worker, stop_all, wait_for_progress, wait_until
 from worker.settings import Keys
 
 KEYS = Keys()
@@ -50,8 +50,10 @@ def kill_mid_batch(client, workers, rng, kill_number: int) -> tuple[str, int]:
     new name, so the others must reclaim what the dead one held.  Returns the victim's name at the
     kill and how many entries it held then.
     """
+    # Generous: on a loaded machine the workers restarted by earlier kills may take a while to load the
+    # model and hold a batch again; the kill should still land mid-batch rather than on an idle worker.
     busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name)],
-                      timeout=5, interval=0.01)
+                      timeout=60, interval=0.01)
     victim = rng.choice(busy or workers)
     name, held = victim.name, consumer_pending(client, victim.name)
     assert victim.kill() == -signal.SIGKILL
@@ -154,6 +156,31 @@ class Producer(threading.Thread):
             i += len(ids)
         self.done.set()
         self.client.close()
+
+
+def start_workers(url: str, tmp_path, *, env: dict | None = None, n: int = 2) -> list[Worker]:
+    """``n`` ``seawall serve`` workers named w0, w1, ... on one real model file written into ``tmp_path``."""
+    model = write_model(tmp_path / "model.bin")
+    return [Worker(url=url, name=f"w{i}", log_dir=tmp_path, model_path=model, env=env).start() for i in range(n)]
+
+
+def wait_for_verdicts(client, n: int, *, stall_s: float = 60.0, keys: Keys = KEYS) -> Counter:
+    """Wait, as long as verdicts keep coming, until ``n`` are written and nothing is pending; the count per id."""
+    wait_for_progress(lambda: client.xlen(keys.verdicts) >= n and group_pending(client, keys) == 0,
+                      lambda: (client.xlen(keys.verdicts), group_pending(client, keys)), stall_s=stall_s,
+                      interval=0.2, what=f"{n} verdicts and nothing pending (progress: verdicts, pending)")
+    return verdict_ids(client, keys)
+
+
+def stop_run(producer: "Producer", workers) -> list[int]:
+    """Teardown of a run: stop the producer, then every worker; the workers' exit codes."""
+    producer.abort.set()
+    return stop_all(workers)
+
+
+def doubled(counts: Counter) -> int:
+    """Verdicts beyond the first of each id."""
+    return sum(v - 1 for v in counts.values() if v > 1)
 
 
 def write_model(path, seed: int = 0) -> Path:

@@ -196,6 +196,17 @@ class Worker:
         return "\n".join(p.read_text(errors="replace") for p in self.logs if p.exists())
 
 
+def terminate(proc: subprocess.Popen, *, timeout: float = 20.0) -> int:
+    """SIGTERM a child process and reap it; SIGKILL when it has not stopped within ``timeout``. Its exit status."""
+    if proc.poll() is None:
+        proc.send_signal(signal.SIGTERM)
+        try:
+            return proc.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+    return proc.wait(timeout=10)
+
+
 def stop_all(workers) -> list[int]:
     """Stop every worker that is still running (teardown helper); returns their exit codes."""
     codes = []

@@ -1,6 +1,6 @@
 """Invented data and small models for the registry and retrain tests.
 
-Comments come from the demo's invented forum (ops/scenario.py); the models
+Comments come from the demo's invented forum (ops/lab/scenario.py); the models
 are small EmbeddingClassifiers trained on its pre-stream training set.
 """
 from __future__ import annotations
@@ -10,7 +10,7 @@ import json
 from functools import lru_cache
 
 from model.classifier import EmbeddingClassifier
-from ops.scenario import Scenario
+from ops.lab.scenario import Scenario
 from worker.settings import Keys
 
 KEYS = Keys()

@@ -2,16 +2,15 @@
 comments, a retrain promotes, the worker switches without a restart, rollback switches back."""
 from __future__ import annotations
 
+import itertools
 import os
-import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import pytest
 
-from kit import wait_until
+from kit import terminate, wait_until
 from ops.cli import main
 from ops.registry import Registry
 from retrain_kit import KEYS, MODERATORS, stream
@@ -20,18 +19,24 @@ from test_retrain import bootstrap
 ROOT = Path(__file__).resolve().parent.parent
 
 
-def seconds_until_served(client, version: str, probes, *, limit: float = 10.0) -> float:
-    """Send a probe comment every 0.2 s until one gets a verdict from ``version``."""
-    t0 = time.monotonic()
-    for probe in probes:
-        mark = client.xadd(KEYS.comments, probe.fields())
-        got = wait_until(lambda: [f for _i, f in client.xrange(KEYS.verdicts, min=mark) if f[b"id"] == probe.id.encode()],
-                         timeout=0.2, interval=0.02)
-        if got and got[0][b"model"].decode() == version:
-            return time.monotonic() - t0
-        if time.monotonic() - t0 > limit:
-            break
-    return float("inf")
+def served_by(client, comment) -> str:
+    """Send one comment, wait for its verdict; the model version that gave it."""
+    mark = client.xadd(KEYS.comments, comment.fields())
+    got = wait_until(lambda: [f for _i, f in client.xrange(KEYS.verdicts, min=mark) if f[b"id"] == comment.id.encode()],
+                     timeout=60, interval=0.02, what=f"the verdict of comment {comment.id}")
+    return got[0][b"model"].decode()
+
+
+def switches_to(client, version: str, probes) -> bool:
+    """Probe one comment at a time until one is judged by ``version``; then ten more must be too (no flip back).
+
+    Bounded by the number of probes, not by a clock: the worker may take as long
+    as a loaded machine needs to load the new model, as long as it gets there.
+    """
+    probes = iter(probes)
+    if not any(served_by(client, c) == version for c in probes):
+        return False
+    return all(served_by(client, c) == version for c in itertools.islice(probes, 10))
 
 
 def verdict_models(client, after="-"):
@@ -69,7 +74,7 @@ def test_feedback_retrain_promote_hot_reload_and_rollback_with_a_running_worker(
                                       "moderator": MODERATORS[i % len(MODERATORS)]})
         pipe.execute()
         # The worker's own feedback thread turns them into labels.
-        assert wait_until(lambda: r.xlen("seawall:labels") >= 1000, timeout=30)
+        assert wait_until(lambda: r.xlen(KEYS.labels) >= 1000, timeout=30)
         assert r.xlen(KEYS.deadletter) == 0
 
         assert main(["retrain", "--redis", redis_server.url, "--rescore", "now"]) == 0
@@ -77,18 +82,15 @@ def test_feedback_retrain_promote_hot_reload_and_rollback_with_a_running_worker(
         new = registry.active()
         assert new != first and f"promoted {new}" in out, out
 
-        # Pub/sub tells the worker; it switches within a few seconds, without a restart.
-        assert seconds_until_served(r, new, stream()[1200:1300]) < 5, log()
+        # Pub/sub tells the worker; it switches while it runs (same process, no restart), and stays switched.
+        assert switches_to(r, new, stream()[1200:2200]), log()
+        assert worker.poll() is None, log()
 
         assert main(["models", "rollback", "--redis", redis_server.url, "--rescore", "off"]) == 0
-        assert seconds_until_served(r, first, stream()[1300:1400]) < 5, log()
+        assert switches_to(r, first, stream()[2200:3200]), log()
+        assert worker.poll() is None, log()
     finally:
-        worker.send_signal(signal.SIGTERM)
-        try:
-            code = worker.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            worker.kill()
-            code = worker.wait(timeout=10)
+        code = terminate(worker)
         log_file.close()
     assert code == 0, log()
     assert Registry(client=r, keys=KEYS).active() == first

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 from model.tokens import Tokenizer
-from ops.board import DAY_S, SITES, Board, blind_scores, obfuscate, play
+from ops.lab.board import DAY_S, SITES, Board, blind_scores, obfuscate, play
 from ops.config import load_config
 from ops.serving import campaign_policy
 

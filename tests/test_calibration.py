@@ -161,17 +161,18 @@ def test_targets_are_validated(kwargs, match):
         ({"hold": -0.1, "reject": 0.5}, ValueError, "hold"),
         ({"hold": 0.1, "reject": 1.5}, ValueError, "reject"),
         ({"hold": float("nan"), "reject": 0.5}, ValueError, "hold"),
+        ({"hold": True, "reject": 0.5}, ValueError, "hold"),
+        ({"hold": 0.1, "reject": "0.9"}, ValueError, "reject"),
     ],
-    ids=["hold-above-reject", "negative", "above-one", "nan"],
+    ids=["hold-above-reject", "negative", "above-one", "nan", "bool", "string"],
 )
 def test_thresholds_are_validated(kwargs, error, match):
     with pytest.raises(error, match=match):
         Thresholds(**kwargs)
 
 
-def test_actions_and_overrides():
+def test_overrides_and_dict_round_trip():
     t = Thresholds(hold=0.6, reject=0.95)
-    assert t.actions(np.array([0.1, 0.6, 0.94, 0.95, 1.0])) == ["publish", "hold", "hold", "reject", "reject"]
     assert t.with_overrides(hold=0.5) == Thresholds(hold=0.5, reject=0.95)
     assert t.with_overrides() == t
     assert Thresholds.from_dict(t.to_dict()) == t
@@ -281,7 +282,7 @@ def test_a_model_that_ranks_spam_below_ham_is_not_calibrated():
 
 @pytest.fixture(scope="module")
 def trained():
-    from ops.communities import CommunityScenario
+    from ops.lab.communities import CommunityScenario
     from model.classifier import EmbeddingClassifier
 
     rows = CommunityScenario("sq", seed=1).labelled(1500)
@@ -290,7 +291,7 @@ def trained():
 
 @pytest.fixture(scope="module")
 def held():
-    from ops.communities import CommunityScenario
+    from ops.lab.communities import CommunityScenario
 
     rows = CommunityScenario("sq", seed=2).labelled(400)
     return [c.text for c in rows], [c.label for c in rows]
@@ -337,7 +338,7 @@ def test_classifier_platt_matches_scikit_learn_on_the_same_held_out_comments(tra
 
     ref = CalibratedClassifierCV(FrozenEstimator(RawLogOdds().fit(None, None)), method="sigmoid")
     ref.fit(np.asarray(texts, dtype=object), np.asarray(labels))
-    from ops.communities import CommunityScenario
+    from ops.lab.communities import CommunityScenario
 
     other = [c.text for c in CommunityScenario("lc", seed=3).labelled(300)]
     np.testing.assert_allclose(model.predict_proba_many(other), ref.predict_proba(np.asarray(other, dtype=object))[:, 1],

@@ -184,7 +184,7 @@ def test_params_are_validated(kwargs, field):
 
 def test_a_burst_of_variants_is_one_campaign(fake_redis):
     """Variants filling different buckets in the same batch join the first campaign (one event)."""
-    from ops.scenario import Scenario
+    from ops.lab.scenario import Scenario
 
     scenario = Scenario()
     wave = [c for c in scenario.stream() if c.kind == "wave"][:120]
@@ -269,7 +269,7 @@ def test_disguised_variants_get_the_band_keys_of_their_plain_text():
     import random
 
     from model.minhash import band_hashes
-    from ops.board import obfuscate
+    from ops.lab.board import obfuscate
 
     p = policy(Clock())
     plain = [campaign_text(i) for i in range(40)]
@@ -286,7 +286,7 @@ def test_disguised_variants_get_the_band_keys_of_their_plain_text():
 def test_a_disguised_campaign_is_caught_as_soon_as_its_plain_twin(shared_redis):
     import random
 
-    from ops.board import obfuscate
+    from ops.lab.board import obfuscate
 
     outcomes = {}
     for kind in ("plain", "disguised"):

@@ -144,11 +144,3 @@ def test_not_worse_is_the_lower_bound_against_the_tolerance():
     assert d.not_worse(0.002) and not d.not_worse(0.0019)
     assert d.to_dict() == {"figure": "roc_auc", "method": "delong", "candidate": 0.99, "reference": 0.991,
                            "difference": -0.001, "lower": -0.002, "confidence": 0.95, "se": 0.0006}
-
-
-def test_docstring_examples():
-    import doctest
-
-    import model.comparison
-
-    assert doctest.testmod(model.comparison).failed == 0

@@ -33,11 +33,11 @@ from ops.config import load_config
 from ops.connection import connect
 from ops.console.accounts import Accounts
 from ops.console.app import Console
-from ops.demo import DEMO_SETTINGS, demo_scenario, run_demo
+from ops.lab.demo import DEMO_SETTINGS, demo_scenario, run_demo
 from ops.serving import campaign_policy
 from ops.registry import Registry
 from ops.retrain import last_reports
-from ops.scenario import Scenario
+from ops.lab.scenario import Scenario
 from servers import RedisServer, free_port, require
 from worker.campaigns import read_campaigns
 from worker.connection import connect as worker_connect

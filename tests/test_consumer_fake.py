@@ -5,13 +5,12 @@ from __future__ import annotations
 import json
 import time
 
-import fakeredis
 import pytest
 
 from scorers import StandInThresholds, WordScorer
 from worker.connection import raw_stream_replies
-from worker.consumer import format_reasons
 from worker.redistransport import redis_consumer
+from worker.verdicts import format_reasons
 from worker.loader import FileModelSource, StaticModelSource
 from worker.routing import Decision
 from worker.settings import Keys, WorkerSettings

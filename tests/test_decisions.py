@@ -14,7 +14,8 @@ import pytest
 
 from ops.cli import main
 from worker import decisions
-from worker.feedback import FeedbackConsumer, scan_labels
+from worker.feedback import FeedbackConsumer
+from worker.labels import scan_labels
 from worker.holdqueue import CACHED_FIELDS, parse_held, parse_reasons, read_held, read_held_by_id
 from console_kit import NOW, hold
 from worker.settings import FeedbackSettings, Keys
@@ -213,10 +214,10 @@ def test_console_labels_reach_the_labelled_store_through_the_feedback_consumer(r
     decisions.finalize_due(redis_client, KEYS, now=NOW)
     consumer = FeedbackConsumer(client=redis_client, keys=KEYS, consumer="t", settings=FeedbackSettings(block_ms=10))
     assert consumer.drain() == 3
-    records = {r["id"]: r for _sid, r in scan_labels(redis_client, KEYS)}
-    assert {cid: (r["label"], r["moderator"]) for cid, r in records.items()} == {
+    records = {r.id: r for _sid, r in scan_labels(redis_client, KEYS)}
+    assert {cid: (r.label, r.moderator) for cid, r in records.items()} == {
         "c0": ("spam", "mod-ana"), "c1": ("spam", "mod-ana"), "c2": ("ham", "mod-bo")}
-    assert records["c0"]["text"] == "comment number 0 about the allotment fence"
+    assert records["c0"].text == "comment number 0 about the allotment fence"
     assert redis_client.xlen(KEYS.deadletter) == 0
     assert redis_client.zrange(KEYS.held, 0, -1) == [b"c3"]
 

@@ -13,9 +13,10 @@ import re
 
 import pytest
 
-import ops.demo as demo_module  # `seawall demo` imports run_demo from here when it runs
+from model.calibration import Thresholds
+import ops.lab.demo as demo_module  # `seawall demo` imports run_demo from here when it runs
 from ops.cli import main
-from ops.scenario import WAVE_SITES
+from ops.lab.scenario import WAVE_SITES
 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory):
@@ -181,13 +182,13 @@ def test_bad_arguments_fail_before_anything_runs(argv, message, capsys):
 
 
 def test_report_of_a_refused_retrain_says_so_and_shows_no_after_figures():
-    from ops.demo import DemoResult, Verdict
-    from ops.demo_report import render_html, summary_text
-    from ops.scenario import Scenario
+    from ops.lab.demo import DemoResult, Verdict
+    from ops.lab.demo_report import render_html, summary_text
+    from ops.lab.scenario import Scenario
 
     scenario = Scenario(duration_s=300.0, wave_start_s=120.0, wave_end_s=300.0)
     comments = list(scenario.stream())
-    result = DemoResult(scenario=scenario, first_model="m1", thresholds={"m1": {"hold": 0.5, "reject": 0.9}},
+    result = DemoResult(scenario=scenario, first_model="m1", thresholds={"m1": Thresholds(hold=0.5, reject=0.9)},
                         retrain_report={"decision": "refused", "reasons": ["holdout too small"]})
     result.verdicts = [Verdict(c, "hold" if c.label else "publish", 0.7 if c.label else 0.1, "m1",
                                int((c.ts - scenario.start_ts) // 60)) for c in comments]

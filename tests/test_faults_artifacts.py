@@ -183,8 +183,8 @@ def test_running_workers_keep_their_model_when_a_tampered_one_arrives(redis_serv
             os.replace(tmp, serving)
             # Registry: tampered bytes planted under a new version and promoted (push would refuse them).
             version = f"tampered-{kind}"
-            client.set(registry.blob_key(version), data)
-            client.hset(registry.meta_key(version), mapping={"version": version,
+            client.set(registry.keys.model_blob(version), data)
+            client.hset(registry.keys.model_meta(version), mapping={"version": version,
                                                              "sha256": hashlib.sha256(data).hexdigest()})
             registry.promote(version)
             assert wait_until(lambda: all(w.output().count("refused") >= 1 + list(TAMPERS).index(kind)

@@ -15,10 +15,13 @@ from faults_kit import (
     group_pending,
     kill_mid_batch,
     read_stream,
-    write_model,
+    start_workers,
+    wait_for_verdicts,
 )
-from kit import Worker, stop_all, wait_for_progress, wait_until
+from kit import stop_all, wait_for_progress, wait_until
 from worker.commit import text_digest
+
+pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
 
 COMMENTS = 4_000
 KILLS = 8
@@ -53,11 +56,8 @@ def entries(rng: random.Random) -> list[dict]:
     return out
 
 
-@pytest.mark.redis_server
-@pytest.mark.slow
 def test_sigkills_while_comments_are_edited_give_one_verdict_per_version(redis_server, tmp_path):
     client = redis_server.client()
-    model = write_model(tmp_path / "model.bin")
     rng = random.Random(12)
     sent = entries(rng)
     versions_sent = defaultdict(list)  # id -> distinct texts in the order they were first sent
@@ -65,9 +65,8 @@ def test_sigkills_while_comments_are_edited_give_one_verdict_per_version(redis_s
         if e["text"] not in versions_sent[e["id"]]:
             versions_sent[e["id"]].append(e["text"])
     expected = sum(len(v) for v in versions_sent.values())
-    env = {"SEAWALL_WORKER_MAX_DELIVERIES": "1000", "SEAWALL_WAVES_ENABLED": "0"}
-    workers = [Worker(url=redis_server.url, name=f"w{i}", log_dir=tmp_path, model_path=model, env=env).start()
-               for i in range(2)]
+    workers = start_workers(redis_server.url, tmp_path,
+                            env={"SEAWALL_WORKER_MAX_DELIVERIES": "1000", "SEAWALL_WAVES_ENABLED": "0"})
     kills = []
     try:
         pipe = client.pipeline(transaction=False)
@@ -82,9 +81,7 @@ def test_sigkills_while_comments_are_edited_give_one_verdict_per_version(redis_s
                               stall_s=60, what=f"{due} verdicts before kill {k + 1}")
             time.sleep(rng.uniform(0.0, 0.2))
             kills.append(kill_mid_batch(client, workers, rng, len(kills) + 1)[1])
-        wait_for_progress(lambda: client.xlen(KEYS.verdicts) >= expected and group_pending(client) == 0,
-                          lambda: (client.xlen(KEYS.verdicts), group_pending(client)), stall_s=60, interval=0.2,
-                          what=f"{expected} verdicts and nothing pending (progress: verdicts, pending)")
+        wait_for_verdicts(client, expected)
         assert wait_until(lambda: all(w.started() for w in workers), timeout=60)
     finally:
         codes = stop_all(workers)

@@ -9,15 +9,8 @@ import time
 import pytest
 import redis
 
-from faults_kit import (
-    KEYS,
-    Producer,
-    consumer_seen,
-    deadletters,
-    group_pending,
-    verdict_ids,
-    write_model,
-)
+from faults_kit import (KEYS, Producer, consumer_seen, deadletters, doubled, group_pending, start_workers,
+                        stop_run, wait_for_verdicts, write_model)
 from kit import Worker, stop_all, wait_until
 from ops.registry import Registry
 from retrain_kit import model_bytes
@@ -38,8 +31,7 @@ def test_redis_restarts_mid_stream_every_accepted_comment_gets_one_verdict(redis
     """AOF with appendfsync always; one graceful restart and one crash (SIGKILL) of the server."""
     server = redis_factory("aof", appendonly=True)
     admin = redis.Redis.from_url(server.url, socket_timeout=5)
-    model = write_model(tmp_path / "model.bin")
-    workers = [Worker(url=server.url, name=f"w{i}", log_dir=tmp_path, model_path=model).start() for i in range(2)]
+    workers = start_workers(server.url, tmp_path)
     n = 3000
     producer = Producer(url=server.url, n=n, rate=300.0)
     try:
@@ -57,15 +49,11 @@ def test_redis_restarts_mid_stream_every_accepted_comment_gets_one_verdict(redis
             assert wait_until(lambda: answers(admin), timeout=30)
         producer.join(timeout=120)
         assert producer.done.is_set()
-        finished = wait_until(lambda: len(verdict_ids(admin)) >= len(producer.accepted) and group_pending(admin) == 0,
-                              timeout=90, interval=0.2)
-        counts = verdict_ids(admin)
-        assert finished, f"{len(counts)} of {len(producer.accepted)} accepted ids have verdicts"
+        counts = wait_for_verdicts(admin, len(producer.accepted))
     finally:
-        producer.abort.set()
-        codes = stop_all(workers)
+        codes = stop_run(producer, workers)
     entries = admin.xlen(KEYS.comments)
-    duplicates = sum(v - 1 for v in counts.values())
+    duplicates = doubled(counts)
     print("faults:", json.dumps({"test": "redis_restarts", "restarts": 2, "accepted": len(producer.accepted),
                                  "stream_entries": entries, "resent_chunks": producer.resent_chunks,
                                  "lost": len(producer.accepted - set(counts)), "duplicates": duplicates}))
@@ -126,10 +114,7 @@ def test_redis_missing_at_start_up_the_worker_waits_then_works(tmp_path):
 @pytest.mark.slow
 def test_client_kill_of_the_workers_connections_reconnects_without_loss(redis_server, tmp_path):
     admin = redis_server.client()
-    model = write_model(tmp_path / "model.bin")
-    env = {"SEAWALL_RETRAIN_FEEDBACK_IN_SERVE": "1"}
-    workers = [Worker(url=redis_server.url, name=f"w{i}", log_dir=tmp_path, model_path=model, env=env).start()
-               for i in range(2)]
+    workers = start_workers(redis_server.url, tmp_path, env={"SEAWALL_RETRAIN_FEEDBACK_IN_SERVE": "1"})
     n, cuts = 4000, 15
     producer = Producer(url=redis_server.url, n=n, rate=400.0)
     rng = random.Random(5)
@@ -143,14 +128,10 @@ def test_client_kill_of_the_workers_connections_reconnects_without_loss(redis_se
             for c in ours:
                 killed += admin.client_kill_filter(_id=c["id"])
         producer.join(timeout=120)
-        finished = wait_until(lambda: len(verdict_ids(admin)) >= n and group_pending(admin) == 0,
-                              timeout=90, interval=0.2)
-        counts = verdict_ids(admin)
-        assert finished, f"{len(counts)} of {n} ids have verdicts, {group_pending(admin)} pending"
+        counts = wait_for_verdicts(admin, n)
     finally:
-        producer.abort.set()
-        codes = stop_all(workers)
-    duplicates = sum(v - 1 for v in counts.values())
+        codes = stop_run(producer, workers)
+    duplicates = doubled(counts)
     print("faults:", json.dumps({"test": "client_kill", "cuts": cuts, "connections_killed": killed,
                                  "comments": n, "lost": n - len(counts), "duplicates": duplicates}))
     assert killed >= cuts * 2

@@ -14,31 +14,21 @@ import time
 
 import pytest
 
-from faults_kit import (
-    KEYS,
-    Producer,
-    consumer_pending,
-    consumer_seen,
-    deadletters,
-    group_pending,
-    verdict_ids,
-    write_model,
-)
-from kit import Worker, stop_all, wait_until
+from faults_kit import (KEYS, Producer, consumer_pending, consumer_seen, deadletters, doubled, group_pending,
+                        start_workers, stop_run, wait_for_verdicts)
+from kit import wait_until
+
+pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
 
 STALLS = 6
 CLAIM_IDLE_MS = 800
 
 
-@pytest.mark.redis_server
-@pytest.mark.slow
 def test_stalled_workers_past_the_reclaim_time_write_no_duplicate_verdicts(redis_server, tmp_path):
     admin = redis_server.client()
-    model = write_model(tmp_path / "model.bin")
-    env = {"SEAWALL_WORKER_CLAIM_IDLE_MS": str(CLAIM_IDLE_MS), "SEAWALL_WORKER_CLAIM_EVERY_S": "0.1",
-           "SEAWALL_WORKER_BATCH": "50"}
-    workers = [Worker(url=redis_server.url, name=f"w{i}", log_dir=tmp_path, model_path=model, env=env).start()
-               for i in range(2)]
+    workers = start_workers(redis_server.url, tmp_path, env={
+        "SEAWALL_WORKER_CLAIM_IDLE_MS": str(CLAIM_IDLE_MS), "SEAWALL_WORKER_CLAIM_EVERY_S": "0.1",
+        "SEAWALL_WORKER_BATCH": "50"})
     n = 3000
     rng = random.Random(11)
     stalls = []
@@ -68,14 +58,10 @@ def test_stalled_workers_past_the_reclaim_time_write_no_duplicate_verdicts(redis
             stalls.append({"worker": slow.name, "held": held, "taken_over": bool(taken)})
             time.sleep(rng.uniform(0.1, 0.4))
         producer.join(timeout=60)
-        finished = wait_until(lambda: len(verdict_ids(admin)) >= n and group_pending(admin) == 0, timeout=90,
-                              interval=0.2)
-        counts = verdict_ids(admin)
-        assert finished, f"{len(counts)} of {n} ids have verdicts"
+        counts = wait_for_verdicts(admin, n)
     finally:
-        producer.abort.set()
-        codes = stop_all(workers)
-    duplicates = sum(v - 1 for v in counts.values())
+        codes = stop_run(producer, workers)
+    duplicates = doubled(counts)
     late = sum(w.output().count("already had a verdict") for w in workers)
     print("faults:", json.dumps({"test": "stalls", "stalls": len(stalls),
                                  "taken_over": sum(s["taken_over"] for s in stalls),

@@ -7,17 +7,10 @@ import time
 
 import pytest
 
-from faults_kit import (
-    KEYS,
-    Producer,
-    deadletters,
-    group_lag,
-    group_pending,
-    kill_mid_batch,
-    verdict_ids,
-    write_model,
-)
-from kit import Worker, stop_all, wait_for_progress, wait_until
+from faults_kit import KEYS, Producer, deadletters, group_lag, group_pending, kill_mid_batch, start_workers, verdict_ids
+from kit import stop_all, wait_for_progress, wait_until
+
+pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
 
 COMMENTS = 20_000
 KILLS = 20
@@ -25,17 +18,12 @@ KILLS = 20
 STALL_S = 60.0
 
 
-@pytest.mark.redis_server
-@pytest.mark.slow
 def test_twenty_sigkills_during_a_20000_comment_run_lose_and_double_nothing(redis_server, tmp_path):
     client = redis_server.client()
-    model = write_model(tmp_path / "model.bin")
     rng = random.Random(20)
     # Kills are the test's doing, not the entries': lift the poison limit so that an entry
     # caught in several kills is not dead-lettered (poison has its own unit test).
-    env = {"SEAWALL_WORKER_MAX_DELIVERIES": "1000"}
-    workers = [Worker(url=redis_server.url, name=f"w{i}", log_dir=tmp_path, model_path=model, env=env).start()
-               for i in range(2)]
+    workers = start_workers(redis_server.url, tmp_path, env={"SEAWALL_WORKER_MAX_DELIVERIES": "1000"})
     kills = []
     try:
         # The whole run is queued up front, so the workers always have a batch in hand.

@@ -3,7 +3,6 @@ agree, the few-comments path equals the vectorised one, and explanations pick
 exactly the largest contributions."""
 from __future__ import annotations
 
-import doctest
 import struct
 
 import numpy as np
@@ -11,8 +10,6 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from sklearn.utils import murmurhash3_32
 
-import model.explain
-import model.features
 import model.tokens
 from model import artifact
 from model.classifier import FEW, EmbeddingClassifier
@@ -257,11 +254,6 @@ def test_a_model_with_other_pair_hashing_is_refused(trained):
     data, _ = artifact.dumps(arrays, manifest)
     with pytest.raises(ArtifactError, match="retrain"):
         EmbeddingClassifier.from_bytes(data)
-
-
-def test_docstring_examples():
-    assert doctest.testmod(model.features).failed == 0
-    assert doctest.testmod(model.explain).failed == 0
 
 
 def test_distinct_tokens_counted_by_hash_equal_distinct_feature_strings():

@@ -13,11 +13,10 @@ from worker.feedback import (
     Rejected,
     held_key,
     join_label,
-    labels_key,
     parse_feedback,
-    scan_labels,
     text_key,
 )
+from worker.labels import LabelRecord, parse_label, scan_labels
 from worker.settings import FeedbackSettings, Keys
 
 KEYS = Keys()
@@ -58,7 +57,7 @@ def test_parse_accepts_and_normalizes():
 def test_join_prefers_entry_text_and_takes_site_from_cache():
     fb = Feedback(stream_id="1-0", id="c1", label="ham", text="own text")
     rec = join_label(fb, {b"text": b"cached", b"site": b"forum.example"}, now=10.0, text_max_bytes=100)
-    assert rec["text"] == "own text" and rec["site"] == "forum.example" and rec["ts"] == "10.000"
+    assert rec.text == "own text" and rec.site == "forum.example" and rec.ts == "10.000"
 
 
 def test_join_without_any_text_is_rejected():
@@ -78,8 +77,8 @@ def test_consumer_labels_dead_letters_and_acks(fake_redis):
     c = consumer(r)
     assert c.step() == 4
     labels = [rec for _sid, rec in scan_labels(r, KEYS)]
-    assert [(x["id"], x["label"], x["site"]) for x in labels] == [("c1", "spam", "news.example"), ("c3", "ham", "")]
-    assert labels[0]["text"] == "cheap pills at pharmacy.example" and labels[0]["moderator"] == "mod-a"
+    assert [(x.id, x.label, x.site) for x in labels] == [("c1", "spam", "news.example"), ("c3", "ham", "")]
+    assert labels[0].text == "cheap pills at pharmacy.example" and labels[0].moderator == "mod-a"
     dead = r.xrange(KEYS.deadletter)
     assert [f[b"reason"] for _i, f in dead] == [b"feedback_no_text", b"feedback_unknown_label"]
     assert all(f[b"source"] == KEYS.feedback.encode() for _i, f in dead)
@@ -93,14 +92,14 @@ def test_labelled_store_is_bounded(fake_redis):
         r.xadd(KEYS.feedback, {"id": f"c{i}", "label": "ham", "text": f"comment number {i}"})
     c = consumer(r, labels_max=5)
     assert c.drain() == 12
-    ids = [rec["id"] for _s, rec in scan_labels(r, KEYS)]
+    ids = [rec.id for _s, rec in scan_labels(r, KEYS)]
     assert ids == [f"c{i}" for i in range(7, 12)]
 
 
 def test_scan_labels_pages_through_chunks(fake_redis):
     for i in range(7):
-        fake_redis.xadd(labels_key(KEYS), {"id": f"c{i}", "label": "ham", "text": "t"})
-    assert [rec["id"] for _s, rec in scan_labels(fake_redis, KEYS, chunk=3)] == [f"c{i}" for i in range(7)]
+        fake_redis.xadd(KEYS.labels, {"id": f"c{i}", "label": "ham", "text": "t"})
+    assert [rec.id for _s, rec in scan_labels(fake_redis, KEYS, chunk=3)] == [f"c{i}" for i in range(7)]
 
 
 def test_drain_reads_own_pending_after_a_crash(fake_redis):
@@ -113,7 +112,7 @@ def test_drain_reads_own_pending_after_a_crash(fake_redis):
     assert r.xpending(KEYS.feedback, "labellers")["pending"] == 1
     assert consumer(r).drain() == 1
     assert r.xpending(KEYS.feedback, "labellers")["pending"] == 0
-    assert r.xlen(labels_key(KEYS)) == 1
+    assert r.xlen(KEYS.labels) == 1
 
 
 @pytest.mark.redis_server
@@ -125,7 +124,7 @@ def test_drain_claims_entries_stuck_on_a_dead_consumer(redis_client):
     retrain = FeedbackConsumer(client=r, keys=KEYS, consumer="retrain", settings=FeedbackSettings(claim_idle_ms=0))
     assert retrain.drain() == 1
     assert r.xpending(KEYS.feedback, "labellers")["pending"] == 0
-    assert r.xlen(labels_key(KEYS)) == 1
+    assert r.xlen(KEYS.labels) == 1
 
 
 @pytest.mark.redis_server
@@ -141,7 +140,7 @@ def test_run_thread_consumes_on_a_real_server(redis_client):
         r.xadd(KEYS.feedback, {"id": "c7", "label": "ham", "moderator": "mod-b"})
         r.xadd(KEYS.feedback, {"id": "c8", "label": "ham"})
         for _ in range(200):
-            if r.xlen(labels_key(KEYS)) == 1 and r.xlen(KEYS.deadletter) == 1:
+            if r.xlen(KEYS.labels) == 1 and r.xlen(KEYS.deadletter) == 1:
                 break
             stop.wait(0.02)
     finally:
@@ -172,17 +171,17 @@ def test_feedback_and_labels_commands_round_trip(redis_server, redis_client, tmp
     assert main(["labels", "export", str(path), "--redis", url]) == 0
     rows = [json.loads(line) for line in path.read_text().splitlines()]
     assert [(x["id"], x["label"], x["moderator"]) for x in rows] == [("c1", "spam", "mod-a"), ("c2", "ham", "")]
-    redis_client.delete(labels_key(KEYS))
+    redis_client.delete(KEYS.labels)
     assert main(["labels", "import", str(path), "--redis", url]) == 0
     again = [rec for _s, rec in scan_labels(redis_client, KEYS)]
-    assert [(x["id"], x["text"], x["source"]) for x in again] == [("c1", "free crypto giveaway", "import"),
+    assert [(x.id, x.text, x.source) for x in again] == [("c1", "free crypto giveaway", "import"),
                                                                   ("c2", "nice photo", "import")]
 
 
 @pytest.mark.parametrize(
     "line, message",
     [
-        ("not json", "not JSON"),
+        ("not json", "malformed JSON"),
         ('{"id": "c1", "label": "spam"}', "text missing"),
         ('{"id": "c1", "label": "meh", "text": "t"}', "label must be"),
         ('{"text": "t", "label": 1}', "id missing"),
@@ -212,7 +211,7 @@ def test_consumer_works_on_a_client_with_raw_stream_replies(redis_server):
     r.xadd(KEYS.feedback, {"id": "c2", "label": "nope"})
     c = FeedbackConsumer(client=r, keys=KEYS, consumer="raw", settings=FeedbackSettings(claim_idle_ms=0))
     assert c.drain() == 2
-    assert [rec["id"] for _s, rec in scan_labels(r, KEYS)] == ["c1"]
+    assert [rec.id for _s, rec in scan_labels(r, KEYS)] == ["c1"]
     assert r.xlen(KEYS.deadletter) == 1
 
 
@@ -247,3 +246,42 @@ def test_the_feedback_bounds_are_checked_by_the_retrain_section_too():
 
     with pytest.raises(ValueError, match="feedback_batch"):
         RetrainSettings(feedback_batch=0)
+
+
+@pytest.mark.parametrize(
+    "value, label",
+    [("spam", "spam"), (" HAM ", "ham"), (1, "spam"), (0, "ham"), ("1", "spam"), (b"0", "ham")],
+    ids=["spam", "ham-padded", "one", "zero", "one-string", "zero-bytes"],
+)
+def test_parse_label_accepts_words_and_digits(value, label):
+    assert parse_label(value) == label
+
+
+@pytest.mark.parametrize("value", ["maybe", "", 2, True, None, 1.0], ids=["word", "empty", "two", "bool", "none", "float"])
+def test_parse_label_refuses_everything_else(value):
+    with pytest.raises(ValueError, match="label must be spam, ham, 1 or 0"):
+        parse_label(value)
+
+
+def test_feedback_takes_a_digit_label_like_every_other_reader():
+    out = parse_feedback(b"5-2", {b"id": b"c9", b"label": b"1"}, text_max_bytes=100)
+    assert isinstance(out, Feedback) and out.label == "spam"
+
+
+def test_a_label_record_round_trips_through_its_stream_fields(fake_redis):
+    record = LabelRecord(id="c1", text="see you at the ferry", label="ham", moderator="mod-a", ts="1.000")
+    fake_redis.xadd(KEYS.labels, record.as_fields())
+    assert [rec for _s, rec in scan_labels(fake_redis, KEYS)] == [record]
+    assert LabelRecord.from_fields({b"id": b"c2", b"label": b"eggs", b"text": b"t"}).usable is False
+
+
+def test_a_label_file_on_standard_input_is_read_like_any_other(monkeypatch):
+    import io
+
+    from ops.commands.labels import read_label_file
+
+    lines = b'{"id": "c1", "label": 1, "text": "win big\\u2028now"}\n\n{"id": "c2", "label": "ham", "text": "ok"}\n'
+    monkeypatch.setattr("sys.stdin", io.TextIOWrapper(io.BytesIO(lines)))
+    records = read_label_file("-", text_max_bytes=100, now=5.0)
+    assert [(r.id, r.label, r.text, r.source) for r in records] == [("c1", "spam", "win big\u2028now", "import"),
+                                                                     ("c2", "ham", "ok", "import")]

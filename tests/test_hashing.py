@@ -77,11 +77,3 @@ def test_cache_bound_is_honoured():
 def test_params_round_trip():
     h = TokenHasher(n_buckets=2**12, seed=5, cache_size=10)
     assert TokenHasher(**h.params()) == h
-
-
-def test_docstring_examples():
-    import doctest
-
-    import model.hashing
-
-    assert doctest.testmod(model.hashing).failed == 0

@@ -27,7 +27,7 @@ import urllib.request
 
 import pytest
 
-from kit import wait_until
+from kit import terminate, wait_until
 from ops.bench.stream import invented_comments
 from servers import free_port, require, wait_for_port
 from worker.events import parse_event
@@ -73,13 +73,7 @@ def worker(redis_server, model_file, tmp_path):
         wait_for_port("127.0.0.1", port, timeout=30)
         yield {"url": f"http://127.0.0.1:{port}", "port": port, "log": log_path, "proc": proc}
     finally:
-        if proc.poll() is None:
-            proc.send_signal(signal.SIGTERM)
-            try:
-                proc.wait(timeout=20)
-            except subprocess.TimeoutExpired:
-                proc.kill()
-                proc.wait(timeout=10)
+        terminate(proc)
         log.close()
 
 
@@ -169,12 +163,7 @@ def test_real_worker_metrics_scraped_by_real_prometheus_without_leaking_text(wor
         status, text = fetch(f"http://127.0.0.1:{prom_port}/api/v1/query?query=up")
         assert json.loads(text)["data"]["result"][0]["value"][1] == "1"
     finally:
-        prom.send_signal(signal.SIGTERM)
-        try:
-            prom.wait(timeout=20)
-        except subprocess.TimeoutExpired:
-            prom.kill()
-            prom.wait(timeout=10)
+        terminate(prom)
         prom_log.close()
 
     # the marker word never reached a label or a log line
@@ -232,10 +221,5 @@ def test_processes_each_serve_their_own_endpoint(redis_server, model_file, tmp_p
         per_process = wait_until(counted, timeout=10, what="the two endpoints to add up to every verdict")
         assert sum(per_process) == 200  # summed over instances, as the dashboard does
     finally:
-        proc.send_signal(signal.SIGTERM)
-        try:
-            proc.wait(timeout=30)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-            proc.wait(timeout=10)
+        terminate(proc, timeout=30)
         log.close()

@@ -32,6 +32,7 @@ from ops.retrain import (
     recent_set_padding,
     retrain,
 )
+from worker.labels import iter_label_records
 from retrain_kit import KEYS, bootstrap, model_bytes, send_feedback, stream
 
 SETTINGS = load_config(environ={}).retrain
@@ -129,12 +130,12 @@ def test_corroboration_sets_aside_a_trimmed_sources_unbacked_labels_only():
 
 
 def test_latest_label_of_an_id_wins_and_bad_records_are_skipped():
-    entries = [("1-0", {"id": "c1", "label": "spam", "text": "x", "moderator": "ana"}),
-               ("2-0", {"id": "c2", "label": "ham", "text": "y"}),
-               ("3-0", {"id": "c1", "label": "ham", "text": "x", "moderator": "bo"}),
-               ("4-0", {"id": "c3", "label": "eh", "text": "z"}),
-               ("5-0", {"id": "c4", "label": "ham", "text": "  "})]
-    rows = label_rows(entries)
+    stored = [("1-0", {"id": "c1", "label": "spam", "text": "x", "moderator": "ana"}),
+              ("2-0", {"id": "c2", "label": "ham", "text": "y"}),
+              ("3-0", {"id": "c1", "label": "ham", "text": "x", "moderator": "bo"}),
+              ("4-0", {"id": "c3", "label": "eh", "text": "z"}),
+              ("5-0", {"id": "c4", "label": "ham", "text": "  "})]
+    rows = label_rows(list(iter_label_records(stored)))
     assert [(r.id, r.y, r.moderator) for r in rows] == [("c2", 0, "(unattributed)"), ("c1", 0, "bo")]
 
 
@@ -209,13 +210,18 @@ def test_a_candidate_equal_to_the_active_model_is_not_worse():
 
 # -- against a real server --------------------------------------------------------------------
 
-@pytest.mark.redis_server
-def test_retrain_promotes_a_better_model_and_records_why(redis_client):
-    r = redis_client
-    registry, first = bootstrap(r)
-    old = registry.load()
+@pytest.fixture
+def started(redis_client):
+    """``(client, registry, first version, first model, feedback window, unseen comments)``: the first model
+    active, the stream cut at 2,500 comments."""
+    registry, first = bootstrap(redis_client)
     comments = stream()
-    feedback, test = comments[:2500], comments[2500:]
+    return redis_client, registry, first, registry.load(), comments[:2500], comments[2500:]
+
+
+@pytest.mark.redis_server
+def test_retrain_promotes_a_better_model_and_records_why(started):
+    r, registry, first, old, feedback, test = started
     send_feedback(r, feedback)
     started = time.time()
     report = retrain(r, KEYS, SETTINGS)
@@ -272,14 +278,11 @@ def test_retrain_promotes_a_better_model_and_records_why(redis_client):
 
 
 @pytest.mark.redis_server
-def test_a_worse_warm_start_is_refused_and_the_scratch_fit_promoted(redis_client, monkeypatch):
+def test_a_worse_warm_start_is_refused_and_the_scratch_fit_promoted(started, monkeypatch):
     import ops.retrain
 
-    r = redis_client
-    registry, first = bootstrap(r)
-    old = registry.load()
-    comments = stream()
-    send_feedback(r, comments[:2500])
+    r, registry, first, old, feedback, unseen = started
+    send_feedback(r, feedback)
     # A broken update: the warm start learns every label the wrong way round.  The scratch fit,
     # built from the same labels, is fine; the gate must not ship the warm start.
     real = ops.retrain._warm_start
@@ -304,7 +307,7 @@ def test_a_worse_warm_start_is_refused_and_the_scratch_fit_promoted(redis_client
     assert any(x.startswith("holdout: the warm start may be below the active model") for x in report["reasons"])
     assert report["reasons"][-1] == ("chose the scratch fit, the only candidate not worse than the active model; "
                                      "the warm start may be below it")
-    assert quality(registry.load(), comments[2500:])["roc_auc"] > quality(old, comments[2500:])["roc_auc"]
+    assert quality(registry.load(), unseen)["roc_auc"] > quality(old, unseen)["roc_auc"]
 
 
 def test_labels_an_earlier_retrain_set_aside_stay_out_of_the_next_one(fake_redis):
@@ -375,12 +378,8 @@ def test_a_flood_of_contrary_labels_is_capped_and_refused_by_the_gate(redis_clie
 
 
 @pytest.mark.redis_server
-def test_a_trimmed_honest_moderator_still_teaches_the_campaign_where_others_back_her(redis_client):
-    r = redis_client
-    registry, first = bootstrap(r)
-    old = registry.load()
-    comments = stream()
-    window, test = comments[:2500], comments[2500:]
+def test_a_trimmed_honest_moderator_still_teaches_the_campaign_where_others_back_her(started):
+    r, registry, first, old, window, test = started
     # One busy moderator labels four comments in five; two others the rest. She is over the cap, so
     # what she kept trains only where the others labelled the same kind of comment the same way: the
     # campaign (near-duplicates) and repeated background spam, not her one-off ham labels.

@@ -8,12 +8,31 @@ import math
 import numpy as np
 import pytest
 
-from model.calibration import HeldOutHam
-from worker.routing import (HOLD, PUBLISH, REJECT, Cutoffs, Decision, Router, RoutingSettings, parse_site_overrides,
+from model.actions import ACTIONS, THRESHOLD_ACTIONS, Action, parse_action
+from model.calibration import HeldOutHam, Thresholds
+from worker.routing import (HOLD, PUBLISH, REJECT, Decision, Router, RoutingSettings, parse_site_overrides,
                             route, routing_settings_from_environment)
 
-MODEL = Cutoffs(hold=0.3, reject=0.8)
+MODEL = Thresholds(hold=0.3, reject=0.8)
 NO_FLOORS = RoutingSettings(hold_floor=0.0, reject_floor=0.0)
+
+
+def actions(router, scores, sites):
+    return [d.action for d in router.decide_many(scores, sites)]
+
+
+def test_the_action_vocabulary():
+    assert [a.value for a in ACTIONS] == ["publish", "hold", "reject"]
+    assert THRESHOLD_ACTIONS == (Action.HOLD, Action.REJECT)
+    # Each threshold is named after the action it leads to (Thresholds.hold, .reject).
+    assert all(hasattr(Thresholds(hold=0.5, reject=0.9), a) for a in THRESHOLD_ACTIONS)
+    assert parse_action(b"reject") is Action.REJECT and Action.HOLD == "hold"
+    with pytest.raises(ValueError, match="action must be one of"):
+        parse_action("delete")
+
+
+def test_a_decision_keeps_its_action_as_an_action():
+    assert Decision("hold").action is Action.HOLD
 
 
 @pytest.mark.parametrize(
@@ -30,22 +49,22 @@ def test_router_applies_site_overrides_and_keeps_the_model_elsewhere():
                     site_overrides={"strict.example": {"hold": 0.1}, "lax.example": {"reject": 0.95}})
     scores = [0.2, 0.2, 0.9, 0.9]
     sites = ["strict.example", "other.example", "lax.example", "other.example"]
-    assert router.route_many(scores, sites) == [HOLD, PUBLISH, HOLD, REJECT]
+    assert actions(router, scores, sites) == [HOLD, PUBLISH, HOLD, REJECT]
     assert [d.rule for d in router.decide_many(scores, sites)] == ["site", "model", "site", "model"]
-    assert router.cutoffs("strict.example") == Cutoffs(0.1, 0.8)
+    assert router.cutoffs("strict.example") == Thresholds(0.1, 0.8)
 
 
 def test_router_matches_route_for_every_score():
     router = Router(thresholds=MODEL, settings=NO_FLOORS)
     scores = [i / 100 for i in range(101)]
-    assert router.route_many(scores, [""] * len(scores)) == [route(s, MODEL) for s in scores]
+    assert actions(router, scores, [""] * len(scores)) == [route(s, MODEL) for s in scores]
 
 
 def test_floors_lift_low_model_thresholds():
     # A model whose targets gave hold 0.0005 (near-separable held-out data) still holds only from 0.5.
-    router = Router(thresholds=Cutoffs(0.0005, 0.3))
-    assert router.cutoffs("") == Cutoffs(0.5, 0.9)
-    assert router.route_many([0.0723, 0.6, 0.95], ["", "", ""]) == [PUBLISH, HOLD, REJECT]
+    router = Router(thresholds=Thresholds(0.0005, 0.3))
+    assert router.cutoffs("") == Thresholds(0.5, 0.9)
+    assert actions(router, [0.0723, 0.6, 0.95], ["", "", ""]) == [PUBLISH, HOLD, REJECT]
 
 
 def test_the_stricter_of_target_and_floor_per_site():
@@ -55,18 +74,18 @@ def test_the_stricter_of_target_and_floor_per_site():
         "careful.example": {"hold_floor": 0.7, "reject_floor": 0.97},
         "tight.example": {"reject_fpr": 0.0005, "hold_fpr": 0.005},
     })
-    router = Router(thresholds=Cutoffs(0.5, 0.9), held_out_ham=ham, settings=settings)
+    router = Router(thresholds=Thresholds(0.5, 0.9), held_out_ham=ham, settings=settings)
     default = router.cutoffs("")
     assert default.hold == pytest.approx(ham.threshold_for(0.02)) and default.hold > 0.5
     assert router.cutoffs("lenient.example").hold == max(0.5, ham.threshold_for(0.1))
-    assert router.cutoffs("careful.example") == Cutoffs(max(0.7, default.hold), max(0.97, default.reject))
+    assert router.cutoffs("careful.example") == Thresholds(max(0.7, default.hold), max(0.97, default.reject))
     tight = router.cutoffs("tight.example")
     assert tight.hold == pytest.approx(max(0.5, ham.threshold_for(0.005))) and tight.hold > default.hold
     assert tight.reject == max(0.9, ham.threshold_for(0.0005))
 
 
 def test_a_site_cutoff_that_changes_the_action_names_the_site_rule():
-    router = Router(thresholds=Cutoffs(0.5, 0.9), settings=RoutingSettings(site_thresholds={"quiet.example": {"hold": 0.95}}))
+    router = Router(thresholds=Thresholds(0.5, 0.9), settings=RoutingSettings(site_thresholds={"quiet.example": {"hold": 0.95}}))
     decisions = router.decide_many([0.3, 0.7, 0.93, 0.97, 0.7], ["quiet.example"] * 4 + ["busy.example"])
     assert [(d.action, d.rule) for d in decisions] == [
         ("publish", "model"), ("publish", "site"), ("publish", "site"), ("reject", "model"), ("hold", "model")]
@@ -74,7 +93,7 @@ def test_a_site_cutoff_that_changes_the_action_names_the_site_rule():
 
 @pytest.mark.parametrize(
     "override,expected",
-    [({"hold": 0.9}, Cutoffs(0.9, 0.9)), ({"reject": 0.2}, Cutoffs(0.2, 0.2))],
+    [({"hold": 0.9}, Thresholds(0.9, 0.9)), ({"reject": 0.2}, Thresholds(0.2, 0.2))],
     ids=["hold-above-model-reject", "reject-below-model-hold"],
 )
 def test_a_one_sided_override_moves_the_other_threshold(override, expected):
@@ -84,7 +103,7 @@ def test_a_one_sided_override_moves_the_other_threshold(override, expected):
 
 def test_fixed_cutoffs_for_one_run():
     router = Router(thresholds=MODEL, fixed={"hold": 0.2})
-    assert router.cutoffs("") == Cutoffs(0.2, 0.9)
+    assert router.cutoffs("") == Thresholds(0.2, 0.9)
     with pytest.raises(ValueError, match="must not exceed"):
         Router(thresholds=MODEL, fixed={"hold": 0.9, "reject": 0.2})
 
@@ -117,9 +136,9 @@ def test_crossed_site_targets_are_refused_when_the_router_is_built():
 
 
 @pytest.mark.parametrize("hold,reject", [(0.9, 0.1), (math.nan, 0.5), (0.1, 2.0)], ids=["crossed", "nan", "above-one"])
-def test_cutoffs_check_their_values(hold, reject):
+def test_thresholds_check_their_values(hold, reject):
     with pytest.raises(ValueError, match="thresholds"):
-        Cutoffs(hold, reject)
+        Thresholds(hold, reject)
 
 
 @pytest.mark.parametrize(
@@ -149,3 +168,12 @@ def test_routing_settings_come_from_the_environment_and_the_config_file(tmp_path
     assert dict(routing_settings_from_environment(env).site_thresholds) == {"a.example": {"hold_floor": 0.8}}
     with pytest.raises(ValueError, match="SEAWALL_WORKER_HOLD_FLOOR"):
         routing_settings_from_environment({"SEAWALL_WORKER_HOLD_FLOOR": "high"})
+
+
+def test_numpy_scores_route_like_floats():
+    router = Router(thresholds=MODEL, settings=NO_FLOORS, site_overrides={"s.example": {"hold": 0.1}})
+    scores = np.array([0.05, 0.2, 0.5, 0.95])
+    sites = ["s.example", "s.example", "", ""]
+    assert [(d.action, d.rule) for d in router.decide_many(scores, sites)] == \
+        [(d.action, d.rule) for d in router.decide_many([float(s) for s in scores], sites)] == \
+        [(PUBLISH, "model"), (HOLD, "site"), (HOLD, "model"), (REJECT, "model")]

@@ -7,7 +7,7 @@ import re
 from ops.cli import main
 from ops.commands.labels import parse_label_line
 from ops.datafiles import read_examples
-from ops.scenario import WAVE_TERMS
+from ops.lab.scenario import WAVE_TERMS
 
 
 def rows(path) -> list[dict]:
@@ -35,7 +35,7 @@ def test_later_comments_carry_moderators_and_a_campaign_the_history_never_saw(tm
     assert 20 <= len(campaign) and all(r["label"] == "spam" for r in campaign)
     for i, r in enumerate(got[:50]):
         record = parse_label_line(json.dumps(r), f"later.jsonl:{i + 1}", text_max_bytes=262144, now=0.0)
-        assert record["moderator"] == r["moderator"]
+        assert record.moderator == r["moderator"]
 
 
 def test_the_same_seed_gives_the_same_file_and_hosts_are_invented(tmp_path):

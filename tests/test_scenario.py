@@ -5,7 +5,7 @@ import itertools
 
 import pytest
 
-from ops.scenario import DOMAIN, SITES, WAVE_SITES, WAVE_TERMS, Scenario, words
+from ops.lab.scenario import DOMAIN, SITES, WAVE_SITES, WAVE_TERMS, Scenario, words
 
 SMALL = dict(duration_s=3600.0, wave_start_s=1200.0, wave_end_s=2400.0, rate_per_min=40.0, wave_rate_per_min=10.0)
 

@@ -86,3 +86,11 @@ def test_train_names_the_calibration_default_without_importing_the_model(capsys)
     with pytest.raises(SystemExit):
         main(["train", "x.jsonl", "--out", "model.npz", "--calibration", "guesswork"])
     assert "invalid choice: 'guesswork'" in capsys.readouterr().err
+
+
+def test_the_serving_path_never_imports_the_lab():
+    # ops/lab/ holds invented data and the demo; a worker, its monitor and the console run without it.
+    code = ("import sys; import ops.serving, ops.monitor, ops.commands.serve, ops.console.app, ops.retrain, worker.jobs;"
+            "print(sorted(m for m in sys.modules if m == 'ops.lab' or m.startswith('ops.lab.')))")
+    out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True, timeout=60)
+    assert out.stdout.strip() == "[]", out.stderr

@@ -1,7 +1,7 @@
 """Decisions that do not silence ordinary readers, reasons that explain them, and one set of
 routing settings for every path (``seawall serve``, ``seawall score``, the RQ job).
 
-The data are invented (ops/communities.py, ops/scenario.py); the model is the real one, and the
+The data are invented (ops/lab/communities.py, ops/lab/scenario.py); the model is the real one, and the
 workers run against a real redis-server.
 """
 from __future__ import annotations
@@ -19,7 +19,7 @@ from faults_kit import read_stream
 from kit import Worker, stop_all, wait_until
 from model.classifier import EmbeddingClassifier
 from ops.bench.calibration import labelled, ordinary
-from ops.communities import CommunityScenario
+from ops.lab.communities import CommunityScenario
 from worker.routing import Decision, Router, RoutingSettings
 from worker.settings import Keys
 

@@ -86,7 +86,9 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 
+from model.actions import Action
 from model.minhash import MinHasher, band_hashes
+from model.params import flag, integer, one_of, real, set_params
 from model.tokens import Tokenizer
 from worker.events import EVENTS_MAXLEN, add_event
 from worker.routing import CAMPAIGN_RULE, Decision
@@ -367,32 +369,24 @@ return finish()
 """
 
 
-def _is_int(low: int, high: int = 10**9):
-    return lambda v: isinstance(v, int) and not isinstance(v, bool) and low <= v <= high
-
-
-def _is_real(low: float, high: float):
-    return lambda v: isinstance(v, (int, float)) and not isinstance(v, bool) and low <= v <= high
-
-
 # One declarative table: parameter -> check.
 _PARAMS = {
-    "bands": _is_int(1),
-    "min_size": _is_int(2),
-    "min_authors": _is_int(1),
-    "window_s": _is_int(1),
-    "min_words": _is_int(1),
-    "hold": lambda v: isinstance(v, bool),
-    "baseline_days": _is_int(1, 365),
-    "burst_ratio": _is_real(1.0, 1e6),
-    "peak_ratio": _is_real(1.0, 1e6),
-    "new_author_s": _is_int(0, 10**9),
-    "warmup_s": _is_int(0, 10**9),
-    "link_size": _is_int(2),
-    "new_author_share": _is_real(0.0, 1.0),
-    "lean_share": _is_real(0.0, 1.0),
-    "lean_quantile": _is_real(0.5, 0.999),
-    "signals": lambda v: v in SIGNALS,
+    "bands": integer(1),
+    "min_size": integer(2),
+    "min_authors": integer(1),
+    "window_s": integer(1),
+    "min_words": integer(1),
+    "hold": flag(),
+    "baseline_days": integer(1, 365),
+    "burst_ratio": real(1.0, 1e6),
+    "peak_ratio": real(1.0, 1e6),
+    "new_author_s": integer(0, 10**9),
+    "warmup_s": integer(0, 10**9),
+    "link_size": integer(2),
+    "new_author_share": real(0.0, 1.0),
+    "lean_share": real(0.0, 1.0),
+    "lean_quantile": real(0.5, 0.999),
+    "signals": one_of(SIGNALS),
 }
 
 
@@ -576,30 +570,11 @@ class CampaignPolicy:
                  warmup_s: int = DAY_S, new_author_share: float = 0.5, link_size: int = 3, lean_share: float = 0.5,
                  lean_quantile: float = 0.9, signals: str = "authors",
                  clock: Callable[[], float] = time.time, events_maxlen: int = EVENTS_MAXLEN):
-        given = locals()
-        for name, ok in _PARAMS.items():
-            if not ok(given[name]):
-                raise ValueError(f"CampaignPolicy: bad {name} {given[name]!r}")
+        set_params(self, _PARAMS, locals())
         if hasher.num_perm % bands:
             raise ValueError(f"CampaignPolicy: bands {bands} must divide the signature length {hasher.num_perm}")
         self.keys = keys
         self.hasher = hasher
-        self.bands = bands
-        self.min_size = min_size
-        self.min_authors = min_authors
-        self.window_s = window_s
-        self.min_words = min_words
-        self.hold = hold
-        self.baseline_days = baseline_days
-        self.burst_ratio = float(burst_ratio)
-        self.peak_ratio = float(peak_ratio)
-        self.new_author_s = new_author_s
-        self.warmup_s = warmup_s
-        self.link_size = link_size
-        self.new_author_share = float(new_author_share)
-        self.lean_share = float(lean_share)
-        self.lean_quantile = float(lean_quantile)
-        self.signals = signals
         self.clock = clock
         self.events_maxlen = events_maxlen
         self.tokenizer = Tokenizer(**CAMPAIGN_TOKENIZER)
@@ -622,8 +597,8 @@ class CampaignPolicy:
         out = list(decisions)
         for i, campaign in members.items():
             d = out[i]
-            if self.hold and d.action == "publish":
-                out[i] = Decision("hold", CAMPAIGN_RULE, campaign)
+            if self.hold and d.action == Action.PUBLISH:
+                out[i] = Decision(Action.HOLD, CAMPAIGN_RULE, campaign)
             else:
                 out[i] = Decision(d.action, d.rule, campaign)
         return out

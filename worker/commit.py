@@ -47,7 +47,9 @@ from redis.exceptions import NoScriptError
 
 from worker.routing import HOLD, PUBLISH, REJECT
 from worker.settings import Keys
-from worker.validation import Comment, DeadLetter
+from worker.streams import stream_id_order as _id_order
+from worker.validation import DeadLetter
+from worker.verdicts import Verdict as Scored  # the verdict record; its home is worker/verdicts.py
 
 WRITTEN = 1
 DUPLICATE = 0
@@ -167,18 +169,6 @@ return out
 """
 
 
-@dataclass(frozen=True, slots=True)
-class Scored:
-    """One comment ready to commit: its score, action and reasons already formatted, and the rule that decided."""
-
-    comment: Comment
-    score: str
-    action: str
-    reasons: str
-    rule: str = "model"
-    campaign: str = ""
-
-
 def text_digest(text: str) -> str:
     """The verdict's ``digest``: the first 16 hex digits of SHA-256 of the text in UTF-8.
 
@@ -269,9 +259,3 @@ class BatchCommitter:
             self._sha = client.script_load(COMMIT_LUA)
             reply = client.evalsha(self._sha, len(keys), *keys, *args)
         return [int(x) for x in reply]
-
-
-def _id_order(stream_id: str) -> tuple[int, int]:
-    """Stream ids order by (ms, seq) as numbers, not as strings ("9-0" < "10-0")."""
-    ms, _, seq = stream_id.partition("-")
-    return int(ms), int(seq or 0)

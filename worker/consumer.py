@@ -25,7 +25,6 @@ and is read again, so nothing the transport kept is lost.
 """
 from __future__ import annotations
 
-from json.encoder import encode_basestring_ascii as _json_string
 import logging
 import os
 import socket
@@ -35,7 +34,7 @@ from dataclasses import dataclass, field
 
 from concurrent.futures import ThreadPoolExecutor
 
-from worker.commit import WRITTEN, Scored
+from worker.commit import WRITTEN
 from worker.deadletters import DeadLetterLog
 from worker.loader import ModelSource
 from worker.observer import NullObserver, WorkerObserver
@@ -45,6 +44,7 @@ from worker.settings import Keys, WorkerSettings
 from worker.streams import Entry, stream_id_ms
 from worker.transport import Backoff, Batch, CommentSource, TransientError, VerdictSink
 from worker.validation import Comment, DeadLetter, Limits as InputLimits, comment_dead_letter, dead_letter, validate
+from worker.verdicts import Verdict
 
 log = logging.getLogger("seawall.worker")
 
@@ -71,21 +71,6 @@ class BatchResult:
         self.duplicates += other.duplicates
         for reason, n in other.dead.items():
             self.dead[reason] = self.dead.get(reason, 0) + n
-
-
-def format_reasons(reasons) -> str:
-    """``[[token, contribution], ...]`` as compact JSON, contributions to 4 decimals.
-
-    Built by hand because it runs once per comment on the hot path; the
-    token goes through the json module's own string escaper, and NaN or an
-    infinity (not JSON) is written as 0.
-    """
-    if not reasons:
-        return "[]"
-    return "[" + ",".join([
-        f"[{_json_string(str(t))},{c:.4f}]" if -1e300 < c < 1e300 else f"[{_json_string(str(t))},0.0]"
-        for t, c in reasons
-    ]) + "]"
 
 
 class StreamConsumer:
@@ -361,7 +346,7 @@ class StreamConsumer:
         self.observer.on_batch(size, time.perf_counter() - t0)
         return result
 
-    def _score(self, comments: list[Comment]) -> tuple[list[Scored], list[DeadLetter]]:
+    def _score(self, comments: list[Comment]) -> tuple[list[Verdict], list[DeadLetter]]:
         """One ``score_many`` call for the batch; if it fails, find the comments it fails on."""
         if not comments:
             return [], []
@@ -393,7 +378,7 @@ class StreamConsumer:
             cutoffs = [cutoffs[i] for i in index]
         return self._route(comments, scores, reasons, cutoffs)
 
-    def _score_each(self, comments: list[Comment]) -> tuple[list[Scored], list[DeadLetter]]:
+    def _score_each(self, comments: list[Comment]) -> tuple[list[Verdict], list[DeadLetter]]:
         good, scores, reasons, cutoffs, dead = [], [], [], [], []
         for c in comments:
             try:
@@ -409,7 +394,7 @@ class StreamConsumer:
         scored, bad = self._route(good, scores, reasons, cutoffs)
         return scored, dead + bad
 
-    def _route(self, comments, scores, reasons, ranked_from) -> tuple[list[Scored], list[DeadLetter]]:
+    def _route(self, comments, scores, reasons, ranked_from) -> tuple[list[Verdict], list[DeadLetter]]:
         """Decide, let the policies adjust, and explain each final action (``ranked_from``: the
         cutoff each comment's reasons were ranked for; see :func:`worker.routing.explain_decisions`)."""
         dead = []
@@ -430,7 +415,6 @@ class StreamConsumer:
                                         ranked_from, top_k=TOP_K)
         except Exception:  # noqa: BLE001 - the scores stand; only the order of the reasons is lost
             log.exception("explaining held comments again failed; their reasons keep the model's order")
-        scored = [Scored(c, f"{s:.4f}", d.action, format_reasons(r), d.rule, d.campaign)
-                  for c, s, d, r in zip(comments, scores, decisions, reasons)]
+        scored = [Verdict.of(c, s, d, r) for c, s, d, r in zip(comments, scores, decisions, reasons)]
         return scored, dead
 

@@ -34,11 +34,12 @@ import secrets
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
+from model.actions import Action
+from worker.labels import HAM, SPAM
 from worker.settings import Keys
 
-PUBLISH = "publish"
-REJECT = "reject"
-LABEL_OF = {PUBLISH: "ham", REJECT: "spam"}
+PUBLISH, REJECT = Action.PUBLISH, Action.REJECT
+LABEL_OF = {PUBLISH: HAM, REJECT: SPAM}
 ACTION_OF = {label: action for action, label in LABEL_OF.items()}
 DECISIONS_MAXLEN = 1_000_000
 AUDIT_MAXLEN = 1_000_000

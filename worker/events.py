@@ -1,8 +1,8 @@
 """Entries of the ``events`` stream: ``type``, ``ts`` (epoch seconds), ``data`` (a JSON object).
 
-Writers (the wave detector, campaign detection, retrains) and readers
-(``seawall watch``, the metrics refresh) share these two helpers, so that the
-entry format lives in one place.  Event data never carries comment text or an
+Writers (the wave detector, campaign detection, retrains, the model registry)
+and readers (``seawall watch``, the metrics refresh, the demo) share these
+helpers, so that the entry format lives in one place.  Event data never carries comment text or an
 author: only sites, counts, rates, ids of Seawall's own objects and times.
 """
 from __future__ import annotations
@@ -33,6 +33,12 @@ def add_event(client, stream: str, type: str, data: dict, *, ts: float, maxlen: 
     if pipeline is None:
         return pipe.execute()[0]
     return None
+
+
+def read_events(client, stream: str, *, newest_first: bool = False, count: int | None = None) -> list[Event]:
+    """The events of ``stream`` (oldest first, or the ``count`` newest first); entries that are not events are skipped."""
+    raw = client.xrevrange(stream, count=count) if newest_first else client.xrange(stream, count=count)
+    return [e for e in (parse_event(sid, fields) for sid, fields in raw) if e is not None]
 
 
 def parse_event(stream_id, fields: dict) -> Event | None:

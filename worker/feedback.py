@@ -19,9 +19,7 @@ field the moderator sent (a name Seawall writes itself, such as the
 moderator's ``reason`` note, is kept as ``orig_<name>``) and adds ``reason``,
 ``detail``, ``stream_id`` and ``source``.
 
-The label record is a flat map of UTF-8 strings: ``id, text, label
-(spam|ham), moderator, reason, site, ts (epoch seconds), source
-(feedback|import), feedback_id`` (the feedback entry's stream id).
+The label record and the labelled store live in :mod:`worker.labels`.
 """
 from __future__ import annotations
 
@@ -31,20 +29,20 @@ import os
 import socket
 import threading
 import time
-from collections.abc import Iterable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 import redis
 
 from worker.deadletters import DeadLetterLog
 from worker.groupreader import GroupReader
+from worker.labels import LabelRecord, append_label, parse_label
 from worker.settings import FeedbackSettings, Keys
 from worker.transport import Backoff
 from worker.validation import RESERVED, field_names, shown_name
 
 log = logging.getLogger(__name__)
 
-LABELS = ("spam", "ham")
 ID_MAX_BYTES = 256
 NAME_MAX_BYTES = 128
 REASON_MAX_BYTES = 1024
@@ -77,10 +75,6 @@ class Rejected:
     detail: str = ""
 
 
-def labels_key(keys: Keys) -> str:
-    return keys.key("labels")
-
-
 def held_key(keys: Keys) -> str:
     return keys.held
 
@@ -108,7 +102,7 @@ def parse_feedback(stream_id, fields: Mapping, *, text_max_bytes: int) -> Feedba
     Returns a :class:`Feedback`, or a :class:`Rejected` with a reason:
     ``feedback_too_many_fields``, ``feedback_invalid_utf8``,
     ``feedback_missing_id``, ``feedback_bad_id`` (too long),
-    ``feedback_unknown_label`` (missing or not spam|ham),
+    ``feedback_unknown_label`` (missing, or not spam, ham, 1 or 0),
     ``feedback_text_too_large``, ``feedback_bad_field`` (moderator or reason too long).
     """
     sid = _raw(stream_id).decode("utf-8", "replace")
@@ -136,10 +130,11 @@ def parse_feedback(stream_id, fields: Mapping, *, text_max_bytes: int) -> Feedba
                         + field_names(decoded, wanted="id" if "id" not in decoded else ""))
     if sizes.get("id", 0) > ID_MAX_BYTES:
         return rejected("feedback_bad_id", f"id is {sizes['id']} bytes, limit {ID_MAX_BYTES}")
-    label = decoded.get("label", "").strip().lower()
-    if label not in LABELS:
+    try:
+        label = parse_label(decoded.get("label", ""))
+    except ValueError:
         what = ("is missing; " + field_names(decoded, wanted="label")) if "label" not in decoded else \
-            f"must be spam or ham (got {sizes['label']} bytes of something else)"
+            f"must be spam, ham, 1 or 0 (got {sizes['label']} bytes of something else)"
         return rejected("feedback_unknown_label", f"label {what}")
     if sizes.get("moderator", 0) > NAME_MAX_BYTES:
         return rejected("feedback_bad_field", f"moderator is {sizes['moderator']} bytes, limit {NAME_MAX_BYTES}")
@@ -162,7 +157,7 @@ def parse_feedback(stream_id, fields: Mapping, *, text_max_bytes: int) -> Feedba
 
 
 def join_label(fb: Feedback, cached: Mapping | None, *, now: float, text_max_bytes: int,
-               source: str = "feedback") -> dict[str, str] | Rejected:
+               source: str = "feedback") -> LabelRecord | Rejected:
     """The label record for ``fb`` joined to the cached comment (pure).
 
     ``cached`` is the ``text:{id}`` hash (bytes or str keys), or None/empty when
@@ -187,26 +182,8 @@ def join_label(fb: Feedback, cached: Mapping | None, *, now: float, text_max_byt
                         "the feedback has no text and none is cached for this id (the worker never scored it, "
                         "or its text expired after worker.text_cache_ttl_s); send the text with the label")
     site = _raw(cache.get("site", b"")).decode("utf-8", "replace")
-    return {
-        "id": fb.id,
-        "text": text,
-        "label": fb.label,
-        "moderator": fb.moderator,
-        "reason": fb.reason,
-        "site": site,
-        "ts": f"{now:.3f}",
-        "source": source,
-        "feedback_id": fb.stream_id,
-    }
-
-
-def write_label(client, keys: Keys, record: Mapping[str, str], *, labels_max: int, pipeline=None):
-    """Append one label record to the bounded labelled store (oldest trimmed)."""
-    pipe = pipeline if pipeline is not None else client.pipeline(transaction=True)
-    pipe.xadd(labels_key(keys), dict(record), maxlen=labels_max, approximate=False)
-    if pipeline is None:
-        return pipe.execute()
-    return None
+    return LabelRecord(id=fb.id, text=text, label=fb.label, moderator=fb.moderator, reason=fb.reason, site=site,
+                       ts=f"{now:.3f}", source=source, feedback_id=fb.stream_id)
 
 
 def write_deadletter(client, keys: Keys, rejected: Rejected, *, maxlen: int = 100_000, pipeline=None):
@@ -296,8 +273,8 @@ class FeedbackConsumer:
                 counts["deadlettered"] += 1
                 dead.append(item)
             else:
-                write_label(self.client, self.keys, item, labels_max=s.labels_max, pipeline=pipe)
-                pipe.zrem(held_key(self.keys), item["id"])
+                append_label(self.client, self.keys, item, labels_max=s.labels_max, pipeline=pipe)
+                pipe.zrem(held_key(self.keys), item.id)
                 counts["labelled"] += 1
         pipe.xack(self.keys.feedback, s.group, *[sid for sid, _ in entries])
         pipe.execute()
@@ -368,24 +345,3 @@ class FeedbackConsumer:
 def _pairs(entries) -> list[tuple[str, dict]]:
     """Entries as ``(stream_id, fields)``; one deleted while pending has no fields and is dead-lettered."""
     return [(e.stream_id.decode(), dict(e.fields or ())) for e in entries]
-
-
-def iter_label_records(entries: Iterable[tuple[str, Mapping]]) -> Iterable[tuple[str, dict[str, str]]]:
-    """Decode ``XRANGE`` entries of the labelled store into string maps (pure)."""
-    for sid, fields in entries:
-        yield _raw(sid).decode(), {_raw(k).decode("utf-8", "replace"): _raw(v).decode("utf-8", "replace")
-                                   for k, v in fields.items()}
-
-
-def scan_labels(client, keys: Keys, *, start: str = "-", end: str = "+", chunk: int = 1000):
-    """Yield ``(stream_id, record)`` of the labelled store in order, ``chunk`` entries per XRANGE.
-
-    ``start`` may be exclusive (``"(1700000000000-0"``), as XRANGE allows.
-    """
-    cursor = start
-    while True:
-        entries = list(iter_label_records(client.xrange(labels_key(keys), min=cursor, max=end, count=chunk)))
-        yield from entries
-        if len(entries) < chunk:
-            return
-        cursor = "(" + entries[-1][0]

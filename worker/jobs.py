@@ -32,19 +32,18 @@ the job has no access to the operator's Config.
 from __future__ import annotations
 
 import dataclasses
-import json
 import os
 import threading
 import time
 from collections.abc import Mapping, Sequence
 
 from model.errors import SeawallError
-from worker.consumer import format_reasons
 from worker.loader import FileModelSource, ModelSource
 from worker.routing import Router, RoutingSettings, routing_settings_from_environment, score_and_decide
 from worker.settings import WorkerSettings
 from worker.streams import Entry
 from worker.validation import Comment, Limits, validate
+from worker.verdicts import Verdict
 
 #: RQ's JSON serializer (its alias, as ``Queue(serializer=...)`` and ``rq worker --serializer`` take it).
 #: Every job Seawall enqueues uses it, so a job record in Redis is data that cannot run code when read.
@@ -170,8 +169,7 @@ def score_batch(comments, *, top_k: int = 5) -> list[dict]:
         scores, decisions, reasons = score_and_decide(model, router, [c.text for c in good], [c.site for c in good],
                                                       top_k=top_k)
         for c, s, d, r in zip(good, scores, decisions, reasons):
-            verdicts[id(c)] = {"id": c.id, "score": round(s, 4), "action": d.action, "rule": d.rule,
-                               "model": str(model.version), "reasons": json.loads(format_reasons(r)), "site": c.site}
+            verdicts[id(c)] = Verdict.of(c, s, d, r).as_json(model=str(model.version))
     out = []
     for item, c in zip(items, checked):
         if isinstance(c, Comment):

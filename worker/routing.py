@@ -29,12 +29,10 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from types import MappingProxyType
 
+from model.actions import ACTIONS, THRESHOLD_ACTIONS, Action
 from model.calibration import ThresholdChoice, Thresholds, ThresholdTargets, choose_thresholds
 
-PUBLISH = "publish"
-HOLD = "hold"
-REJECT = "reject"
-ACTIONS = (PUBLISH, HOLD, REJECT)
+PUBLISH, HOLD, REJECT = Action.PUBLISH, Action.HOLD, Action.REJECT
 
 MODEL_RULE = "model"
 SITE_RULE = "site"
@@ -42,7 +40,7 @@ CAMPAIGN_RULE = "campaign"
 RULES = (MODEL_RULE, SITE_RULE, CAMPAIGN_RULE)
 
 #: Keys a site may set in ``worker.site_thresholds``.
-CUTOFF_KEYS = ("hold", "reject")
+CUTOFF_KEYS = tuple(a.value for a in THRESHOLD_ACTIONS)
 TARGET_KEYS = ("hold_fpr", "reject_fpr", "hold_floor", "reject_floor")
 
 
@@ -54,46 +52,33 @@ class Decision:
     (also when the campaign did not change the action).
     """
 
-    action: str
+    action: Action
     rule: str = MODEL_RULE
     campaign: str = ""
 
     def __post_init__(self):
         if self.action not in ACTIONS:
-            raise ValueError(f"Decision: action must be one of {ACTIONS}, got {self.action!r}")
+            raise ValueError(f"Decision: action must be one of {[a.value for a in ACTIONS]}, got {self.action!r}")
+        object.__setattr__(self, "action", Action(self.action))
         if self.rule not in RULES:
             raise ValueError(f"Decision: rule must be one of {RULES}, got {self.rule!r}")
         if not isinstance(self.campaign, str) or (self.rule == CAMPAIGN_RULE and not self.campaign):
             raise ValueError(f"Decision: a campaign decision names its campaign, got {self.campaign!r}")
 
 
-# The six decisions routing can make, shared (a Decision is immutable): no allocation per comment.
-_ROUTED = {(a, r): Decision(a, r) for a in ACTIONS for r in (MODEL_RULE, SITE_RULE)}
+# The six decisions routing can make, shared (a Decision is immutable): no allocation per comment.  Each
+# tuple is indexed by how many thresholds a score reached (0 publish, 1 hold, 2 reject: ACTIONS is mildest first).
+_BY_MODEL = tuple(Decision(a, MODEL_RULE) for a in ACTIONS)
+_BY_SITE = tuple(Decision(a, SITE_RULE) for a in ACTIONS)
 
 
-@dataclass(frozen=True, slots=True)
-class Cutoffs:
-    """A (hold, reject) pair, both in [0, 1], hold <= reject."""
+def route(score: float, thresholds: Thresholds) -> Action:
+    """The action for one score under ``thresholds``: the rule :meth:`Router.decide_many` applies to each comment.
 
-    hold: float
-    reject: float
-
-    def __post_init__(self):
-        for name in ("hold", "reject"):
-            value = getattr(self, name)
-            if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0.0 <= value <= 1.0 or math.isnan(value):
-                raise ValueError(f"thresholds: {name} must be a number in [0, 1], got {value!r}")
-        if self.hold > self.reject:
-            raise ValueError(f"thresholds: hold ({self.hold!r}) must not exceed reject ({self.reject!r})")
-
-
-def route(score: float, thresholds) -> str:
-    """The action for one score under ``thresholds`` (anything with ``hold`` and ``reject``)."""
-    if score >= thresholds.reject:
-        return REJECT
-    if score >= thresholds.hold:
-        return HOLD
-    return PUBLISH
+    A score at or above a threshold moves one step up from publish, so the action
+    is :data:`ACTIONS` at the number of thresholds reached.
+    """
+    return ACTIONS[2 if score >= thresholds.reject else 1 if score >= thresholds.hold else 0]
 
 
 def _number(site, name: str, value, low: float, high: float, low_open: bool = False) -> float:
@@ -127,8 +112,8 @@ def parse_site_overrides(table: Mapping) -> dict[str, dict[str, float]]:
             if name in entry:
                 rate = name.endswith("_fpr")
                 picked[name] = _number(site, name, entry[name], 0.0, 0.5 if rate else 1.0, low_open=rate)
-        if "hold" in picked and "reject" in picked and picked["hold"] > picked["reject"]:
-            raise ValueError(f"site_thresholds: {site!r} hold {picked['hold']} exceeds reject {picked['reject']}")
+        if HOLD in picked and REJECT in picked and picked[HOLD] > picked[REJECT]:
+            raise ValueError(f"site_thresholds: {site!r} hold {picked[HOLD]} exceeds reject {picked[REJECT]}")
         out[site] = picked
     return out
 
@@ -140,8 +125,8 @@ def _fixed(fixed: Mapping) -> dict[str, float]:
     for name, value in fixed.items():
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not 0.0 <= value <= 1.0:
             raise ValueError(f"thresholds: {name} must be a number in [0, 1], got {value!r}")
-    if fixed.get("hold", 0.0) > fixed.get("reject", 1.0):
-        raise ValueError(f"thresholds: hold ({fixed['hold']!r}) must not exceed reject ({fixed['reject']!r})")
+    if fixed.get(HOLD, 0.0) > fixed.get(REJECT, 1.0):
+        raise ValueError(f"thresholds: hold ({fixed[HOLD]!r}) must not exceed reject ({fixed[REJECT]!r})")
     return {k: float(v) for k, v in fixed.items()}
 
 
@@ -210,15 +195,16 @@ class Router:
     held_out_ham : the model's :class:`model.calibration.HeldOutHam`, or None.
     settings : :class:`RoutingSettings` (or ``WorkerSettings``); default: Seawall's defaults.
     site_overrides : a ``worker.site_thresholds`` table instead of the one in ``settings``.
-    fixed : ``{"hold": x}`` and/or ``{"reject": y}``: fixed cutoffs for every
+    fixed : ``{HOLD: x}`` and/or ``{REJECT: y}``: fixed cutoffs for every
         site without its own (an operator's override for one run).
 
     Examples
     --------
-    >>> r = Router(thresholds=Cutoffs(0.2, 0.6), settings=RoutingSettings(site_thresholds={"q.example": {"hold": 0.95}}))
+    >>> r = Router(thresholds=Thresholds(hold=0.2, reject=0.6),
+    ...            settings=RoutingSettings(site_thresholds={"q.example": {HOLD: 0.95}}))
     >>> r.cutoffs("any.example"), r.cutoffs("q.example")
-    (Cutoffs(hold=0.5, reject=0.9), Cutoffs(hold=0.95, reject=0.95))
-    >>> [(d.action, d.rule) for d in r.decide_many([0.7, 0.7], ["any.example", "q.example"])]
+    (Thresholds(hold=0.5, reject=0.9), Thresholds(hold=0.95, reject=0.95))
+    >>> [(d.action.value, d.rule) for d in r.decide_many([0.7, 0.7], ["any.example", "q.example"])]
     [('hold', 'model'), ('publish', 'site')]
     """
 
@@ -232,7 +218,7 @@ class Router:
         self._ham = held_out_ham
         self._stored = Thresholds(hold=float(thresholds.hold), reject=float(thresholds.reject))
         self.choice = self._choose(settings.targets())
-        self._default = Cutoffs(self.choice.hold.value, self.choice.reject.value)
+        self._default = self.choice.thresholds
         if fixed:
             self._default = self._site_cutoffs(_fixed(fixed))
         table = settings.site_thresholds if site_overrides is None else site_overrides
@@ -249,23 +235,22 @@ class Router:
     def _choose(self, targets: ThresholdTargets) -> ThresholdChoice:
         return choose_thresholds(self._ham, targets, stored=self._stored)
 
-    def _site_cutoffs(self, override: dict) -> Cutoffs:
+    def _site_cutoffs(self, override: dict) -> Thresholds:
         base = self._default
         if any(k in override for k in TARGET_KEYS):
-            chosen = self._choose(self.settings.targets(override))
-            base = Cutoffs(chosen.hold.value, chosen.reject.value)
+            base = self._choose(self.settings.targets(override)).thresholds
         # A fixed cutoff may cross the other side (hold 0.95 against a reject of 0.9): the fixed
         # side wins and the other one moves to meet it.
-        hold = override.get("hold", base.hold)
-        reject = override.get("reject", base.reject)
+        hold = override.get(HOLD, base.hold)
+        reject = override.get(REJECT, base.reject)
         if hold > reject:
-            if "hold" in override:
+            if HOLD in override:
                 reject = hold
             else:
                 hold = reject
-        return Cutoffs(hold, reject)
+        return Thresholds(hold=hold, reject=reject)
 
-    def cutoffs(self, site: str) -> Cutoffs:
+    def cutoffs(self, site: str) -> Thresholds:
         """The effective (hold, reject) of ``site``."""
         return self._by_site.get(site, self._default)
 
@@ -281,23 +266,25 @@ class Router:
         return [by_site.get(site, default).hold for site in sites]
 
     def decide_many(self, scores: Sequence[float], sites: Sequence[str]) -> list[Decision]:
-        default = self._default
+        """Each comment's action under its site's cutoffs, and the rule that decided it.
+
+        The only path from a score to an action (:func:`route` is the same rule
+        for one score); the comparison is written out here because this loop
+        runs for every comment.  Scores may be floats or numpy floats.
+        """
+        hold, reject = self._default.hold, self._default.reject
         by_site = self._by_site
         out = []
         for score, site in zip(scores, sites):
-            action = REJECT if score >= default.reject else HOLD if score >= default.hold else PUBLISH
+            reached = 2 if score >= reject else 1 if score >= hold else 0
             c = by_site.get(site) if by_site else None
             if c is not None:
-                own = REJECT if score >= c.reject else HOLD if score >= c.hold else PUBLISH
-                if own != action:
-                    out.append(_ROUTED[own, SITE_RULE])
+                own = 2 if score >= c.reject else 1 if score >= c.hold else 0
+                if own != reached:
+                    out.append(_BY_SITE[own])
                     continue
-            out.append(_ROUTED[action, MODEL_RULE])
+            out.append(_BY_MODEL[reached])
         return out
-
-    def route_many(self, scores: Sequence[float], sites: Sequence[str]) -> list[str]:
-        """The actions of :meth:`decide_many`."""
-        return [d.action for d in self.decide_many(scores, sites)]
 
 
 def explain_decisions(model, texts: Sequence[str], scores: Sequence[float], decisions: Sequence[Decision],

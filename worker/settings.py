@@ -17,6 +17,17 @@ def setting(default, help: str, **extra):
     return field(default=default, metadata={"help": help, **extra})
 
 
+class _Name:
+    """A fixed key name of :class:`Keys`: ``keys.comments`` is the prefix followed by ``comments``."""
+
+    def __init__(self, *parts: str, doc: str = ""):
+        self.parts = parts
+        self.__doc__ = doc
+
+    def __get__(self, keys, owner=None):
+        return self if keys is None else keys.key(*self.parts)
+
+
 @dataclass(frozen=True, kw_only=True)
 class Keys:
     """Every Redis key name Seawall uses, derived from one prefix.
@@ -34,33 +45,30 @@ class Keys:
     def key(self, *parts: str) -> str:
         return self.prefix + ":".join(parts)
 
-    @property
-    def comments(self) -> str:
-        return self.key("comments")
+    comments = _Name("comments", doc="Stream of comments to judge.")
+    verdicts = _Name("verdicts", doc="Stream of verdicts.")
+    deadletter = _Name("deadletter", doc="Stream of entries that could not be judged, each with its reason.")
+    feedback = _Name("feedback", doc="Stream of moderators' labels on their way to the labelled store.")
+    events = _Name("events", doc="Stream of events: waves, campaigns, retrains, model switches (worker/events.py).")
+    group = _Name("workers", doc="The stream workers' consumer group.")
+    held = _Name("held", doc="Sorted set of held comments (score = when held).")
+    labels = _Name("labels", doc="The labelled store: a bounded stream of label records (worker/labels.py).")
 
-    @property
-    def verdicts(self) -> str:
-        return self.key("verdicts")
+    # -- the model registry (ops/registry.py) --
+    models_active = _Name("models", "active", doc="The active model's version.")
+    models_history = _Name("models", "history", doc="List of versions that were active, newest first.")
+    models_versions = _Name("models", "versions", doc="Sorted set of pushed versions (score = when pushed).")
+    models_changed = _Name("models", "changed", doc="Pub/sub channel told of every switch of the active model.")
+    models_replay = _Name("models", "replay", doc="The original training rows a retrain replays (compressed).")
+    models_canary = _Name("models", "canary", doc="The canary rows a retrain's gate checks (compressed).")
 
-    @property
-    def deadletter(self) -> str:
-        return self.key("deadletter")
+    def model_blob(self, version: str) -> str:
+        """One pushed model file."""
+        return self.key("models", "blob", version)
 
-    @property
-    def feedback(self) -> str:
-        return self.key("feedback")
-
-    @property
-    def events(self) -> str:
-        return self.key("events")
-
-    @property
-    def group(self) -> str:
-        return self.key("workers")
-
-    @property
-    def held(self) -> str:
-        return self.key("held")
+    def model_meta(self, version: str) -> str:
+        """Hash of one pushed model's metadata (thresholds, source, parent, times, labels cursor)."""
+        return self.key("models", "meta", version)
 
     def text(self, comment_id: str) -> str:
         """Hash caching one comment's text and verdict (TTL ``worker.text_cache_ttl_s``)."""
@@ -79,38 +87,21 @@ class Keys:
         return self.key("campaigns", *parts)
 
     # -- moderators' decisions (worker/decisions.py) and the console's accounts --
-    @property
-    def decisions(self) -> str:
-        """Stream of final moderator decisions, for the site's application."""
-        return self.key("decisions")
-
-    @property
-    def deciding(self) -> str:
-        """Sorted set of decided comments still inside their undo window (score = when final)."""
-        return self.key("decisions", "pending")
+    decisions = _Name("decisions", doc="Stream of final moderator decisions, for the site's application.")
+    deciding = _Name("decisions", "pending",
+                     doc="Sorted set of decided comments still inside their undo window (score = when final).")
+    audit = _Name("audit", doc="Stream of who did what in the console (sign-ins, decisions, undos, promotions).")
+    accounts = _Name("console", "accounts", doc="Hash of console accounts: name -> JSON record (role, salted scrypt hash).")
+    session_secret = _Name("console", "secret",
+                           doc="The key that signs console session cookies, shared by every console process.")
 
     def decision(self, comment_id: str) -> str:
         """Hash of one decision inside its undo window."""
         return self.key("decisions", "pending", comment_id)
 
-    @property
-    def audit(self) -> str:
-        """Stream of who did what in the console (sign-ins, decisions, undos, promotions)."""
-        return self.key("audit")
-
-    @property
-    def accounts(self) -> str:
-        """Hash of console accounts: name -> JSON record (role, salted scrypt hash)."""
-        return self.key("console", "accounts")
-
     def signin_failures(self, account: str) -> str:
         """Counter of one account's failed console sign-ins (TTL: the lockout window)."""
         return self.key("console", "failures", account)
-
-    @property
-    def session_secret(self) -> str:
-        """The key that signs console session cookies, shared by every console process."""
-        return self.key("console", "secret")
 
 
 @dataclass(frozen=True, kw_only=True)

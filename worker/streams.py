@@ -159,11 +159,22 @@ def parse_xinfo_group(reply, group: bytes | str) -> dict[str, int | None]:
     return {"pending": 0, "lag": None}
 
 
-def stream_id_ms(stream_id: bytes | str) -> int:
-    """Milliseconds part of an entry id: the server's clock when the entry was added."""
+def stream_id_order(stream_id: bytes | str) -> tuple[int, int]:
+    """``(ms, seq)`` of an entry id, for ordering: ids compare as numbers, not as strings ("9-0" < "10-0").
+
+    Examples
+    --------
+    >>> sorted(["10-0", "9-1", "9-0"], key=stream_id_order)
+    ['9-0', '9-1', '10-0']
+    """
     raw = stream_id.decode() if isinstance(stream_id, bytes) else stream_id
-    ms, _, _seq = raw.partition("-")
+    ms, _, seq = raw.partition("-")
     try:
-        return int(ms)
+        return int(ms), int(seq or 0)
     except ValueError:
         raise StreamReplyError(f"stream id {raw!r} is not of the form <ms>-<seq>") from None
+
+
+def stream_id_ms(stream_id: bytes | str) -> int:
+    """Milliseconds part of an entry id: the server's clock when the entry was added."""
+    return stream_id_order(stream_id)[0]

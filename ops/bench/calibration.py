@@ -1,7 +1,7 @@
 """``seawall bench calibration``: which probability calibration holds up off the model's home ground.
 
-A model is trained on one invented community (the demo's forum, ops/scenario.py,
-or one of ops/communities.py) and calibrated on a held-out share of that same
+A model is trained on one invented community (the demo's forum, ops/lab/scenario.py,
+or one of ops/lab/communities.py) and calibrated on a held-out share of that same
 community, once per method (identity, Platt, temperature, isotonic).  Each is
 then judged on the *other* communities' labelled comments, which it never saw:
 
@@ -36,8 +36,8 @@ def register(sub) -> None:
 
 def labelled(home: str, seed: int, n: int):
     """``n`` labelled comments of community ``home`` (``hl`` is the demo's forum)."""
-    from ops.communities import CommunityScenario
-    from ops.scenario import Scenario
+    from ops.lab.communities import CommunityScenario
+    from ops.lab.scenario import Scenario
 
     if home == "hl":
         return Scenario(seed=seed).training_set(n)
@@ -46,8 +46,8 @@ def labelled(home: str, seed: int, n: int):
 
 def ordinary(home: str, seed: int, n: int):
     """``n`` ordinary comments (no link, price or offer) of community ``home``."""
-    from ops.communities import CommunityScenario
-    from ops.scenario import Scenario
+    from ops.lab.communities import CommunityScenario
+    from ops.lab.scenario import Scenario
 
     if home == "hl":
         rows = [c for c in Scenario(seed=seed).training_set(4 * n) if c.label == 0 and not _offer(c.text)]
@@ -102,6 +102,7 @@ def sklearn_sigmoid(model, texts, labels):
 def measure(n_train: int, n_held: int, n_judge: int) -> dict:
     import numpy as np
 
+    from model.actions import FLAGGED_ACTIONS
     from model.classifier import EmbeddingClassifier
     from worker.routing import Router, RoutingSettings
 
@@ -126,9 +127,9 @@ def measure(n_train: int, n_held: int, n_judge: int) -> dict:
             for method, model in models.items():
                 router = Router.for_model(model, RoutingSettings())
                 p = model.predict_proba_many(texts)
-                flagged = [d.action != "publish" for d in router.decide_many(p, [""] * len(p))]
+                flagged = [d.action in FLAGGED_ACTIONS for d in router.decide_many(p, [""] * len(p))]
                 plain_p = model.predict_proba_many(plain)
-                plain_flagged = [d.action != "publish" for d in router.decide_many(plain_p, [""] * len(plain_p))]
+                plain_flagged = [d.action in FLAGGED_ACTIONS for d in router.decide_many(plain_p, [""] * len(plain_p))]
                 figures[method].append((*calibration_errors(p, y), float(np.mean(plain_flagged)),
                                         float(np.mean(np.array(flagged)[y == 1]))))
     rows = {}

@@ -3,7 +3,7 @@
 Two parts (``--part``), each against one Redis (its own ``redis-server`` on a
 free port unless ``--redis`` is given; each run under its own key prefix).
 
-**board** (quality): the invented board of :mod:`ops.board` (recurring formats
+**board** (quality): the invented board of :mod:`ops.lab.board` (recurring formats
 posted by established members over simulated days, then a test day with
 campaigns from new accounts, plain and obfuscated) replayed through the
 campaign policy ``seawall serve`` builds (:func:`ops.serving.campaign_policy`,
@@ -46,6 +46,7 @@ import os
 import random
 import tempfile
 
+from model.actions import Action
 from ops.bench import add_harness_arguments, report
 from ops.bench.servers import LocalRedis
 from ops.bench.stream import Harness, invented_comments, run_worker, train_model
@@ -151,7 +152,7 @@ def _count_actions(h: Harness) -> int:
             page = page[1:]
         if not page:
             return held
-        held += sum(1 for _id, f in page if f.get(b"action") == b"hold")
+        held += sum(1 for _id, f in page if f.get(b"action") == Action.HOLD.value.encode())
         last = page[-1][0].decode()
 
 
@@ -189,7 +190,7 @@ def throughput(args, overrides: dict) -> dict:
 
 
 def board_quality(args, overrides: dict) -> dict:
-    """Replay the invented board through the campaign policy; the figures of :meth:`ops.board.Replay.figures`.
+    """Replay the invented board through the campaign policy; the figures of :meth:`ops.lab.board.Replay.figures`.
 
     Three replays: the headline (the model blind to the campaigns, the
     configured second signal), then the model's own scores with the second
@@ -197,7 +198,7 @@ def board_quality(args, overrides: dict) -> dict:
     show what the score lean adds and costs.
     """
     from model.classifier import EmbeddingClassifier
-    from ops.board import Board, blind_scores
+    from ops.lab.board import Board, blind_scores
 
     board = Board(seed=args.board_seed, history_days=args.board_days)
     comments = board.comments()
@@ -221,7 +222,7 @@ def board_quality(args, overrides: dict) -> dict:
 def _replay(url: str, board, comments, scores, overrides: dict, label: str) -> dict:
     import redis
 
-    from ops.board import play
+    from ops.lab.board import play
     from ops.config import load_config
     from ops.serving import campaign_policy
 

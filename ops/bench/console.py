@@ -26,6 +26,7 @@ import threading
 import time
 from urllib.parse import urlencode
 
+from model.actions import Action
 from model.errors import SeawallError
 from ops.bench import report
 from ops.bench.servers import LocalRedis, free_port
@@ -47,7 +48,7 @@ def register(sub) -> None:
 def fill_queue(url: str, keys, comments, model, *, site_thresholds=None, policies=(), clock=time.time) -> int:
     """Send ``comments`` (dicts of input fields) through a real worker with ``model``; returns verdicts written.
 
-    ``site_thresholds`` (e.g. ``{site: {"hold": 0.0, "reject": 1.0}}``) decides
+    ``site_thresholds`` (e.g. ``{site: {hold: 0.0, reject: 1.0}}``) decides
     what gets held; ``policies`` are worker batch policies such as the
     campaign policy.
     """
@@ -192,7 +193,7 @@ def _bench(args, url: str) -> int:
     texts = invented_comments(args.held, seed=11)
     comments = [{"id": f"bench-{i}", "text": t, "site": SITE, "author": f"member-{i % 97}"}
                 for i, (t, _y) in enumerate(texts)]
-    fill_queue(url, keys, comments, model, site_thresholds={SITE: {"hold": 0.0, "reject": 1.0}})
+    fill_queue(url, keys, comments, model, site_thresholds={SITE: {Action.HOLD: 0.0, Action.REJECT: 1.0}})
     held = client.zcard(keys.held)
     accounts = Accounts(client=client, keys=keys)
     accounts.add("bench-moderator", PASSWORD, role="moderator", now=time.time())
@@ -238,7 +239,7 @@ def _bench(args, url: str) -> int:
             t0 = time.perf_counter()
             browser.request("GET", "/healthz")
             floor_s.append(time.perf_counter() - t0)
-            payload = json.dumps({"ids": [comment_id], "action": "reject"}).encode()
+            payload = json.dumps({"ids": [comment_id], "action": Action.REJECT}).encode()
             t0 = time.perf_counter()
             res, body = browser.post_json("/api/decide", payload)
             decide_s.append(time.perf_counter() - t0)

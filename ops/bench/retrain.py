@@ -1,6 +1,6 @@
 """``seawall bench retrain``: one gated retrain with both candidates, against the warm start alone.
 
-The data are invented (ops/scenario.py): the first model is trained on the
+The data are invented (ops/lab/scenario.py): the first model is trained on the
 forum's pre-stream training set; 10,000 short labelled comments from the
 stream (with the campaign in it) go through the feedback stream of an
 in-process fakeredis, and one whole ``retrain()`` runs: drain, guard, the
@@ -37,7 +37,7 @@ def register(sub) -> None:
 def _data(n: int, replay_n: int):
     import random
 
-    from ops.scenario import Scenario
+    from ops.lab.scenario import Scenario
 
     scenario = Scenario(seed=11, wave_start_s=600.0, duration_s=48 * 3600.0)
     original = [(c.text, c.label) for c in scenario.training_set(3000)]
@@ -65,6 +65,7 @@ def _one_retrain(active: bytes, original, update, settings):
 
     from ops.registry import Registry, split_replay
     from ops.retrain import retrain
+    from worker.labels import label_name
     from worker.settings import Keys
 
     client = fakeredis.FakeRedis(server=fakeredis.FakeServer())
@@ -75,7 +76,7 @@ def _one_retrain(active: bytes, original, update, settings):
     registry.set_examples(replay=replay_rows, canary=canary)
     pipe = client.pipeline(transaction=False)
     for i, (text, label) in enumerate(update):
-        pipe.xadd(keys.feedback, {"id": f"bench-{i}", "label": "spam" if label else "ham", "text": text,
+        pipe.xadd(keys.feedback, {"id": f"bench-{i}", "label": label_name(label), "text": text,
                                   "moderator": f"mod-{i % 4}"})
     pipe.execute()
     t0 = time.perf_counter()

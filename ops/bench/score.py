@@ -1,7 +1,7 @@
 """``seawall bench score``: ``seawall score --json`` on stdin against a scikit-learn script.
 
 Both sides are separate processes reading the same JSON Lines file of
-invented forum comments (ops/scenario.py; 50,000 by default, about 160
+invented forum comments (ops/lab/scenario.py; 50,000 by default, about 160
 characters each) on stdin and writing one JSON line per comment to a file:
 
 - Seawall: ``seawall score --model M --json`` (score, action, top-5 reasons);
@@ -48,7 +48,7 @@ def register(sub) -> None:
 def _data(n: int):
     import itertools
 
-    from ops.scenario import Scenario
+    from ops.lab.scenario import Scenario
 
     scenario = Scenario(seed=11, wave_start_s=600.0, duration_s=48 * 3600.0)
     train = scenario.training_set(3000)

@@ -62,8 +62,8 @@ def register(sub) -> None:
 
 
 def run(args) -> int:
-    from ops.demo import DEMO_SETTINGS, demo_scenario, run_demo
-    from ops.demo_report import render_html, summary_text
+    from ops.lab.demo import DEMO_SETTINGS, demo_scenario, run_demo
+    from ops.lab.demo_report import render_html, summary_text
     from ops.serving import configure_logging
 
     embedded = not args.redis

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import json
 
+from model.actions import THRESHOLD_ACTIONS
 from ops.datafiles import read_examples, require_both_classes
 
 
@@ -33,7 +34,7 @@ def run(args) -> int:
     print(f"model {clf.version}: {report['n']} comments ({report['n_spam']} spam, {report['n_ham']} ham)")
     for key in ("roc_auc", "average_precision", "recall_at_1pct_fpr", "recall_at_0_1pct_fpr"):
         print(f"  {key:<22} {report[key]:.4f}")
-    for name in ("hold", "reject"):
+    for name in THRESHOLD_ACTIONS:
         r = report[name]
         cm = r["confusion_matrix"]
         print(

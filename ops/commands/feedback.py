@@ -19,12 +19,13 @@ import time
 
 from model.errors import SeawallError
 from ops.connection import add_connection_args, config_from_args, connect
+from worker.labels import LABELS
 
 
 def register(sub) -> None:
     parser = sub.add_parser("feedback", help="send one moderator label (spam|ham) for a comment id")
     parser.add_argument("id", help="the comment id")
-    parser.add_argument("label", choices=("spam", "ham"), help="the moderator's decision")
+    parser.add_argument("label", choices=LABELS, help="the moderator's decision")
     parser.add_argument("--text", default=None,
                         help="the comment text; required when Seawall has no cached text for ID "
                              "(never scored here, or older than worker.text_cache_ttl_s)")

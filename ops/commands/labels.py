@@ -35,24 +35,13 @@ def register(sub) -> None:
     imp.set_defaults(func=run_import)
 
 
-def _label_name(value, where: str) -> str:
-    if value in (1, "1", "spam"):
-        return "spam"
-    if value in (0, "0", "ham"):
-        return "ham"
-    raise DataError(f"labels import: {where}: label must be spam, ham, 1 or 0, got {value!r}")
-
-
-def parse_label_line(line: str, where: str, *, text_max_bytes: int, now: float) -> dict[str, str]:
-    """One JSONL line -> a label record (pure); raises DataError naming the line."""
+def parse_label_line(line: str, where: str, *, text_max_bytes: int, now: float):
+    """One JSONL line -> a :class:`worker.labels.LabelRecord` (pure); raises DataError naming the line."""
+    from ops.datafiles import parse_object
     from worker.feedback import ID_MAX_BYTES, NAME_MAX_BYTES, REASON_MAX_BYTES
+    from worker.labels import LabelRecord, parse_label
 
-    try:
-        obj = json.loads(line)
-    except json.JSONDecodeError as exc:
-        raise DataError(f"labels import: {where}: not JSON ({exc.msg}); one object per line") from None
-    if not isinstance(obj, dict):
-        raise DataError(f"labels import: {where}: expected a JSON object")
+    obj = parse_object(line, where, "labels import", wanted='"id", "text" and "label"')
     comment_id = str(obj.get("id", "")).strip()
     text = obj.get("text")
     if not comment_id or len(comment_id.encode()) > ID_MAX_BYTES:
@@ -70,37 +59,24 @@ def parse_label_line(line: str, where: str, *, text_max_bytes: int, now: float) 
         ts = float(ts)
     except (TypeError, ValueError):
         raise DataError(f"labels import: {where}: ts must be epoch seconds, got {ts!r}") from None
-    return {
-        "id": comment_id,
-        "text": text,
-        "label": _label_name(obj.get("label"), where),
-        "moderator": moderator,
-        "reason": reason,
-        "site": str(obj.get("site") or ""),
-        "ts": f"{ts:.3f}",
-        "source": "import",
-        "feedback_id": "",
-    }
-
-
-def read_label_file(path: str, *, text_max_bytes: int, now: float) -> list[dict[str, str]]:
     try:
-        handle = contextlib.nullcontext(sys.stdin) if path == "-" else Path(path).open(encoding="utf-8")
-    except OSError as exc:
-        raise DataError(f"labels import: cannot read {path}: {exc.strerror}") from None
-    records = []
-    with handle as lines:
-        try:
-            for lineno, line in enumerate(lines, 1):
-                if line.strip():
-                    records.append(parse_label_line(line, f"{path}:{lineno}", text_max_bytes=text_max_bytes, now=now))
-        except UnicodeDecodeError:
-            raise DataError(f"labels import: {path} is not UTF-8") from None
-    return records
+        label = parse_label(obj.get("label"))
+    except ValueError as exc:
+        raise DataError(f"labels import: {where}: {exc}") from None
+    return LabelRecord(id=comment_id, text=text, label=label, moderator=moderator, reason=reason,
+                       site=str(obj.get("site") or ""), ts=f"{ts:.3f}", source="import")
+
+
+def read_label_file(path: str, *, text_max_bytes: int, now: float) -> list:
+    """Every record of a label file (``-``: standard input), checked before anything is written."""
+    from ops.datafiles import iter_lines
+
+    return [parse_label_line(line, f"{path}:{number}", text_max_bytes=text_max_bytes, now=now)
+            for number, line in iter_lines(path, "labels import") if line.strip()]
 
 
 def run_import(args) -> int:
-    from worker.feedback import held_key, write_label
+    from worker.labels import append_label
 
     config = config_from_args(args)
     records = read_label_file(args.file, text_max_bytes=config.retrain.feedback_text_max_bytes, now=time.time())
@@ -108,8 +84,8 @@ def run_import(args) -> int:
     for i in range(0, len(records), 500):
         pipe = client.pipeline(transaction=True)
         for record in records[i:i + 500]:
-            write_label(client, config.keys, record, labels_max=config.retrain.labels_max, pipeline=pipe)
-            pipe.zrem(held_key(config.keys), record["id"])
+            append_label(client, config.keys, record, labels_max=config.retrain.labels_max, pipeline=pipe)
+            pipe.zrem(config.keys.held, record.id)
         pipe.execute()
     if args.json:
         print(json.dumps({"imported": len(records), "file": args.file}))
@@ -119,7 +95,7 @@ def run_import(args) -> int:
 
 
 def run_export(args) -> int:
-    from worker.feedback import scan_labels
+    from worker.labels import scan_labels
 
     config = config_from_args(args)
     client = connect(config)
@@ -130,7 +106,8 @@ def run_export(args) -> int:
     n = 0
     with handle as out_file:
         for _sid, record in scan_labels(client, config.keys):
-            out = {k: record.get(k, "") for k in EXPORTED}
+            fields = record.as_fields()
+            out = {k: fields[k] for k in EXPORTED}
             out["ts"] = float(out["ts"] or 0)
             out_file.write(json.dumps(out, ensure_ascii=False) + "\n")
             n += 1

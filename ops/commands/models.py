@@ -171,8 +171,7 @@ def _after_switch(args, config, client, result: dict, kind: str, *, head: str = 
 
     result = dict(result, **rescore_after_switch(args.rescore, client, config, result["version"]))
     router = model_router(Registry(client=client, keys=config.keys).load(result["version"]), config.worker)
-    result["thresholds"] = {"hold": router.cutoffs("").hold, "reject": router.cutoffs("").reject,
-                            "warnings": router.warnings()}
+    result["thresholds"] = {**router.cutoffs("").to_dict(), "warnings": router.warnings()}
     switched = f"is active (was {result['previous'] or 'none'})"
     text = (f"{head}; it {switched}" if head else f"models {kind}: {result['version']} {switched}")
     text += f"; {describe(router)}; " + describe_rescore(result, queue=config.retrain.queue)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import json
 
+from model.actions import THRESHOLD_ACTIONS
 from ops.commands.models import add_rescore_arg
 from ops.connection import add_connection_args, config_from_args, connect
 
@@ -68,7 +69,7 @@ def render(report: dict) -> str:
             lines.append(f"  {_LABELS[name]}: not built ({entry['not_built']})")
             continue
         t = entry.get("thresholds") or {}
-        thresholds = f", hold {t['hold']:.4f}, reject {t['reject']:.4f}" if t else ""
+        thresholds = "".join(f", {a} {t[a]:.4f}" for a in THRESHOLD_ACTIONS) if t else ""
         lines.append(f"  {_LABELS[name]}: {entry.get('version', '-')}, {entry['train_rows']} rows in "
                      f"{entry['train_seconds']:.1f}s{thresholds}")
     if gate:
@@ -107,6 +108,6 @@ def _active_thresholds(client, config, report: dict) -> list[str]:
     if not report.get("active") and not report.get("promoted"):
         return []
     router = model_router(Registry(client=client, keys=config.keys).load(), config.worker)
-    report["serving_thresholds"] = {"hold": router.cutoffs("").hold, "reject": router.cutoffs("").reject,
-                                    "warnings": router.warnings(), "text": describe(router)}
+    report["serving_thresholds"] = {**router.cutoffs("").to_dict(), "warnings": router.warnings(),
+                                    "text": describe(router)}
     return router.warnings()

@@ -3,7 +3,7 @@
 Writes JSON Lines that ``seawall train``, ``models push --replay`` and
 ``labels import`` read: one ``{"id", "text", "label", "site", "author"}``
 object per line (``label`` is ``spam`` or ``ham``).  The comments come from
-the invented neighbourhood forum of ``seawall demo`` (ops/scenario.py): no
+the invented neighbourhood forum of ``seawall demo`` (ops/lab/scenario.py): no
 real people, sites or products.
 
 * by default, the forum's history: ordinary comments and the background spam
@@ -22,6 +22,8 @@ import itertools
 import json
 import sys
 from pathlib import Path
+
+from worker.labels import label_name
 
 MODERATORS = ("mod-ana", "mod-bo", "mod-cy")
 HISTORY = 3000
@@ -43,14 +45,14 @@ def register(sub) -> None:
 
 def history(n: int, seed: int) -> list[dict]:
     """The forum's labelled history: ham and background spam, no campaign (pure)."""
-    from ops.scenario import Scenario
+    from ops.lab.scenario import Scenario
 
     return [_record(c) for c in Scenario(seed=seed).training_set(n)]
 
 
 def later(n: int, seed: int) -> list[dict]:
     """Comments from after the history with a moderator's label; a campaign starts a third of the way in (pure)."""
-    from ops.scenario import Scenario
+    from ops.lab.scenario import Scenario
 
     # Ordinary traffic is one comment a second (60 a minute): the campaign starts after about n/3 of them.
     scenario = Scenario(seed=seed, wave_start_s=n / 3.0)
@@ -61,7 +63,7 @@ def later(n: int, seed: int) -> list[dict]:
 
 
 def _record(c) -> dict:
-    return {"id": c.id, "text": c.text, "label": "spam" if c.label else "ham", "site": c.site, "author": c.author}
+    return {"id": c.id, "text": c.text, "label": label_name(c.label), "site": c.site, "author": c.author}
 
 
 def run(args) -> int:

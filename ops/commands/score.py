@@ -18,6 +18,7 @@ import sys
 from collections.abc import Iterator
 from itertools import islice
 
+from model.actions import THRESHOLD_ACTIONS
 from model.errors import DataError
 
 CHUNK = 1024
@@ -142,7 +143,7 @@ def run(args) -> int:
 
     config = load_config(config_file=args.config)
     clf = EmbeddingClassifier.load(args.model)
-    fixed = {k: v for k, v in (("hold", args.hold), ("reject", args.reject)) if v is not None}
+    fixed = {a: getattr(args, a) for a in THRESHOLD_ACTIONS if getattr(args, a) is not None}
     try:
         router = Router.for_model(clf, config.worker, fixed=fixed)
     except ValueError as exc:

@@ -27,6 +27,7 @@ from dataclasses import dataclass
 import redis
 
 from model.errors import SeawallError
+from model.params import Rule, integer, set_params
 from worker.settings import Keys
 
 ROLES = ("moderator", "admin")
@@ -42,8 +43,8 @@ _HASHING = threading.Semaphore(1)
 
 # The constructor's parameters: (check, what the error says a good value is).
 _PARAMS = {
-    "cost": (lambda v: v >= 2**10 and not v & (v - 1), "a power of two >= 1024"),
-    "attempts": (lambda v: v >= 1, "an integer >= 1"),
+    "cost": Rule(lambda v: integer(2**10, 2**30).test(v) and not v & (v - 1), "a power of two >= 1024"),
+    "attempts": integer(1),
 }
 
 
@@ -127,14 +128,9 @@ class Accounts:
     """
 
     def __init__(self, *, client, keys: Keys, cost: int = SCRYPT_N, attempts: int = 10):
-        for name, value in (("cost", cost), ("attempts", attempts)):
-            ok, what = _PARAMS[name]
-            if isinstance(value, bool) or not isinstance(value, int) or not ok(value):
-                raise ValueError(f"Accounts: {name} must be {what}, got {value!r}")
+        set_params(self, _PARAMS, locals())
         self.client = client
         self.keys = keys
-        self.cost = cost
-        self.attempts = attempts
         # Unknown names are checked against this throw-away hash, so a sign-in takes as long
         # whether the account exists or not.
         self._decoy = None

@@ -35,6 +35,7 @@ from starlette.responses import HTMLResponse, JSONResponse, PlainTextResponse, R
 from starlette.routing import Mount, Route
 from starlette.staticfiles import StaticFiles
 
+from model.actions import Action
 from ops.console import sessions
 from ops.console.accounts import Account, Accounts
 from ops.console.overview import collect_overview
@@ -174,8 +175,8 @@ class Console:
                                trim_blocks=True, lstrip_blocks=True)
         self.highlighter = Highlighter()
         self.families = Families(tokenizer=self.highlighter.tokenizer)
-        self.site_holds = {site: o["hold"] for site, o in parse_site_overrides(config.worker.site_thresholds).items()
-                           if "hold" in o}
+        self.site_holds = {site: o[Action.HOLD] for site, o in parse_site_overrides(config.worker.site_thresholds).items()
+                           if Action.HOLD in o}
         self._registry = Registry(client=client, keys=config.keys, clock=clock)
         self._model_holds: dict[str, float | None] = {}
         self._macros = self.env.get_template("_comment.html").module
@@ -418,7 +419,7 @@ class Console:
 
     def _model_hold(self, version: str) -> float | None:
         if version not in self._model_holds:
-            raw = self.client.hget(self._registry.meta_key(version), "hold") if version else None
+            raw = self.client.hget(self.keys.model_meta(version), Action.HOLD) if version else None
             try:
                 self._model_holds[version] = float(raw) if raw else None
             except ValueError:

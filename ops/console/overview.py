@@ -16,6 +16,7 @@ from collections.abc import Sequence
 
 from redis.exceptions import ResponseError
 
+from model.actions import THRESHOLD_ACTIONS
 from ops.registry import Registry
 from ops.retrain import last_reports
 from ops.watchview import SiteRow, collect
@@ -156,7 +157,7 @@ def models(client, keys) -> dict:
             "parent": meta.get("parent", ""), "size": int(meta.get("size", 0) or 0),
             "created_at": _float(meta.get("created_at")), "pushed_at": _float(meta.get("pushed_at")),
             "promoted_at": _float(meta.get("promoted_at")),
-            "hold": _float(meta.get("hold")), "reject": _float(meta.get("reject")),
+            **{a.value: _float(meta.get(a)) for a in THRESHOLD_ACTIONS},
             "gate": gate_summary(reports.get(version)),
         })
     history = registry.history()

@@ -1,6 +1,6 @@
 """The demo's summary table (text) and its report page (one HTML file, inline SVG, no scripts).
 
-Both are pure functions of a :class:`ops.demo.DemoResult`.  The page has no
+Both are pure functions of a :class:`ops.lab.demo.DemoResult`.  The page has no
 external assets and no JavaScript: it opens from disk anywhere, and a
 headless browser can screenshot it.  It never shows comment text or authors
 beyond the demo's own invented ones, and only in aggregate.
@@ -11,7 +11,8 @@ import html
 import math
 from datetime import datetime, timezone
 
-from ops.demo import DemoResult
+from model.actions import THRESHOLD_ACTIONS, Action
+from ops.lab.demo import DemoResult
 
 WIDTH, HEIGHT = 960, 300
 PAD_L, PAD_R, PAD_T, PAD_B = 56, 20, 20, 40
@@ -58,8 +59,8 @@ def summary_text(result: DemoResult, *, backend: str) -> str:
     report = result.retrain_report
     lines += [
         "",
-        f"actions: {actions.get('publish', 0):,} published, {actions.get('hold', 0):,} held, "
-        f"{actions.get('reject', 0):,} rejected of {f['comments']:,} comments "
+        f"actions: {actions.get(Action.PUBLISH, 0):,} published, {actions.get(Action.HOLD, 0):,} held, "
+        f"{actions.get(Action.REJECT, 0):,} rejected of {f['comments']:,} comments "
         f"({f['kinds'].get('ham', 0):,} ham, {f['kinds'].get('spam', 0):,} background spam, "
         f"{f['kinds'].get('wave', 0):,} wave)",
         f"detection delay after the wave began: campaign {_delay(delays['campaign_start'])}, "
@@ -219,11 +220,11 @@ def score_histogram_svg(result: DemoResult, phase: str, *, bins: int = 36) -> st
         th = result.thresholds.get(model)
         if not th:
             continue
-        for k, name in enumerate(("hold", "reject")):
-            x = sx(_logit(th[name]))
+        for k, name in enumerate(THRESHOLD_ACTIONS):
+            x = sx(_logit(getattr(th, name)))
             body.append(f'<line x1="{x:.1f}" x2="{x:.1f}" y1="{PAD_T}" y2="{height - PAD_B}" stroke="#555" '
                         f'stroke-dasharray="4,3"/>')
-            body.append(f'<text x="{x + 3:.1f}" y="{PAD_T + 30 + 13 * k}" font-size="10">{name} {th[name]:.4g}</text>')
+            body.append(f'<text x="{x + 3:.1f}" y="{PAD_T + 30 + 13 * k}" font-size="10">{name} {getattr(th, name):.4g}</text>')
     label = "before the retrain (first model)" if phase == "before" else "after the retrain (new model)"
     body.append(f'<text x="{width - PAD_R - 4}" y="{PAD_T + 14}" text-anchor="end" font-size="12" '
                 f'font-weight="bold">{html.escape(label)}</text>')
@@ -352,6 +353,6 @@ lines are the serving model's hold and reject thresholds. Before the retrain the
 comments and only the campaign policy holds it; after it, the model scores it like spam.</p>
 <h2>Before and after</h2>
 {before_after_svg(result)}
-<p class="note">All data on this page is invented (see <code>ops/scenario.py</code>); no real people, sites or products.</p>
+<p class="note">All data on this page is invented (see <code>ops/lab/scenario.py</code>); no real people, sites or products.</p>
 </body></html>
 """

@@ -1,6 +1,6 @@
 """The whole story on one command: a forum, a spam wave, the alarms, the retrain, the wave caught.
 
-:func:`run_demo` plays the invented Hedgerow Lane forum (:mod:`ops.scenario`)
+:func:`run_demo` plays the invented Hedgerow Lane forum (:mod:`ops.lab.scenario`)
 through the real parts of Seawall, in-process, on an accelerated clock:
 
 1. a first model is trained on the forum's labelled history, pushed to the
@@ -26,7 +26,7 @@ The simulated clock is injected into every part that reads the time (the
 workers' commit, the detectors, the feedback consumer, the retrain), so the
 per-minute counts and windows follow the story's time, not the wall clock.
 What comes back is a :class:`DemoResult` with every figure the summary table
-and the HTML report (:mod:`ops.demo_report`) show.
+and the HTML report (:mod:`ops.lab.demo_report`) show.
 """
 from __future__ import annotations
 
@@ -41,6 +41,7 @@ from datetime import datetime, timezone
 from croniter import croniter
 from prometheus_client import CollectorRegistry
 
+from model.actions import FLAGGED_ACTIONS, Action
 from model.classifier import EmbeddingClassifier
 from ops.config import Config
 from ops.cusum import WaveParams
@@ -50,12 +51,13 @@ from ops.monitor import Monitor
 from ops.registry import Registry, RegistryModelSource, split_replay
 from ops.rescore import rescore_held
 from ops.retrain import retrain
-from ops.scenario import SITES, Scenario, ScenarioComment
+from ops.lab.scenario import SITES, Scenario, ScenarioComment
 from ops.serving import build_consumer, campaign_policy
 from ops.waves import WaveDetector
 from worker.campaigns import campaign_keys
 from worker.consumer import StreamConsumer
-from worker.events import parse_event
+from worker.events import read_events
+from worker.labels import label_name
 
 log = logging.getLogger("seawall.demo")
 
@@ -162,16 +164,16 @@ class DemoResult:
             wave = [v for v in vs if v.comment.kind == "wave"]
             ham = [v for v in vs if v.comment.kind == "ham"]
             spam = [v for v in vs if v.comment.kind == "spam"]
-            hold = {m: t["hold"] for m, t in self.thresholds.items()}
+            hold = {m: t.hold for m, t in self.thresholds.items()}
             out[phase] = {
                 "comments": len(vs),
                 "wave": len(wave),
-                "wave_recall": _share(v.action != "publish" for v in wave),
+                "wave_recall": _share(v.action in FLAGGED_ACTIONS for v in wave),
                 "wave_model_recall": _share(v.score >= hold.get(v.model, 1.0) for v in wave),
                 "ham": len(ham),
-                "false_positive_rate": _share(v.action != "publish" for v in ham),
-                "ham_rejected": _share(v.action == "reject" for v in ham),
-                "spam_recall": _share(v.action != "publish" for v in spam),
+                "false_positive_rate": _share(v.action in FLAGGED_ACTIONS for v in ham),
+                "ham_rejected": _share(v.action == Action.REJECT for v in ham),
+                "spam_recall": _share(v.action in FLAGGED_ACTIONS for v in spam),
             }
         delays = {k: self.detection_delay_s(k) for k in ("campaign_start", "wave_start")}
         out["detection_delay_s"] = delays
@@ -184,10 +186,10 @@ class DemoResult:
         for v in self.verdicts:
             c = rows[v.minute]
             c["total"] += 1
-            c["flagged"] += v.action != "publish"
+            c["flagged"] += v.action in FLAGGED_ACTIONS
             c["wave"] += v.comment.kind == "wave"
-            c["wave_flagged"] += v.comment.kind == "wave" and v.action != "publish"
-            c["ham_flagged"] += v.comment.kind == "ham" and v.action != "publish"
+            c["wave_flagged"] += v.comment.kind == "wave" and v.action in FLAGGED_ACTIONS
+            c["ham_flagged"] += v.comment.kind == "ham" and v.action in FLAGGED_ACTIONS
             c["ham"] += v.comment.kind == "ham"
         n = int(self.scenario.duration_s // 60)
         return [{"minute": m, **rows.get(m, Counter())} for m in range(n)]
@@ -279,7 +281,7 @@ class ReaderReports:
             self._last = _text(sid)
             f = {_text(k): _text(v) for k, v in fields.items()}
             c = self.truth.get(f.get("id", ""))
-            if c is not None and c.label and f.get("action") == "publish" and f.get("rescored") != "1":
+            if c is not None and c.label and f.get("action") == Action.PUBLISH and f.get("rescored") != "1":
                 out.append(c.id)
         return out
 
@@ -295,7 +297,7 @@ def moderate(client, config: Config, rng: random.Random, truth: dict[str, Scenar
         comment = truth.get(cid)
         if comment is None:
             continue
-        label = "spam" if comment.label else "ham"
+        label = label_name(comment.label)
         moderator = MODERATORS[n % len(MODERATORS)]
         pipe.xadd(config.keys.feedback, {"id": cid, "label": label, "moderator": moderator,
                                          "reason": "reported" if cid in reported else "hold queue"})
@@ -345,7 +347,7 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
     # 1. the first model
     model, rows, result.train_seconds = train_first_model(scenario)
     result.first_model = bootstrap_registry(client, config, model, rows, clock=clock)
-    result.thresholds[result.first_model] = {"hold": model.thresholds.hold, "reject": model.thresholds.reject}
+    result.thresholds[result.first_model] = model.thresholds
     progress(f"{stamp(clock.now)} trained the first model {result.first_model} on {len(rows):,} labelled comments "
              f"in {result.train_seconds:.1f}s; promoted (hold >= {model.thresholds.hold:.3f}, "
              f"reject >= {model.thresholds.reject:.3f})")
@@ -451,7 +453,7 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
     result.retrained_model = version
     registry = Registry(client=client, keys=config.keys, clock=clock)
     model = registry.load(version)
-    result.thresholds[version] = {"hold": model.thresholds.hold, "reject": model.thresholds.reject}
+    result.thresholds[version] = model.thresholds
     gate = report.get("gate", {}).get("sets", {}).get("holdout", {})
     progress(f"{stamp(clock.now)} nightly retrain on {labels.get('new', 0)} new labels "
              f"(+{labels.get('replay_original', 0)} replayed): holdout ROC-AUC "
@@ -473,12 +475,7 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
 
 
 def _read_events(client, keys) -> list[dict]:
-    out = []
-    for sid, fields in client.xrange(keys.events):
-        event = parse_event(sid, fields)
-        if event is not None:
-            out.append({"id": event.stream_id, "type": event.type, "ts": event.ts, "data": event.data})
-    return out
+    return [{"id": e.stream_id, "type": e.type, "ts": e.ts, "data": e.data} for e in read_events(client, keys.events)]
 
 
 def narrate(event: dict, result: DemoResult, seen: set) -> str:

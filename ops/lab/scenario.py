@@ -34,6 +34,8 @@ import re
 from collections.abc import Iterator
 from dataclasses import dataclass
 
+from model.params import Rule, integer, set_params
+
 DOMAIN = "hedgerow-lane.example"
 _ALTERNATIVES = re.compile(r"\[([^\[\]]*)\]")
 SITES = ("allotments", "cycling", "swap-shop", "events")
@@ -253,19 +255,18 @@ _WAVE_HANDLE_PARTS = ("green", "happy", "urban", "super", "real", "lucky", "dail
 _WAVE_HANDLE_NOUNS = ("grower", "gardener", "planter", "harvest", "sprout", "digger")
 
 
-def _params_table():
-    # (name, check, expectation) for every constructor parameter
-    return (
-        ("seed", lambda v: isinstance(v, int) and not isinstance(v, bool), "an integer"),
-        ("start_ts", lambda v: isinstance(v, (int, float)) and v >= 0, "epoch seconds >= 0"),
-        ("duration_s", lambda v: isinstance(v, (int, float)) and v > 0, "seconds > 0"),
-        ("rate_per_min", lambda v: isinstance(v, (int, float)) and v > 0, "comments per minute > 0"),
-        ("spam_share", lambda v: isinstance(v, (int, float)) and 0 <= v < 1, "a share in [0, 1)"),
-        ("wave_start_s", lambda v: isinstance(v, (int, float)) and v >= 0, "seconds >= 0"),
-        ("wave_end_s", lambda v: isinstance(v, (int, float)) and v >= 0, "seconds >= 0"),
-        ("wave_rate_per_min", lambda v: isinstance(v, (int, float)) and v >= 0, "comments per minute >= 0"),
-        ("wave_accounts", lambda v: isinstance(v, int) and not isinstance(v, bool) and v >= 1, "an integer >= 1"),
-    )
+# One declarative table: constructor parameter -> what it must be.
+_PARAMS = {
+    "seed": Rule(lambda v: isinstance(v, int) and not isinstance(v, bool), "an integer"),
+    "start_ts": Rule(lambda v: isinstance(v, (int, float)) and v >= 0, "epoch seconds >= 0"),
+    "duration_s": Rule(lambda v: isinstance(v, (int, float)) and v > 0, "seconds > 0"),
+    "rate_per_min": Rule(lambda v: isinstance(v, (int, float)) and v > 0, "comments per minute > 0"),
+    "spam_share": Rule(lambda v: isinstance(v, (int, float)) and 0 <= v < 1, "a share in [0, 1)"),
+    "wave_start_s": Rule(lambda v: isinstance(v, (int, float)) and v >= 0, "seconds >= 0"),
+    "wave_end_s": Rule(lambda v: isinstance(v, (int, float)) and v >= 0, "seconds >= 0"),
+    "wave_rate_per_min": Rule(lambda v: isinstance(v, (int, float)) and v >= 0, "comments per minute >= 0"),
+    "wave_accounts": integer(1),
+}
 
 
 class Scenario:
@@ -299,22 +300,7 @@ class Scenario:
         wave_rate_per_min: float = 12.0,
         wave_accounts: int = 300,
     ):
-        self.seed = seed
-        self.start_ts = start_ts
-        self.duration_s = duration_s
-        self.rate_per_min = rate_per_min
-        self.spam_share = spam_share
-        self.wave_start_s = wave_start_s
-        self.wave_end_s = wave_end_s
-        self.wave_rate_per_min = wave_rate_per_min
-        self.wave_accounts = wave_accounts
-        self._check()
-
-    def _check(self) -> None:
-        for name, ok, expected in _params_table():
-            value = getattr(self, name)
-            if not ok(value):
-                raise ValueError(f"Scenario: {name} must be {expected}, got {value!r}")
+        set_params(self, _PARAMS, locals())
         if self.wave_end_s < self.wave_start_s:
             raise ValueError(f"Scenario: wave_end_s must be >= wave_start_s, got {self.wave_end_s!r}")
 

@@ -31,7 +31,7 @@ import random
 import re
 from dataclasses import dataclass, field
 
-from ops.scenario import ScenarioComment
+from ops.lab.scenario import ScenarioComment
 
 _ALTERNATIVES = re.compile(r"\[([^\[\]]*)\]")
 _SLOT = re.compile(r"\{(\w+)\}")

@@ -36,7 +36,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ops.scenario import ScenarioComment
+from model.params import integer, real, set_params
+from ops.lab.scenario import ScenarioComment
 
 YARD = "larkspur-yard.example"
 KITCHEN = "larkspur-kitchen.example"
@@ -47,7 +48,7 @@ _ALTERNATIVES = re.compile(r"\[([^\[\]]*)\]")
 
 @dataclass(frozen=True)
 class BoardComment(ScenarioComment):
-    """One invented comment with its truth (see :class:`ops.scenario.ScenarioComment`).
+    """One invented comment with its truth (see :class:`ops.lab.scenario.ScenarioComment`).
 
     ``kind`` is the format (``dish``, ``puzzle``, ...), ``chatter``, ``spam``
     (background spam) or ``campaign``; ``campaign`` names the campaign (empty
@@ -226,6 +227,20 @@ def obfuscate(text: str, rng: random.Random, *, share: float = 0.5) -> str:
     return " ".join(out)
 
 
+# One declarative table: constructor parameter -> what it must be (``members`` is kept as ``n_members``:
+# ``members()`` is the method that lists them).
+_PARAMS = {
+    "seed": integer(0, 2**63 - 1),
+    "start_ts": real(0.0, 1e12),
+    "history_days": integer(1, 3650),
+    "n_members": integer(20),
+    "chatter_per_day": integer(0),
+    "joiners_per_day": integer(0),
+    "spam_per_day": integer(0),
+    "campaign_scale": real(0.0, 1e6),
+}
+
+
 class Board:
     """Larkspur Yard over ``history_days`` ordinary days and one test day with campaigns.
 
@@ -244,20 +259,7 @@ class Board:
     def __init__(self, *, seed: int = 3, start_ts: float = 1_800_230_400.0, history_days: int = 6, members: int = 240,
                  chatter_per_day: int = 2500, joiners_per_day: int = 3, spam_per_day: int = 40,
                  campaign_scale: float = 1.0):
-        checks = {"seed": isinstance(seed, int), "start_ts": start_ts >= 0, "history_days": history_days >= 1,
-                  "members": members >= 20, "chatter_per_day": chatter_per_day >= 0, "joiners_per_day": joiners_per_day >= 0,
-                  "spam_per_day": spam_per_day >= 0, "campaign_scale": campaign_scale >= 0}
-        for name, ok in checks.items():
-            if not ok:
-                raise ValueError(f"Board: bad {name} {locals()[name]!r}")
-        self.seed = seed
-        self.start_ts = float(start_ts)
-        self.history_days = history_days
-        self.n_members = members
-        self.chatter_per_day = chatter_per_day
-        self.joiners_per_day = joiners_per_day
-        self.spam_per_day = spam_per_day
-        self.campaign_scale = campaign_scale
+        set_params(self, _PARAMS, dict(locals(), n_members=members))
 
     @property
     def test_day_ts(self) -> float:
@@ -491,7 +493,7 @@ def play(client, policies: Sequence, comments: Sequence[BoardComment], scores: S
     import time
 
     from worker.campaigns import end_idle_campaigns
-    from worker.events import parse_event
+    from worker.events import read_events
 
     scores = [float(s) for s in scores]
     out = Replay(comments=list(comments))
@@ -513,8 +515,5 @@ def play(client, policies: Sequence, comments: Sequence[BoardComment], scores: S
             out.members[comments[i + k].id] = campaign
         i, turn = j, turn + 1
     out.seconds = time.perf_counter() - t0
-    for stream_id, fields in client.xrange(keys.events):
-        event = parse_event(stream_id, fields)
-        if event is not None and event.type == "campaign_start":
-            out.starts.append(event.data)
+    out.starts += [e.data for e in read_events(client, keys.events) if e.type == "campaign_start"]
     return out
