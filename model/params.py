@@ -38,6 +38,11 @@ def positive() -> Rule:
     return Rule(lambda v: isinstance(v, (int, float)) and not isinstance(v, bool) and v > 0, "a number > 0", float)
 
 
+def nonempty() -> Rule:
+    """A non-empty ``str``."""
+    return Rule(lambda v: isinstance(v, str) and v != "", "a non-empty string")
+
+
 def flag() -> Rule:
     """``True`` or ``False``."""
     return Rule(lambda v: isinstance(v, bool), "true or false")

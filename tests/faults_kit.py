@@ -183,6 +183,11 @@ def doubled(counts: Counter) -> int:
     return sum(v - 1 for v in counts.values() if v > 1)
 
 
+def tally(counts: Counter, sent: int) -> tuple[int, int]:
+    """``(lost, doubled)`` of a run that sent ``sent`` comments, from the verdicts counted per id."""
+    return sent - len(counts), doubled(counts)
+
+
 def write_model(path, seed: int = 0) -> Path:
     """A real EmbeddingClassifier artifact (trained on the invented forum's comments) at ``path``."""
     from retrain_kit import model_bytes

@@ -11,7 +11,7 @@ import time
 
 import pytest
 
-from faults_kit import KEYS, AmqpProducer, amqp_queue_depth, deadletters, verdict_ids, write_model
+from faults_kit import KEYS, AmqpProducer, amqp_queue_depth, deadletters, doubled, tally, verdict_ids, write_model
 from kit import Worker, stop_all, wait_for_progress, wait_until
 
 COMMENTS = 5_000
@@ -63,8 +63,7 @@ def test_ten_sigkills_during_a_5000_comment_run_by_rabbitmq_lose_and_double_noth
         assert wait_until(lambda: all(w.started() for w in workers), timeout=60)
     finally:
         codes = stop_all(workers)
-    lost = COMMENTS - len(counts)
-    duplicates = sum(n - 1 for n in counts.values() if n > 1)
+    lost, duplicates = tally(counts, COMMENTS)
     repeats = sum(w.output().count("skipped") for w in workers)
     print("faults:", json.dumps({"test": "amqp_worker_kills", "comments": COMMENTS, "kills": len(kills),
                                  "lost": lost, "duplicates": duplicates, "batches_with_repeats": repeats,
@@ -100,7 +99,7 @@ def test_a_broker_restart_mid_stream_loses_nothing(redis_server, rabbit_server, 
     finally:
         producer.abort.set()
         codes = stop_all(workers)
-    duplicates = sum(n - 1 for n in counts.values() if n > 1)
+    duplicates = doubled(counts)
     print("faults:", json.dumps({"test": "amqp_broker_restart", "confirmed": len(producer.accepted),
                                  "verdicts": len(counts), "duplicates": duplicates,
                                  "producer_errors": producer.errors}))

@@ -7,7 +7,7 @@ import time
 
 import pytest
 
-from faults_kit import KEYS, Producer, deadletters, group_lag, group_pending, kill_mid_batch, start_workers, verdict_ids
+from faults_kit import KEYS, Producer, deadletters, group_lag, group_pending, kill_mid_batch, start_workers, tally, verdict_ids
 from kit import stop_all, wait_for_progress, wait_until
 
 pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
@@ -46,8 +46,7 @@ def test_twenty_sigkills_during_a_20000_comment_run_lose_and_double_nothing(redi
         assert wait_until(lambda: all(w.started() for w in workers), timeout=60)
     finally:
         codes = stop_all(workers)
-    lost = COMMENTS - len(counts)
-    duplicates = sum(n - 1 for n in counts.values() if n > 1)
+    lost, duplicates = tally(counts, COMMENTS)
     mid_batch = sum(1 for k in kills if k["pending_at_kill"] > 0)
     print("faults:", json.dumps({"test": "worker_kills", "comments": COMMENTS, "kills": len(kills),
                                  "kills_mid_batch": mid_batch, "lost": lost, "duplicates": duplicates,

@@ -24,6 +24,7 @@ from dataclasses import dataclass
 
 import redis
 
+from model.params import integer, nonempty, set_params
 from worker.streams import Claimed, Entry, parse_xautoclaim, parse_xinfo_group, parse_xpending_range, parse_xreadgroup
 
 log = logging.getLogger("seawall.worker")
@@ -32,7 +33,8 @@ log = logging.getLogger("seawall.worker")
 MAX_CLAIM_ROUNDS = 20
 
 # Constructor parameters: (lowest, highest) of each number.
-_BOUNDS = {"batch": (1, 100_000), "block_ms": (0, 600_000), "claim_idle_ms": (0, 86_400_000)}
+_PARAMS = {"stream": nonempty(), "group": nonempty(), "consumer": nonempty(), "batch": integer(1, 100_000),
+           "block_ms": integer(0, 600_000), "claim_idle_ms": integer(0, 86_400_000)}
 
 
 @dataclass(frozen=True, slots=True)
@@ -57,20 +59,8 @@ class GroupReader:
 
     def __init__(self, *, client, stream: str, group: str, consumer: str, batch: int, block_ms: int,
                  claim_idle_ms: int):
-        for name, value in (("stream", stream), ("group", group), ("consumer", consumer)):
-            if not isinstance(value, str) or not value:
-                raise ValueError(f"GroupReader: {name} must be a non-empty string, got {value!r}")
-        for name, value in (("batch", batch), ("block_ms", block_ms), ("claim_idle_ms", claim_idle_ms)):
-            low, high = _BOUNDS[name]
-            if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
-                raise ValueError(f"GroupReader: {name} must be an integer in [{low}, {high}], got {value!r}")
+        set_params(self, _PARAMS, locals())
         self.client = client
-        self.stream = stream
-        self.group = group
-        self.consumer = consumer
-        self.batch = batch
-        self.block_ms = block_ms
-        self.claim_idle_ms = claim_idle_ms
         self._stream = stream.encode()
         self._backlog_from: bytes | None = b"0"
 

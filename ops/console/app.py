@@ -283,12 +283,16 @@ class Console:
         form = {k: v[0] for k, v in parse_qs((body or b"").decode("utf-8", "replace")).items()}
         return await run_in_threadpool(handler, request, form)
 
-    async def _json_call(self, request: Request, handler, *args) -> Response:
-        """Read a JSON body (or refuse it), then run ``handler(request, body, *args)`` in the thread pool."""
+    async def _json_call(self, request: Request, handler, *args, admin: bool = False) -> Response:
+        """Read a JSON body (or refuse it); then, in the thread pool, the API guard and ``handler(request, body, seen, *args)``."""
         body = await self._json_body(request)
         if isinstance(body, Response):
             return body
-        return await run_in_threadpool(handler, request, body, *args)
+
+        def guarded() -> Response:
+            seen = self._api_guard(request, admin=admin)
+            return handler(request, body, seen, *args) if isinstance(seen, Seen) else seen
+        return await run_in_threadpool(guarded)
 
     def _api_guard(self, request: Request, *, admin: bool = False) -> Seen | JSONResponse:
         """Session, account, role, origin and CSRF checks of a state-changing API call."""
@@ -304,9 +308,6 @@ class Console:
         return seen
 
     # -- sign-in ----------------------------------------------------------------------
-    async def signin_page(self, request: Request) -> Response:
-        return await run_in_threadpool(self._signin_page, request)
-
     def _signin_page(self, request: Request, *, error: str = "", status: int = 200) -> Response:
         session = self._cookie_session(request)
         fresh = session is None
@@ -362,9 +363,6 @@ class Console:
         return seen
 
     # -- the queue --------------------------------------------------------------------
-    async def queue_page(self, request: Request) -> Response:
-        return await run_in_threadpool(self._queue_page, request)
-
     def _queue_page(self, request: Request) -> Response:
         seen = self._page_guard(request)
         if not isinstance(seen, Seen):
@@ -465,9 +463,6 @@ class Console:
                    label=campaign or group.key.partition(":")[2])
         return row
 
-    async def queue_status(self, request: Request) -> Response:
-        return await run_in_threadpool(self._queue_status, request)
-
     def _queue_status(self, request: Request) -> Response:
         seen = self._seen(request)
         if seen.account is None:
@@ -480,10 +475,7 @@ class Console:
     async def decide(self, request: Request) -> Response:
         return await self._json_call(request, self._decide)
 
-    def _decide(self, request: Request, body: dict) -> Response:
-        seen = self._api_guard(request)
-        if not isinstance(seen, Seen):
-            return seen
+    def _decide(self, request: Request, body: dict, seen: Seen) -> Response:
         ids, action, reason = body.get("ids"), body.get("action"), body.get("reason", "")
         if not isinstance(ids, list) or not all(isinstance(i, str) for i in ids) or not isinstance(reason, str):
             return self._refuse(400, "send {\"ids\": [...], \"action\": \"publish\" or \"reject\"}")
@@ -500,10 +492,7 @@ class Console:
     async def undo(self, request: Request) -> Response:
         return await self._json_call(request, self._undo)
 
-    def _undo(self, request: Request, body: dict) -> Response:
-        seen = self._api_guard(request)
-        if not isinstance(seen, Seen):
-            return seen
+    def _undo(self, request: Request, body: dict, seen: Seen) -> Response:
         token, ids = body.get("token"), body.get("ids")
         if not isinstance(token, str) or not isinstance(ids, list) or not all(isinstance(i, str) for i in ids):
             return self._refuse(400, "send {\"token\": ..., \"ids\": [...]} from the decision")
@@ -516,18 +505,12 @@ class Console:
         return JSONResponse({"restored": restored, "final": [i for i in ids if i not in kept]})
 
     # -- the overview -----------------------------------------------------------------
-    async def overview_page(self, request: Request) -> Response:
-        return await run_in_threadpool(self._overview_page, request)
-
     def _overview_page(self, request: Request) -> Response:
         seen = self._page_guard(request)
         if not isinstance(seen, Seen):
             return seen
         return self._render("overview.html", account=seen.account, csrf=seen.session.csrf, page="overview",
                             poll_s=self.settings.poll_s)
-
-    async def overview_data(self, request: Request) -> Response:
-        return await run_in_threadpool(self._overview_data, request)
 
     def _overview_data(self, request: Request) -> Response:
         seen = self._seen(request)
@@ -561,15 +544,12 @@ class Console:
 
     # -- models (admin) ---------------------------------------------------------------
     async def promote(self, request: Request) -> Response:
-        return await self._json_call(request, self._switch, "promote")
+        return await self._json_call(request, self._switch, "promote", admin=True)
 
     async def rollback(self, request: Request) -> Response:
-        return await self._json_call(request, self._switch, "rollback")
+        return await self._json_call(request, self._switch, "rollback", admin=True)
 
-    def _switch(self, request: Request, body: dict, kind: str) -> Response:
-        seen = self._api_guard(request, admin=True)
-        if not isinstance(seen, Seen):
-            return seen
+    def _switch(self, request: Request, body: dict, seen: Seen, kind: str) -> Response:
         from ops.rescore import rescore_after_switch
 
         registry = self._registry
@@ -598,6 +578,13 @@ class Console:
         return PlainTextResponse("ok")
 
 
+def _in_threads(handler):
+    """A Starlette endpoint running ``handler(request)``, whose Redis calls block, in the thread pool."""
+    async def endpoint(request: Request) -> Response:
+        return await run_in_threadpool(handler, request)
+    return endpoint
+
+
 async def _read_limited(request: Request, limit: int) -> bytes | None:
     """The body, or None when it is longer than ``limit`` bytes (read no further than that)."""
     chunks, size = [], 0
@@ -624,13 +611,13 @@ def build_app(console: Console, *, manage_finalizer: bool = True) -> Starlette:
     routes = [
         Route("/", console.root),
         Route("/healthz", console.healthz),
-        Route("/signin", console.signin_page, methods=["GET"]),
+        Route("/signin", _in_threads(console._signin_page), methods=["GET"]),
         Route("/signin", console.signin, methods=["POST"]),
         Route("/signout", console.signout, methods=["POST"]),
-        Route("/queue", console.queue_page, methods=["GET"]),
-        Route("/overview", console.overview_page, methods=["GET"]),
-        Route("/api/queue/status", console.queue_status, methods=["GET"]),
-        Route("/api/overview", console.overview_data, methods=["GET"]),
+        Route("/queue", _in_threads(console._queue_page), methods=["GET"]),
+        Route("/overview", _in_threads(console._overview_page), methods=["GET"]),
+        Route("/api/queue/status", _in_threads(console._queue_status), methods=["GET"]),
+        Route("/api/overview", _in_threads(console._overview_data), methods=["GET"]),
         Route("/api/decide", console.decide, methods=["POST"]),
         Route("/api/undo", console.undo, methods=["POST"]),
         Route("/api/models/promote", console.promote, methods=["POST"]),
