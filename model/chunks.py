@@ -75,12 +75,12 @@ class _Column:
         return self.data[:self.n]
 
 
-def _entry_tuple(tokens, hashes, marks, mask: int) -> tuple:
-    """``(tokens, hashes, marks, rotated, buckets)``: ``marks`` has one byte per token, its
+def _entry_tuple(tokens, hashes, marks) -> tuple:
+    """``(tokens, hashes, marks, rotated)``: ``marks`` has one byte per token, its
     :data:`model.tokens.MARK_SINGLE` / ``MARK_URL`` / ``MARK_DOMAIN`` bits;
     ``rotated`` each hash rotated by 16 bits, the left half of a word-pair key
-    (:func:`model.hashing.rotl16`); ``buckets`` each hash's low bits (``hash & mask``)."""
-    return tuple(tokens), tuple(hashes), bytes(marks), tuple(map(rotl16, hashes)), tuple(h & mask for h in hashes)
+    (:func:`model.hashing.rotl16`)."""
+    return tuple(tokens), tuple(hashes), bytes(marks), tuple(map(rotl16, hashes))
 
 
 class ChunkStore:
@@ -98,8 +98,6 @@ class ChunkStore:
         ``alias(chunk) -> key or None``: a key with the same entry as the
         chunk (a string that is never a chunk); many one-off chunks then share
         one held entry.
-    mask : int
-        ``hash & mask`` is a token's bucket (held per entry for the one-comment path).
     cap : int
         Chunks held before the least used half is dropped.
     max_tokens : int
@@ -115,9 +113,8 @@ class ChunkStore:
     """
 
     def __init__(self, entry: Callable, hash_list: Callable, *, alias: Callable | None = None,
-                 mask: int = 0xFFFFFFFF, cap: int = 1 << 16, max_tokens: int = 64):
+                 cap: int = 1 << 16, max_tokens: int = 64):
         self._entry = entry
-        self._bucket_mask = int(mask)
         self._alias = alias
         self._hash_list = hash_list
         self.cap = int(cap)
@@ -132,7 +129,7 @@ class ChunkStore:
         self.ids.update(zip(chunks, range(len(chunks))))
         self._chunk = list(chunks)
         self.tokens = list(tokens)  # a new list: names of earlier batches keep the old one
-        self.entries: list[tuple] = []  # per id: (tokens, hashes, marks, rotated, buckets) as Python objects, for one comment
+        self.entries: list[tuple] = []  # per id: (tokens, hashes, marks, rotated) as Python objects, for one comment
         sizes = np.asarray(sizes, dtype=np.int64)
         starts = np.cumsum(sizes) - sizes
         self._start = _Column(np.int64, starts)
@@ -150,8 +147,7 @@ class ChunkStore:
         hashes = np.asarray(hashes).tolist()
         marks = np.asarray(marks).tolist()
         for size in sizes.tolist():
-            self.entries.append(_entry_tuple(self.tokens[at:at + size], hashes[at:at + size], marks[at:at + size],
-                                             self._bucket_mask))
+            self.entries.append(_entry_tuple(self.tokens[at:at + size], hashes[at:at + size], marks[at:at + size]))
             at += size
 
     def __len__(self) -> int:
@@ -195,7 +191,7 @@ class ChunkStore:
         hashes = self._hash_list(tokens)
         self._new_hash.extend(hashes)
         self._new_mark.extend(marks)
-        self.entries.append(_entry_tuple(tokens, hashes, marks, self._bucket_mask))
+        self.entries.append(_entry_tuple(tokens, hashes, marks))
         self._new_chunk_mark.append(chunk_marks)
         return at
 

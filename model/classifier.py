@@ -22,8 +22,8 @@ import time
 from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass
-from itertools import compress, repeat
-from operator import ge, mul, truediv
+from itertools import repeat
+from operator import mul, truediv
 
 import numpy as np
 
@@ -519,61 +519,53 @@ class EmbeddingClassifier:
         ``docs`` holds one ``(buckets, names)`` per comment: its feature
         buckets as a list of ints and an indexable naming each position.
         Same arithmetic as the vectorised path; for one comment the dozen numpy
-        calls of that path cost more than the whole comment.  With a linear
-        head each bucket's logit term is one float (``bucket_logit``, read in
-        one numpy gather of the occurrences: a compact array stays in the CPU
-        caches better than a list of floats); a comment's logit sums each
-        bucket's term times its pooling weight, buckets in order of first
-        appearance.  The probability comes from
-        the same :meth:`_probabilities` as on every other path.
+        calls of that path cost more than the whole comment, so a single
+        comment (the latency case) is scored with lists and one numpy gather of
+        its distinct buckets' logit terms (a compact array: cheaper than a list
+        of floats when other work has pushed the table out of the CPU caches),
+        and the probability comes from the same :meth:`_probabilities` as on
+        every other path.
         """
         tables = self._scoring_tables()
         bucket_logit = tables.bucket_logit
         bias = tables.bias
         l2 = self.pooling == "l2"
+        scale = self.calibration_.contribution_scale
         logits = []
         reasons = []
-        explain = []  # (comment, buckets, names, counts, terms), ranked once scores are known
+        explain = []  # (comment, buckets, names, distinct buckets, their terms), ranked once scores are known
         for buckets, names in docs:
             n = len(buckets)
-            reasons.append([])
-            if not n:
-                logits.append(bias)
-                continue
             counts = Counter(buckets)  # insertion order = order of first appearance
-            values = bucket_logit[buckets].tolist()
-            if len(counts) == n:  # no bucket twice: every count is 1
+            unique = list(counts)
+            if len(unique) == n:  # no bucket twice: every count is 1
                 norm = math.sqrt(n) if l2 else float(n)
-                terms = list(map((1.0 / norm).__mul__, values))
+                if not norm:
+                    logits.append(bias)
+                    reasons.append([])
+                    continue
+                terms = list(map((1.0 / norm).__mul__, bucket_logit[unique].tolist()))
             else:
                 if l2:
-                    c = counts.values()
-                    norm = math.sqrt(sum(map(mul, c, c)))
+                    values = counts.values()
+                    norm = math.sqrt(sum(map(mul, values, values)))
                 else:
                     norm = float(n)
-                values = dict(zip(buckets, values)).values()  # per bucket, in the order of counts
-                terms = list(map(mul, map(truediv, counts.values(), repeat(norm)), values))
+                terms = list(map(mul, map(truediv, counts.values(), repeat(norm)), bucket_logit[unique].tolist()))
             logits.append(bias + sum(terms))
+            reasons.append([])
             if top_k > 0:
-                explain.append((len(reasons) - 1, buckets, names, counts, terms))
+                explain.append((len(reasons) - 1, buckets, names, unique, terms))
         scores = self._probabilities(np.array(logits))
-        if not explain:
-            return scores, reasons
-        scale = self.calibration_.contribution_scale
         single = isinstance(spamward_from, (int, float))
-        for i, buckets, names, counts, terms in explain:
-            unique = list(counts)
+        for i, buckets, names, unique, terms in explain:
             # Largest magnitude first; a stable sort keeps ties in the order the
             # tokens appear.  Buckets without a row contribute 0 and are left out.
             magnitude = list(map(abs, terms))
             if spamward_from is not None and scores[i] >= (spamward_from if single else spamward_from[i]):
                 lift = max(magnitude) + 1.0  # spam-ward tokens first, then the rest by magnitude
                 magnitude = [m + lift if t > 0 else m for m, t in zip(magnitude, terms)]
-            candidates = range(len(terms))
-            if len(terms) > top_k:  # only those at or above the top_k-th magnitude can be chosen
-                kth = sorted(magnitude, reverse=True)[top_k - 1]
-                candidates = list(compress(candidates, map(ge, magnitude, repeat(kth))))
-            ranked = sorted(candidates, key=magnitude.__getitem__, reverse=True)[:top_k]
+            ranked = sorted(range(len(terms)), key=magnitude.__getitem__, reverse=True)[:top_k]
             at = buckets.index
             reasons[i] = [(names[at(unique[j])], terms[j] * scale) for j in ranked if terms[j]]
         return scores, reasons

@@ -17,14 +17,13 @@ a comment with some tokens removed.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from itertools import chain, islice
-from operator import itemgetter, xor
+from itertools import chain
+from operator import itemgetter
 
-import mmh3
 import numpy as np
 
 from model.chunks import ChunkStore
-from model.hashing import TokenHasher, rotl16
+from model.hashing import TokenHasher
 from model.tokens import (BIGRAM_JOINER, CHUNK_NUMERIC_END, CHUNK_NUMERIC_START, CHUNK_SEPARATOR, MARK_DOMAIN,
                           MARK_SINGLE, MARK_URL, Tokenizer, char_ngrams, pair_positions, token_marks)
 
@@ -164,8 +163,6 @@ _EMPTY = np.empty(0, dtype=np.int64)
 #: ``<url>`` marker followed by its ``domain:`` token.
 _SINGLES = bytes([MARK_SINGLE] * 3)
 _URL_DOMAIN = bytes([MARK_URL, MARK_DOMAIN])
-#: Word-pair buckets remembered by the one-comment path (the oldest half goes when full).
-_PAIR_TABLE_CAP = 1 << 16
 
 
 def _pair_sequence(marks: bytes) -> list[int]:
@@ -198,10 +195,7 @@ class FeatureEncoder:
         self.tokenizer = tokenizer
         self.hasher = hasher
         self._mask = np.uint32(hasher.n_buckets - 1)
-        self._mask_int = hasher.n_buckets - 1
-        self._store = ChunkStore(tokenizer.chunk_entry, hasher.hash_list, alias=tokenizer.chunk_alias,
-                                 mask=self._mask_int)
-        self._pairs_seen: dict[int, int] = {}  # pair key -> bucket, for the one-comment path
+        self._store = ChunkStore(tokenizer.chunk_entry, hasher.hash_list, alias=tokenizer.chunk_alias)
 
     def texts(self, texts: list[str]) -> Features:
         """Features of raw comment texts (each a str)."""
@@ -287,9 +281,7 @@ class FeatureEncoder:
 
         The same buckets, in the same order, as :meth:`texts` gives for the
         comment; for a handful of comments plain Python is faster than a
-        dozen numpy calls on tiny arrays.  Words come with their buckets from
-        the chunk store; a word pair's bucket is looked up by its pair key
-        (:meth:`_pair_buckets`).
+        dozen numpy calls on tiny arrays.
         """
         tok = self.tokenizer
         hasher = self.hasher
@@ -298,53 +290,37 @@ class FeatureEncoder:
         entries = list(map(store.entries.__getitem__, map(store.ids.__getitem__, tok.prepare(text).split())))
         words = list(chain.from_iterable(map(itemgetter(0), entries)))
         marks = b"".join(map(itemgetter(2), entries))
-        mask = hasher.n_buckets - 1
-        left = right = ()
-        extra: list[str] = []
         if tok.join_spaced and _SINGLES in marks:
             words, _ = tok.words_many((text,))  # a possible spaced-out word: the token-list pass decides
             hashes = hasher.hash_list(words)
-            buckets = [h & mask for h in hashes]
-            if tok.bigrams and len(words) > 1:
-                seq = pair_positions(words) if "<url>" in words else range(len(words))
+            seq = pair_positions(words) if "<url>" in words else None
+            from_store = False
+        else:
+            hashes = list(chain.from_iterable(map(itemgetter(1), entries)))
+            seq = _pair_sequence(marks) if _URL_DOMAIN in marks else None
+            from_store = True
+        left = right = ()
+        extra: list[str] = []
+        if tok.bigrams and len(words) > 1:
+            if seq is None:
+                in_seq = hashes
+                left, right = range(len(words) - 1), range(1, len(words))
+            else:
                 in_seq = list(map(hashes.__getitem__, seq))
                 left, right = seq[:-1], seq[1:]
-                buckets.extend(self._pair_buckets(list(map(xor, map(rotl16, in_seq), in_seq[1:]))))
-        else:
-            buckets = list(chain.from_iterable(map(itemgetter(4), entries)))
-            if tok.bigrams and len(words) > 1:
-                # the store holds each word's rotated hash, the left half of a pair key
-                hashes = list(chain.from_iterable(map(itemgetter(1), entries)))
+            if not from_store:
+                pairs = hasher.pair_list(in_seq, in_seq[1:])
+            else:  # the store holds each word's rotated hash, the left half of a pair key
                 rotated = list(chain.from_iterable(map(itemgetter(3), entries)))
-                if _URL_DOMAIN in marks:
-                    seq = _pair_sequence(marks)
-                    hashes = list(map(hashes.__getitem__, seq))
+                if seq is not None:
                     rotated = list(map(rotated.__getitem__, seq))
-                    left, right = seq[:-1], seq[1:]
-                else:
-                    left, right = range(len(words) - 1), range(1, len(words))
-                buckets.extend(self._pair_buckets(list(map(xor, rotated, hashes[1:]))))
+                pairs = hasher.rotated_pair_list(rotated, in_seq[1:])
+            hashes.extend(pairs)
         if tok.char_ngrams[0]:
             extra = char_ngrams(words, *tok.char_ngrams)
-            buckets.extend([h & mask for h in hasher.hash_list(extra)])
-        return buckets, FeatureNames(words, left, right, extra)
-
-    def _pair_buckets(self, keys: list[int]) -> list[int]:
-        """Buckets of word pairs from their pair keys (``rotl16(left) ^ right``),
-        through a bounded table: on a stream most pairs recur, and a dict hit
-        costs a fifth of a MurmurHash3 call."""
-        table = self._pairs_seen
-        buckets = list(map(table.get, keys))
-        if None in buckets:
-            murmur, seed, mask = mmh3.hash, self.hasher.seed, self._mask_int
-            if len(table) + len(keys) > _PAIR_TABLE_CAP:
-                for old in list(islice(table, len(table) // 2)):
-                    del table[old]
-            for i, bucket in enumerate(buckets):
-                if bucket is None:
-                    key = keys[i]
-                    buckets[i] = table[key] = murmur(key.to_bytes(4, "little"), seed, False) & mask
-        return buckets
+            hashes.extend(hasher.hash_list(extra))
+        mask = hasher.n_buckets - 1
+        return [h & mask for h in hashes], FeatureNames(words, left, right, extra)
 
     def tokens(self, feature_lists: list[list[str]]) -> Features:
         """Features of comments given as feature strings; ``a_b`` is the pair (a, b)."""
