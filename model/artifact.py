@@ -117,6 +117,39 @@ def decode_rows(delta: np.ndarray) -> np.ndarray:
     return np.cumsum(delta.astype(np.int64))
 
 
+# --- the stored model --------------------------------------------------------
+
+def encode_model(rows: np.ndarray, values: np.ndarray, head: dict, block: int = 1) -> dict[str, np.ndarray]:
+    """The stored arrays of a model: embedding ``values`` of ``rows`` (sorted
+    bucket ids), quantized in blocks of ``block`` rows, and the dense ``head``.
+
+    Examples
+    --------
+    >>> arrays = encode_model(np.array([3, 9]), np.ones((2, 2), np.float32), {"b2": [0.5]})
+    >>> sorted(arrays)
+    ['head_b2', 'row_delta', 'table_q', 'table_scale', 'table_zero']
+    >>> rows, values, head = decode_model(arrays, 1)
+    >>> rows.tolist(), values.round(2).tolist(), head["b2"].tolist()
+    ([3, 9], [[1.0, 1.0], [1.0, 1.0]], [0.5])
+    """
+    q, scale, zero = quantize(values, block)
+    return {
+        "row_delta": encode_rows(rows),
+        "table_q": q,
+        "table_scale": scale,
+        "table_zero": zero,
+        **{f"head_{k}": np.asarray(v, dtype=np.float32) for k, v in head.items()},
+    }
+
+
+def decode_model(arrays: dict[str, np.ndarray], block: int) -> tuple[np.ndarray, np.ndarray, dict]:
+    """``(rows, values, head)`` from :func:`encode_model`'s arrays; values dequantized to float32."""
+    rows = decode_rows(arrays["row_delta"])
+    values = dequantize(arrays["table_q"], arrays["table_scale"], arrays["table_zero"], block)
+    head = {k[len("head_"):]: v.astype(np.float32) for k, v in arrays.items() if k.startswith("head_")}
+    return rows, values, head
+
+
 # --- file --------------------------------------------------------------------
 
 def checksum(arrays: dict[str, np.ndarray], manifest: dict) -> str:

@@ -837,15 +837,8 @@ class EmbeddingClassifier:
         self._manifest = None
 
     def _row_arrays(self, rows: np.ndarray, values: np.ndarray, head: dict) -> dict:
-        """The stored arrays of ``rows`` (sorted bucket ids) with embedding ``values``."""
-        q, scale, zero = artifact.quantize(values, self.quant_block)
-        return {
-            "row_delta": artifact.encode_rows(rows),
-            "table_q": q,
-            "table_scale": scale,
-            "table_zero": zero,
-            **{f"head_{k}": np.asarray(v, dtype=np.float32) for k, v in head.items()},
-        }
+        """The stored arrays of ``rows`` (sorted bucket ids) with embedding ``values`` (:mod:`model.artifact`)."""
+        return artifact.encode_model(rows, values, head, self.quant_block)
 
     def _hasher_seed(self) -> int:
         return int(getattr(self._hasher, "seed", 0))
@@ -880,10 +873,7 @@ class EmbeddingClassifier:
             # Files from before the size budget have an int min_df parameter and no "min_df" entry.
             clf.min_df_ = int(manifest.get("min_df", manifest["params"]["min_df"]))
             clf.budget_ = dict(manifest.get("budget", {}))
-            rows = artifact.decode_rows(arrays["row_delta"])
-            block = int(manifest["quantization"]["block"])
-            values = artifact.dequantize(arrays["table_q"], arrays["table_scale"], arrays["table_zero"], block)
-            head = {k[len("head_"):]: v.astype(np.float32) for k, v in arrays.items() if k.startswith("head_")}
+            rows, values, head = artifact.decode_model(arrays, int(manifest["quantization"]["block"]))
             if values.shape != (rows.size, clf.dim_) or (rows.size and (rows[-1] >= clf.buckets or rows[0] < 0)):
                 raise ArtifactError("load model: stored rows do not match the manifest; the file is corrupt")
             thresholds = Thresholds.from_dict(manifest["thresholds"])

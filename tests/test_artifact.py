@@ -116,6 +116,26 @@ def test_row_ids_round_trip_in_a_narrow_dtype():
     assert artifact.encode_rows(np.arange(0, 5000, 7)).dtype == np.uint8
 
 
+@pytest.mark.parametrize("block", [1, 4], ids=["per-row", "block-4"])
+def test_model_arrays_round_trip_through_the_codec(trained, block):
+    import doctest
+
+    rows = np.array([2, 5, 9, 40000])
+    values = np.random.default_rng(1).normal(size=(4, 3)).astype(np.float32)
+    head = {"w2": np.array([0.5, -1.0, 2.0]), "b2": np.array([0.25])}
+    stored = artifact.encode_model(rows, values, head, block)
+    got_rows, got_values, got_head = artifact.decode_model(stored, block)
+    np.testing.assert_array_equal(got_rows, rows)
+    np.testing.assert_allclose(got_values, values, atol=float(np.abs(values).max()) / 127)
+    assert set(got_head) == {"w2", "b2"} and got_head["w2"].dtype == np.float32
+    # the classifier stores exactly what the codec writes
+    arrays, _ = artifact.loads(trained.to_bytes())
+    rows, values, head = artifact.decode_model(arrays, 1)
+    again = artifact.encode_model(rows, values, head, 1)
+    assert sorted(again) == sorted(arrays)
+    assert doctest.testmod(artifact).attempted > 0 and doctest.testmod(artifact).failed == 0
+
+
 def flip_first_value(arrays):
     q = arrays["table_q"].copy()
     q.flat[0] = np.int8(q.flat[0] ^ 1)

@@ -263,3 +263,41 @@ def test_distinct_tokens_counted_by_hash_equal_distinct_feature_strings():
     clf = EmbeddingClassifier(dim=2, min_df=1, validation_share=0.0, epochs=1).fit(texts, labels)
     strings = {t for text in texts for t in clf._tokenizer.features(text)}
     assert clf.summary_["distinct_tokens"] == len(strings)
+
+
+# Pieces of the evasions the tokenizer undoes, mixed with plain words: look-alike
+# letters (Cyrillic, Greek, small capitals), zero-width and format characters,
+# leetspeak, spaced-out letters and digits, links with and without a scheme,
+# phone numbers written with spaces, and markers typed by hand.
+_EVASION_PIECES = [
+    "free", "casino", "win", "notes", "саsinо", "ᴄᴀꜱɪɴᴏ", "ΡΡΙΖΕ", "fr33", "c@sh", "$ave", "freeeee",
+    "ca\u200bsino", "\u2060", "\ufe0f", "\u200d", "\x00", "c a s i n o", "f r 3 3", "1 2 3", "a b",
+    "https://prize.example/claim?id=77", "www.prize.example", "prize.example", "http://a.example).",
+    "HTTPS://Prize.Example/Up", "win@prize.example", "+1 555 010 9999", "(555) 010-9999", "555", "010",
+    "9999", "1,299.99", "<url>", "domain:fake.example", "🎰", "é", "Ｆｒｅｅ",
+]
+_evasive_text = st.lists(st.sampled_from(_EVASION_PIECES), max_size=12).flatmap(
+    lambda pieces: st.lists(st.sampled_from([" ", "  ", "\t", "\n", "", ".", ","]),
+                            min_size=len(pieces), max_size=len(pieces)).map(
+        lambda gaps: "".join(p + g for p, g in zip(pieces, gaps))))
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(_evasive_text, min_size=1, max_size=5))
+def test_every_featurization_path_gives_the_same_tokens_and_buckets(texts):
+    # The batch path (with a store warmed by earlier batches and a cold one),
+    # the one-comment path, and the whole pipeline (Tokenizer.features, hashed
+    # as feature strings) must agree token for token and bucket for bucket.
+    tok = Tokenizer()
+    warm = FeatureEncoder(tok, TokenHasher(n_buckets=2**12))
+    warm.texts(texts[::-1])
+    warm.texts([" ".join(texts)])
+    cold = FeatureEncoder(Tokenizer(), TokenHasher(n_buckets=2**12))
+    for enc in (warm, cold):
+        _check_same(enc, tok, texts)
+    together = warm.texts(texts)
+    for i, text in enumerate(texts):
+        alone = cold.texts([text])
+        mine = np.flatnonzero(together.doc == i)
+        assert alone.bucket.tolist() == together.bucket[mine].tolist(), text
+        assert alone.names.take(np.arange(alone.bucket.size)) == together.names.take(mine) == tok.features(text)
