@@ -169,3 +169,6 @@ def configure_logging(level: str, *, tag: str = "") -> None:
         raise ConfigError(f"config: log_level must be DEBUG, INFO, WARNING or ERROR, got {level!r}")
     fmt = "%(asctime)s %(levelname)s %(name)s" + (f" [{tag}]" if tag else "") + ": %(message)s"
     logging.basicConfig(level=getattr(logging, name), format=fmt, force=True)
+    # pika reports every connection step at INFO and frames at DEBUG (message bodies are comments): its own
+    # warnings and errors are kept, and Seawall logs one line of its own when it starts consuming.
+    logging.getLogger("pika").setLevel(logging.WARNING)

@@ -72,3 +72,18 @@ def test_processes_runs_named_consumers_and_forwards_sigterm(redis_server, tmp_p
     assert proc.returncode == 0
     assert err.count("consumer edge-0 stopped") == 1 and err.count("consumer edge-1 stopped") == 1
     assert client.xpending(KEYS.comments, KEYS.group)["pending"] == 0
+
+
+def test_logging_keeps_the_amqp_client_quiet_even_at_debug():
+    # pika logs each connection step at INFO and frames at DEBUG; a frame's body is a comment, never logged.
+    import logging
+
+    from ops.serving import configure_logging
+
+    configure_logging("DEBUG")
+    try:
+        assert not logging.getLogger("pika").isEnabledFor(logging.INFO)
+        assert logging.getLogger("pika").isEnabledFor(logging.WARNING)
+        assert logging.getLogger("seawall.worker").isEnabledFor(logging.DEBUG)
+    finally:
+        configure_logging("WARNING")
