@@ -80,10 +80,13 @@ def test_logging_keeps_the_amqp_client_quiet_even_at_debug():
 
     from ops.serving import configure_logging
 
+    root, pika = logging.getLogger(), logging.getLogger("pika")
+    saved = (root.handlers[:], root.level, pika.level)
     configure_logging("DEBUG")
     try:
-        assert not logging.getLogger("pika").isEnabledFor(logging.INFO)
-        assert logging.getLogger("pika").isEnabledFor(logging.WARNING)
+        assert not pika.isEnabledFor(logging.INFO)
+        assert pika.isEnabledFor(logging.WARNING)
         assert logging.getLogger("seawall.worker").isEnabledFor(logging.DEBUG)
     finally:
-        configure_logging("WARNING")
+        root.handlers[:], _ = saved[0], root.setLevel(saved[1])
+        pika.setLevel(saved[2])
