@@ -88,5 +88,6 @@ def test_logging_keeps_the_amqp_client_quiet_even_at_debug():
         assert pika.isEnabledFor(logging.WARNING)
         assert logging.getLogger("seawall.worker").isEnabledFor(logging.DEBUG)
     finally:
-        root.handlers[:], _ = saved[0], root.setLevel(saved[1])
+        root.handlers[:] = saved[0]
+        root.setLevel(saved[1])
         pika.setLevel(saved[2])
