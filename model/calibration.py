@@ -101,7 +101,7 @@ class Thresholds:
         )
 
     def to_dict(self) -> dict[str, float]:
-        """``{"hold": ..., "reject": ...}``: each threshold under the name of the action it leads to."""
+        """Each threshold under the name of the action it leads to (``THRESHOLD_ACTIONS``: hold, reject)."""
         return {a.value: getattr(self, a) for a in THRESHOLD_ACTIONS}
 
     @classmethod
