@@ -5,7 +5,8 @@ import unicodedata
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from model.tokens import Tokenizer, fold_text, join_spaced, mark_specials, squash_repeats, undo_leet
+from model.normalization import fold_text, join_spaced, mark_specials, squash_repeats, undo_leet
+from model.tokens import Tokenizer
 
 TOK = Tokenizer()
 
