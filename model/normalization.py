@@ -23,6 +23,9 @@ from __future__ import annotations
 
 import re
 import unicodedata
+from dataclasses import dataclass, field
+from itertools import repeat
+from typing import Callable
 
 __all__ = [
     "NORMALIZATION_VERSION",
@@ -44,7 +47,17 @@ __all__ = [
     "LINK_STARTS",
     "TRAILING_PUNCT",
     "NOT_IN_LINK_RE",
-    "SPACED_PHONE_HINT_RE",
+    "CrossChunkRule",
+    "CROSS_CHUNK_RULES",
+    "CHUNKS",
+    "TOKENS",
+    "MARK_SINGLE",
+    "CHUNK_NUMERIC_END",
+    "CHUNK_NUMERIC_START",
+    "rules_on",
+    "chunk_marks",
+    "token_rule_marks",
+    "needs_whole_pipeline",
 ]
 
 #: Marker tokens that stand in for a whole class of strings.
@@ -205,7 +218,7 @@ TRAILING_PUNCT = ".,;:!?)]}'\""
 _GROUPED_NUMBER_RE = re.compile(r"\d+(?:[.,]\d+)+")
 _DATE_RE = re.compile(r"\d{4}-\d{1,2}-\d{1,2}|\d{1,2}[./-]\d{1,2}[./-]\d{2,4}")
 _PHONE_SEPARATORS_RE = re.compile(r"[\s().-]+")
-SPACED_PHONE_HINT_RE = re.compile(r"\d[\d().-]* \(?\d")  # starts with a digit: a fast scan
+_SPACED_PHONE_HINT_RE = re.compile(r"\d[\d().-]* \(?\d")  # starts with a digit: a fast scan
 _SPACED_PHONE_RE = re.compile(r"\+?\(?\d[\d().-]*(?: \(?\d[\d().-]*)+")
 
 
@@ -522,3 +535,186 @@ def word_tokens(text: str) -> list[str]:
     if "_" in text:
         text = text.replace("_", " ")
     return _TOKEN_RE.findall(text)
+
+
+# --------------------------------------------------------------------------- #
+# Rules that span whitespace chunks                                            #
+# --------------------------------------------------------------------------- #
+#
+# The tokenizer caches each whitespace chunk's tokens, and the fast paths build
+# a comment's words by concatenating them.  A rule that may join or rewrite
+# across chunks breaks that, so each such rule is declared once, below: what it
+# marks on a chunk or a token, the run of marks where it may apply, and what it
+# does to the whole comment.  Every path asks :func:`needs_whole_pipeline`, and
+# the whole pipeline (:meth:`model.tokens.Tokenizer.words_many`) applies every
+# rule of the table.
+
+#: What a rule reads: each whitespace chunk's own marks, or each token's marks.
+CHUNKS, TOKENS = "chunks", "tokens"
+
+#: Token bit of the spaced-out word rule: the token has one character before the
+#: token-list pass.  Bits 2 and 4 of a token are :data:`model.tokens.MARK_URL`
+#: and ``MARK_DOMAIN``; a new token rule takes 8 or above.
+MARK_SINGLE = 1
+#: Chunk bits of the spaced phone number rule: the chunk may end, or start, a
+#: phone number written with spaces.  A new chunk rule takes 4 or above.
+CHUNK_NUMERIC_END, CHUNK_NUMERIC_START = 1, 2
+
+
+def _bits_pattern(run: bytes) -> re.Pattern:
+    """A bytes pattern for ``len(run)`` consecutive marks, the i-th holding a bit of ``run[i]``."""
+    classes = [b"[" + b"".join(re.escape(bytes([v])) for v in range(256) if v & bits) + b"]" for bits in run]
+    return re.compile(b"".join(classes))
+
+
+@dataclass(frozen=True)
+class CrossChunkRule:
+    """A normalization rule whose match may span whitespace chunks.
+
+    Attributes
+    ----------
+    name : str
+        What the rule undoes, for people.
+    reads : str
+        :data:`CHUNKS` (each whitespace chunk's own marks) or :data:`TOKENS`
+        (the marks of each token, before the token-list pass).
+    mark : callable
+        A chunk (or a token) -> its bits for this rule, 0 for none.  It must
+        mark a superset of where the rule can apply.
+    run : bytes
+        The bits that consecutive chunks (or tokens) of one comment carry, in
+        order, where the rule may apply; the comment then needs the whole pipeline.
+    apply : callable
+        The rule on a whole comment: ``text -> text`` before it is cut (chunk
+        rules), or ``(tokens, rewrite) -> tokens`` in the token-list pass
+        (token rules; ``rewrite`` undoes leetspeak and repeats in a new word).
+    switch : str or None
+        The :class:`~model.tokens.Tokenizer` parameter that turns the rule off.
+    """
+
+    name: str
+    reads: str
+    mark: Callable
+    run: bytes
+    apply: Callable
+    switch: str | None = None
+    pattern: re.Pattern = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self):
+        if self.reads not in (CHUNKS, TOKENS) or not self.run or not all(self.run):
+            raise ValueError(f"CrossChunkRule {self.name!r}: reads must be {CHUNKS!r} or {TOKENS!r} "
+                             f"and run a non-empty run of non-zero bits, got {self.reads!r}, {self.run!r}")
+        object.__setattr__(self, "pattern", _bits_pattern(self.run))
+
+    def found(self, marks: bytes) -> bool:
+        """Whether the rule's run stands in one comment's marks (one byte per chunk or token)."""
+        return self.pattern.search(marks) is not None
+
+
+_DIGITS = "0123456789"
+_DIGIT_BYTES = _DIGITS.encode()
+
+
+def _numeric_ends(chunk: str) -> int:
+    """Whether a chunk may end or start a phone number written with spaces:
+    supersets of where the hint ``_SPACED_PHONE_HINT_RE`` can end and start
+    (``str.isdigit`` covers the regular expressions' digits)."""
+    if not chunk:
+        return 0
+    last = chunk[-1]
+    end = CHUNK_NUMERIC_END if last.isdigit() or last in "().-" else 0
+    return end | (CHUNK_NUMERIC_START if chunk[0].isdigit() or chunk[0] == "(" else 0)
+
+
+def _mark_phones_if_hinted(text: str) -> str:
+    """:func:`mark_spaced_phones` for a text that has an ASCII digit and a hint of one."""
+    if text.isascii():
+        digits = len(text.encode().translate(None, _DIGIT_BYTES)) != len(text)
+    else:
+        digits = any(map(text.__contains__, _DIGITS))
+    return mark_spaced_phones(text) if digits and _SPACED_PHONE_HINT_RE.search(text) else text
+
+
+def _single(token: str) -> int:
+    return MARK_SINGLE if len(token) == 1 else 0
+
+
+def _join_spaced_runs(tokens: list[str], rewrite) -> list[str]:
+    """:func:`join_spaced` for a token list with three one-character tokens in a row."""
+    try:
+        lengths = bytes(map(len, tokens))  # one byte per token; a run of singles is a byte search
+    except ValueError:  # a token of 256 characters or more
+        lengths = bytes(map(min, map(len, tokens), repeat(2)))
+    return join_spaced(tokens, rewrite) if b"\x01\x01\x01" in lengths else tokens
+
+
+#: Every rule whose match may span whitespace chunks; a new one is added here only.
+CROSS_CHUNK_RULES: tuple[CrossChunkRule, ...] = (
+    CrossChunkRule("spaced phone number", CHUNKS, _numeric_ends, bytes([CHUNK_NUMERIC_END, CHUNK_NUMERIC_START]),
+                   _mark_phones_if_hinted),
+    CrossChunkRule("spaced-out word", TOKENS, _single, bytes([MARK_SINGLE] * 3), _join_spaced_runs,
+                   switch="join_spaced"),
+)
+
+
+def rules_on(params) -> tuple[CrossChunkRule, ...]:
+    """The rules of :data:`CROSS_CHUNK_RULES` a tokenizer with these parameters
+    (an object with the switches as attributes) applies."""
+    return tuple(r for r in CROSS_CHUNK_RULES if r.switch is None or getattr(params, r.switch))
+
+
+def chunk_marks(chunk: str) -> int:
+    """A whitespace chunk's own marks: the bits every chunk rule gives it.
+
+    Examples
+    --------
+    >>> chunk_marks("555"), chunk_marks("call"), chunk_marks("(555)")
+    (3, 0, 3)
+    """
+    out = 0
+    for rule in CROSS_CHUNK_RULES:
+        if rule.reads == CHUNKS:
+            out |= rule.mark(chunk)
+    return out
+
+
+def token_rule_marks(tokens) -> list[int]:
+    """Each token's bits from every token rule.
+
+    Examples
+    --------
+    >>> token_rule_marks(["c", "a", "sino"])
+    [1, 1, 0]
+    """
+    rules = [r.mark for r in CROSS_CHUNK_RULES if r.reads == TOKENS]
+    out = []
+    for token in tokens:
+        bits = 0
+        for mark in rules:
+            bits |= mark(token)
+        out.append(bits)
+    return out
+
+
+def needs_whole_pipeline(chunk_bits: bytes, token_bits: bytes, rules=None) -> bool:
+    """Whether a rule across chunks may change one comment, so that its words
+    are not just its chunks' cached tokens.
+
+    Parameters
+    ----------
+    chunk_bits : bytes
+        The comment's chunks' own marks (:func:`chunk_marks`), one byte per chunk, in order.
+    token_bits : bytes
+        Its tokens' marks before the token-list pass, one byte per token, in order.
+    rules : sequence of CrossChunkRule, optional
+        The rules that apply (:func:`rules_on`); all of them by default.
+
+    Examples
+    --------
+    >>> needs_whole_pipeline(bytes([1, 3, 0]), b""), needs_whole_pipeline(b"", bytes([1, 1, 0, 1]))
+    (True, False)
+    """
+    for rule in CROSS_CHUNK_RULES if rules is None else rules:
+        if rule.found(chunk_bits if rule.reads == CHUNKS else token_bits):
+            return True
+    return False

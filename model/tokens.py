@@ -9,37 +9,31 @@ sees the tokens it was trained on.
 """
 from __future__ import annotations
 
-from itertools import chain, islice, repeat
+from itertools import chain, islice
 from numbers import Integral
 
-from model.normalization import (DOMAIN_PREFIX, LINK_SCHEMES, LINK_STARTS, NORMALIZATION_VERSION, NOT_IN_LINK_RE,
-                                 SPACED_PHONE_HINT_RE, TRAILING_PUNCT, fold_text, join_spaced, mark_spaced_phones,
-                                 mark_specials, squash_repeats, undo_leet, whole_link, word_tokens)
+from model.normalization import (CHUNKS, DOMAIN_PREFIX, LINK_SCHEMES, LINK_STARTS, NORMALIZATION_VERSION,
+                                 NOT_IN_LINK_RE, TRAILING_PUNCT, chunk_marks, fold_text, mark_specials, rules_on,
+                                 squash_repeats, token_rule_marks, undo_leet, whole_link, word_tokens)
 
 __all__ = [
     "Tokenizer",
     "bigrams",
     "pair_positions",
     "char_ngrams",
-    "MARK_SINGLE",
     "MARK_URL",
     "MARK_DOMAIN",
     "token_marks",
-    "CHUNK_NUMERIC_END",
-    "CHUNK_NUMERIC_START",
     "CHUNK_SEPARATOR",
 ]
 
 BIGRAM_JOINER = "_"  # words never contain "_" (it separates words), so a bigram never equals a word
 CHAR_NGRAM_PREFIX = "#"  # keeps the n-gram "win" apart from the word "win"
 
-#: Bit marks of a token in :meth:`Tokenizer.chunk_entry`: it was one character
-#: before the token-list pass (which only looks at those), it is the ``<url>``
-#: marker, it is a ``domain:`` token.
-MARK_SINGLE, MARK_URL, MARK_DOMAIN = 1, 2, 4
-#: Chunk marks of :meth:`Tokenizer.chunk_entry`: the chunk may end, or start,
-#: a phone number written with spaces.
-CHUNK_NUMERIC_END, CHUNK_NUMERIC_START = 1, 2
+#: Bit marks of a token in :meth:`Tokenizer.chunk_entry`, beside the bits of the
+#: token rules across chunks (:func:`model.normalization.token_rule_marks`): it
+#: is the ``<url>`` marker, it is a ``domain:`` token.
+MARK_URL, MARK_DOMAIN = 2, 4
 #: Stands between two comments in a joined batch (:meth:`Tokenizer.chunks_many`):
 #: a chunk of its own, which turns into no token ("\\x00" is a control character).
 CHUNK_SEPARATOR = " \x00 "
@@ -153,8 +147,9 @@ class _ChunkCache(dict):
     stream (links with ids, phone numbers, typos) then never push the common
     vocabulary out.  Either table drops its oldest half when full.
 
-    :attr:`short` holds the chunks that yield a one-character token, the only
-    ones the token-list pass (:meth:`Tokenizer._finish`) can change.  It may
+    :attr:`short` holds the chunks that yield a one-character token or a token
+    a token rule across chunks marks, the only ones the token-list pass
+    (:meth:`Tokenizer._finish`) can change.  It may
     also hold forgotten chunks (which only costs that pass a run) and is
     pruned between comments, never while one is being cut.
     """
@@ -176,7 +171,7 @@ class _ChunkCache(dict):
             _remember(once, chunk, tokens, max(1, self._cap // 4))
         else:
             _remember(self, chunk, tokens, self._cap)
-        if 1 in map(len, tokens):
+        if 1 in map(len, tokens) or any(token_rule_marks(tokens)):
             self.short.add(chunk)
         return tokens
 
@@ -192,40 +187,18 @@ def _remember(table: dict, key, value, cap: int) -> None:
     dict.__setitem__(table, key, value)
 
 
-_DIGITS = "0123456789"
-_DIGIT_BYTES = _DIGITS.encode()
-_SINGLE_DIGITS = frozenset(_DIGITS)
-
-
-def _mark_phones_if_hinted(text: str) -> str:
-    """:func:`mark_spaced_phones` for a text that has an ASCII digit and a hint of one."""
-    if text.isascii():
-        digits = len(text.encode().translate(None, _DIGIT_BYTES)) != len(text)
-    else:
-        digits = any(map(text.__contains__, _DIGITS))
-    return mark_spaced_phones(text) if digits and SPACED_PHONE_HINT_RE.search(text) else text
-
-
-def _chunk_marks(chunk: str) -> int:
-    """Whether a chunk may end or start a phone number written with spaces:
-    supersets of where the hint ``SPACED_PHONE_HINT_RE`` can end and start
-    (``str.isdigit`` covers the regular expressions' digits)."""
-    if not chunk:
-        return 0
-    last = chunk[-1]
-    end = CHUNK_NUMERIC_END if last.isdigit() or last in "().-" else 0
-    return end | (CHUNK_NUMERIC_START if chunk[0].isdigit() or chunk[0] == "(" else 0)
+_SINGLE_DIGITS = frozenset("0123456789")
 
 
 def token_marks(tokens) -> list[int]:
-    """The bit marks of each finished token (see :meth:`Tokenizer.chunk_entry`).
+    """The bit marks of each token before the token-list pass (see :meth:`Tokenizer.chunk_entry`).
 
     Examples
     --------
     >>> token_marks(["a", "<url>", "domain:prize.example", "win"])
     [1, 2, 4, 0]
     """
-    return [MARK_SINGLE if len(t) == 1 else _PREFIX_MARKS.get(t[:7], 0) for t in tokens]
+    return [bits | _PREFIX_MARKS.get(t[:7], 0) for t, bits in zip(tokens, token_rule_marks(tokens))]
 
 
 class Tokenizer:
@@ -248,8 +221,9 @@ class Tokenizer:
     -----
     Work is done per whitespace-separated chunk and remembered in a bounded
     per-instance cache, so the cost of the regular expressions is paid once
-    per distinct chunk.  Only spaced-out phone numbers and spaced-out letters
-    span chunks; they are handled on the whole text and on the token list.
+    per distinct chunk.  The rules that span chunks (spaced-out phone numbers
+    and letters, :data:`model.normalization.CROSS_CHUNK_RULES`) are applied on
+    the whole text and on the token list.
 
     Examples
     --------
@@ -268,6 +242,10 @@ class Tokenizer:
                      accents=accents, leet=leet, join_spaced=join_spaced, squash_repeats=squash_repeats)
         for name, (_, check) in _PARAMS.items():
             setattr(self, name, check(name, given[name]))
+        #: The rules across chunks this tokenizer applies (see :data:`model.normalization.CROSS_CHUNK_RULES`).
+        self.rules = rules_on(self)
+        self._text_rules = [r.apply for r in self.rules if r.reads == CHUNKS]
+        self._token_rules = [r.apply for r in self.rules if r.reads != CHUNKS]
         self._chunks = _ChunkCache(self._rewrite_chunk, _CHUNK_CACHE_SIZE)
 
     def params(self) -> dict:
@@ -315,14 +293,10 @@ class Tokenizer:
         return tuple(map(self._rewrite_word, word_tokens(mark_specials(folded))))
 
     def _finish(self, tokens: list[str]) -> list[str]:
-        """Token-list pass: join spaced-out runs, then single digits become ``<num>``."""
-        if self.join_spaced:
-            try:
-                lengths = bytes(map(len, tokens))  # one byte per token; a run of singles is a byte search
-            except ValueError:  # a token of 256 characters or more
-                lengths = bytes(map(min, map(len, tokens), repeat(2)))
-            if b"\x01\x01\x01" in lengths:
-                tokens = join_spaced(tokens, self._rewrite_word)
+        """Token-list pass: the token rules across chunks (spaced-out runs
+        joined), then single digits become ``<num>``."""
+        for apply in self._token_rules:
+            tokens = apply(tokens, self._rewrite_word)
         if _SINGLE_DIGITS.isdisjoint(tokens):
             return tokens
         return ["<num>" if t in _SINGLE_DIGITS else t for t in tokens]
@@ -331,18 +305,19 @@ class Tokenizer:
         """One whitespace chunk's tokens as they stand when no pass across
         chunks changes them, a bit mark per token, and the chunk's own marks.
 
-        The token marks are :data:`MARK_SINGLE` (one character before the
-        token-list pass), :data:`MARK_URL` and :data:`MARK_DOMAIN`; the chunk
-        marks :data:`CHUNK_NUMERIC_END` and :data:`CHUNK_NUMERIC_START` tell
-        where a spaced-out phone number could run across it.  A comment's
-        :meth:`words` are exactly the concatenation of its chunks' tokens
-        (chunks as :meth:`chunks_many` cuts them) unless
-
-        - two neighbouring chunks, the first marked numeric at its end and the
-          second at its start, may be one spaced-out phone number, or
-        - three one-character tokens stand in a row (a spaced-out word);
-
-        such a comment needs the whole pipeline (:meth:`words_many`).
+        The token marks are the bits of the token rules across chunks
+        (:func:`model.normalization.token_rule_marks`; ``MARK_SINGLE``: one
+        character before the token-list pass), :data:`MARK_URL` and
+        :data:`MARK_DOMAIN`; the chunk marks are the bits of the chunk rules
+        (:func:`model.normalization.chunk_marks`; ``CHUNK_NUMERIC_END`` and
+        ``CHUNK_NUMERIC_START``: where a spaced-out phone number could run
+        across it).  A comment's :meth:`words` are exactly the concatenation of
+        its chunks' tokens (chunks as :meth:`chunks_many` cuts them) unless
+        :func:`model.normalization.needs_whole_pipeline` finds the run of a rule
+        in :data:`~model.normalization.CROSS_CHUNK_RULES` in its marks (two
+        neighbouring chunks that may be one spaced-out phone number, three
+        one-character tokens in a row); such a comment needs the whole
+        pipeline (:meth:`words_many`).
 
         Examples
         --------
@@ -357,7 +332,7 @@ class Tokenizer:
         marks = token_marks(raw)
         if not _SINGLE_DIGITS.isdisjoint(raw):
             raw = tuple("<num>" if t in _SINGLE_DIGITS else t for t in raw)
-        return raw, marks, _chunk_marks(chunk)
+        return raw, marks, chunk_marks(chunk)
 
     @staticmethod
     def chunk_alias(chunk: str) -> str | None:
@@ -384,7 +359,7 @@ class Tokenizer:
             return None
         if not (chunk.isascii() and chunk.isprintable()) or NOT_IN_LINK_RE.search(chunk):
             return None
-        return f"{chunk[:end]} {_chunk_marks(chunk)}"
+        return f"{chunk[:end]} {chunk_marks(chunk)}"
 
     def chunks_many(self, texts: list[str]) -> tuple[list[str], list[int] | None]:
         """The whitespace chunks of many comments, as :meth:`words_many` cuts
@@ -405,10 +380,17 @@ class Tokenizer:
         return list(chain.from_iterable(lists)), list(map(len, lists))
 
     @staticmethod
-    def prepare(text: str) -> str:
+    def chunks(text: str) -> list[str]:
+        """One comment's whitespace chunks as :meth:`chunks_many` cuts them."""
+        return (text.lower() if text.isascii() else text).split()
+
+    def prepare(self, text: str) -> str:
         """One comment as :meth:`words_many` splits it: lowercased if ASCII,
-        spaced-out phone numbers marked."""
-        return _mark_phones_if_hinted(text.lower() if text.isascii() else text)
+        the chunk rules across chunks applied (spaced-out phone numbers marked)."""
+        text = text.lower() if text.isascii() else text
+        for apply in self._text_rules:
+            text = apply(text)
+        return text
 
     def _unigrams(self, text: str) -> list[str]:
         return self.words_many((text,))[0]
