@@ -392,7 +392,10 @@ class Tokenizer:
             text = apply(text)
         return text
 
-    def _unigrams(self, text: str) -> list[str]:
+    def _unigrams(self, text: str, caller: str) -> list[str]:
+        """One comment's words, for the method ``caller``; a TypeError names it when ``text`` is no str."""
+        if not isinstance(text, str):
+            raise TypeError(f"Tokenizer.{caller}: text must be str, got {type(text).__name__}")
         return self.words_many((text,))[0]
 
     def words_many(self, texts) -> tuple[list[str], list[int]]:
@@ -432,9 +435,7 @@ class Tokenizer:
         >>> Tokenizer().normalize("Ｃａｌｌ +1 (555) 010-9999 or ma\\u200bil me@casino.example")
         'call <phone> or mail <email>'
         """
-        if not isinstance(text, str):
-            raise TypeError(f"Tokenizer.normalize: text must be str, got {type(text).__name__}")
-        return " ".join(self._unigrams(text))
+        return " ".join(self._unigrams(text, "normalize"))
 
     def words(self, text: str) -> list[str]:
         """Word and marker tokens of one comment, the unigrams of :meth:`features`.
@@ -446,9 +447,7 @@ class Tokenizer:
         >>> Tokenizer().words("Visit casino.example NOW")
         ['visit', '<url>', 'domain:casino.example', 'now']
         """
-        if not isinstance(text, str):
-            raise TypeError(f"Tokenizer.words: text must be str, got {type(text).__name__}")
-        return self._unigrams(text)
+        return self._unigrams(text, "words")
 
     def features(self, text: str) -> list[str]:
         """Feature tokens of one comment: unigrams, markers, bigrams, char n-grams.
@@ -462,9 +461,7 @@ class Tokenizer:
         >>> Tokenizer().features("Visit casino.example")
         ['visit', '<url>', 'domain:casino.example', 'visit_<url>']
         """
-        if not isinstance(text, str):
-            raise TypeError(f"Tokenizer.features: text must be str, got {type(text).__name__}")
-        words = self._unigrams(text)
+        words = self._unigrams(text, "features")
         if not self.bigrams and self.char_ngrams[0] == 0:
             return words
         seq = words if "<url>" not in words else [words[i] for i in pair_positions(words)]
