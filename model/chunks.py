@@ -75,13 +75,12 @@ class _Column:
         return self.data[:self.n]
 
 
-def _entry_tuple(tokens, hashes, marks, chunk_marks) -> tuple:
-    """``(tokens, hashes, marks, rotated, chunk_marks)``: ``marks`` has one byte
-    per token (the token rules' bits and :data:`model.tokens.MARK_URL` /
-    ``MARK_DOMAIN``); ``rotated`` each hash rotated by 16 bits, the left half of
-    a word-pair key (:func:`model.hashing.rotl16`); ``chunk_marks`` the chunk's
-    own marks (:func:`model.normalization.chunk_marks`)."""
-    return tuple(tokens), tuple(hashes), bytes(marks), tuple(map(rotl16, hashes)), int(chunk_marks)
+def _entry_tuple(tokens, hashes, marks) -> tuple:
+    """``(tokens, hashes, marks, rotated)``: ``marks`` has one byte per token, the
+    bits of :func:`model.tokens.token_marks` (the token rules' and ``MARK_URL`` / ``MARK_DOMAIN``);
+    ``rotated`` each hash rotated by 16 bits, the left half of a word-pair key
+    (:func:`model.hashing.rotl16`)."""
+    return tuple(tokens), tuple(hashes), bytes(marks), tuple(map(rotl16, hashes))
 
 
 class ChunkStore:
@@ -130,7 +129,7 @@ class ChunkStore:
         self.ids.update(zip(chunks, range(len(chunks))))
         self._chunk = list(chunks)
         self.tokens = list(tokens)  # a new list: names of earlier batches keep the old one
-        self.entries: list[tuple] = []  # per id: (tokens, hashes, marks, rotated, chunk marks) as Python objects, for one comment
+        self.entries: list[tuple] = []  # per id: (tokens, hashes, marks, rotated) as Python objects, for one comment
         sizes = np.asarray(sizes, dtype=np.int64)
         starts = np.cumsum(sizes) - sizes
         self._start = _Column(np.int64, starts)
@@ -147,8 +146,8 @@ class ChunkStore:
         at = 0
         hashes = np.asarray(hashes).tolist()
         marks = np.asarray(marks).tolist()
-        for size, own in zip(sizes.tolist(), np.asarray(chunk_marks).tolist()):
-            self.entries.append(_entry_tuple(self.tokens[at:at + size], hashes[at:at + size], marks[at:at + size], own))
+        for size in sizes.tolist():
+            self.entries.append(_entry_tuple(self.tokens[at:at + size], hashes[at:at + size], marks[at:at + size]))
             at += size
 
     def __len__(self) -> int:
@@ -192,7 +191,7 @@ class ChunkStore:
         hashes = self._hash_list(tokens)
         self._new_hash.extend(hashes)
         self._new_mark.extend(marks)
-        self.entries.append(_entry_tuple(tokens, hashes, marks, chunk_marks))
+        self.entries.append(_entry_tuple(tokens, hashes, marks))
         self._new_chunk_mark.append(chunk_marks)
         return at
 

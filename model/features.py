@@ -302,11 +302,13 @@ class FeatureEncoder:
         hasher = self.hasher
         store = self._store
         store.fit_cap()
-        entries = list(map(store.entries.__getitem__, map(store.ids.__getitem__, tok.chunks(text))))
+        # The chunk rules across chunks run on the text (prepare) before it is
+        # cut; after that only a token rule can still change the words.
+        entries = list(map(store.entries.__getitem__, map(store.ids.__getitem__, tok.prepare(text).split())))
         words = list(chain.from_iterable(map(itemgetter(0), entries)))
         marks = b"".join(map(itemgetter(2), entries))
-        if needs_whole_pipeline(bytes(map(itemgetter(4), entries)), marks, tok.rules):
-            words, _ = tok.words_many((text,))  # a rule across chunks may apply: the whole pipeline decides
+        if tok.token_rules and needs_whole_pipeline(b"", marks, tok.token_rules):
+            words, _ = tok.words_many((text,))  # a token rule may apply: the whole pipeline decides
             hashes = hasher.hash_list(words)
             seq = pair_positions(words) if "<url>" in words else None
             from_store = False

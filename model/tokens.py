@@ -244,8 +244,10 @@ class Tokenizer:
             setattr(self, name, check(name, given[name]))
         #: The rules across chunks this tokenizer applies (see :data:`model.normalization.CROSS_CHUNK_RULES`).
         self.rules = rules_on(self)
+        #: Those of :attr:`rules` that read token marks (applied in the token-list pass, after the chunks are cut).
+        self.token_rules = tuple(r for r in self.rules if r.reads != CHUNKS)
         self._text_rules = [r.apply for r in self.rules if r.reads == CHUNKS]
-        self._token_rules = [r.apply for r in self.rules if r.reads != CHUNKS]
+        self._token_rules = [r.apply for r in self.token_rules]
         self._chunks = _ChunkCache(self._rewrite_chunk, _CHUNK_CACHE_SIZE)
 
     def params(self) -> dict:
@@ -378,11 +380,6 @@ class Tokenizer:
             return joined.split(), None
         lists = [(t.lower() if t.isascii() else t).split() for t in texts]
         return list(chain.from_iterable(lists)), list(map(len, lists))
-
-    @staticmethod
-    def chunks(text: str) -> list[str]:
-        """One comment's whitespace chunks as :meth:`chunks_many` cuts them."""
-        return (text.lower() if text.isascii() else text).split()
 
     def prepare(self, text: str) -> str:
         """One comment as :meth:`words_many` splits it: lowercased if ASCII,

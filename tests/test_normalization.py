@@ -34,11 +34,11 @@ EXAMPLES = {
 
 def _chunk_words(tok: Tokenizer, text: str) -> list[str]:
     """The words a path would give that ignored every rule across chunks."""
-    return list(chain.from_iterable(tok.chunk_entry(c)[0] for c in tok.chunks(text)))
+    return list(chain.from_iterable(tok.chunk_entry(c)[0] for c in tok.chunks_many([text])[0]))
 
 
 def _marks(tok: Tokenizer, text: str) -> tuple[bytes, bytes]:
-    entries = [tok.chunk_entry(c) for c in tok.chunks(text)]
+    entries = [tok.chunk_entry(c) for c in tok.chunks_many([text])[0]]
     return bytes(e[2] for e in entries), bytes(chain.from_iterable(e[1] for e in entries))
 
 
