@@ -76,8 +76,8 @@ class _Column:
 
 
 def _entry_tuple(tokens, hashes, marks) -> tuple:
-    """``(tokens, hashes, marks, rotated)``: ``marks`` has one byte per token, its
-    :data:`model.tokens.MARK_SINGLE` / ``MARK_URL`` / ``MARK_DOMAIN`` bits;
+    """``(tokens, hashes, marks, rotated)``: ``marks`` has one byte per token, the
+    bits of :func:`model.tokens.token_marks` (the token rules' and ``MARK_URL`` / ``MARK_DOMAIN``);
     ``rotated`` each hash rotated by 16 bits, the left half of a word-pair key
     (:func:`model.hashing.rotl16`)."""
     return tuple(tokens), tuple(hashes), bytes(marks), tuple(map(rotl16, hashes))

@@ -24,8 +24,9 @@ import numpy as np
 
 from model.chunks import ChunkStore
 from model.hashing import TokenHasher
-from model.tokens import (BIGRAM_JOINER, CHUNK_NUMERIC_END, CHUNK_NUMERIC_START, CHUNK_SEPARATOR, MARK_DOMAIN,
-                          MARK_SINGLE, MARK_URL, Tokenizer, char_ngrams, pair_positions, token_marks)
+from model.normalization import CHUNKS, needs_whole_pipeline
+from model.tokens import (BIGRAM_JOINER, CHUNK_SEPARATOR, MARK_DOMAIN, MARK_URL, Tokenizer, char_ngrams,
+                          pair_positions, token_marks)
 
 __all__ = ["Features", "FeatureEncoder", "FeatureNames"]
 
@@ -159,10 +160,25 @@ class Features:
 
 
 _EMPTY = np.empty(0, dtype=np.int64)
-#: In a comment's token marks: three one-character tokens in a row, and a
-#: ``<url>`` marker followed by its ``domain:`` token.
-_SINGLES = bytes([MARK_SINGLE] * 3)
+#: In a comment's token marks: a ``<url>`` marker followed by its ``domain:`` token.
 _URL_DOMAIN = bytes([MARK_URL, MARK_DOMAIN])
+
+
+def _runs(marks: np.ndarray, group: np.ndarray, run: bytes) -> np.ndarray:
+    """The group (comment) of each place where ``len(run)`` consecutive items
+    of one group carry a bit of ``run[0]``, ``run[1]``, ... in order; ``group``
+    is sorted."""
+    span = len(run)
+    n = marks.size - span + 1
+    if n < 1:
+        return _EMPTY
+    hit = (marks[:n] & run[0]).astype(bool)
+    for j in range(1, span):
+        if not hit.any():
+            return _EMPTY
+        hit &= (marks[j:j + n] & run[j]).astype(bool)
+    hit &= group[:n] == group[span - 1:]
+    return group[:n][hit]
 
 
 def _pair_sequence(marks: bytes) -> list[int]:
@@ -246,21 +262,20 @@ class FeatureEncoder:
 
     def _needs_whole_pipeline(self, ids, chunk_doc, marks, doc) -> np.ndarray | None:
         """Comments whose words are not just their chunks' tokens (see
-        :meth:`Tokenizer.chunk_entry`): a possible spaced-out phone number
-        across two chunks, or three one-character tokens in a row."""
+        :meth:`Tokenizer.chunk_entry`): the run of one of the tokenizer's rules
+        across chunks (:func:`model.normalization.needs_whole_pipeline`, for
+        a whole batch) in their chunks' or tokens' marks."""
         found = []
-        if ids.size > 1:
-            cm = self._store.chunk_marks[ids]
-            across = ((cm[:-1] & CHUNK_NUMERIC_END) & ((cm[1:] & CHUNK_NUMERIC_START) >> 1)).astype(bool)
-            across &= chunk_doc[:-1] == chunk_doc[1:]
-            if across.any():
-                found.append(chunk_doc[:-1][across])
-        if self.tokenizer.join_spaced and doc.size > 2:
-            single = (marks & MARK_SINGLE).astype(bool)
-            if np.count_nonzero(single) >= 3:
-                run = single[:-2] & single[1:-1] & single[2:] & (doc[:-2] == doc[2:])
-                if run.any():
-                    found.append(doc[:-2][run])
+        chunk_bits = None
+        for rule in self.tokenizer.rules:
+            if rule.reads == CHUNKS:
+                if chunk_bits is None:
+                    chunk_bits = self._store.chunk_marks[ids]
+                at = _runs(chunk_bits, chunk_doc, rule.run)
+            else:
+                at = _runs(marks, doc, rule.run)
+            if at.size:
+                found.append(at)
         return np.unique(np.concatenate(found)) if found else None
 
     def _replace(self, texts, redo: np.ndarray, ids: np.ndarray, chunk_doc: np.ndarray):
@@ -287,11 +302,13 @@ class FeatureEncoder:
         hasher = self.hasher
         store = self._store
         store.fit_cap()
+        # The chunk rules across chunks run on the text (prepare) before it is
+        # cut; after that only a token rule can still change the words.
         entries = list(map(store.entries.__getitem__, map(store.ids.__getitem__, tok.prepare(text).split())))
         words = list(chain.from_iterable(map(itemgetter(0), entries)))
         marks = b"".join(map(itemgetter(2), entries))
-        if tok.join_spaced and _SINGLES in marks:
-            words, _ = tok.words_many((text,))  # a possible spaced-out word: the token-list pass decides
+        if tok.token_rules and needs_whole_pipeline(b"", marks, tok.token_rules):
+            words, _ = tok.words_many((text,))  # a token rule may apply: the whole pipeline decides
             hashes = hasher.hash_list(words)
             seq = pair_positions(words) if "<url>" in words else None
             from_store = False

@@ -28,7 +28,7 @@ MODULES = _modules_with_examples()
 
 
 def test_the_search_finds_the_modules_known_to_have_examples():
-    assert {"model.tokens", "model.hashing", "worker.routing", "worker.verdicts"} <= set(MODULES)
+    assert {"model.tokens", "model.normalization", "model.hashing", "worker.routing", "worker.verdicts"} <= set(MODULES)
 
 
 @pytest.mark.parametrize("name", MODULES)

@@ -10,7 +10,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from sklearn.utils import murmurhash3_32
 
-import model.tokens
+import model.normalization
 from model import artifact
 from model.classifier import FEW, EmbeddingClassifier
 from model.errors import ArtifactError
@@ -150,8 +150,8 @@ def test_whole_link_chunks_equal_the_regex_route():
               "https://a.example/<b>", "https://a_b.example", "ftps://h.example:990/f", "https://u:p@h.example/",
               "https://[2001:db8::1]:443/x", "www.prize.example.", "https://h.example/\x01", "https://é.example"]
     for chunk in chunks:
-        folded = model.tokens.fold_text(chunk)
-        slow = tuple(map(tok._rewrite_word, model.tokens.word_tokens(model.tokens.mark_specials(folded))))
+        folded = model.normalization.fold_text(chunk)
+        slow = tuple(map(tok._rewrite_word, model.normalization.word_tokens(model.normalization.mark_specials(folded))))
         assert tok._rewrite_chunk(chunk) == slow, chunk
 
 

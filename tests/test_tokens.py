@@ -5,7 +5,8 @@ import unicodedata
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from model.tokens import Tokenizer, fold_text, join_spaced, mark_specials, squash_repeats, undo_leet
+from model.normalization import fold_text, join_spaced, mark_specials, squash_repeats, undo_leet
+from model.tokens import Tokenizer
 
 TOK = Tokenizer()
 
@@ -93,3 +94,9 @@ def test_normalize_worked_examples(text, expected):
 def test_spaced_words_are_joined_beside_a_token_of_256_characters_or_more():
     host = "ab" * 150 + ".example"
     assert TOK.normalize(f"c a s h at https://{host}/x") == f"cash at <url> domain:{host}"
+
+
+@pytest.mark.parametrize("method", ["normalize", "words", "features"])
+def test_a_text_that_is_no_str_is_refused_by_name(method):
+    with pytest.raises(TypeError, match=rf"^Tokenizer\.{method}: text must be str, got bytes$"):
+        getattr(TOK, method)(b"free casino")
