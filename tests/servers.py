@@ -151,6 +151,10 @@ def rabbitmq_server_path() -> str | None:
     return shutil.which("rabbitmq-server")
 
 
+class _ExitedEarly(RuntimeError):
+    """The node's process ended before it answered."""
+
+
 class RabbitServer:
     """One ``rabbitmq-server`` node owned by a test: its own name, ports, data and log directories.
 
@@ -189,7 +193,19 @@ class RabbitServer:
         })
         return env
 
-    def start(self, timeout: float = 90.0) -> "RabbitServer":
+    def start(self, timeout: float = 90.0, attempts: int = 3) -> "RabbitServer":
+        """Start the node; a node that exits at once (a free port taken meanwhile) retries on new ports."""
+        for attempt in range(attempts):
+            try:
+                return self._start(timeout)
+            except _ExitedEarly:
+                if attempt == attempts - 1:
+                    raise
+                self.port, self.dist_port = free_port(), free_port()
+                self.node = f"seawall-test-{self.port}@localhost"
+        raise AssertionError("unreachable")
+
+    def _start(self, timeout: float) -> "RabbitServer":
         out = open(self.workdir / "server.out", "ab")
         self.proc = subprocess.Popen([rabbitmq_server_path()], stdout=out, stderr=subprocess.STDOUT, env=self.env(),
                                      start_new_session=True)
@@ -201,9 +217,10 @@ class RabbitServer:
             if self._answers():
                 return self
             time.sleep(0.2)
+        exited = self.proc.poll() is not None
         self.stop()
         log = (self.workdir / "server.out").read_text(errors="replace")[-2000:]
-        raise RuntimeError(f"rabbitmq-server did not start on port {self.port}:\n{log}")
+        raise (_ExitedEarly if exited else RuntimeError)(f"rabbitmq-server did not start on port {self.port}:\n{log}")
 
     def _answers(self) -> bool:
         import pika
