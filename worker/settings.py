@@ -7,6 +7,7 @@ its metadata, which ``seawall serve --help`` and the example config print.
 """
 from __future__ import annotations
 
+import functools
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from types import MappingProxyType
@@ -28,30 +29,133 @@ class _Name:
         return self if keys is None else keys.key(*self.parts)
 
 
-@dataclass(frozen=True, kw_only=True)
-class Keys:
-    """Every Redis key name Seawall uses, derived from one prefix.
+class _PartName(_Name):
+    """A key name of one partition (:class:`PartKeys`); on :class:`Keys` it names partition 0 and
+    exists only while the deployment has one partition (``keys.partitions == 1``)."""
 
-    Use a prefix with a hash tag, such as ``{seawall}:``, on Redis Cluster so
-    that the streams and the keys a comment's MULTI touches share one slot.
+    def __get__(self, keys, owner=None):
+        if keys is None:
+            return self
+        if isinstance(keys, Keys) and keys.partitions != 1:
+            raise PartitionedKeyError(
+                f"Keys.{self.parts[-1]}: this deployment splits its comment stream into "
+                f"{keys.partitions} partitions; use keys.part(p).{self.parts[-1]} or keys.parts")
+        return keys.key(*self.parts)
+
+
+class PartitionedKeyError(AttributeError):
+    """A per-partition key was asked of :class:`Keys` while the deployment has several partitions."""
+
+
+@dataclass(frozen=True)
+class PartKeys:
+    """The key names of one partition of the comment stream (see :mod:`worker.partitions`).
+
+    Every key one comment's commit touches lives here, under the partition's
+    hash tag, so the commit touches one Redis Cluster hash slot.  With one
+    partition the names are those of a single stream: ``seawall:comments``.
     """
 
-    prefix: str = setting("seawall:", "prefix of every Redis key; use a hash tag such as {seawall}: on Redis Cluster")
-
-    def __post_init__(self):
-        if not isinstance(self.prefix, str) or not self.prefix:
-            raise ValueError(f"Keys: prefix must be a non-empty string, got {self.prefix!r}")
+    prefix: str
+    index: int = 0
+    tag: str = ""
 
     def key(self, *parts: str) -> str:
         return self.prefix + ":".join(parts)
 
-    comments = _Name("comments", doc="Stream of comments to judge.")
-    verdicts = _Name("verdicts", doc="Stream of verdicts.")
-    deadletter = _Name("deadletter", doc="Stream of entries that could not be judged, each with its reason.")
+    comments = _PartName("comments", doc="Stream of comments to judge (this partition's).")
+    verdicts = _PartName("verdicts", doc="Stream of verdicts (this partition's).")
+    deadletter = _PartName("deadletter", doc="Stream of entries that could not be judged, each with its reason.")
+    held = _PartName("held", doc="Sorted set of held comments (score = when held).")
+    lease = _PartName("lease", doc="Which worker reads this partition, and until when (a key with a TTL).")
+
+    def text(self, comment_id: str) -> str:
+        """Hash caching one comment's text and verdict (TTL ``worker.text_cache_ttl_s``)."""
+        return self.key("text", comment_id)
+
+    def done(self, comment_id: str) -> str:
+        """Marker that a comment already has its verdict (TTL ``worker.done_ttl_s``)."""
+        return self.key("done", comment_id)
+
+    def rates(self, minute: int) -> str:
+        """Per-minute counts hash; ``minute`` is ``int(epoch_seconds // 60)``."""
+        return self.key("rates", str(minute))
+
+
+@dataclass(frozen=True, kw_only=True)
+class Keys:
+    """Every Redis key name Seawall uses, derived from one prefix.
+
+    The comment stream may be split into ``partitions`` (K) partitions, each
+    under its own hash tag, so that a deployment can span a Redis Cluster
+    (:mod:`worker.partitions`).  The keys of one partition are
+    ``keys.part(p)`` (a :class:`PartKeys`); ``keys.parts`` lists them all.
+    Keys named by a comment id (``keys.text(id)``, ``keys.done(id)``) find
+    their partition from the id.  With K = 1 (the default) ``keys.comments``,
+    ``keys.held`` and the other per-partition names are those of partition 0,
+    as before partitions existed; with K > 1 they raise
+    :class:`PartitionedKeyError`, so that no code reads one partition as if it
+    were the whole deployment.
+
+    Keys outside the partitions (feedback, labels, events, the registry, the
+    campaign state, decisions, the console's) are single keys; no operation
+    may span two of them unless they share a hash tag.
+    """
+
+    prefix: str = setting("seawall:", "prefix of every Redis key; keep hash tags out of it when partitions > 1")
+    partitions: int = setting(1, "K: the comment stream is split into K partitions, each under its own Redis Cluster "
+                                 "hash tag; producers pick murmur3_32(id) mod K (see `seawall partitions`)")
+
+    def __post_init__(self):
+        if not isinstance(self.prefix, str) or not self.prefix:
+            raise ValueError(f"Keys: prefix must be a non-empty string, got {self.prefix!r}")
+        from worker.partitions import check_partitions
+
+        try:
+            check_partitions(self.partitions)
+        except ValueError as exc:
+            raise ValueError(f"Keys: {exc}") from None
+        if self.partitions > 1 and "{" in self.prefix:
+            raise ValueError(f"Keys: prefix {self.prefix!r} has a hash tag, which would put all {self.partitions} "
+                             "partitions in one Redis Cluster slot; remove the braces (each partition has its own tag)")
+
+    def key(self, *parts: str) -> str:
+        return self.prefix + ":".join(parts)
+
+    def part(self, partition: int) -> PartKeys:
+        """The keys of one partition, ``0 <= partition < self.partitions``."""
+        parts = self.parts
+        if isinstance(partition, bool) or not isinstance(partition, int) or not 0 <= partition < len(parts):
+            raise ValueError(f"Keys.part: partition must be in [0, {self.partitions}), got {partition!r}")
+        return parts[partition]
+
+    @functools.cached_property
+    def parts(self) -> tuple[PartKeys, ...]:
+        """Every partition's keys, in partition order."""
+        if self.partitions == 1:
+            return (PartKeys(self.prefix),)
+        from worker.partitions import partition_tag
+
+        return tuple(PartKeys(f"{self.prefix}{{{partition_tag(p, self.partitions)}}}:", index=p,
+                              tag=partition_tag(p, self.partitions)) for p in range(self.partitions))
+
+    def partition_of(self, comment_id: str | bytes) -> int:
+        """The partition a comment id belongs to (``murmur3_32(id) mod K``)."""
+        from worker.partitions import partition_of
+
+        return partition_of(comment_id, self.partitions)
+
+    def part_of(self, comment_id: str | bytes) -> PartKeys:
+        """The keys of the partition ``comment_id`` belongs to."""
+        return self.parts[self.partition_of(comment_id)]
+
+    comments = _PartName("comments", doc="Stream of comments to judge.")
+    verdicts = _PartName("verdicts", doc="Stream of verdicts.")
+    deadletter = _PartName("deadletter", doc="Stream of entries that could not be judged, each with its reason.")
     feedback = _Name("feedback", doc="Stream of moderators' labels on their way to the labelled store.")
     events = _Name("events", doc="Stream of events: waves, campaigns, retrains, model switches (worker/events.py).")
     group = _Name("workers", doc="The stream workers' consumer group.")
-    held = _Name("held", doc="Sorted set of held comments (score = when held).")
+    held = _PartName("held", doc="Sorted set of held comments (score = when held).")
     labels = _Name("labels", doc="The labelled store: a bounded stream of label records (worker/labels.py).")
 
     # -- the model registry (ops/registry.py) --
@@ -71,15 +175,18 @@ class Keys:
         return self.key("models", "meta", version)
 
     def text(self, comment_id: str) -> str:
-        """Hash caching one comment's text and verdict (TTL ``worker.text_cache_ttl_s``)."""
-        return self.key("text", comment_id)
+        """Hash caching one comment's text and verdict, in the comment's partition."""
+        return self.part_of(comment_id).text(comment_id)
 
     def done(self, comment_id: str) -> str:
-        """Marker that a comment already has its verdict (TTL ``worker.done_ttl_s``)."""
-        return self.key("done", comment_id)
+        """Marker that a comment already has its verdict, in the comment's partition."""
+        return self.part_of(comment_id).done(comment_id)
 
     def rates(self, minute: int) -> str:
-        """Per-minute counts hash; ``minute`` is ``int(epoch_seconds // 60)``."""
+        """Per-minute counts hash of a single-partition deployment (``keys.part(p).rates`` otherwise)."""
+        if self.partitions != 1:
+            raise PartitionedKeyError(f"Keys.rates: this deployment has {self.partitions} partitions; "
+                                      "sum keys.part(p).rates(minute) over keys.parts")
         return self.key("rates", str(minute))
 
     def campaigns(self, *parts: str) -> str:
