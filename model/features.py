@@ -299,12 +299,47 @@ class FeatureEncoder:
         dozen numpy calls on tiny arrays.
         """
         tok = self.tokenizer
-        hasher = self.hasher
         store = self._store
         store.fit_cap()
         # The chunk rules across chunks run on the text (prepare) before it is
         # cut; after that only a token rule can still change the words.
-        entries = list(map(store.entries.__getitem__, map(store.ids.__getitem__, tok.prepare(text).split())))
+        chunks = tok.prepare(text).split()
+        singles = list(map(store.singles.get, chunks))
+        if singles and None not in singles:
+            # The common case: every chunk is one held token.  When no token
+            # rule's run stands in the marks and no link's domain sits out of
+            # the pairs, the words are the chunks' tokens and pair up in order.
+            words, hashes, rotated, marks = zip(*singles)
+            if not any(marks) or self._plain_marks(bytes(marks)):
+                return self._one_plain(words, hashes, rotated)
+        return self._one_entries(text, list(map(store.entries.__getitem__, map(store.ids.__getitem__, chunks))))
+
+    def _plain_marks(self, marks: bytes) -> bool:
+        """Whether tokens with these marks are a comment's words, pairing up in order."""
+        rules = self.tokenizer.token_rules
+        return _URL_DOMAIN not in marks and not (rules and needs_whole_pipeline(b"", marks, rules))
+
+    def _one_plain(self, words: tuple, hashes: tuple, rotated: tuple) -> tuple[list[int], FeatureNames]:
+        """:meth:`one` for words that pair up in order and need no rule across chunks."""
+        tok = self.tokenizer
+        hasher = self.hasher
+        mask = hasher.n_buckets - 1
+        buckets = [h & mask for h in hashes]
+        n = len(words)
+        left = right = ()
+        if tok.bigrams and n > 1:
+            buckets += hasher.rotated_pair_buckets(rotated, hashes[1:], mask)
+            left, right = range(n - 1), range(1, n)
+        extra: list[str] = []
+        if tok.char_ngrams[0]:
+            extra = char_ngrams(list(words), *tok.char_ngrams)
+            buckets += [h & mask for h in hasher.hash_list(extra)]
+        return buckets, FeatureNames(words, left, right, extra)
+
+    def _one_entries(self, text: str, entries: list[tuple]) -> tuple[list[int], FeatureNames]:
+        """:meth:`one` from the store entries of the comment's chunks."""
+        tok = self.tokenizer
+        hasher = self.hasher
         words = list(chain.from_iterable(map(itemgetter(0), entries)))
         marks = b"".join(map(itemgetter(2), entries))
         if tok.token_rules and needs_whole_pipeline(b"", marks, tok.token_rules):
