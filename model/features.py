@@ -305,22 +305,49 @@ class FeatureEncoder:
         # cut; after that only a token rule can still change the words.
         chunks = tok.prepare(text).split()
         singles = list(map(store.singles.get, chunks))
-        if singles and None not in singles:
-            # The common case: every chunk is one held token.  When no token
-            # rule's run stands in the marks and no link's domain sits out of
-            # the pairs, the words are the chunks' tokens and pair up in order.
+        links = 0
+        if None in singles:
+            singles, links = self._with_links(chunks, singles)
+        if singles:
+            # The common case: every chunk is one held token, or a link (its
+            # marker and domain).  When no token rule's run stands in the marks
+            # and no other domain token follows a marker, the words are the
+            # chunks' tokens and pair up in order, the links' domains sitting out.
             words, hashes, rotated, marks = zip(*singles)
-            if not any(marks) or self._plain_marks(bytes(marks)):
-                return self._one_plain(words, hashes, rotated)
+            if not any(marks) or self._plain_marks(bytes(marks), links):
+                return self._one_plain(words, hashes, rotated, bytes(marks) if links else None)
         return self._one_entries(text, list(map(store.entries.__getitem__, map(store.ids.__getitem__, chunks))))
 
-    def _plain_marks(self, marks: bytes) -> bool:
-        """Whether tokens with these marks are a comment's words, pairing up in order."""
-        rules = self.tokenizer.token_rules
-        return _URL_DOMAIN not in marks and not (rules and needs_whole_pipeline(b"", marks, rules))
+    def _with_links(self, chunks: list[str], singles: list) -> tuple[list | None, int]:
+        """``singles`` with each chunk that is not one held token replaced by
+        its two tokens when it is a link (``<url>``, ``domain:``), and how many
+        links; ``None`` when another kind of chunk is there."""
+        store = self._store
+        out = []
+        start = 0
+        links = 0
+        for i in [i for i, item in enumerate(singles) if item is None]:
+            tokens, hashes, marks, rotated = store.entries[store.ids[chunks[i]]]
+            if marks != _URL_DOMAIN:
+                return None, 0
+            out += singles[start:i]
+            out.append((tokens[0], hashes[0], rotated[0], marks[0]))
+            out.append((tokens[1], hashes[1], rotated[1], marks[1]))
+            start = i + 1
+            links += 1
+        out += singles[start:]
+        return out, links
 
-    def _one_plain(self, words: tuple, hashes: tuple, rotated: tuple) -> tuple[list[int], FeatureNames]:
-        """:meth:`one` for words that pair up in order and need no rule across chunks."""
+    def _plain_marks(self, marks: bytes, links: int = 0) -> bool:
+        """Whether tokens with these marks are a comment's words, pairing up in
+        order but for the domains of ``links`` links."""
+        rules = self.tokenizer.token_rules
+        return marks.count(_URL_DOMAIN) == links and not (rules and needs_whole_pipeline(b"", marks, rules))
+
+    def _one_plain(self, words: tuple, hashes: tuple, rotated: tuple,
+                   marks: bytes | None = None) -> tuple[list[int], FeatureNames]:
+        """:meth:`one` for words that need no rule across chunks; ``marks``
+        (when the words hold links) say which domains sit out of the pairs."""
         tok = self.tokenizer
         hasher = self.hasher
         mask = hasher.n_buckets - 1
@@ -328,8 +355,14 @@ class FeatureEncoder:
         n = len(words)
         left = right = ()
         if tok.bigrams and n > 1:
-            buckets += hasher.rotated_pair_buckets(rotated, hashes[1:], mask)
-            left, right = range(n - 1), range(1, n)
+            if marks is None:
+                buckets += hasher.rotated_pair_buckets(rotated, hashes[1:], mask)
+                left, right = range(n - 1), range(1, n)
+            else:
+                seq = _pair_sequence(marks)
+                in_seq = list(map(hashes.__getitem__, seq))
+                buckets += hasher.rotated_pair_buckets(list(map(rotated.__getitem__, seq)), in_seq[1:], mask)
+                left, right = seq[:-1], seq[1:]
         extra: list[str] = []
         if tok.char_ngrams[0]:
             extra = char_ngrams(list(words), *tok.char_ngrams)
