@@ -305,49 +305,44 @@ class FeatureEncoder:
         # cut; after that only a token rule can still change the words.
         chunks = tok.prepare(text).split()
         singles = list(map(store.singles.get, chunks))
-        links = 0
         if None in singles:
-            singles, links = self._with_links(chunks, singles)
+            singles = self._with_links(chunks, singles)
         if singles:
             # The common case: every chunk is one held token, or a link (its
-            # marker and domain).  When no token rule's run stands in the marks
-            # and no other domain token follows a marker, the words are the
-            # chunks' tokens and pair up in order, the links' domains sitting out.
+            # marker and domain).  When no token rule's run stands in the
+            # marks, the words are the chunks' tokens.
             words, hashes, rotated, marks = zip(*singles)
-            if not any(marks) or self._plain_marks(bytes(marks), links):
-                return self._one_plain(words, hashes, rotated, bytes(marks) if links else None)
+            if not any(marks):
+                return self._one_plain(words, hashes, rotated, None)
+            marks = bytes(marks)
+            rules = tok.token_rules
+            if not (rules and needs_whole_pipeline(b"", marks, rules)):
+                return self._one_plain(words, hashes, rotated, marks if _URL_DOMAIN in marks else None)
         return self._one_entries(text, list(map(store.entries.__getitem__, map(store.ids.__getitem__, chunks))))
 
-    def _with_links(self, chunks: list[str], singles: list) -> tuple[list | None, int]:
+    def _with_links(self, chunks: list[str], singles: list) -> list | None:
         """``singles`` with each chunk that is not one held token replaced by
-        its two tokens when it is a link (``<url>``, ``domain:``), and how many
-        links; ``None`` when another kind of chunk is there."""
+        its two tokens when it is a link (``<url>``, ``domain:``); ``None``
+        when another kind of chunk is there."""
         store = self._store
         out = []
         start = 0
-        links = 0
         for i in [i for i, item in enumerate(singles) if item is None]:
             tokens, hashes, marks, rotated = store.entries[store.ids[chunks[i]]]
             if marks != _URL_DOMAIN:
-                return None, 0
+                return None
             out += singles[start:i]
             out.append((tokens[0], hashes[0], rotated[0], marks[0]))
             out.append((tokens[1], hashes[1], rotated[1], marks[1]))
             start = i + 1
-            links += 1
         out += singles[start:]
-        return out, links
-
-    def _plain_marks(self, marks: bytes, links: int = 0) -> bool:
-        """Whether tokens with these marks are a comment's words, pairing up in
-        order but for the domains of ``links`` links."""
-        rules = self.tokenizer.token_rules
-        return marks.count(_URL_DOMAIN) == links and not (rules and needs_whole_pipeline(b"", marks, rules))
+        return out
 
     def _one_plain(self, words: tuple, hashes: tuple, rotated: tuple,
                    marks: bytes | None = None) -> tuple[list[int], FeatureNames]:
         """:meth:`one` for words that need no rule across chunks; ``marks``
-        (when the words hold links) say which domains sit out of the pairs."""
+        (when a ``<url>`` marker is followed by a ``domain:`` token) say which
+        domains sit out of the pairs (:func:`_pair_sequence`, as on every path)."""
         tok = self.tokenizer
         hasher = self.hasher
         mask = hasher.n_buckets - 1

@@ -169,6 +169,33 @@ def test_one_comment_path_of_one_token_chunks_equals_the_batch_path():
     assert enc.one("the free notes a casino")[0] == enc.texts(["the free notes a casino"]).bucket.tolist()
 
 
+@pytest.mark.parametrize("text", [
+    "free https://prize.example/claim?id=77 now",
+    "https://prize.example/1 www.prize.example https://other.example/2",
+    "ends with a link www.prize.example",
+    "<url> https://prize.example/3 domain:typed.example after",
+    "www.prize.example domain:typed.example <url> then words",
+    "a b https://prize.example/4 c",
+    "free 5x,7 https://prize.example/5",
+], ids=["middle", "three-links", "last", "typed-marker-before", "typed-domain-after", "single-letters",
+        "two-token-chunk"])
+def test_one_comment_path_splices_links_as_the_batch_path_pairs_them(text, monkeypatch):
+    # Once the chunks are held, a comment of one-token chunks and links takes
+    # the spliced route; each link's domain sits out of the pairs exactly as
+    # the batch path and the whole pipeline leave it out.  Other chunks of
+    # more than one token take the route of chained entries.
+    tok = Tokenizer()
+    enc = FeatureEncoder(tok, TokenHasher(n_buckets=2**14))
+    enc.texts([text])
+    routes = []
+    plain, entries = enc._one_plain, enc._one_entries
+    monkeypatch.setattr(enc, "_one_plain", lambda *a: routes.append("plain") or plain(*a))
+    monkeypatch.setattr(enc, "_one_entries", lambda *a: routes.append("entries") or entries(*a))
+    _check_same(enc, tok, [text])
+    assert routes == ["entries" if "5x,7" in text else "plain"]
+    _check_same(enc, tok, [text, text.upper()])
+
+
 def test_whole_link_chunks_equal_the_regex_route():
     # Links with a scheme or www. skip the regular expressions; the result must not differ.
     tok = Tokenizer()
