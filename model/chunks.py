@@ -83,6 +83,12 @@ def _entry_tuple(tokens, hashes, marks) -> tuple:
     return tuple(tokens), tuple(hashes), bytes(marks), tuple(map(rotl16, hashes))
 
 
+def _single(entry: tuple) -> tuple:
+    """A one-token entry as ``(token, hash, rotated, marks)`` (see :attr:`ChunkStore.singles`)."""
+    (token,), (hashed,), marks, (rotated,) = entry
+    return token, hashed, rotated, marks[0]
+
+
 class ChunkStore:
     """Ids for whitespace chunks, and each chunk's tokens as flat columns.
 
@@ -130,6 +136,9 @@ class ChunkStore:
         self._chunk = list(chunks)
         self.tokens = list(tokens)  # a new list: names of earlier batches keep the old one
         self.entries: list[tuple] = []  # per id: (tokens, hashes, marks, rotated) as Python objects, for one comment
+        #: held chunk -> ``(token, hash, rotated hash, marks)`` for the chunks that are one token (most
+        #: of them): one lookup per chunk gives a comment of such chunks all it needs.
+        self.singles: dict[str, tuple] = {}
         sizes = np.asarray(sizes, dtype=np.int64)
         starts = np.cumsum(sizes) - sizes
         self._start = _Column(np.int64, starts)
@@ -146,8 +155,11 @@ class ChunkStore:
         at = 0
         hashes = np.asarray(hashes).tolist()
         marks = np.asarray(marks).tolist()
-        for size in sizes.tolist():
-            self.entries.append(_entry_tuple(self.tokens[at:at + size], hashes[at:at + size], marks[at:at + size]))
+        for chunk, size in zip(self._chunk, sizes.tolist()):
+            entry = _entry_tuple(self.tokens[at:at + size], hashes[at:at + size], marks[at:at + size])
+            self.entries.append(entry)
+            if size == 1 and chunk is not None:
+                self.singles[chunk] = _single(entry)
             at += size
 
     def __len__(self) -> int:
@@ -191,7 +203,10 @@ class ChunkStore:
         hashes = self._hash_list(tokens)
         self._new_hash.extend(hashes)
         self._new_mark.extend(marks)
-        self.entries.append(_entry_tuple(tokens, hashes, marks))
+        entry = _entry_tuple(tokens, hashes, marks)
+        self.entries.append(entry)
+        if chunk is not None and len(tokens) == 1:
+            self.singles[chunk] = _single(entry)
         self._new_chunk_mark.append(chunk_marks)
         return at
 

@@ -22,8 +22,6 @@ import time
 from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass
-from itertools import repeat
-from operator import mul, truediv
 
 import numpy as np
 
@@ -536,22 +534,17 @@ class EmbeddingClassifier:
         explain = []  # (comment, buckets, names, distinct buckets, their terms), ranked once scores are known
         for buckets, names in docs:
             n = len(buckets)
+            if not n:
+                logits.append(bias)
+                reasons.append([])
+                continue
             counts = Counter(buckets)  # insertion order = order of first appearance
             unique = list(counts)
-            if len(unique) == n:  # no bucket twice: every count is 1
-                norm = math.sqrt(n) if l2 else float(n)
-                if not norm:
-                    logits.append(bias)
-                    reasons.append([])
-                    continue
-                terms = list(map((1.0 / norm).__mul__, bucket_logit[unique].tolist()))
-            else:
-                if l2:
-                    values = counts.values()
-                    norm = math.sqrt(sum(map(mul, values, values)))
-                else:
-                    norm = float(n)
-                terms = list(map(mul, map(truediv, counts.values(), repeat(norm)), bucket_logit[unique].tolist()))
+            times = np.fromiter(counts.values(), dtype=np.float64, count=len(unique))
+            norm = math.sqrt(times @ times) if l2 else float(n)  # exact: sums of small integers
+            # Each distinct bucket's term, pooling weight (float64) times logit
+            # term (float32), as the vectorised path computes it.
+            terms = (times / norm * bucket_logit[unique]).tolist()
             logits.append(bias + sum(terms))
             reasons.append([])
             if top_k > 0:

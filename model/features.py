@@ -299,12 +299,75 @@ class FeatureEncoder:
         dozen numpy calls on tiny arrays.
         """
         tok = self.tokenizer
-        hasher = self.hasher
         store = self._store
         store.fit_cap()
         # The chunk rules across chunks run on the text (prepare) before it is
         # cut; after that only a token rule can still change the words.
-        entries = list(map(store.entries.__getitem__, map(store.ids.__getitem__, tok.prepare(text).split())))
+        chunks = tok.prepare(text).split()
+        singles = list(map(store.singles.get, chunks))
+        if None in singles:
+            singles = self._with_links(chunks, singles)
+        if singles:
+            # The common case: every chunk is one held token, or a link (its
+            # marker and domain).  When no token rule's run stands in the
+            # marks, the words are the chunks' tokens.
+            words, hashes, rotated, marks = zip(*singles)
+            if not any(marks):
+                return self._one_plain(words, hashes, rotated, None)
+            marks = bytes(marks)
+            rules = tok.token_rules
+            if not (rules and needs_whole_pipeline(b"", marks, rules)):
+                return self._one_plain(words, hashes, rotated, marks if _URL_DOMAIN in marks else None)
+        return self._one_entries(text, list(map(store.entries.__getitem__, map(store.ids.__getitem__, chunks))))
+
+    def _with_links(self, chunks: list[str], singles: list) -> list | None:
+        """``singles`` with each chunk that is not one held token replaced by
+        its two tokens when it is a link (``<url>``, ``domain:``); ``None``
+        when another kind of chunk is there."""
+        store = self._store
+        out = []
+        start = 0
+        for i in [i for i, item in enumerate(singles) if item is None]:
+            tokens, hashes, marks, rotated = store.entries[store.ids[chunks[i]]]
+            if marks != _URL_DOMAIN:
+                return None
+            out += singles[start:i]
+            out.append((tokens[0], hashes[0], rotated[0], marks[0]))
+            out.append((tokens[1], hashes[1], rotated[1], marks[1]))
+            start = i + 1
+        out += singles[start:]
+        return out
+
+    def _one_plain(self, words: tuple, hashes: tuple, rotated: tuple,
+                   marks: bytes | None = None) -> tuple[list[int], FeatureNames]:
+        """:meth:`one` for words that need no rule across chunks; ``marks``
+        (when a ``<url>`` marker is followed by a ``domain:`` token) say which
+        domains sit out of the pairs (:func:`_pair_sequence`, as on every path)."""
+        tok = self.tokenizer
+        hasher = self.hasher
+        mask = hasher.n_buckets - 1
+        buckets = [h & mask for h in hashes]
+        n = len(words)
+        left = right = ()
+        if tok.bigrams and n > 1:
+            if marks is None:
+                buckets += hasher.rotated_pair_buckets(rotated, hashes[1:], mask)
+                left, right = range(n - 1), range(1, n)
+            else:
+                seq = _pair_sequence(marks)
+                in_seq = list(map(hashes.__getitem__, seq))
+                buckets += hasher.rotated_pair_buckets(list(map(rotated.__getitem__, seq)), in_seq[1:], mask)
+                left, right = seq[:-1], seq[1:]
+        extra: list[str] = []
+        if tok.char_ngrams[0]:
+            extra = char_ngrams(list(words), *tok.char_ngrams)
+            buckets += [h & mask for h in hasher.hash_list(extra)]
+        return buckets, FeatureNames(words, left, right, extra)
+
+    def _one_entries(self, text: str, entries: list[tuple]) -> tuple[list[int], FeatureNames]:
+        """:meth:`one` from the store entries of the comment's chunks."""
+        tok = self.tokenizer
+        hasher = self.hasher
         words = list(chain.from_iterable(map(itemgetter(0), entries)))
         marks = b"".join(map(itemgetter(2), entries))
         if tok.token_rules and needs_whole_pipeline(b"", marks, tok.token_rules):

@@ -334,6 +334,21 @@ class TokenHasher:
         pack = _PACK_U32
         return [murmur(pack(a ^ b), seed, False) for a, b in zip(rotated_left, right)]
 
+    def rotated_pair_buckets(self, rotated_left, right, mask: int) -> list[int]:
+        """``[h & mask for h in self.rotated_pair_list(rotated_left, right)]`` in one pass.
+
+        Examples
+        --------
+        >>> h = TokenHasher(n_buckets=16)
+        >>> a, b = h.hash_list(["free", "casino"])
+        >>> h.rotated_pair_buckets([rotl16(a)], [b], 15) == [pair_hash(a, b) & 15]
+        True
+        """
+        seed = self.seed
+        murmur = mmh3.hash
+        pack = _PACK_U32
+        return [murmur(pack(a ^ b), seed, False) & mask for a, b in zip(rotated_left, right)]
+
     def _remember(self, fresh: dict) -> None:
         cap = self.cache_size
         if not cap:

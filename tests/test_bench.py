@@ -37,3 +37,31 @@ def test_bench_score_runs_both_scripts_and_reports_rates(capsys):
     assert rows["seawall_total_cpu_s"] > 0 and rows["reference_total_cpu_s"] > 0
     if rows["ratio"] is not None:  # None when 300 comments finish within the start-up's noise
         assert rows["ratio"] == pytest.approx(rows["seawall_per_cpu_s"] / rows["reference_per_cpu_s"], rel=0.01)
+
+
+
+def test_bench_comments_draw_ham_words_as_numpy_choice_would():
+    # Ham words come from a cumulative-sum lookup instead of Generator.choice(p=...)
+    # per word (numpy draws one uniform and searches the normalised cumulative
+    # sum); the same seed must keep giving the same comments as choice does.
+    import numpy as np
+
+    from ops.bench.model import TARGET_CHARS, CommentMaker
+
+    maker = CommentMaker(seed=4)
+    ranks = np.arange(1, len(maker.ham_words) + 1)
+    p = (1.0 / ranks**1.05) / np.sum(1.0 / ranks**1.05)
+    maker.rng, rng = np.random.default_rng(9), np.random.default_rng(9)
+    for _ in range(20):
+        parts, size = [], 0
+        while size < TARGET_CHARS:  # a ham comment, drawn the way numpy's choice draws
+            r = rng.random()
+            if r < 0.01:
+                word = f"www.{maker.sites[rng.integers(len(maker.sites))]}"
+            elif r < 0.02:
+                word = maker.spam_words[rng.integers(len(maker.spam_words))]
+            else:
+                word = maker.ham_words[rng.choice(len(maker.ham_words), p=p)]
+            parts.append(word)
+            size += len(word) + 1
+        assert maker.comment(False) == " ".join(parts)

@@ -143,6 +143,59 @@ def test_text_path_stays_equal_while_the_chunk_store_sheds_entries():
             assert batch.names.take(np.flatnonzero(batch.doc == i)) == tok.features(text)
 
 
+def _held_singles_agree(store) -> None:
+    """Every one-token chunk the store holds has the entry of its id in ``singles``, and only those."""
+    for chunk, at in store.ids.items():
+        tokens, hashes, marks, rotated = store.entries[at]
+        if len(tokens) == 1 and " " not in chunk:
+            assert store.singles[chunk] == (tokens[0], hashes[0], rotated[0], marks[0]), chunk
+    assert all(len(store.entries[store.ids[c]][0]) == 1 for c in store.singles)
+
+
+def test_one_comment_path_of_one_token_chunks_equals_the_batch_path():
+    # The second time around every chunk is held, so one() takes its
+    # one-token-chunk route; one-letter words carry a mark that only a run of
+    # three may act on, spaced-out letters and links leave that route.
+    tok = Tokenizer()
+    enc = FeatureEncoder(tok, TokenHasher(n_buckets=2**14))
+    enc._store.cap = 32
+    rng = np.random.default_rng(1)
+    words = ["win", "free", "casino", "the", "notes", "a", "i", "5", "555", "x y z", "www.p.example", "fr33"]
+    for _ in range(40):
+        texts = [" ".join(rng.choice(words, size=rng.integers(0, 10))) for _ in range(rng.integers(1, 4))]
+        _check_same(enc, tok, texts)
+        _check_same(enc, tok, texts)
+        _held_singles_agree(enc._store)
+    assert enc.one("the free notes a casino")[0] == enc.texts(["the free notes a casino"]).bucket.tolist()
+
+
+@pytest.mark.parametrize("text", [
+    "free https://prize.example/claim?id=77 now",
+    "https://prize.example/1 www.prize.example https://other.example/2",
+    "ends with a link www.prize.example",
+    "<url> https://prize.example/3 domain:typed.example after",
+    "www.prize.example domain:typed.example <url> then words",
+    "a b https://prize.example/4 c",
+    "free 5x,7 https://prize.example/5",
+], ids=["middle", "three-links", "last", "typed-marker-before", "typed-domain-after", "single-letters",
+        "two-token-chunk"])
+def test_one_comment_path_splices_links_as_the_batch_path_pairs_them(text, monkeypatch):
+    # Once the chunks are held, a comment of one-token chunks and links takes
+    # the spliced route; each link's domain sits out of the pairs exactly as
+    # the batch path and the whole pipeline leave it out.  Other chunks of
+    # more than one token take the route of chained entries.
+    tok = Tokenizer()
+    enc = FeatureEncoder(tok, TokenHasher(n_buckets=2**14))
+    enc.texts([text])
+    routes = []
+    plain, entries = enc._one_plain, enc._one_entries
+    monkeypatch.setattr(enc, "_one_plain", lambda *a: routes.append("plain") or plain(*a))
+    monkeypatch.setattr(enc, "_one_entries", lambda *a: routes.append("entries") or entries(*a))
+    _check_same(enc, tok, [text])
+    assert routes == ["entries" if "5x,7" in text else "plain"]
+    _check_same(enc, tok, [text, text.upper()])
+
+
 def test_whole_link_chunks_equal_the_regex_route():
     # Links with a scheme or www. skip the regular expressions; the result must not differ.
     tok = Tokenizer()

@@ -52,7 +52,12 @@ class CommentMaker:
         self.sites = [f"{w}.example" for w in words[:60]]
         self.rng = np.random.default_rng(seed + 1)
         ranks = np.arange(1, len(self.ham_words) + 1)
-        self.ham_p = (1.0 / ranks**1.05) / np.sum(1.0 / ranks**1.05)
+        ham_p = (1.0 / ranks**1.05) / np.sum(1.0 / ranks**1.05)
+        # ``rng.choice(len(ham_words), p=ham_p)`` draws one uniform and looks it
+        # up in this normalised cumulative sum; doing that here gives the same
+        # words from the same seed without re-checking p on every word.
+        self._ham_cdf = ham_p.cumsum()
+        self._ham_cdf /= self._ham_cdf[-1]
 
     def comment(self, spam: bool) -> str:
         rng = self.rng  # numpy's Generator: numpy is imported by the first CommentMaker
@@ -71,7 +76,7 @@ class CommentMaker:
             elif not spam and r < 0.02:
                 word = self.spam_words[rng.integers(len(self.spam_words))]
             else:
-                word = self.ham_words[rng.choice(len(self.ham_words), p=self.ham_p)]
+                word = self.ham_words[int(self._ham_cdf.searchsorted(rng.random(), side="right"))]
             parts.append(word)
             size += len(word) + 1
         return " ".join(parts)
