@@ -6,7 +6,12 @@ slots the tag was chosen in, and the stream key a producer XADDs to.  With
 ``--id ID`` it prints only the partition and stream of that comment id.  A
 producer in any language follows the same formula: the partition of a comment
 is MurmurHash3 x86 32-bit of its id's UTF-8 bytes, seed 0, unsigned, mod K
-(see worker/partitions.py).  Nothing here talks to Redis.
+(see worker/partitions.py).  Printing talks to no Redis.
+
+``--move-from OLD_K`` is the one step of changing K that touches Redis: after
+the old comment streams are drained, it moves the held comments, cached texts
+and done markers from the OLD_K layout to the configured one (``--dry-run``
+counts them first; see the README, "Changing the number of partitions").
 """
 from __future__ import annotations
 
@@ -28,6 +33,14 @@ def register(sub) -> None:
     parser.add_argument("--id", metavar="ID", action="append", default=None, dest="ids",
                         help="print the partition and stream of this comment id (repeatable)")
     parser.add_argument("--json", action="store_true", help="one JSON object per line instead of a table")
+    parser.add_argument("--move-from", type=int, metavar="OLD_K", default=None,
+                        help="move held comments, cached texts and done markers from the OLD_K layout to this one "
+                             "(after the old comment streams are drained)")
+    parser.add_argument("--from-prefix", metavar="OLD_PREFIX", default=None,
+                        help="with --move-from: the old layout's key prefix, when it differs (e.g. '{seawall}:')")
+    parser.add_argument("--dry-run", action="store_true", help="with --move-from: count what would move, move nothing")
+    parser.add_argument("--force", action="store_true",
+                        help="with --move-from: move even though an old comment stream still has entries in flight")
     parser.set_defaults(func=run)
 
 
@@ -49,12 +62,39 @@ def id_rows(keys, ids) -> list[dict]:
     return [{"id": cid, "partition": keys.partition_of(cid), "stream": keys.part_of(cid).comments} for cid in ids]
 
 
+def move(config, old_k: int, *, old_prefix: str, dry_run: bool, force: bool, out) -> int:
+    from model.errors import SeawallError
+    from ops.connection import connect
+    from ops.repartition import move_partition_state
+    from worker.settings import Keys
+
+    try:
+        old = Keys(prefix=old_prefix, partitions=old_k)
+    except ValueError as exc:
+        raise SeawallError(f"--move-from: {exc}") from None
+    client = connect(config)
+    report = move_partition_state(client, old, config.keys, dry_run=dry_run, force=force)
+    if report.undrained and not force:
+        streams = ", ".join(f"{s} (lag {lag}, pending {pending})" for s, (lag, pending) in report.undrained.items())
+        raise SeawallError(f"the old comment streams are not drained: {streams}; stop the producers and let the "
+                           "workers finish first (or pass --force)")
+    verb = "would move" if dry_run else "moved"
+    out.write(f"{verb} from {old_k} to {config.keys.partitions} partition(s): {report.held} held comment(s), "
+              f"{report.text} cached text(s), {report.done} done marker(s)"
+              + (f"; {report.kept} left in place (the new name existed)" if report.kept else "") + "\n")
+    return 0
+
+
 def run(args) -> int:
     from ops.connection import config_from_args
 
     overrides = {"keys.partitions": args.partitions, "keys.prefix": args.prefix}
-    keys = config_from_args(args, overrides).keys
+    config = config_from_args(args, overrides)
+    keys = config.keys
     out = sys.stdout
+    if args.move_from is not None:
+        return move(config, args.move_from, old_prefix=args.from_prefix or config.keys.prefix, dry_run=args.dry_run,
+                    force=args.force, out=out)
     rows = id_rows(keys, args.ids) if args.ids else partition_rows(keys)
     if args.json:
         for row in rows:
