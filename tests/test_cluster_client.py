@@ -196,3 +196,28 @@ def test_the_least_privilege_acl_user_runs_a_partitioned_worker_on_a_cluster(red
     denied = admin.acl_log(count=100)
     assert denied == [], [(d.get("object"), d.get("reason")) for d in denied]
     client.close()
+
+
+@pytest.mark.redis_server
+def test_the_cluster_client_speaks_tls_with_the_certificate_verified(redis_factory, tmp_path):
+    from tlscerts import make_ca
+
+    certs = make_ca(tmp_path / "certs")
+    server = redis_factory("tls-cluster", tls={"ca": certs["ca"], "cert": certs["cert"], "key": certs["key"]},
+                           extra=["--cluster-enabled", "yes", "--cluster-port", str(free_port()),
+                                  "--tls-cluster", "yes"])
+    admin = connect(server.url, tls_ca=certs["ca"], raw_streams=False)
+    admin.execute_command("CLUSTER", "ADDSLOTSRANGE", 0, 16383)
+    wait_until(lambda: b"cluster_state:ok" in admin.execute_command("CLUSTER", "INFO"), timeout=30,
+               what="the one-node TLS cluster to be ok")
+    client = connect(server.url, tls_ca=certs["ca"], cluster=True)
+    assert isinstance(client, RedisCluster)
+    send_comment(client, KEYS, {"id": "c1", "text": "lunch at noon"})
+    w = redis_consumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, overlap_commit=False),
+                       model_source=StaticModelSource(model=WordScorer()), consumer="w")
+    w.prepare()
+    assert wait_until(lambda: w.step().written, timeout=30, what="the comment's verdict") == 1
+    with pytest.raises(redis.exceptions.RedisClusterException, match="certificate verify failed"):  # no CA: refused
+        connect(server.url, cluster=True)
+    client.close()
+    admin.close()
