@@ -175,6 +175,13 @@ class Harness:
     def key(self, name: str) -> str:
         return self.prefix + name
 
+    @property
+    def keys(self):
+        """The key names the workers use (``keys.partitions`` from the overrides, 1 by default)."""
+        from worker.settings import Keys
+
+        return Keys(prefix=self.prefix, partitions=int(self.overrides.get("keys.partitions", 1)))
+
     def redis_cpu_usec(self) -> float:
         """CPU time of the Redis server process so far (INFO cpu, user + system), in microseconds.
 
@@ -210,10 +217,12 @@ class Harness:
     def enqueue(self, comments, start: int = 0) -> None:
         if self.amqp:
             return self._publish(comments, start)
+        from worker.partitions import send_comment
+
         pipe = self.client.pipeline(transaction=False)
-        stream = self.key("comments")
+        keys = self.keys
         for i, (text, _label) in enumerate(comments, start):
-            pipe.xadd(stream, {"id": f"b{i}", "text": text, "site": f"site{i % 4}.example"})
+            send_comment(self.client, keys, {"id": f"b{i}", "text": text, "site": f"site{i % 4}.example"}, pipeline=pipe)
             if len(pipe) >= 1000:
                 pipe.execute()
         pipe.execute()
@@ -238,30 +247,35 @@ class Harness:
         finally:
             connection.close()
 
+    def verdict_count(self) -> int:
+        """Verdicts written so far, over every partition's verdict stream."""
+        return sum(self.client.xlen(part.verdicts) for part in self.keys.parts)
+
     def wait_verdicts(self, n: int, *, timeout_s: float) -> int:
         deadline = time.monotonic() + timeout_s
-        stream = self.key("verdicts")
         while time.monotonic() < deadline:
-            count = self.client.xlen(stream)
+            count = self.verdict_count()
             if count >= n:
                 return count
             time.sleep(0.02)
-        raise RuntimeError(f"bench: only {self.client.xlen(stream)} of {n} verdicts after {timeout_s:.0f}s")
+        raise RuntimeError(f"bench: only {self.verdict_count()} of {n} verdicts after {timeout_s:.0f}s")
 
     def verdict_ids(self):
-        """(verdict ms, comment ms) for every verdict, read in pages."""
+        """(verdict ms, comment ms) for every verdict of every partition, read in pages, in verdict order."""
         out = []
-        last = "-"
-        stream = self.key("verdicts")
-        while True:
-            page = self.client.xrange(stream, min=last, count=5000)
-            if last != "-":
-                page = page[1:]
-            if not page:
-                return out
-            for vid, fields in page:
-                out.append((int(vid.split(b"-")[0]), int(fields[b"stream_id"].split(b"-")[0])))
-            last = page[-1][0].decode()
+        for part in self.keys.parts:
+            last = "-"
+            while True:
+                page = self.client.xrange(part.verdicts, min=last, count=5000)
+                if last != "-":
+                    page = page[1:]
+                if not page:
+                    break
+                for vid, fields in page:
+                    out.append((int(vid.split(b"-")[0]), int(fields[b"stream_id"].split(b"-")[0])))
+                last = page[-1][0].decode()
+        out.sort()
+        return out
 
     def cleanup(self) -> None:
         if self.amqp:
@@ -278,8 +292,10 @@ class Harness:
         self.client.close()
 
 
-def _throughput(url, prefix, model_path, comments, *, processes, noop, batch, block_ms, amqp: str = "") -> dict:
+def _throughput(url, prefix, model_path, comments, *, processes, noop, batch, block_ms, amqp: str = "",
+                overrides: dict | None = None) -> dict:
     h = Harness(url=url, prefix=prefix, model_path=model_path, batch=batch, block_ms=block_ms, amqp=amqp)
+    h.overrides.update(overrides or {})  # e.g. {"keys.partitions": 4}
     try:
         h.enqueue(comments)
         h.start(processes, noop=noop)
@@ -307,7 +323,9 @@ def _latency(url, prefix, model_path, comments, *, rate, seconds, batch, block_m
         tick_s = 0.005
         per_tick = max(1, round(rate * tick_s))
         total = int(rate * seconds)
-        stream = h.key("comments")
+        from worker.partitions import send_comment
+
+        keys = h.keys
         sent = 0
         t0 = time.perf_counter()
         while sent < total:
@@ -318,7 +336,7 @@ def _latency(url, prefix, model_path, comments, *, rate, seconds, batch, block_m
             pipe = h.client.pipeline(transaction=False)
             for i in range(sent, min(total, sent + per_tick)):
                 text, _ = comments[i % len(comments)]
-                pipe.xadd(stream, {"id": f"l{i}", "text": text, "site": "site0.example"})
+                send_comment(h.client, keys, {"id": f"l{i}", "text": text, "site": "site0.example"}, pipeline=pipe)
             pipe.execute()
             sent = min(total, sent + per_tick)
         offered = total / (time.perf_counter() - t0)
