@@ -7,7 +7,9 @@ as the stream worker; a verdict marked ``rescored=1`` (with its ``rule``, and
 the ``version`` and ``digest`` of the cached text) goes to the verdicts stream, the cache records the new score, and the
 comment leaves the hold queue when the new model publishes or rejects it.
 
-The write of one batch is a Lua script that re-checks, id by id, that the
+Each partition's hold queue is walked in turn (``keys.parts``), and a
+re-scored verdict goes to the comment's own partition's verdicts stream.
+The write of one batch is a Lua script on one partition's keys that re-checks, id by id, that the
 comment is still held: a label that arrived while the batch was being scored
 wins, and that comment gets no re-scored verdict.  Comments whose cached text
 has expired stay held for a moderator.
@@ -19,7 +21,7 @@ import time
 from model.actions import Action
 from worker.commit import text_digest
 from worker.routing import Router, score_and_decide
-from worker.settings import Keys
+from worker.settings import Keys, PartKeys
 from worker.validation import Comment
 from worker.verdicts import Verdict
 
@@ -74,13 +76,25 @@ def rescore_held(client, keys: Keys, model, *, batch: int = 500, settings=None, 
     script = client.register_script(_WRITE)
     counts = {"held": 0, "rescored": 0, "released": 0, "no_text": 0, "model": model.version}
     t0 = time.perf_counter()
-    ids = [_s(m) for m in client.zrange(keys.held, 0, -1)]
-    counts["held"] = len(ids)
+    for part in keys.parts:
+        _rescore_partition(client, part, model, router, script, batch=batch, counts=counts,
+                           verdicts_maxlen=verdicts_maxlen)
+    counts["seconds"] = round(time.perf_counter() - t0, 3)
+    counts["still_held"] = counts["rescored"] - counts["released"]
+    return counts
+
+
+
+def _rescore_partition(client, part: PartKeys, model, router, script, *, batch: int, counts: dict,
+                       verdicts_maxlen: int) -> None:
+    """Re-score one partition's hold queue; each batch's write touches only this partition's keys."""
+    ids = [_s(m) for m in client.zrange(part.held, 0, -1)]
+    counts["held"] += len(ids)
     for start in range(0, len(ids), batch):
         chunk = ids[start:start + batch]
         lookup = client.pipeline(transaction=False)
         for comment_id in chunk:
-            lookup.hmget(keys.text(comment_id), ["text", "site", "stream_id", "version", "digest"])
+            lookup.hmget(part.text(comment_id), ["text", "site", "stream_id", "version", "digest"])
         found, marks = [], []
         for comment_id, (text, site, stream_id, version, digest) in zip(chunk, lookup.execute()):
             if text is None:
@@ -99,13 +113,9 @@ def rescore_held(client, keys: Keys, model, *, batch: int = 500, settings=None, 
             args += [comment.id, "1" if d.action == Action.HOLD else "0", len(fields)]
             for pair in fields.items():
                 args += pair
-        written, released = script(keys=[keys.held, keys.verdicts] + [keys.text(c.id) for c in found], args=args)
+        written, released = script(keys=[part.held, part.verdicts] + [part.text(c.id) for c in found], args=args)
         counts["rescored"] += int(written)
         counts["released"] += int(released)
-    counts["seconds"] = round(time.perf_counter() - t0, 3)
-    counts["still_held"] = counts["rescored"] - counts["released"]
-    return counts
-
 
 
 RESCORE_MODES = ("now", "queue", "off")
