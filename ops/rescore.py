@@ -131,7 +131,9 @@ def rescore_after_switch(mode: str, client, config, version: str) -> dict:
     happened (``rescore_mode``: ``now``, ``queue`` or ``off``) with, when it
     ran here, ``rescore`` (the counts of :func:`rescore_held`) or, when it was
     queued, ``rescore_job`` and ``rq_workers``.  ``rq_workers`` is 0 when
-    ``queue`` found no worker and ran the re-score here.
+    ``queue`` found no worker and ran the re-score here; ``rq_unavailable``
+    is ``cluster`` when the deployment is a Redis Cluster without
+    ``[redis] rq_url`` (RQ has no cluster support), and it ran here too.
     """
     if mode not in RESCORE_MODES:
         raise ValueError(f"rescore_after_switch: mode must be one of {RESCORE_MODES}, got {mode!r}")
@@ -139,10 +141,17 @@ def rescore_after_switch(mode: str, client, config, version: str) -> dict:
         return {"rescore_mode": "off"}
     out: dict = {}
     if mode == "queue":
+        from ops.config import ConfigError
         from ops.jobs import enqueue_rescore, listening_workers, rq_client
 
-        jobs = rq_client(config, client)
-        workers = listening_workers(jobs, config.retrain.queue)
+        try:
+            jobs = rq_client(config, client)
+        except ConfigError:
+            # A cluster without [redis] rq_url has no RQ: the model has switched already, so re-score here
+            # rather than fail after the switch (the message says why).
+            jobs = None
+            out["rq_unavailable"] = "cluster"
+        workers = listening_workers(jobs, config.retrain.queue) if jobs is not None else 0
         out["rq_workers"] = workers
         if workers:
             return dict(out, rescore_mode="queue", rescore_job=enqueue_rescore(jobs, config, version).id)
@@ -168,6 +177,8 @@ def describe_rescore(result: dict, *, queue: str) -> str:
     done = result.get("rescore") or {}
     where = (f"no RQ worker listens on queue {queue!r}, so the re-score ran here: "
              if result.get("rq_workers") == 0 else "")
+    if result.get("rq_unavailable") == "cluster":
+        where = ("RQ cannot keep jobs on a Redis Cluster and [redis] rq_url is not set, so the re-score ran here: ")
     if not done.get("held"):
         return where + "no held comments to re-score"
     rescored = done.get("rescored", 0)

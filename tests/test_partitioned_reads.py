@@ -271,3 +271,19 @@ def test_the_wave_detector_reads_every_partition(checked):
     assert [e["type"] for e in events][:1] == ["wave_start"]
     assert (events[0]["data"]["comments"], events[0]["data"]["rate"]) == (100, 0.4)  # the sum of the partitions
     assert checked.hlen(K4.shared("waves", "active")) == 1
+
+
+def test_a_queued_rescore_on_a_cluster_without_an_rq_redis_runs_here_and_says_why(checked):
+    from ops.config import load_config
+    from ops.registry import Registry
+    from ops.rescore import describe_rescore, rescore_after_switch
+    from retrain_kit import model_bytes
+
+    config = load_config({"redis.cluster": True, "keys.partitions": 4}, environ={})
+    version = Registry(client=checked, keys=K4, clock=lambda: NOW).push(model_bytes(0))
+    hold(checked, 8, keys=K4)
+    result = rescore_after_switch("queue", checked, config, version)
+    assert result["rescore_mode"] == "now" and result["rq_unavailable"] == "cluster"
+    assert result["rescore"]["rescored"] == 8
+    assert describe_rescore(result, queue="seawall").startswith(
+        "RQ cannot keep jobs on a Redis Cluster and [redis] rq_url is not set, so the re-score ran here: re-scored 8")
