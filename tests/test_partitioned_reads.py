@@ -287,3 +287,19 @@ def test_a_queued_rescore_on_a_cluster_without_an_rq_redis_runs_here_and_says_wh
     assert result["rescore"]["rescored"] == 8
     assert describe_rescore(result, queue="seawall").startswith(
         "RQ cannot keep jobs on a Redis Cluster and [redis] rq_url is not set, so the re-score ran here: re-scored 8")
+
+
+def test_accounts_and_the_registry_sets_stay_in_one_slot(checked):
+    from ops.console.accounts import Accounts
+    from ops.registry import Registry
+
+    accounts = Accounts(client=checked, keys=K4, cost=1024, attempts=3)
+    accounts.add("mod-ana", "a long enough password", role="moderator", now=NOW)
+    accounts.set_role("mod-ana", "admin")                                     # WATCH/MULTI on the accounts
+    assert accounts.authenticate("mod-ana", "not the password") is None      # the failures counter's MULTI
+    assert accounts.authenticate("mod-ana", "a long enough password").role == "admin"
+    Registry(client=checked, keys=K4).set_examples(replay=[("a reply", 0)], canary=[("cheap pills", 1)])
+    assert Registry(client=checked, keys=K4).canary() == [("cheap pills", 1)]
+    multi = [keys for kind, keys in checked.checked if kind == "multi"]
+    assert any(K4.accounts in map(str, k) for k in multi)
+    assert any(K4.models_canary in map(str, k) for k in multi)
