@@ -88,7 +88,7 @@ CAMPAIGN_TOKENIZER = {"version": 1, "bigrams": False, "char_ngrams": (0, 0), "ho
                       "leet": True, "join_spaced": True, "squash_repeats": True}
 
 DAY_S = 86_400
-_KNOWN_SAMPLE = 4  # a flood's hits of a bucket a worker knows linked: one in this many is counted
+_KNOWN_FLUSH = 4  # a bucket a worker knows linked has its hits counted once per this fraction of the window
 _MAX_LEARNT_LINKS = 10_000  # linked buckets a worker remembers (a campaign links a few per template variant)
 SIGNALS = ("either", "authors", "lean", "both")
 
@@ -564,10 +564,11 @@ class CampaignPolicy:
         A learnt link is trusted for one window after the bucket was last seen
         linked: a campaign whose buckets are no longer linked (no longer bursty
         against their history) fades out of a worker's memory.  In a flood most
-        comments are such members: a worker counts a linked bucket's hits once
-        per KNOWN_SAMPLE (that hit standing for the others), and at least once
-        per quarter window, so the bucket's figures and link stay alive from
-        slot to slot at a fraction of the Redis work.
+        comments are such members: a worker keeps a linked bucket's hits to
+        itself and counts them once per quarter window (one hit standing for
+        all it kept), so the bucket's figures and link stay alive from slot to
+        slot at a fraction of the Redis work; the members are counted in their
+        campaign each batch all the same.
         """
         if not self._links or not keys.size:
             return {}, np.zeros(0, dtype=np.int64), {}
@@ -587,17 +588,15 @@ class CampaignPolicy:
         uniq, starts, counts = np.unique(keys.ravel()[places], return_index=True, return_counts=True)
         state = [self._pending.get(k, (0, -np.inf)) for k in uniq.tolist()]
         pending = np.array([p for p, _ in state], dtype=np.int64)
-        stale = np.array([now - t >= self.window_s / 4.0 for _, t in state], dtype=bool)
-        # a stale key counts its first hit at once (standing for what was pending); otherwise every
-        # KNOWN_SAMPLE-th hit counts, standing for the KNOWN_SAMPLE - 1 before it
-        offset = np.where(stale, _KNOWN_SAMPLE - 1, pending)
-        rank = np.arange(places.size) - np.repeat(starts, counts)
-        kept = (np.repeat(offset, counts) + rank + 1) % _KNOWN_SAMPLE == 0
-        weight = np.full(places.size, _KNOWN_SAMPLE)
-        weight[starts[stale]] = pending[stale] + 1
-        left = (offset + counts) % _KNOWN_SAMPLE
-        counted = np.add.reduceat(kept, starts) > 0 if starts.size else np.zeros(0, dtype=bool)
-        for key, p, c, (_, t) in zip(uniq.tolist(), left.tolist(), counted.tolist(), state):
+        stale = np.array([now - t >= self.window_s / _KNOWN_FLUSH for _, t in state], dtype=bool)
+        # a stale key counts its first hit at once, standing for what was pending and for the batch's other
+        # hits of it; the others are kept until their key is stale
+        kept = np.zeros(places.size, dtype=bool)
+        kept[starts[stale]] = True
+        weight = np.zeros(places.size, dtype=np.int64)
+        weight[starts[stale]] = pending[stale] + counts[stale]
+        left = np.where(stale, 0, pending + counts)
+        for key, p, c, (_, t) in zip(uniq.tolist(), left.tolist(), stale.tolist(), state):
             self._pending[key] = (p, now if c else t)
         if len(self._pending) > 2 * len(self._links):
             self._pending = {k: v for k, v in self._pending.items() if k in self._links}
