@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import json
 
-import numpy as np
-
 from worker.campaignstore import FIRST_IN_CUR, FIRST_IN_PREV, MEMBER, Observed, Opening
 
 
@@ -30,21 +28,22 @@ class MemoryCampaignStore:
 
     # -- the batch -------------------------------------------------------------------------
 
-    def open_batch(self, window, *, now, offsets, authors, sites, new_author_s, warmup_s, author_ttl):
+    def open_batch(self, window, *, now, offsets, authors, sites, author_ttl):
         cur = self.sightings.get((window.tag, window.slot), [])
         prev = self.sightings.get((window.tag, window.slot - 1), [])
         got = (list(cur[offsets[0]:]), list(prev[offsets[1]:]))
         here = self.authors.setdefault(window.generation, {})
         before = self.authors.get(window.generation - 1, {})
-        fresh = []
-        for n, site in enumerate(sites):
+        first_seen = []
+        for n in range(len(authors) // 8):
             a = authors[8 * n:8 * n + 8]
             if a not in here:
                 here[a] = before.get(a, int(now))
-            first_site = self.sites.setdefault(site, int(now))
-            fresh.append(here[a] >= max(now - new_author_s, first_site + warmup_s))
+            first_seen.append(here[a])
+        site_since = {site: self.sites.setdefault(site, int(now)) for site in sites}
         since = self.since.setdefault(window.tag, int(now))
-        return Opening(since=float(since), active=set(self.active), sightings=got, fresh=np.array(fresh, dtype=bool))
+        return Opening(since=float(since), active=set(self.active), sightings=got, first_seen=first_seen,
+                       site_since=site_since)
 
     def observe_bands(self, window, *, rules, history_s, slot_ttl, history_ttl, firsts, offsets, bands):
         cur = self.sightings.setdefault((window.tag, window.slot), [])

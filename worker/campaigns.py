@@ -90,6 +90,7 @@ CAMPAIGN_TOKENIZER = {"version": 1, "bigrams": False, "char_ngrams": (0, 0), "ho
 DAY_S = 86_400
 _KNOWN_FLUSH = 4  # a bucket a worker knows linked has its hits counted once per this fraction of the window
 _MAX_LEARNT_LINKS = 10_000  # linked buckets a worker remembers (a campaign links a few per template variant)
+_MAX_KNOWN_AUTHORS = 200_000  # authors' first sightings a worker remembers (about 100 bytes each)
 SIGNALS = ("either", "authors", "lean", "both")
 
 
@@ -302,6 +303,10 @@ class CampaignPolicy:
         self._pending: dict[int, tuple[int, float]] = {}  # linked band key -> (hits left uncounted, last counted)
         self._sightings = Sightings()
         self._purge_at = -np.inf
+        # first sightings never change: (site, author) key -> epoch s, of this author generation; site -> epoch s
+        self._first_seen: dict[bytes, int] = {}
+        self._first_seen_generation = None
+        self._site_since: dict[str, int] = {}
 
     def apply(self, state, comments: Sequence, scores: Sequence[float], decisions: list[Decision]) -> list[Decision]:
         """Members the model would publish are held (rule ``campaign``); every member's decision names its campaign.
@@ -354,11 +359,18 @@ class CampaignPolicy:
         known, skip, weights = self._known_members(keys, now)
         window = self.window(now)
         slot = window.slot
-        authors = [author_key(site, _get(c, "author"), _get(c, "id")) for site, c in zip(sites, comments)]
+        names = [_get(c, "author") for c in comments]
+        authors = [author_key(site, name, _get(c, "id")) for site, name, c in zip(sites, names, comments)]
+        if window.generation != self._first_seen_generation or len(self._first_seen) > _MAX_KNOWN_AUTHORS:
+            self._first_seen, self._first_seen_generation = {}, window.generation
+        # a comment with no author is its own author, first seen now: nothing to look up or keep
+        ask = [a for a in dict.fromkeys(a for a, name in zip(authors, names) if name) if a not in self._first_seen]
+        ask_sites = [s for s in dict.fromkeys(sites) if s not in self._site_since]
         opening = store.open_batch(window, now=now, offsets=(self._sightings.offset(slot),
                                                              self._sightings.offset(slot - 1)),
-                                   authors=b"".join(authors), sites=sites, new_author_s=self.new_author_s,
-                                   warmup_s=self.warmup_s, author_ttl=2 * self._author_generation_s())
+                                   authors=b"".join(ask), sites=ask_sites, author_ttl=2 * self._author_generation_s())
+        self._first_seen.update(zip(ask, opening.first_seen))
+        self._site_since.update(opening.site_since)
         self._sightings.add(slot, opening.sightings[0])
         self._sightings.add(slot - 1, opening.sightings[1])
         in_cur, cur_offset = self._sightings.find(slot, flat)
@@ -373,8 +385,7 @@ class CampaignPolicy:
             member = np.zeros(eligible.size, dtype=bool)
             member[list(known)] = True
             bands = self._band_hits(keys, hit, weights, repeated, in_cur, in_prev,
-                                    fresh=opening.fresh[eligible] if opening.fresh.size else
-                                    np.zeros(eligible.size, dtype=bool),
+                                    fresh=self._new_authors(eligible, authors, names, sites, now),
                                     lean=lean, member=member,
                                     authors=np.frombuffer(b"".join(authors), dtype=">u8")[eligible])
             slot_s = self.window_s / 2.0
@@ -391,6 +402,18 @@ class CampaignPolicy:
             plain = [i for i in range(len(comments)) if i not in members]
             self.site_scores.add([sites[i] for i in plain], [float(scores[i]) for i in plain])
         return members
+
+    def _new_authors(self, eligible: np.ndarray, authors: list[bytes], names: list[str], sites: list[str],
+                     now: float) -> np.ndarray:
+        """Which rows are by an author new to the site: first seen less than ``new_author_s`` ago, and after
+        the site's warm-up (the first ``warmup_s`` after the detector first saw the site, while everyone it
+        sees is a first sighting)."""
+        now_s = int(now // 1)
+        out = np.zeros(eligible.size, dtype=bool)
+        for row, i in enumerate(eligible.tolist()):
+            first = self._first_seen.get(authors[i], now_s) if names[i] else now_s
+            out[row] = first >= max(now - self.new_author_s, self._site_since.get(sites[i], now_s) + self.warmup_s)
+        return out
 
     def _band_hits(self, keys: np.ndarray, hit: np.ndarray, weights: dict[int, int], repeated: np.ndarray,
                    in_cur: np.ndarray, in_prev: np.ndarray, *, fresh: np.ndarray, lean: np.ndarray,

@@ -6,9 +6,10 @@ implementation, :class:`RedisCampaignStore`, is the only code that knows key
 names, scripts and round trips.  A batch costs two pipelined round trips:
 
 1. :meth:`CampaignStore.open_batch`: what other workers added to the
-   sightings lists since this worker last read them, each comment's author
-   freshness (the authors' first sightings, recorded here), when the detector
-   first ran with this shingling scheme, and the active campaigns;
+   sightings lists since this worker last read them, the first sightings of
+   the authors and sites the worker does not know yet (recorded here; a
+   first sighting never changes, so a worker remembers them), when the
+   detector first ran with this shingling scheme, and the active campaigns;
 2. :meth:`CampaignStore.observe_bands`: this batch's first sightings appended,
    and each band's buckets updated by one script call per band.  The worker
    has already grouped the batch's hits by bucket (a flood's hundred hits on
@@ -143,7 +144,8 @@ class Opening:
     since: float                      # when the detector first ran with this scheme
     active: set[str]                  # the active campaigns' ids
     sightings: tuple[list, list]      # entries added to this and the previous slot's lists since the offsets
-    fresh: np.ndarray                 # per comment: its author is new to its site
+    first_seen: list[int]             # per author asked: its first sighting (epoch seconds)
+    site_since: dict[str, int]        # per site asked: when the detector first saw it
 
 
 @dataclass
@@ -161,9 +163,9 @@ class CampaignStore(Protocol):
     """Where campaign detection keeps its shared state (see the module doc for the Redis layout)."""
 
     def open_batch(self, window: Window, *, now: float, offsets: tuple[int, int], authors: bytes,
-                   sites: Sequence[str], new_author_s: int, warmup_s: int, author_ttl: int) -> Opening:
-        """Read the sightings added since ``offsets``; record the batch's authors (one 8-byte key per comment,
-        ``sites`` one per comment) and say which are new; the scheme's start; the active campaigns."""
+                   sites: Sequence[str], author_ttl: int) -> Opening:
+        """Read the sightings added since ``offsets``; the first sightings of ``authors`` (8-byte keys) and of
+        ``sites``, recording ``now`` for those seen first; the scheme's start; the active campaigns."""
 
     def observe_bands(self, window: Window, *, rules: BucketRules, history_s: float, slot_ttl: int,
                       history_ttl: int, firsts: bytes, offsets: tuple[int, int],
@@ -215,21 +217,17 @@ local function numbers(text)
 end
 """
 
-# The batch's authors.  One HMGET of the authors in this generation's hash (and one in the previous
-# generation's for those missing); new ones are written with the current time, ones found only in the previous
-# generation are carried over with their first sighting.  Sites: the same with one hash.  An author is new when
-# first seen less than new_author_s ago and after the site's warm-up (the first warmup_s after the detector first
-# saw the site, while everyone it sees is a first sighting).
+# Authors and sites the worker does not know yet.  One HMGET of the authors in this generation's hash (and one in
+# the previous generation's for those missing); new ones are written with the current time, ones found only in the
+# previous generation are carried over with their first sighting.  Sites: the same with one hash.
 # KEYS: authors (this generation), authors (previous generation), sites.
-# ARGV: 1 now, 2 author TTL, 3 new_author_s, 4 warmup_s, 5 author keys (8 bytes, one per comment),
-#       6 each comment's site (1-based), 7... the batch's sites.
-# Reply: one byte per comment, "1" if its author is new.
+# ARGV: 1 now, 2 author TTL, 3 author keys (8 bytes each), 4... sites.
+# Reply: {the authors' first sightings, the sites' first sightings} (space-separated epoch seconds).
 _AUTHORS_SCRIPT = _LUA_HELPERS + """
-local now = tonumber(ARGV[1])
-local now_s = math.floor(now)
-local authors = cut(ARGV[5])
-if #authors == 0 then return '' end
-local first = chunked('HMGET', KEYS[1], authors)
+local now_s = math.floor(tonumber(ARGV[1]))
+local authors = cut(ARGV[3])
+local first = {}
+if #authors > 0 then first = chunked('HMGET', KEYS[1], authors) end
 local missing, fields = {}, {}
 for i = 1, #authors do
   if not first[i] then missing[#missing + 1] = i; fields[#fields + 1] = authors[i] end
@@ -246,18 +244,15 @@ if #missing > 0 then
   redis.call('EXPIRE', KEYS[1], tonumber(ARGV[2]))
 end
 local sites = {}
-for s = 7, #ARGV do sites[#sites + 1] = ARGV[s] end
-local newer_than = {}
-local since = redis.call('HMGET', KEYS[3], unpack(sites))
-for s = 1, #sites do
-  local t = tonumber(since[s])
-  if not t then redis.call('HSETNX', KEYS[3], sites[s], now_s); t = now_s end
-  newer_than[s] = math.max(now - tonumber(ARGV[3]), t + tonumber(ARGV[4]))
+for s = 4, #ARGV do sites[#sites + 1] = ARGV[s] end
+local since = {}
+if #sites > 0 then
+  since = redis.call('HMGET', KEYS[3], unpack(sites))
+  for s = 1, #sites do
+    if not since[s] then redis.call('HSETNX', KEYS[3], sites[s], now_s); since[s] = now_s end
+  end
 end
-local site_of = numbers(ARGV[6])
-local out = {}
-for i = 1, #authors do out[i] = tonumber(first[i]) >= newer_than[site_of[i]] and '1' or '0' end
-return table.concat(out)
+return {table.concat(first, ' '), table.concat(since, ' ')}
 """
 
 # The sightings: what other workers added to the two slots' lists since this worker last read them, then the
@@ -471,24 +466,25 @@ class RedisCampaignStore:
     # -- the batch -------------------------------------------------------------------------
 
     def open_batch(self, window: Window, *, now: float, offsets: tuple[int, int], authors: bytes,
-                   sites: Sequence[str], new_author_s: int, warmup_s: int, author_ttl: int) -> Opening:
+                   sites: Sequence[str], author_ttl: int) -> Opening:
         cur, prev = self.names.sightings(window)
-        site_list = list(dict.fromkeys(sites))
-        site_index = {s: n for n, s in enumerate(site_list, 1)}
         since_key = self.names.since(window)
         pipe = self.client.pipeline(transaction=False)
         pipe.lrange(cur, offsets[0], -1)
         pipe.lrange(prev, offsets[1], -1)
-        self._call(pipe, self._authors, self.names.authors(window),
-                   [f"{now:.3f}", author_ttl, new_author_s, warmup_s, authors,
-                    " ".join(str(site_index[s]) for s in sites), *site_list])
         pipe.set(since_key, int(now), nx=True)
         pipe.get(since_key)
         pipe.hkeys(self.names.records["active"])
-        got_cur, got_prev, fresh, _, since, active = pipe.execute()
-        fresh = np.frombuffer(fresh, dtype=np.uint8) == ord("1") if fresh else np.zeros(0, dtype=bool)
+        asked = bool(authors) or bool(sites)
+        if asked:
+            self._call(pipe, self._authors, self.names.authors(window), [f"{now:.3f}", author_ttl, authors, *sites])
+        got_cur, got_prev, _, since, active, *firsts = pipe.execute()
+        first_seen, site_since = [], {}
+        if asked:
+            first_seen = [int(v) for v in firsts[0][0].split()]
+            site_since = dict(zip(sites, (int(v) for v in firsts[0][1].split())))
         return Opening(since=float(since) if since is not None else now, active={_text(a) for a in active},
-                       sightings=(got_cur, got_prev), fresh=fresh)
+                       sightings=(got_cur, got_prev), first_seen=first_seen, site_since=site_since)
 
     def observe_bands(self, window: Window, *, rules: BucketRules, history_s: float, slot_ttl: int,
                       history_ttl: int, firsts: bytes, offsets: tuple[int, int],
