@@ -582,3 +582,14 @@ def test_the_in_memory_store_and_the_redis_store_agree(fake_redis):
     assert memory.read_active().keys() == read_campaigns(fake_redis, KEYS).keys() != set()
     assert {c: d["members"] for c, d in memory.read_active().items()} == \
         {c: d["members"] for c, d in read_campaigns(fake_redis, KEYS).items()}
+
+
+def test_a_server_that_lost_its_scripts_gets_them_again(fake_redis):
+    """After a restart without the scripts (SCRIPT FLUSH here), the next batch loads them and runs."""
+    clock = Clock()
+    p, s = policy(clock), store(fake_redis)
+    p.observe(s, comments([campaign_text(i) for i in range(5)]))
+    fake_redis.script_flush()
+    clock.t += 5
+    assert len(p.observe(s, comments([campaign_text(i) for i in range(5, 14)], start=5))) == 14 - 5
+    assert len(read_campaigns(fake_redis, KEYS)) == 1

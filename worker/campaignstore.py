@@ -60,18 +60,17 @@ by one comment.
 """
 from __future__ import annotations
 
+import hashlib
 import json
-import logging
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Protocol, runtime_checkable
 
 import numpy as np
+import redis
 
 from worker.events import EVENTS_MAXLEN, add_event
 from worker.settings import Keys
-
-log = logging.getLogger("seawall.worker.campaigns")
 
 # -- the port's values ---------------------------------------------------------------------------
 
@@ -408,6 +407,10 @@ return out
 """
 
 
+def _sha(body: str) -> str:
+    return hashlib.sha1(body.encode()).hexdigest()
+
+
 def campaign_keys(keys: Keys) -> dict[str, str]:
     """The campaign records every process reads (active campaigns, sizes, last members, seeds)."""
     return {"active": keys.campaigns("active"), "last": keys.campaigns("last"),
@@ -455,13 +458,31 @@ class RedisCampaignStore:
         self.client = client
         self.keys = keys
         self.names = CampaignKeys(keys)
-        self._authors = client.register_script(_AUTHORS_SCRIPT)
-        self._sightings = client.register_script(_SIGHTINGS_SCRIPT)
-        self._band = client.register_script(_BAND_SCRIPT)
+        self._authors = _sha(_AUTHORS_SCRIPT)
+        self._sightings = _sha(_SIGHTINGS_SCRIPT)
+        self._band = _sha(_BAND_SCRIPT)
+        self._loaded = False
 
-    def _call(self, pipe, script, keys: list[str], args: list) -> None:
-        """Queue one script call on ``pipe`` (every key it touches in ``keys``)."""
-        script(keys=keys, args=args, client=pipe)
+    def _call(self, pipe, script: str, keys: list[str], args: list) -> None:
+        """Queue one script call (EVALSHA of ``script``) on ``pipe``; every key it touches is in ``keys``."""
+        pipe.evalsha(script, len(keys), *keys, *args)
+
+    def _execute(self, build) -> list:
+        """Run the pipeline ``build()`` queues, loading the scripts first (SCRIPT LOAD: the commands an ACL
+        user needs stay EVALSHA and SCRIPT LOAD) and again if the server lost them (a restart).  A
+        pipeline whose scripts were missing ran none of them, so running it again writes nothing twice."""
+        if not self._loaded:
+            self._load()
+        try:
+            return build().execute()
+        except redis.exceptions.NoScriptError:
+            self._load()
+            return build().execute()
+
+    def _load(self) -> None:
+        for body in (_AUTHORS_SCRIPT, _SIGHTINGS_SCRIPT, _BAND_SCRIPT):
+            self.client.script_load(body)
+        self._loaded = True
 
     # -- the batch -------------------------------------------------------------------------
 
@@ -469,16 +490,21 @@ class RedisCampaignStore:
                    sites: Sequence[str], author_ttl: int) -> Opening:
         cur, prev = self.names.sightings(window)
         since_key = self.names.since(window)
-        pipe = self.client.pipeline(transaction=False)
-        pipe.lrange(cur, offsets[0], -1)
-        pipe.lrange(prev, offsets[1], -1)
-        pipe.set(since_key, int(now), nx=True)
-        pipe.get(since_key)
-        pipe.hkeys(self.names.records["active"])
         asked = bool(authors) or bool(sites)
-        if asked:
-            self._call(pipe, self._authors, self.names.authors(window), [f"{now:.3f}", author_ttl, authors, *sites])
-        got_cur, got_prev, _, since, active, *firsts = pipe.execute()
+
+        def build():
+            pipe = self.client.pipeline(transaction=False)
+            pipe.lrange(cur, offsets[0], -1)
+            pipe.lrange(prev, offsets[1], -1)
+            pipe.set(since_key, int(now), nx=True)
+            pipe.get(since_key)
+            pipe.hkeys(self.names.records["active"])
+            if asked:
+                self._call(pipe, self._authors, self.names.authors(window),
+                           [f"{now:.3f}", author_ttl, authors, *sites])
+            return pipe
+
+        got_cur, got_prev, _, since, active, *firsts = self._execute(build)
         first_seen, site_since = [], {}
         if asked:
             first_seen = [int(v) for v in firsts[0][0].split()]
@@ -489,21 +515,27 @@ class RedisCampaignStore:
     def observe_bands(self, window: Window, *, rules: BucketRules, history_s: float, slot_ttl: int,
                       history_ttl: int, firsts: bytes, offsets: tuple[int, int],
                       bands: Sequence[BandHits]) -> Observed:
-        pipe = self.client.pipeline(transaction=False)
-        self._call(pipe, self._sightings, self.names.sightings(window), [offsets[0], offsets[1], firsts, slot_ttl])
         common = [slot_ttl, history_ttl, rules.min_size, rules.link_size, rules.min_authors, rules.peak_ratio,
                   rules.burst_ratio, rules.window_s, f"{history_s:.3f}"]
-        called = []
+        calls = []
         for hits in bands:
             if not hits.keys.size:
                 continue
             figures = np.column_stack((hits.counts, hits.new, hits.lean, hits.flags,
                                        [len(a) // 8 for a in hits.authors])).astype(np.int64)
-            self._call(pipe, self._band, self.names.band(window, hits.band),
-                       [*common, hits.keys.astype(">u8").tobytes(), " ".join(map(str, figures.ravel().tolist())),
-                        b"".join(hits.authors)])
-            called.append(hits.band)
-        replies = pipe.execute()
+            calls.append((hits.band, self.names.band(window, hits.band),
+                          [*common, hits.keys.astype(">u8").tobytes(), " ".join(map(str, figures.ravel().tolist())),
+                           b"".join(hits.authors)]))
+
+        def build():
+            pipe = self.client.pipeline(transaction=False)
+            self._call(pipe, self._sightings, self.names.sightings(window), [offsets[0], offsets[1], firsts, slot_ttl])
+            for _band, keys, args in calls:
+                self._call(pipe, self._band, keys, args)
+            return pipe
+
+        replies = self._execute(build)
+        called = [band for band, _keys, _args in calls]
         out = Observed(sightings=(replies[0][0], replies[0][1]))
         for band, reply in zip(called, replies[1:]):
             linked = reply[0]
