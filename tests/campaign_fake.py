@@ -45,12 +45,12 @@ class MemoryCampaignStore:
         return Opening(since=float(since), active=set(self.active), sightings=got, first_seen=first_seen,
                        site_since=site_since)
 
-    def observe_bands(self, window, *, rules, history_s, slot_ttl, history_ttl, firsts, offsets, bands):
+    def observe_bands(self, window, *, rules, history_s, slot_ttl, history_ttl, firsts, bands):
         cur = self.sightings.setdefault((window.tag, window.slot), [])
-        prev = self.sightings.get((window.tag, window.slot - 1), [])
-        out = Observed(sightings=(list(cur[offsets[0]:]), list(prev[offsets[1]:])))
+        out = Observed()
         if firsts:
             cur.append(firsts)
+            out.place = len(cur) - 1
         for hits in bands:
             here = self.buckets.setdefault((window.tag, hits.band, window.slot), {})
             before = self.buckets.get((window.tag, hits.band, window.slot - 1), {})

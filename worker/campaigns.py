@@ -201,29 +201,29 @@ class Sightings:
     """One worker's copy of the band keys seen in the recent slots, in step with the slots' lists in Redis.
 
     Each slot's list in Redis holds one string per batch: that batch's first
-    sightings, 8 bytes a key.  A worker reads what the others added since its
-    last batch (its offset into each list) in the same script call that adds
-    its own, so Redis never tests membership: the worker does, on sorted numpy
-    chunks (merged as they pile up, so a slot costs O(log n) searches).  Before
-    each batch the worker reads what was appended since (one LRANGE per slot,
-    with the batch's authors: a start or a new slot reads the whole list), so a
-    key another worker saw in its last batch is a hit here.  A key two workers first see
-    between that read and their script calls, within a millisecond, is a first
-    sighting for both: its bucket misses that one hit.
+    sightings, 8 bytes a key.  Redis never tests membership: the worker does,
+    on sorted numpy chunks (merged as they pile up, so a slot costs O(log n)
+    searches).  Before each batch the worker reads what was appended since its
+    last read (its offset into each list; a start or a new slot reads the
+    whole list), skipping its own entries, so a key another worker saw in its
+    last batch is a hit here.  A key two workers first see between that read
+    and their appends, within a millisecond, is a first sighting for both: its
+    bucket misses that one hit.
     """
 
     def __init__(self):
-        self._slots: dict[int, list] = {}  # slot -> [sorted unique uint64 chunks, entries read from its list]
+        # slot -> [sorted unique uint64 chunks, entries read from its list, places of this worker's own entries]
+        self._slots: dict[int, list] = {}
 
     def offset(self, slot: int) -> int:
         """This worker's offset into the slot's list (0 for a slot it has not read yet: a start, a new slot)."""
-        return self._slots.setdefault(slot, [[], 0])[1]
+        return self._slots.setdefault(slot, [[], 0, set()])[1]
 
     def find(self, slot: int, values: np.ndarray) -> tuple[np.ndarray, int]:
         """Which ``values`` the slot has seen, and this worker's offset into the slot's list."""
         for old in [s for s in self._slots if s < slot - 1]:
             del self._slots[old]
-        chunks, offset = self._slots.setdefault(slot, [[], 0])
+        chunks, offset, _own = self._slots.setdefault(slot, [[], 0, set()])
         found = np.zeros(values.size, dtype=bool)
         if chunks:
             order = np.argsort(values)  # sorted queries: searches that walk each chunk once
@@ -236,11 +236,18 @@ class Sightings:
             found[order] = hit
         return found, offset
 
-    def add(self, slot: int, blobs, own: np.ndarray | None = None, *, pushed: bool = False) -> None:
-        """Add the list entries read (``blobs``) and this worker's own first sightings (``own``, pushed last)."""
-        entry = self._slots.setdefault(slot, [[], 0])
-        entry[1] += len(blobs) + (1 if pushed else 0)
-        parts = [np.frombuffer(b, dtype=">u8") for b in blobs] + ([own] if own is not None and own.size else [])
+    def add(self, slot: int, blobs, own: np.ndarray | None = None, *, place: int | None = None) -> None:
+        """Add the list entries read from the worker's offset on (``blobs``), and this worker's own first
+        sightings (``own``), appended to the list at ``place``, which a later read skips."""
+        entry = self._slots.setdefault(slot, [[], 0, set()])
+        mine = entry[2]
+        read = [b for n, b in enumerate(blobs, entry[1]) if n not in mine]
+        if mine and blobs:
+            mine.difference_update(range(entry[1], entry[1] + len(blobs)))
+        entry[1] += len(blobs)
+        if place is not None:
+            mine.add(place)
+        parts = [np.frombuffer(b, dtype=">u8") for b in read] + ([own] if own is not None and own.size else [])
         if not parts:
             return
         chunks = entry[0]
@@ -373,13 +380,13 @@ class CampaignPolicy:
         self._site_since.update(opening.site_since)
         self._sightings.add(slot, opening.sightings[0])
         self._sightings.add(slot - 1, opening.sightings[1])
-        in_cur, cur_offset = self._sightings.find(slot, flat)
-        in_prev, prev_offset = self._sightings.find(slot - 1, flat)
+        in_cur, _ = self._sightings.find(slot, flat)
+        in_prev, _ = self._sightings.find(slot - 1, flat)
         hit = repeated | in_cur | in_prev
         hit[skip] = False  # hits this worker leaves uncounted
         firsts = flat[first_places[~in_cur[first_places]]]  # first sightings in this slot, once each
         history_s = max(now - max(opening.since, self._history_start(now)) - self.window_s, float(self.window_s))
-        observed = Observed(sightings=([], []))
+        observed = Observed()
         if hit.any() or firsts.size:
             lean = self._lean_rows(eligible, sites, scores)
             member = np.zeros(eligible.size, dtype=bool)
@@ -392,10 +399,9 @@ class CampaignPolicy:
             slot_ttl = max(1, int((slot + 2) * slot_s - now) + 1)  # relative: the server's clock may differ
             observed = store.observe_bands(window, rules=self.rules, history_s=history_s, slot_ttl=slot_ttl,
                                            history_ttl=2 * self.baseline_days * DAY_S + 3600,
-                                           firsts=firsts.astype(">u8").tobytes(), offsets=(cur_offset, prev_offset),
+                                           firsts=firsts.astype(">u8").tobytes(),
                                            bands=bands)
-            self._sightings.add(slot, observed.sightings[0], firsts, pushed=firsts.size > 0)
-            self._sightings.add(slot - 1, observed.sightings[1])
+            self._sightings.add(slot, [], firsts, place=observed.place)
         members = self._decide(store, window, comments, eligible, keys, known, opening.active, observed,
                                history_s, now)
         if scores is not None and self.signals != "authors":

@@ -10,8 +10,8 @@ names, scripts and round trips.  A batch costs two pipelined round trips:
    the authors and sites the worker does not know yet (recorded here; a
    first sighting never changes, so a worker remembers them), when the
    detector first ran with this shingling scheme, and the active campaigns;
-2. :meth:`CampaignStore.observe_bands`: this batch's first sightings appended,
-   and each band's buckets updated by one script call per band.  The worker
+2. :meth:`CampaignStore.observe_bands`: this batch's first sightings appended
+   (RPUSH), and each band's buckets updated by one script call per band.  The worker
    has already grouped the batch's hits by bucket (a flood's hundred hits on
    one bucket arrive as one count), so a script's work grows with the
    distinct buckets a batch hits, not with its comments.
@@ -151,7 +151,7 @@ class Opening:
 class Observed:
     """What :meth:`CampaignStore.observe_bands` found."""
 
-    sightings: tuple[list, list]      # entries other workers added just before this batch's
+    place: int | None = None          # where the batch's first sightings went in this slot's list
     linked: dict[int, str] = field(default_factory=dict)   # band key -> campaign, of the batch's linked buckets
     # band key -> (band, window count, authors, new-author hits, spam-ward hits, history count, busiest window)
     buckets: dict[int, tuple] = field(default_factory=dict)
@@ -167,9 +167,9 @@ class CampaignStore(Protocol):
         ``sites``, recording ``now`` for those seen first; the scheme's start; the active campaigns."""
 
     def observe_bands(self, window: Window, *, rules: BucketRules, history_s: float, slot_ttl: int,
-                      history_ttl: int, firsts: bytes, offsets: tuple[int, int],
-                      bands: Sequence[BandHits]) -> Observed:
-        """Append the batch's first sightings (8 bytes each) to this slot's list; update each band's buckets."""
+                      history_ttl: int, firsts: bytes, bands: Sequence[BandHits]) -> Observed:
+        """Append the batch's first sightings (8 bytes each) to this slot's list (one entry, whose place
+        comes back); update each band's buckets."""
 
     def link_bucket(self, window: Window, band: int, key: int, campaign: str) -> str:
         """Link a bucket to ``campaign`` unless it is linked already; the campaign it is linked to."""
@@ -252,19 +252,6 @@ if #sites > 0 then
   end
 end
 return {table.concat(first, ' '), table.concat(since, ' ')}
-"""
-
-# The sightings: what other workers added to the two slots' lists since this worker last read them, then the
-# batch's first sightings in this slot (one string), so the worker's copy stays whole.
-# KEYS: sightings (this slot), sightings (previous slot).  ARGV: 1 and 2 the worker's offsets into them,
-# 3 the first sightings (8 bytes each), 4 slot TTL.  Reply: {entries of this slot's list, of the previous one's}.
-_SIGHTINGS_SCRIPT = """
-local out = {redis.call('LRANGE', KEYS[1], tonumber(ARGV[1]), -1), redis.call('LRANGE', KEYS[2], tonumber(ARGV[2]), -1)}
-if #ARGV[3] > 0 then
-  redis.call('RPUSH', KEYS[1], ARGV[3])
-  redis.call('EXPIRE', KEYS[1], tonumber(ARGV[4]))
-end
-return out
 """
 
 # One band's buckets, each once per batch with what the batch adds to it (the worker grouped the hits).
@@ -459,7 +446,6 @@ class RedisCampaignStore:
         self.keys = keys
         self.names = CampaignKeys(keys)
         self._authors = _sha(_AUTHORS_SCRIPT)
-        self._sightings = _sha(_SIGHTINGS_SCRIPT)
         self._band = _sha(_BAND_SCRIPT)
         self._loaded = False
 
@@ -480,7 +466,7 @@ class RedisCampaignStore:
             return build().execute()
 
     def _load(self) -> None:
-        for body in (_AUTHORS_SCRIPT, _SIGHTINGS_SCRIPT, _BAND_SCRIPT):
+        for body in (_AUTHORS_SCRIPT, _BAND_SCRIPT):
             self.client.script_load(body)
         self._loaded = True
 
@@ -513,8 +499,8 @@ class RedisCampaignStore:
                        sightings=(got_cur, got_prev), first_seen=first_seen, site_since=site_since)
 
     def observe_bands(self, window: Window, *, rules: BucketRules, history_s: float, slot_ttl: int,
-                      history_ttl: int, firsts: bytes, offsets: tuple[int, int],
-                      bands: Sequence[BandHits]) -> Observed:
+                      history_ttl: int, firsts: bytes, bands: Sequence[BandHits]) -> Observed:
+        cur = self.names.sightings(window)[0]
         common = [slot_ttl, history_ttl, rules.min_size, rules.link_size, rules.min_authors, rules.peak_ratio,
                   rules.burst_ratio, rules.window_s, f"{history_s:.3f}"]
         calls = []
@@ -529,15 +515,19 @@ class RedisCampaignStore:
 
         def build():
             pipe = self.client.pipeline(transaction=False)
-            self._call(pipe, self._sightings, self.names.sightings(window), [offsets[0], offsets[1], firsts, slot_ttl])
+            if firsts:
+                pipe.rpush(cur, firsts)
+                pipe.expire(cur, slot_ttl)
             for _band, keys, args in calls:
                 self._call(pipe, self._band, keys, args)
             return pipe
 
         replies = self._execute(build)
-        called = [band for band, _keys, _args in calls]
-        out = Observed(sightings=(replies[0][0], replies[0][1]))
-        for band, reply in zip(called, replies[1:]):
+        out = Observed()
+        if firsts:
+            out.place = int(replies[0]) - 1
+            replies = replies[2:]
+        for band, reply in zip([band for band, _keys, _args in calls], replies):
             linked = reply[0]
             for key, campaign in zip(linked[::2], linked[1::2]):
                 out.linked[int.from_bytes(key, "big")] = _text(campaign)
