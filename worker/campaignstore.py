@@ -317,7 +317,7 @@ if #opened > 0 then  -- first hits in this slot: carry the previous slot in, rea
     local hs, hp = history(hv[j])
     local gs, gp = history(gv[j])
     local flags = fig[5 * n - 1]
-    s.a, s.L, s.c = 0, false, false
+    s.a, s.L, s.c, s.new = 0, false, false, true
     s.e, s.m = hs + gs, math.max(hp, gp)
     s.t, s.w, s.h = 0, 0, 0
     if v then
@@ -341,13 +341,14 @@ if #opened > 0 then  -- first hits in this slot: carry the previous slot in, rea
   end
 end
 
--- authors: which (bucket, author) pairs are recorded already, for buckets short of min_authors
+-- authors: which (bucket, author) pairs are recorded already, for buckets short of min_authors (a bucket new
+-- in this slot has none: its authors are written with its figures)
 local anames, at = {}, 0
 local first_author = {}
 for n = 1, #keys do
   first_author[n] = at
   local count = fig[5 * n]
-  if state[n].a < min_authors then
+  if state[n].a < min_authors and not state[n].new then
     for q = at + 1, at + count do anames[#anames + 1] = keys[n] .. alist[q] end
   end
   at = at + count
