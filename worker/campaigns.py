@@ -363,7 +363,6 @@ class CampaignPolicy:
         _, first_places = np.unique(flat, return_index=True)
         repeated = np.ones(flat.size, dtype=bool)  # the key occurs earlier in the batch
         repeated[first_places] = False
-        known, skip, weights = self._known_members(keys, now)
         window = self.window(now)
         slot = window.slot
         names = [_get(c, "author") for c in comments]
@@ -383,6 +382,7 @@ class CampaignPolicy:
         in_cur, _ = self._sightings.find(slot, flat)
         in_prev, _ = self._sightings.find(slot - 1, flat)
         hit = repeated | in_cur | in_prev
+        known, skip, weights = self._known_members(keys, hit, now)
         hit[skip] = False  # hits this worker leaves uncounted
         firsts = flat[first_places[~in_cur[first_places]]]  # first sightings in this slot, once each
         history_s = max(now - max(opening.since, self._history_start(now)) - self.window_s, float(self.window_s))
@@ -585,10 +585,11 @@ class CampaignPolicy:
                 "expected": round(expected, 3),
                 "by": [n for n, on in (("authors", by_authors), ("lean", by_lean)) if on]}
 
-    def _known_members(self, keys: np.ndarray, now: float) -> tuple[dict[int, str], list[int], dict[int, int]]:
+    def _known_members(self, keys: np.ndarray, hit: np.ndarray,
+                       now: float) -> tuple[dict[int, str], np.ndarray, dict[int, int]]:
         """Rows of ``keys`` (comments x bands) with a band key this worker saw linked, as ``{row: campaign}``;
-        then which of those keys' hits the batch leaves uncounted (1-based places) and which count for
-        several (``{place: hits it stands for}``).
+        then which of those keys' hits (``hit``, over the flat places) the batch leaves uncounted and which
+        count for several (``{1-based place: hits it stands for}``).
 
         A learnt link is trusted for one window after the bucket was last seen
         linked: a campaign whose buckets are no longer linked (no longer bursty
@@ -611,13 +612,15 @@ class CampaignPolicy:
         rows = np.flatnonzero(learnt.any(axis=1))
         first_learnt = keys[rows, learnt[rows].argmax(axis=1)].tolist()
         known = {r: self._links[k][0] for r, k in zip(rows.tolist(), first_learnt)}
-        places = np.flatnonzero(learnt.ravel())
+        places = np.flatnonzero(learnt.ravel() & hit)  # a first sighting is no hit: it neither counts nor waits
         order = np.argsort(keys.ravel()[places], kind="stable")
         places = places[order]  # grouped by key, in arrival order within a key
         uniq, starts, counts = np.unique(keys.ravel()[places], return_index=True, return_counts=True)
-        state = [self._pending.get(k, (0, -np.inf)) for k in uniq.tolist()]
-        pending = np.array([p for p, _ in state], dtype=np.int64)
-        stale = np.array([now - t >= self.window_s / _KNOWN_FLUSH for _, t in state], dtype=bool)
+        uniq_keys = uniq.tolist()
+        state = [self._pending.get(k, (0, -np.inf)) for k in uniq_keys]
+        pending = np.fromiter((p for p, _ in state), dtype=np.int64, count=len(state))
+        last = np.fromiter((t for _, t in state), dtype=float, count=len(state))
+        stale = now - last >= self.window_s / _KNOWN_FLUSH
         # a stale key counts its first hit at once, standing for what was pending and for the batch's other
         # hits of it; the others are kept until their key is stale
         kept = np.zeros(places.size, dtype=bool)
@@ -625,8 +628,7 @@ class CampaignPolicy:
         weight = np.zeros(places.size, dtype=np.int64)
         weight[starts[stale]] = pending[stale] + counts[stale]
         left = np.where(stale, 0, pending + counts)
-        for key, p, c, (_, t) in zip(uniq.tolist(), left.tolist(), stale.tolist(), state):
-            self._pending[key] = (p, now if c else t)
+        self._pending.update(zip(uniq_keys, zip(left.tolist(), np.where(stale, now, last).tolist())))
         if len(self._pending) > 2 * len(self._links):
             self._pending = {k: v for k, v in self._pending.items() if k in self._links}
         weights = {p: w for p, w in zip((places[kept] + 1).tolist(), weight[kept].tolist()) if w > 1}
