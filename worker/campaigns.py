@@ -307,6 +307,7 @@ class CampaignPolicy:
         # with such a key is a member even when the bucket is not linked in the current slot yet, and its
         # other buckets are linked from link_size comments on, so the campaign follows its variants.
         self._links: dict[int, tuple[str, float]] = {}
+        self._links_sorted: np.ndarray | None = None  # the keys of _links, sorted (None: to be rebuilt)
         self._pending: dict[int, tuple[int, float]] = {}  # linked band key -> (hits left uncounted, last counted)
         self._sightings = Sightings()
         self._purge_at = -np.inf
@@ -512,6 +513,7 @@ class CampaignPolicy:
                 members[int(eligible[row])] = campaign
             else:  # ended: forget its buckets
                 self._links = {k: v for k, v in self._links.items() if v[0] != campaign}
+                self._links_sorted = None
         linked: dict[int, str] = {}  # band keys linked to an active campaign, as the store has them
         for key, campaign in observed.linked.items():
             if campaign in active:
@@ -604,11 +606,16 @@ class CampaignPolicy:
             return {}, np.zeros(0, dtype=np.int64), {}
         if now >= self._purge_at:  # forget expired links now and then, not every batch
             self._links = {k: v for k, v in self._links.items() if v[1] > now}
+            self._links_sorted = None
             self._purge_at = now + self.window_s / 4.0
         if not self._links:
             self._pending.clear()
             return {}, np.zeros(0, dtype=np.int64), {}
-        learnt = np.isin(keys, np.fromiter(self._links, dtype=np.uint64, count=len(self._links)))
+        if self._links_sorted is None:  # rebuilt when a link comes or goes, not when a known one is refreshed
+            self._links_sorted = np.sort(np.fromiter(self._links, dtype=np.uint64, count=len(self._links)))
+        at = np.searchsorted(self._links_sorted, keys)
+        np.minimum(at, self._links_sorted.size - 1, out=at)
+        learnt = self._links_sorted[at] == keys
         rows = np.flatnonzero(learnt.any(axis=1))
         first_learnt = keys[rows, learnt[rows].argmax(axis=1)].tolist()
         known = {r: self._links[k][0] for r, k in zip(rows.tolist(), first_learnt)}
@@ -637,6 +644,8 @@ class CampaignPolicy:
     def _learn(self, band_key: int, campaign: str, now: float) -> None:
         if len(self._links) >= _MAX_LEARNT_LINKS:
             self._links.clear()
+        if band_key not in self._links:
+            self._links_sorted = None
         self._links[band_key] = (campaign, now + self.window_s)
 
 
