@@ -429,7 +429,8 @@ class CampaignPolicy:
 
         ``keys`` is (rows x bands); ``hit`` and the flags are over its flat
         places; ``weights`` the hits that stand for others (1-based places);
-        ``fresh``, ``lean``, ``member`` and ``authors`` are per row.
+        ``fresh``, ``lean``, ``member`` and ``authors`` are per row.  Each bucket names its first
+        ``min_authors`` distinct authors.
         """
         places = np.flatnonzero(hit)
         if not places.size:
@@ -458,6 +459,12 @@ class CampaignPolicy:
         distinct[1:] = (a_sorted[1:] != a_sorted[:-1]) | (i_sorted[1:] != i_sorted[:-1])
         chosen = order[distinct]
         chosen = chosen[np.lexsort((chosen, inverse[chosen]))]
+        # min_authors of them are enough: a bucket short of min_authors has fewer recorded, so these include
+        # as many unrecorded ones as it lacks
+        group = inverse[chosen]
+        starts = np.flatnonzero(np.r_[True, group[1:] != group[:-1]]) if group.size else np.zeros(0, dtype=np.int64)
+        rank = np.arange(group.size) - np.repeat(starts, np.diff(np.r_[starts, group.size]))
+        chosen = chosen[rank < self.min_authors]
         per_bucket = np.bincount(inverse[chosen], minlength=n)
         blob = au[chosen].astype(">u8").tobytes()
         ends = np.cumsum(per_bucket) * 8

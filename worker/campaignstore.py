@@ -124,7 +124,8 @@ class BandHits:
     by new authors), ``lean`` (of them scoring spam-ward), ``flags`` (bits
     :data:`MEMBER`, :data:`FIRST_IN_PREV`, :data:`FIRST_IN_CUR`, the last two
     about where the key's first sighting was) and ``authors``: the distinct
-    author keys (8 bytes each) that hit it, in order.
+    author keys (8 bytes each) that hit it, in order (its first ``min_authors``
+    suffice: a bucket short of them has fewer recorded).
     """
 
     band: int
@@ -267,14 +268,27 @@ return {table.concat(first, ' '), table.concat(since, ' ')}
 # there) or in this one (or earlier in the batch).
 # KEYS: buckets (this slot), buckets (previous slot), history (this generation), history (previous generation).
 # ARGV: 1 slot TTL, 2 history TTL, 3 min_size, 4 link_size, 5 min_authors, 6 peak_ratio, 7 burst_ratio,
-#       8 window_s, 9 history_s (the time the history covers), 10 the band keys (8 bytes each), 11 per key
-#       "hits new-author-hits spam-ward-hits flags authors" (flags: 1 a known member, 2 first seen in the
-#       previous slot, 4 first seen in this one), 12 the keys' authors in turn (8 bytes each).
+#       8 window_s, 9 history_s (the time the history covers), 10 the band keys (8 bytes each), 11 per key 15
+#       bytes (big-endian): hits, new-author hits, spam-ward hits (4 bytes each), flags (1: a known member, 2
+#       first seen in the previous slot, 4 first seen in this one; 1 byte), authors (2 bytes), 12 the keys'
+#       authors in turn (8 bytes each).
 # Reply: {{key, campaign, ...} of linked buckets, then per bucket that reaches min_size (link_size if a known
 #         member hit it) and is bursty: {key, window count, authors, new-author hits, spam-ward hits, history
 #         count, busiest window}}.
 _BAND_SCRIPT = _LUA_HELPERS + """
-local keys, fig, alist = cut(ARGV[10]), numbers(ARGV[11]), cut(ARGV[12])
+local function figures(blob)  -- per bucket: hits, new-author hits, spam-ward hits, flags, authors
+  local out, n = {}, 0
+  for o = 0, #blob - 15, 15 do
+    local a1, a2, a3, a4, b1, b2, b3, b4, c1, c2, c3, c4, f, d1, d2 = string.byte(blob, o + 1, o + 15)
+    out[n + 1] = ((a1 * 256 + a2) * 256 + a3) * 256 + a4
+    out[n + 2] = ((b1 * 256 + b2) * 256 + b3) * 256 + b4
+    out[n + 3] = ((c1 * 256 + c2) * 256 + c3) * 256 + c4
+    out[n + 4], out[n + 5] = f, d1 * 256 + d2
+    n = n + 5
+  end
+  return out
+end
+local keys, fig, alist = cut(ARGV[10]), figures(ARGV[11]), cut(ARGV[12])
 local min_size, link_size, min_authors = tonumber(ARGV[3]), tonumber(ARGV[4]), tonumber(ARGV[5])
 local peak_ratio, burst_ratio = tonumber(ARGV[6]), tonumber(ARGV[7])
 local window, history_s = tonumber(ARGV[8]), tonumber(ARGV[9])
@@ -395,6 +409,10 @@ return out
 """
 
 
+# a bucket's figures as the band script reads them (15 bytes, big-endian, packed)
+_FIGURES = np.dtype([("hits", ">u4"), ("new", ">u4"), ("lean", ">u4"), ("flags", "u1"), ("authors", ">u2")])
+
+
 def _sha(body: str) -> str:
     return hashlib.sha1(body.encode()).hexdigest()
 
@@ -508,11 +526,12 @@ class RedisCampaignStore:
         for hits in bands:
             if not hits.keys.size:
                 continue
-            figures = np.column_stack((hits.counts, hits.new, hits.lean, hits.flags,
-                                       [len(a) // 8 for a in hits.authors])).astype(np.int64)
+            figures = np.empty(hits.keys.size, dtype=_FIGURES)
+            figures["hits"], figures["new"], figures["lean"] = hits.counts, hits.new, hits.lean
+            figures["flags"] = hits.flags
+            figures["authors"] = [len(a) // 8 for a in hits.authors]
             calls.append((hits.band, self.names.band(window, hits.band),
-                          [*common, hits.keys.astype(">u8").tobytes(), " ".join(map(str, figures.ravel().tolist())),
-                           b"".join(hits.authors)]))
+                          [*common, hits.keys.astype(">u8").tobytes(), figures.tobytes(), b"".join(hits.authors)]))
 
         def build():
             pipe = self.client.pipeline(transaction=False)
