@@ -28,7 +28,7 @@ class MemoryCampaignStore:
 
     # -- the batch -------------------------------------------------------------------------
 
-    def open_batch(self, window, *, now, offsets, authors, sites, author_ttl):
+    def open_batch(self, window, *, now, offsets, authors, sites, author_ttl, since=True, active=True):
         cur = self.sightings.get((window.tag, window.slot), [])
         prev = self.sightings.get((window.tag, window.slot - 1), [])
         got = (list(cur[offsets[0]:]), list(prev[offsets[1]:]))
@@ -41,9 +41,12 @@ class MemoryCampaignStore:
                 here[a] = before.get(a, int(now))
             first_seen.append(here[a])
         site_since = {site: self.sites.setdefault(site, int(now)) for site in sites}
-        since = self.since.setdefault(window.tag, int(now))
-        return Opening(since=float(since), active=set(self.active), sightings=got, first_seen=first_seen,
-                       site_since=site_since)
+        start = self.since.setdefault(window.tag, int(now))
+        return Opening(since=float(start) if since else None, active=set(self.active) if active else None,
+                       sightings=got, first_seen=first_seen, site_since=site_since)
+
+    def active_campaigns(self):
+        return set(self.active)
 
     def observe_bands(self, window, *, rules, history_s, slot_ttl, history_ttl, firsts, bands):
         cur = self.sightings.setdefault((window.tag, window.slot), [])

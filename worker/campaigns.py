@@ -315,6 +315,7 @@ class CampaignPolicy:
         self._first_seen: dict[bytes, int] = {}
         self._first_seen_generation = None
         self._site_since: dict[str, int] = {}
+        self._since: float | None = None  # when the detector first ran with this scheme
 
     def apply(self, state, comments: Sequence, scores: Sequence[float], decisions: list[Decision]) -> list[Decision]:
         """Members the model would publish are held (rule ``campaign``); every member's decision names its campaign.
@@ -375,7 +376,10 @@ class CampaignPolicy:
         ask_sites = [s for s in dict.fromkeys(sites) if s not in self._site_since]
         opening = store.open_batch(window, now=now, offsets=(self._sightings.offset(slot),
                                                              self._sightings.offset(slot - 1)),
-                                   authors=b"".join(ask), sites=ask_sites, author_ttl=2 * self._author_generation_s())
+                                   authors=b"".join(ask), sites=ask_sites, author_ttl=2 * self._author_generation_s(),
+                                   since=self._since is None, active=bool(self._links))
+        if opening.since is not None:  # the scheme's start never changes: read once
+            self._since = opening.since
         self._first_seen.update(zip(ask, opening.first_seen))
         self._site_since.update(opening.site_since)
         self._sightings.add(slot, opening.sightings[0])
@@ -386,7 +390,7 @@ class CampaignPolicy:
         known, skip, weights = self._known_members(keys, hit, now)
         hit[skip] = False  # hits this worker leaves uncounted
         firsts = flat[first_places[~in_cur[first_places]]]  # first sightings in this slot, once each
-        history_s = max(now - max(opening.since, self._history_start(now)) - self.window_s, float(self.window_s))
+        history_s = max(now - max(self._since, self._history_start(now)) - self.window_s, float(self.window_s))
         observed = Observed()
         if hit.any() or firsts.size:
             lean = self._lean_rows(eligible, sites, scores)
@@ -510,10 +514,11 @@ class CampaignPolicy:
 
 
     def _decide(self, store: CampaignStore, window: Window, comments, eligible, keys, known: dict[int, str],
-                active: set[str], observed: Observed, history_s: float, now: float) -> dict[int, str]:
+                active: set[str] | None, observed: Observed, history_s: float, now: float) -> dict[int, str]:
         if not observed.buckets and not known and not observed.linked:  # the usual batch: nothing dense and bursty
             return {}
-        active = set(active)
+        # read with the batch when this worker knows links (it will need them), else only now
+        active = set(active) if active is not None else store.active_campaigns()
         members: dict[int, str] = {}
         for row, campaign in known.items():
             if campaign in active:

@@ -141,8 +141,8 @@ class BandHits:
 class Opening:
     """What :meth:`CampaignStore.open_batch` found."""
 
-    since: float                      # when the detector first ran with this scheme
-    active: set[str]                  # the active campaigns' ids
+    since: float | None               # when the detector first ran with this scheme (None: not asked)
+    active: set[str] | None           # the active campaigns' ids (None: not asked)
     sightings: tuple[list, list]      # entries added to this and the previous slot's lists since the offsets
     first_seen: list[int]             # per author asked: its first sighting (epoch seconds)
     site_since: dict[str, int]        # per site asked: when the detector first saw it
@@ -163,9 +163,13 @@ class CampaignStore(Protocol):
     """Where campaign detection keeps its shared state (see the module doc for the Redis layout)."""
 
     def open_batch(self, window: Window, *, now: float, offsets: tuple[int, int], authors: bytes,
-                   sites: Sequence[str], author_ttl: int) -> Opening:
+                   sites: Sequence[str], author_ttl: int, since: bool = True, active: bool = True) -> Opening:
         """Read the sightings added since ``offsets``; the first sightings of ``authors`` (8-byte keys) and of
-        ``sites``, recording ``now`` for those seen first; the scheme's start; the active campaigns."""
+        ``sites``, recording ``now`` for those seen first; if asked, the scheme's start (recording ``now`` if
+        it has none) and the active campaigns."""
+
+    def active_campaigns(self) -> set[str]:
+        """The active campaigns' ids."""
 
     def observe_bands(self, window: Window, *, rules: BucketRules, history_s: float, slot_ttl: int,
                       history_ttl: int, firsts: bytes, bands: Sequence[BandHits]) -> Observed:
@@ -492,7 +496,7 @@ class RedisCampaignStore:
     # -- the batch -------------------------------------------------------------------------
 
     def open_batch(self, window: Window, *, now: float, offsets: tuple[int, int], authors: bytes,
-                   sites: Sequence[str], author_ttl: int) -> Opening:
+                   sites: Sequence[str], author_ttl: int, since: bool = True, active: bool = True) -> Opening:
         cur, prev = self.names.sightings(window)
         since_key = self.names.since(window)
         asked = bool(authors) or bool(sites)
@@ -501,21 +505,32 @@ class RedisCampaignStore:
             pipe = self.client.pipeline(transaction=False)
             pipe.lrange(cur, offsets[0], -1)
             pipe.lrange(prev, offsets[1], -1)
-            pipe.set(since_key, int(now), nx=True)
-            pipe.get(since_key)
-            pipe.hkeys(self.names.records["active"])
+            if since:
+                pipe.set(since_key, int(now), nx=True)
+                pipe.get(since_key)
+            if active:
+                pipe.hkeys(self.names.records["active"])
             if asked:
                 self._call(pipe, self._authors, self.names.authors(window),
                            [f"{now:.3f}", author_ttl, authors, *sites])
             return pipe
 
-        got_cur, got_prev, _, since, active, *firsts = self._execute(build)
-        first_seen, site_since = [], {}
+        replies = self._execute(build)
+        out = Opening(since=None, active=None, sightings=(replies[0], replies[1]), first_seen=[], site_since={})
+        at = 2
+        if since:
+            out.since = float(replies[at + 1]) if replies[at + 1] is not None else now
+            at += 2
+        if active:
+            out.active = {_text(a) for a in replies[at]}
+            at += 1
         if asked:
-            first_seen = [int(v) for v in firsts[0][0].split()]
-            site_since = dict(zip(sites, (int(v) for v in firsts[0][1].split())))
-        return Opening(since=float(since) if since is not None else now, active={_text(a) for a in active},
-                       sightings=(got_cur, got_prev), first_seen=first_seen, site_since=site_since)
+            out.first_seen = [int(v) for v in replies[at][0].split()]
+            out.site_since = dict(zip(sites, (int(v) for v in replies[at][1].split())))
+        return out
+
+    def active_campaigns(self) -> set[str]:
+        return {_text(a) for a in self.client.hkeys(self.names.records["active"])}
 
     def observe_bands(self, window: Window, *, rules: BucketRules, history_s: float, slot_ttl: int,
                       history_ttl: int, firsts: bytes, bands: Sequence[BandHits]) -> Observed:
