@@ -623,7 +623,8 @@ class RedisCampaignStore:
         return read_campaigns(self.client, self.keys)
 
 
-def end_idle_campaigns(client, keys: Keys, *, now: float, window_s: int, events_maxlen: int = EVENTS_MAXLEN) -> list[dict]:
+def end_idle_campaigns(client, keys: Keys, *, now: float, window_s: int,
+                       events_maxlen: int = EVENTS_MAXLEN) -> list[dict]:
     """End the campaigns with no new member for ``window_s``; returns their ``campaign_end`` data.
 
     Safe to run from every process: the HDEL that removes a campaign decides

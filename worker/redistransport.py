@@ -132,7 +132,8 @@ class RedisStreamSink:
 
 
 class RedisState:
-    """The state port of the batch policies, on Redis: ``campaigns`` is a :class:`worker.campaignstore.RedisCampaignStore`.
+    """The state port of the batch policies, on Redis: ``campaigns`` is a
+    :class:`worker.campaignstore.RedisCampaignStore`.
 
     :meth:`guard` turns a lost connection during a policy into a
     :class:`TransientError`, so that the batch is read again; any other error
