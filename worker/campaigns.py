@@ -11,8 +11,8 @@ For each batch, :class:`CampaignPolicy`:
    family and every worker computes the same shingles;
 2. computes their MinHash signatures and LSH band keys (:mod:`model.minhash`);
    a band key names a *bucket*, a family of comments that agree on that band;
-3. reads what other workers saw since its last batch and records the batch's
-   authors (one round trip), finds which band keys were seen before in the
+3. reads what other workers saw since its last batch and the first sightings
+   of the authors and sites it does not know yet (one round trip), finds which band keys were seen before in the
    window in its own copy of the recent sightings (:class:`Sightings`),
    groups the batch's hits by bucket (a bucket once per batch, with counts),
    and sends them with the batch's first sightings in one more round trip,
