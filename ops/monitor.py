@@ -30,7 +30,7 @@ from ops.cusum import WaveParams
 from ops.httpserver import MetricsServer, redis_model_ready
 from ops.metrics import OTHER, RETRAIN_OUTCOMES, PrometheusObserver, build_metrics
 from ops.waves import WaveDetector, read_active
-from worker.campaigns import end_idle_campaigns, read_campaigns
+from worker.campaignstore import end_idle_campaigns, read_campaigns
 from worker.events import parse_event, read_events
 
 log = logging.getLogger("seawall.monitor")

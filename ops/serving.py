@@ -133,7 +133,7 @@ def campaign_policy(config: Config, *, clock=time.time):
 
     w = config.waves
     return CampaignPolicy(
-        keys=config.keys, hasher=MinHasher(num_perm=w.campaign_perm, shingle=w.campaign_shingle),
+        hasher=MinHasher(num_perm=w.campaign_perm, shingle=w.campaign_shingle),
         bands=w.campaign_bands, min_size=w.campaign_min_size, min_authors=w.campaign_min_authors,
         window_s=w.campaign_window_s, min_words=w.campaign_min_words, hold=w.campaign_hold,
         baseline_days=w.campaign_baseline_days, burst_ratio=w.campaign_burst_ratio, peak_ratio=w.campaign_peak_ratio,

@@ -16,7 +16,7 @@ from redis.exceptions import ResponseError
 
 from ops.times import age, clock
 from ops.waves import read_active
-from worker.campaigns import read_campaigns
+from worker.campaignstore import read_campaigns
 from worker.events import Event, parse_event
 from worker.rates import rate_counts, read_minutes
 from worker.settings import Keys

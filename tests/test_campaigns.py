@@ -7,8 +7,10 @@ import pytest
 
 from kit import Clock
 from model.minhash import MinHasher
-from worker.campaigns import CampaignPolicy, end_idle_campaigns, read_campaigns
+from worker.campaigns import CampaignPolicy
+from worker.campaignstore import CampaignKeys, RedisCampaignStore, end_idle_campaigns, read_campaigns
 from worker.events import parse_event
+from worker.redistransport import RedisState
 from worker.routing import Decision
 from worker.settings import Keys
 from worker.validation import Comment
@@ -29,14 +31,18 @@ def ordinary_text(rng):
     return " ".join(rng.choice(FILLER, size=18))
 
 
-def policy_actions(p, client, batch, scores, actions):
+def policy_actions(p, client, batch, scores, actions, keys=KEYS):
     """What policy ``p`` does to routing's ``actions`` (decisions in and out, as the worker calls it)."""
-    return [d.action for d in p.apply(client, batch, scores, [Decision(a) for a in actions])]
+    return [d.action for d in p.apply(RedisState(client, keys), batch, scores, [Decision(a) for a in actions])]
+
+
+def store(client, keys=KEYS):
+    return RedisCampaignStore(client, keys)
 
 
 def policy(clock, **kwargs):
     """The default policy, except no warm-up: every author is new to a site the test has just opened."""
-    defaults = dict(keys=KEYS, hasher=MinHasher(num_perm=32, shingle=3), bands=16, min_size=10,
+    defaults = dict(hasher=MinHasher(num_perm=32, shingle=3), bands=16, min_size=10,
                     min_authors=3, window_s=600, min_words=6, hold=True, warmup_s=0, clock=clock)
     defaults.update(kwargs)
     return CampaignPolicy(**defaults)
@@ -128,9 +134,8 @@ def test_short_comments_are_never_members(fake_redis):
     p = policy(clock)
     assert policy_actions(p, fake_redis, batch, [0.1] * 30, ["publish"] * 30) == ["publish"] * 30
     # no band state; their authors are recorded (a regular who only ever says thanks is still a regular)
-    assert not fake_redis.keys(f"seawall:campaigns:{p.tag}:seen:*")
-    assert not fake_redis.keys(f"seawall:campaigns:{p.tag}:buckets:*")
-    assert fake_redis.keys("seawall:campaigns:authors:*")
+    assert not fake_redis.keys(f"seawall:campaigns:{{{p.tag}:*")
+    assert fake_redis.keys("seawall:campaigns:{authors}:*")
 
 
 def test_idle_campaigns_end_once(fake_redis):
@@ -202,10 +207,11 @@ def test_comments_with_no_near_duplicate_cost_no_bucket_of_their_own(shared_redi
     texts = [" ".join(rng.choice(vocab, size=30)) for _ in range(200)]
     p = policy(Clock())
     policy_actions(p, shared_redis, comments(texts), [0.1] * 200, ["publish"] * 200)
-    seen, _prev, buckets, *_ = p.state_keys(p.clock())
-    band_state = sorted(k.decode() for k in shared_redis.keys(f"seawall:campaigns:{p.tag}:*"))
+    names, window = CampaignKeys(KEYS), p.window(p.clock())
+    seen = names.sightings(window)[0]
+    band_state = sorted(k.decode() for k in shared_redis.keys(f"seawall:campaigns:*{p.tag}*"))
     assert band_state == sorted([seen, f"seawall:campaigns:{p.tag}:since"]), band_state
-    assert not shared_redis.exists(buckets)
+    assert not any(shared_redis.exists(names.band(window, b)[0]) for b in range(p.bands))
     (entry,) = shared_redis.lrange(seen, 0, -1)  # one string of 8-byte band keys per batch
     assert len(entry) == 8 * len(set(np.asarray(p.band_keys(texts)[1]).ravel().tolist())) > 8 * 200 * 15
     assert 0 < shared_redis.ttl(seen) <= 600 + 1  # until the end of the next half-window slot, plus 1 s
@@ -216,12 +222,13 @@ def test_a_sighting_by_another_worker_counts_from_the_next_batch(fake_redis):
     clock = Clock()
     a, b = policy(clock), policy(clock)
     rng = np.random.default_rng(5)
-    b.observe(fake_redis, comments([ordinary_text(rng)], start=0))  # b has read this slot before a's sighting
-    a.observe(fake_redis, comments([campaign_text(1)], start=1))
-    buckets = a.state_keys(clock())[2]
-    assert not fake_redis.exists(buckets)  # a first sighting: no bucket yet
-    b.observe(fake_redis, comments([campaign_text(2)], start=2))
-    assert fake_redis.hlen(buckets) >= 8  # b found a's band keys: a bucket per shared band (and its authors)
+    b.observe(store(fake_redis), comments([ordinary_text(rng)], start=0))  # b has read this slot before a's sighting
+    a.observe(store(fake_redis), comments([campaign_text(1)], start=1))
+    names, window = CampaignKeys(KEYS), a.window(clock())
+    buckets = [names.band(window, band)[0] for band in range(a.bands)]
+    assert not fake_redis.exists(*buckets)  # a first sighting: no bucket yet
+    b.observe(store(fake_redis), comments([campaign_text(2)], start=2))
+    assert fake_redis.exists(*buckets) >= 8  # b found a's band keys: a bucket in each band they share
 
 
 def test_near_duplicates_either_side_of_a_slot_boundary_all_count(fake_redis):
@@ -255,7 +262,7 @@ def test_a_worker_keeps_the_members_of_a_campaign_it_knows_across_slots():
     assert out == ["hold"] * 3
     assert read_campaigns(fake, KEYS)[cid]["members"] == 14 + 3  # the ten that made it, four more, three here
     # and those members linked their buckets of this slot: a worker that has learnt nothing finds it there
-    assert policy(clock).observe(fake, comments([campaign_text(17)], start=200)) == {0: cid}
+    assert policy(clock).observe(store(fake), comments([campaign_text(17)], start=200)) == {0: cid}
 
 
 # --- spelling tricks ---------------------------------------------------------------------------
@@ -406,11 +413,11 @@ def test_an_author_stays_known_across_author_generations(fake_redis):
     generation_s = 30 * 86_400
     start = (1_800_000_000 // generation_s + 1) * generation_s - 3600  # an hour before a generation ends
     p.clock.t = start
-    p.observe(fake_redis, comments(["an ordinary first comment from a regular of the site"], authors=["ana"]))
+    p.observe(store(fake_redis), comments(["an ordinary first comment from a regular of the site"], authors=["ana"]))
     p.clock.t = start + 7200  # the next generation
-    p.observe(fake_redis, comments(["an ordinary second comment from the same regular of the site"],
+    p.observe(store(fake_redis), comments(["an ordinary second comment from the same regular of the site"],
                                    authors=["ana"]))
-    cur, prev = p.state_keys(p.clock.t)[4:6]
+    cur, prev = CampaignKeys(KEYS).authors(p.window(p.clock.t))[:2]
     assert cur != prev and fake_redis.hlen(cur) == 1
     assert int(fake_redis.hvals(cur)[0]) == int(start)  # the first sighting, carried over
 
@@ -438,14 +445,28 @@ def test_the_score_lean_signal_against_the_sites_baseline(lean, fake_redis):
 
 # --- Redis: every key in KEYS, named by Keys ------------------------------------------------------
 
-def test_the_script_touches_only_the_keys_it_is_given(redis_server):
-    """MONITOR shows each command the script runs; every key is one of its KEYS, all under the prefix."""
+def recording_script_keys(monkeypatch) -> list[list[str]]:
+    """Every script call's KEYS, as the Redis store queues them."""
+    calls = []
+    queue = RedisCampaignStore._call
+
+    def record(self, pipe, script, keys, args):
+        calls.append(list(keys))
+        return queue(self, pipe, script, keys, args)
+
+    monkeypatch.setattr(RedisCampaignStore, "_call", record)
+    return calls
+
+
+def test_the_scripts_touch_only_the_keys_they_are_given(redis_server, monkeypatch):
+    """MONITOR shows each command a script runs; every key is one of the KEYS it was given, all under the prefix."""
     import threading
 
     keys = Keys(prefix="{site-a}:")
     client = redis_server.client()
     clock = Clock()
-    p = policy(clock, keys=keys)
+    p = policy(clock)
+    calls = recording_script_keys(monkeypatch)
     seen_lines = []
     ready = threading.Event()
 
@@ -461,14 +482,14 @@ def test_the_script_touches_only_the_keys_it_is_given(redis_server):
     thread.start()
     ready.wait(5)
     texts = [campaign_text(i) for i in range(30)]
-    policy_actions(p, client, comments(texts), [0.1] * 30, ["publish"] * 30)
+    policy_actions(p, client, comments(texts), [0.1] * 30, ["publish"] * 30, keys=keys)
     clock.t += 400  # a new slot: buckets carried over, history folded
-    policy_actions(p, client, comments(texts, start=100), [0.1] * 30, ["publish"] * 30)
-    script_keys = set(p.state_keys(clock.t)) | set(p.state_keys(clock.t - 400))
+    policy_actions(p, client, comments(texts, start=100), [0.1] * 30, ["publish"] * 30, keys=keys)
     client.get("stop-watching")
     thread.join(10)
+    script_keys = {k for call in calls for k in call}
     in_script = [line for line in seen_lines if line.get("client_type") == "lua"]
-    assert len(in_script) > 10
+    assert len(in_script) > 10 and len(calls) > 16
     for line in in_script:
         command = line["command"].split()
         if command[0].upper() in ("HMGET", "HSET", "HSETNX", "HINCRBY", "HKEYS", "LRANGE", "RPUSH", "EXPIRE", "SET",
@@ -478,6 +499,97 @@ def test_the_script_touches_only_the_keys_it_is_given(redis_server):
     assert all(k.startswith(b"{site-a}:") for k in client.keys("*"))
 
 
+def test_each_script_call_stays_on_one_cluster_slot(fake_redis, monkeypatch):
+    """Cluster-ready keys: each call's KEYS share one hash slot (the slot function is redis-py's, as a Redis
+    Cluster computes it: CRC16 of the hash tag), and the bands' buckets spread over several slots."""
+    from redis.cluster import key_slot
+
+    calls = recording_script_keys(monkeypatch)
+    clock = Clock()
+    p = policy(clock)
+    texts = [campaign_text(i) for i in range(30)]
+    policy_actions(p, fake_redis, comments(texts), [0.1] * 30, ["publish"] * 30)
+    clock.t += 400
+    policy_actions(p, fake_redis, comments(texts, start=100), [0.1] * 30, ["publish"] * 30)
+    assert len(calls) >= 2 * p.bands + 1  # the authors (new ones, the first time) and one call per band, twice
+    slots = [{key_slot(k.encode()) for k in call} for call in calls]
+    assert all(len(s) == 1 for s in slots), [c for c, s in zip(calls, slots) if len(s) > 1]
+    band_slots = {key_slot(CampaignKeys(KEYS).band(p.window(clock.t), band)[0].encode()) for band in range(p.bands)}
+    assert len(band_slots) >= p.bands // 2
+    assert all(k.startswith("seawall:campaigns:") for call in calls for k in call)  # the prefix leads (ACL ~seawall:*)
+
+
 def test_scores_must_match_the_comments(fake_redis):
     with pytest.raises(ValueError, match="2 scores for 1 comments"):
-        policy(Clock()).observe(fake_redis, comments([campaign_text(0)]), [0.1, 0.2])
+        policy(Clock()).observe(store(fake_redis), comments([campaign_text(0)]), [0.1, 0.2])
+
+
+# --- the port: the policy on an in-memory store -----------------------------------------------------
+
+class MemoryState:
+    """A :class:`worker.policies.PolicyState` on the in-memory store (nothing to guard)."""
+
+    def __init__(self, campaigns):
+        self.campaigns = campaigns
+
+    def guard(self):
+        import contextlib
+
+        return contextlib.nullcontext()
+
+
+def test_the_policy_finds_a_campaign_through_an_in_memory_store():
+    """The seam: two workers share a store that is not Redis, and find the campaign neither sees alone."""
+    from campaign_fake import MemoryCampaignStore
+    from worker.policies import PolicyState, apply_policies
+
+    memory = MemoryCampaignStore()
+    state = MemoryState(memory)
+    assert isinstance(state, PolicyState)
+    clock = Clock()
+    a, b = policy(clock), policy(clock)
+    rng = np.random.default_rng(0)
+    actions = []
+    for i in range(16):
+        clock.t += 5
+        batch = comments([campaign_text(i), ordinary_text(rng)], start=10 * i)
+        decisions = apply_policies([(a, b)[i % 2]], state, batch, [0.1, 0.1], [Decision("publish")] * 2)
+        actions.append([d.action for d in decisions])
+    assert [kind for kind, _ in memory.events] == ["campaign_start"]
+    assert all(acts[1] == "publish" for acts in actions)
+    first_held = next(i for i, acts in enumerate(actions) if acts[0] == "hold")
+    assert 9 <= first_held <= 13 and all(acts[0] == "hold" for acts in actions[first_held:])
+    (cid,) = memory.read_active()
+    assert memory.read_active()[cid]["members"] >= 10
+    clock.t += 700
+    assert [e["id"] for e in memory.end_idle(now=clock.t, window_s=600)] == [cid] and not memory.read_active()
+
+
+def test_the_in_memory_store_and_the_redis_store_agree(fake_redis):
+    """The same batches through the same policy settings give the same members and campaigns on either store."""
+    from campaign_fake import MemoryCampaignStore
+
+    memory, redis_store = MemoryCampaignStore(), store(fake_redis)
+    clock = Clock(1_800_000_000.0)
+    on_memory, on_redis = policy(clock, min_size=6), policy(clock, min_size=6)
+    rng = np.random.default_rng(7)
+    for i in range(40):
+        clock.t += 23  # crosses slots (300 s): carried-in buckets and history
+        texts = [campaign_text(i), campaign_text(i + 50), ordinary_text(rng)]
+        batch = comments(texts, start=10 * i, authors=[f"u{i}", f"v{i % 5}", f"w{i}"])
+        scores = [0.9, 0.2, 0.1]
+        assert on_memory.observe(memory, batch, scores) == on_redis.observe(redis_store, batch, scores), i
+    assert memory.read_active().keys() == read_campaigns(fake_redis, KEYS).keys() != set()
+    assert {c: d["members"] for c, d in memory.read_active().items()} == \
+        {c: d["members"] for c, d in read_campaigns(fake_redis, KEYS).items()}
+
+
+def test_a_server_that_lost_its_scripts_gets_them_again(fake_redis):
+    """After a restart without the scripts (SCRIPT FLUSH here), the next batch loads them and runs."""
+    clock = Clock()
+    p, s = policy(clock), store(fake_redis)
+    p.observe(s, comments([campaign_text(i) for i in range(5)]))
+    fake_redis.script_flush()
+    clock.t += 5
+    assert len(p.observe(s, comments([campaign_text(i) for i in range(5, 14)], start=5))) == 14 - 5
+    assert len(read_campaigns(fake_redis, KEYS)) == 1

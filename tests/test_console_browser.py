@@ -39,7 +39,7 @@ from ops.registry import Registry
 from ops.retrain import last_reports
 from ops.lab.scenario import Scenario
 from servers import RedisServer, free_port, require
-from worker.campaigns import read_campaigns
+from worker.campaignstore import read_campaigns
 from worker.connection import connect as worker_connect
 
 pytestmark = [pytest.mark.redis_server, pytest.mark.slow]  # about a minute: a demo hour, then a browser

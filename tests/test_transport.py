@@ -167,17 +167,18 @@ def test_policies_see_the_state_port_and_a_lost_connection_retries_the_batch(fak
     seen = []
 
     class Looks:
-        def apply(self, client, comments, scores, decisions):
-            seen.append(client)
+        def apply(self, state, comments, scores, decisions):
+            seen.append(state.campaigns)
             return decisions
 
     class LosesRedis:
-        def apply(self, client, comments, scores, decisions):
+        def apply(self, state, comments, scores, decisions):
             raise redis.ConnectionError("gone")
 
     decisions = [Decision("publish", "model")]
-    state = RedisState(fake_redis)
-    assert apply_policies([Looks()], state, [None], [0.1], decisions) == decisions and seen == [fake_redis]
+    state = RedisState(fake_redis, KEYS)
+    assert apply_policies([Looks()], state, [None], [0.1], decisions) == decisions and seen == [state.campaigns]
+    assert not hasattr(state, "client")  # policies see the campaign store, never the client
     with pytest.raises(TransientError):
         apply_policies([LosesRedis()], state, [None], [0.1], decisions)
 
@@ -268,4 +269,4 @@ def test_the_composition_root_picks_the_transport_from_the_config(fake_redis, ov
                        client=raw_stream_replies(fake_redis))
     assert type(c.source).__name__ == source and c.consumer == "w"
     assert [type(p).__name__ for p in c.policies] == ["CampaignPolicy"]  # built here, not by the monitor
-    assert isinstance(c.state, RedisState) and c.state.client is c.sink.client
+    assert isinstance(c.state, RedisState) and c.state.campaigns.client is c.sink.client

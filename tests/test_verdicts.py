@@ -142,7 +142,7 @@ def test_the_worker_explains_a_campaign_hold_with_spamward_tokens(fake_redis, qu
     class EveryOtherIsAMember(CampaignPolicy):
         """The detection is another test's subject: here every other comment is a member."""
 
-        def observe(self, client, comments, scores=None):
+        def observe(self, store, comments, scores=None):
             return {i: "camp-7" for i in range(0, len(comments), 2)}
 
     from model.minhash import MinHasher
@@ -151,7 +151,7 @@ def test_the_worker_explains_a_campaign_hold_with_spamward_tokens(fake_redis, qu
     texts = [c.text for c in CommunityScenario("lc", seed=6).ordinary(10)]
     for i, text in enumerate(texts):
         client.xadd(KEYS.comments, {"id": f"c{i}", "text": text, "site": "a.example"})
-    policy = EveryOtherIsAMember(keys=KEYS, hasher=MinHasher(num_perm=64, shingle=3))
+    policy = EveryOtherIsAMember(hasher=MinHasher(num_perm=64, shingle=3))
     consumer = redis_consumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, overlap_commit=False),
                               model_source=StaticModelSource(model=quay_model), consumer="w", policies=[policy])
     consumer.prepare()
@@ -176,16 +176,20 @@ def test_a_campaign_keeps_the_models_reject_and_names_itself():
     from worker.campaigns import CampaignPolicy
 
     class AllMembers(CampaignPolicy):
-        def observe(self, client, comments, scores=None):
+        def observe(self, store, comments, scores=None):
             return {i: "camp-9" for i in range(len(comments))}
 
-    policy = AllMembers(keys=KEYS, hasher=MinHasher(num_perm=64, shingle=3))
-    got = policy.apply(None, [{}, {}, {}], [0.1, 0.7, 0.99],
+    class NoState:
+        campaigns = None  # AllMembers reads no state
+
+    NO_STATE = NoState()
+    policy = AllMembers(hasher=MinHasher(num_perm=64, shingle=3))
+    got = policy.apply(NO_STATE, [{}, {}, {}], [0.1, 0.7, 0.99],
                        [Decision("publish"), Decision("hold"), Decision("reject", "site")])
     assert got == [Decision("hold", "campaign", "camp-9"), Decision("hold", "model", "camp-9"),
                    Decision("reject", "site", "camp-9")]
-    quiet = AllMembers(keys=KEYS, hasher=MinHasher(num_perm=64, shingle=3), hold=False)
-    assert quiet.apply(None, [{}], [0.1], [Decision("publish")]) == [Decision("publish", "model", "camp-9")]
+    quiet = AllMembers(hasher=MinHasher(num_perm=64, shingle=3), hold=False)
+    assert quiet.apply(NO_STATE, [{}], [0.1], [Decision("publish")]) == [Decision("publish", "model", "camp-9")]
 
 
 # --- one set of settings for every path ---------------------------------------------------------------------------

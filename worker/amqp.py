@@ -337,6 +337,6 @@ def amqp_consumer(*, client, amqp: AmqpSettings, keys: Keys, settings: WorkerSet
     return StreamConsumer(
         source=AmqpSource(settings=amqp, worker=settings, consumer=consumer),
         sink=AmqpSink(client=client, keys=keys, settings=settings, queue=amqp.queue),
-        state=RedisState(client),
+        state=RedisState(client, keys),
         keys=keys, settings=settings, model_source=model_source, observer=observer, policies=policies, clock=clock,
     )

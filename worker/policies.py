@@ -7,9 +7,10 @@ the decision's ``rule`` (campaign detection holds members of an active
 near-duplicate campaign with rule ``campaign`` and the campaign's id).
 
 Policies keep their state through a :class:`PolicyState` port, whatever
-transport the comments came by: its ``client`` is the state store (Redis), and
-its ``guard()`` turns a lost connection into a :class:`worker.transport.TransientError`
-so that the batch is read again.  A policy's writes are not part of the
+transport the comments came by, and never see a client: its ``campaigns`` is
+the campaign state (a :class:`worker.campaignstore.CampaignStore`), and its
+``guard()`` turns a lost connection to the state store into a
+:class:`worker.transport.TransientError` so that the batch is read again.  A policy's writes are not part of the
 comments' exactly-once commit, so they must be safe to repeat (SET with TTL,
 set adds, counters that tolerate a rare double count).
 """
@@ -19,6 +20,7 @@ import logging
 from collections.abc import Sequence
 from typing import Protocol, runtime_checkable
 
+from worker.campaignstore import CampaignStore
 from worker.routing import Decision
 from worker.transport import TransientError
 
@@ -29,14 +31,14 @@ log = logging.getLogger("seawall.worker.policies")
 class PolicyState(Protocol):
     """Where batch policies keep their state (see :class:`worker.redistransport.RedisState`)."""
 
-    client: object
+    campaigns: CampaignStore
 
     def guard(self): ...
 
 
 @runtime_checkable
 class BatchPolicy(Protocol):
-    def apply(self, client, comments: Sequence, scores: Sequence[float],
+    def apply(self, state: PolicyState, comments: Sequence, scores: Sequence[float],
               decisions: list[Decision]) -> list[Decision]: ...
 
 
@@ -52,7 +54,7 @@ def apply_policies(policies: Sequence[BatchPolicy], state: PolicyState, comments
     for policy in policies:
         try:
             with state.guard():
-                proposed = policy.apply(state.client, comments, scores, list(decisions))
+                proposed = policy.apply(state, comments, scores, list(decisions))
         except TransientError:
             raise
         except Exception:  # a policy's bug: keep routing's decisions, say so loudly

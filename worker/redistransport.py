@@ -21,6 +21,7 @@ from collections.abc import Sequence
 
 import redis
 
+from worker.campaignstore import RedisCampaignStore
 from worker.commit import BatchCommitter, Limits as CommitLimits
 from worker.groupreader import GroupReader
 from worker.settings import Keys, WorkerSettings
@@ -243,15 +244,16 @@ class RedisStreamSink:
 
 
 class RedisState:
-    """The state port of the batch policies: the Redis client they keep their state in.
+    """The state port of the batch policies, on Redis: ``campaigns`` is a
+    :class:`worker.campaignstore.RedisCampaignStore`.
 
     :meth:`guard` turns a lost connection during a policy into a
     :class:`TransientError`, so that the batch is read again; any other error
     stays a policy bug (logged, decisions kept).
     """
 
-    def __init__(self, client):
-        self.client = client
+    def __init__(self, client, keys: Keys):
+        self.campaigns = RedisCampaignStore(client, keys)
 
     @contextlib.contextmanager
     def guard(self):
@@ -282,7 +284,7 @@ def redis_consumer(*, client, keys: Keys, settings: WorkerSettings, model_source
     return StreamConsumer(
         source=RedisStreamSource(client=client, keys=keys, settings=settings, consumer=name, leases=leases),
         sink=RedisStreamSink(client=client, keys=keys, settings=settings, consumer=name),
-        state=RedisState(client),
+        state=RedisState(client, keys),
         keys=keys, settings=settings, model_source=model_source, observer=observer, policies=policies,
         clock=clock if clock is not None else time.time,
     )

@@ -37,8 +37,8 @@ off (``waves.campaign_warmup_s = 0``), so campaigns are found as they would
 be on a site the detector knows.  Each row gives the worker's CPU per comment
 (``process_time``), the Redis server's (``INFO cpu``) and the sum of
 ``INFO commandstats`` per comment (which counts the commands a script runs
-both in the script's time and on their own); these depend less on how busy a
-shared machine is than rates do.
+both in the script's time and on their own), with the commands that cost the
+most; these depend less on how busy a shared machine is than rates do.
 """
 from __future__ import annotations
 
@@ -127,6 +127,7 @@ def _throughput(url, prefix, model_path, comments, *, noop, campaigns, batch, bl
         h.wait_verdicts(len(comments), timeout_s=900)
         redis_usec = h.redis_cpu_usec() - redis_before
         commandstats_usec = commandstats_usec_total(h.client)
+        by_command = commandstats_by_command(h.client)
         (stats,) = h.stop()
         ids = h.verdict_ids()
         held = _count_actions(h)
@@ -134,6 +135,7 @@ def _throughput(url, prefix, model_path, comments, *, noop, campaigns, batch, bl
         return {"per_s": (len(ids) - 1) / span_s, "worker_cpu_us": stats["cpu_s"] / len(ids) * 1e6,
                 "redis_cpu_us": redis_usec / len(ids), "commandstats_us": commandstats_usec / len(ids),
                 "held_share": held / len(ids),
+                "commands_us": {k: round(v / len(ids), 2) for k, v in by_command.items()},
                 "peak_rss_mb": stats["peak_rss_mb"]}
     finally:
         if h.procs:
@@ -144,6 +146,15 @@ def _throughput(url, prefix, model_path, comments, *, noop, campaigns, batch, bl
 def commandstats_usec_total(client) -> float:
     """The sum of ``usec`` over ``INFO commandstats`` (a script's commands count twice: in it and alone)."""
     return float(sum(v.get("usec", 0) for v in client.info("commandstats").values() if isinstance(v, dict)))
+
+
+def commandstats_by_command(client, top: int = 6) -> dict[str, float]:
+    """The ``top`` commands by ``usec`` in ``INFO commandstats`` (EVALSHA holds every script call; the
+    commands a script runs are listed on their own too), in microseconds."""
+    stats = {k.removeprefix("cmdstat_"): float(v.get("usec", 0))
+             for k, v in client.info("commandstats").items() if isinstance(v, dict)}
+    stats = {k: v for k, v in stats.items() if not k.startswith(("config", "info"))}  # the bench's own
+    return dict(sorted(stats.items(), key=lambda kv: -kv[1])[:top])
 
 
 def _count_actions(h: Harness) -> int:
@@ -239,6 +250,7 @@ def _replay(url: str, board, comments, scores, overrides: dict, label: str) -> d
                       window_s=config.waves.campaign_window_s)
         redis_usec = _redis_cpu_usec(client) - cpu0
         stats_usec = commandstats_usec_total(client)
+        by_command = commandstats_by_command(client)
     finally:
         for key in client.scan_iter(match=config.keys.prefix + "*", count=1000):
             client.delete(key)
@@ -262,6 +274,7 @@ def _replay(url: str, board, comments, scores, overrides: dict, label: str) -> d
         f"{label}_replay_s": replay.seconds,
         f"{label}_redis_cpu_us": redis_usec / len(comments),
         f"{label}_commandstats_us": stats_usec / len(comments),
+        f"{label}_redis_commands_us": {k: round(v / len(comments), 2) for k, v in by_command.items()},
     } | ({"board_test_day_ham": day["ham"], "board_all_days_ham": whole["ham"]} if label == "blind" else {})
 
 
@@ -304,6 +317,7 @@ def _measure(url, model_path, bench, varied, args, overrides) -> dict:
         out[f"{name}_worker_cpu_us"] = r["worker_cpu_us"]
         out[f"{name}_redis_cpu_us"] = r["redis_cpu_us"]
         out[f"{name}_commandstats_us"] = r["commandstats_us"]
+        out[f"{name}_redis_commands_us"] = r["commands_us"]
         if not noop:  # the model holds some comments itself: compare with and without the policy
             out[f"{name}_held_share"] = r["held_share"]
         if campaigns:

@@ -46,7 +46,7 @@ from ops.console.queue import (
 from ops.registry import Registry, RegistryError
 from ops.watchview import age
 from worker import decisions
-from worker.campaigns import read_campaigns
+from worker.campaignstore import read_campaigns
 from worker.holdqueue import HeldComment, held_count, newest_held_at, read_held
 from worker.routing import parse_site_overrides
 

@@ -492,9 +492,10 @@ def play(client, policies: Sequence, comments: Sequence[BoardComment], scores: S
     """
     import time
 
-    from worker.campaigns import end_idle_campaigns
+    from worker.campaignstore import RedisCampaignStore
     from worker.events import read_events
 
+    store = RedisCampaignStore(client, keys)
     scores = [float(s) for s in scores]
     out = Replay(comments=list(comments))
     out.model_held = {c.id for c, s in zip(comments, scores) if s >= hold_threshold}
@@ -507,10 +508,10 @@ def play(client, policies: Sequence, comments: Sequence[BoardComment], scores: S
             j += 1
         if comments[j - 1].ts >= next_tick:  # what each serving process's monitor does every poll
             set_time(comments[j - 1].ts)
-            end_idle_campaigns(client, keys, now=comments[j - 1].ts, window_s=window_s)
+            store.end_idle(now=comments[j - 1].ts, window_s=window_s)
             next_tick = comments[j - 1].ts + 60.0
         set_time(comments[j - 1].ts)
-        members = policies[turn % len(policies)].observe(client, comments[i:j], scores[i:j])
+        members = policies[turn % len(policies)].observe(store, comments[i:j], scores[i:j])
         for k, campaign in members.items():
             out.members[comments[i + k].id] = campaign
         i, turn = j, turn + 1

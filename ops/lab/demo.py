@@ -54,7 +54,7 @@ from ops.retrain import retrain
 from ops.lab.scenario import SITES, Scenario, ScenarioComment
 from ops.serving import build_consumer, campaign_policy
 from ops.waves import WaveDetector
-from worker.campaigns import campaign_keys
+from worker.campaignstore import campaign_keys
 from worker.consumer import StreamConsumer
 from worker.events import read_events
 from worker.holdqueue import held_count, read_held
