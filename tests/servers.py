@@ -16,6 +16,7 @@ import time
 from pathlib import Path
 
 import pytest
+import redis
 
 
 def require(condition: bool, why: str) -> None:
@@ -260,3 +261,267 @@ class RabbitServer:
         import pika
 
         return pika.BlockingConnection(pika.URLParameters(self.url))
+
+
+def redis_cluster_missing() -> str | None:
+    """Why a Redis Cluster cannot be built here (a binary missing), or ``None``."""
+    missing = [b for b in ("redis-server", "redis-cli") if shutil.which(b) is None]
+    return f"{' and '.join(missing)} not on PATH" if missing else None
+
+
+class ClusterNode(RedisServer):
+    """One node of a :class:`RedisCluster`: a :class:`RedisServer` with cluster mode on.
+
+    The cluster bus listens on its own free port (``cluster-port``, Redis 7.0+):
+    the default, the data port + 10000, may be out of range for an ephemeral port.
+    The node's cluster config file (``nodes.conf``) lives in its own directory,
+    so a restart on the same port and directory rejoins the cluster as the same node.
+    """
+
+    def __init__(self, workdir: Path, *, node_timeout_ms: int, appendonly: bool = False):
+        super().__init__(workdir, appendonly=appendonly)
+        self.bus_port = free_port()
+        self.extra = ["--cluster-enabled", "yes", "--cluster-config-file", "nodes.conf",
+                      "--cluster-port", str(self.bus_port), "--cluster-node-timeout", str(node_timeout_ms),
+                      # a replica of a primary that died long ago may still take over (default 10x the timeout)
+                      "--cluster-replica-validity-factor", "0"]
+        self._node_id: str | None = None
+
+    @property
+    def address(self) -> str:
+        return f"{self.host}:{self.port}"
+
+    def alive(self) -> bool:
+        return self.proc is not None and self.proc.poll() is None
+
+    def node_id(self) -> str:
+        if self._node_id is None:
+            with self.client() as c:
+                self._node_id = c.execute_command("CLUSTER", "MYID").decode()
+        return self._node_id
+
+    def cluster_info(self) -> dict:
+        with self.client(socket_timeout=2) as c:
+            text = c.execute_command("CLUSTER", "INFO")
+        text = text.decode() if isinstance(text, bytes) else text
+        return dict(line.split(":", 1) for line in text.strip().splitlines() if ":" in line)
+
+
+class RedisCluster:
+    """A local Redis Cluster owned by tests: ``primaries`` primaries with ``replicas`` replicas each.
+
+    Every node is a ``redis-server`` on free loopback ports in its own directory
+    under ``workdir``; :meth:`start` joins them with
+    ``redis-cli --cluster create ... --cluster-replicas N --cluster-yes`` (which
+    gives each primary one contiguous, equal run of slots) and waits until every
+    node says ``cluster_state:ok`` and agrees on which node serves each slot.
+    The fault helpers follow the Redis cluster specification: a primary killed
+    with SIGKILL is replaced by its replica after ``cluster-node-timeout``
+    (:meth:`kill_primary`), a restarted node rejoins as a replica of its
+    successor (:meth:`restart`), and :meth:`move_slot` reshards one slot with
+    ``CLUSTER SETSLOT IMPORTING/MIGRATING``, ``MIGRATE`` and ``SETSLOT NODE``.
+    Every wait is bounded.
+    """
+
+    def __init__(self, workdir: Path, *, primaries: int = 3, replicas: int = 1, node_timeout_ms: int = 1000,
+                 appendonly: bool = False, settle_timeout_s: float = 60.0):
+        if primaries < 1 or replicas < 0:
+            raise ValueError(f"RedisCluster: need at least one primary, got {primaries} and {replicas} replicas")
+        self.workdir = Path(workdir)
+        self.replicas = replicas
+        self.node_timeout_ms = node_timeout_ms
+        self.settle_timeout_s = settle_timeout_s
+        self.nodes = [ClusterNode(self.workdir / f"node{i}", node_timeout_ms=node_timeout_ms, appendonly=appendonly)
+                      for i in range(primaries * (1 + replicas))]
+
+    # -- start and stop -----------------------------------------------------------------------
+
+    def start(self) -> "RedisCluster":
+        try:
+            for node in self.nodes:
+                node.start()
+            create = [shutil.which("redis-cli") or "redis-cli", "--cluster", "create",
+                      *[n.address for n in self.nodes], "--cluster-replicas", str(self.replicas), "--cluster-yes"]
+            done = subprocess.run(create, capture_output=True, text=True, timeout=self.settle_timeout_s)
+            if done.returncode != 0:
+                raise RuntimeError(f"redis-cli --cluster create failed ({done.returncode}):\n"
+                                   f"{done.stdout[-2000:]}\n{done.stderr[-2000:]}")
+            self.wait_ok()
+        except BaseException:
+            self.stop()
+            raise
+        return self
+
+    def stop(self) -> None:
+        """SIGTERM every node at once (a primary waits for its replicas on shutdown), then reap each."""
+        for node in self.live_nodes():
+            node.proc.send_signal(signal.SIGTERM)
+        for node in self.nodes:
+            node.stop()
+
+    @property
+    def url(self) -> str:
+        """A startup node's URL; the cluster client finds the others from it."""
+        return self.live_nodes()[0].url
+
+    def client(self, **kwargs):
+        """redis-py's cluster client (:class:`redis.cluster.RedisCluster`), from a live node's URL."""
+        from redis.cluster import RedisCluster as Client
+
+        return Client.from_url(self.url, **kwargs)
+
+    # -- what the nodes say -------------------------------------------------------------------
+
+    def live_nodes(self) -> list[ClusterNode]:
+        return [n for n in self.nodes if n.alive()]
+
+    def node_at(self, address: str) -> ClusterNode:
+        for node in self.nodes:
+            if node.address == address:
+                return node
+        raise KeyError(f"RedisCluster: no node at {address}")
+
+    def topology(self, via: ClusterNode | None = None) -> list[dict]:
+        """``CLUSTER NODES`` of one node, parsed: id, address, flags, primary id, slots (a list of ints)."""
+        via = via or self.live_nodes()[0]
+        with via.client(socket_timeout=2) as c:
+            text = c.execute_command("CLUSTER", "NODES")
+        text = text.decode() if isinstance(text, bytes) else text
+        rows = []
+        for line in text.strip().splitlines():
+            parts = line.split()
+            slots = []
+            for spec in parts[8:]:
+                if spec.startswith("["):
+                    continue  # a slot being imported or migrated
+                low, _, high = spec.partition("-")
+                slots.extend(range(int(low), int(high or low) + 1))
+            rows.append({"id": parts[0], "address": parts[1].split("@")[0], "flags": set(parts[2].split(",")),
+                         "primary": None if parts[3] == "-" else parts[3], "slots": slots})
+        return rows
+
+    def primaries(self) -> list[ClusterNode]:
+        """The live nodes that serve slots, by what a live node says, in slot order."""
+        rows = [r for r in self.topology() if "master" in r["flags"] and "fail" not in r["flags"] and r["slots"]]
+        rows.sort(key=lambda r: min(r["slots"]))
+        return [self.node_at(r["address"]) for r in rows]
+
+    def primary_of(self, slot: int) -> ClusterNode:
+        for row in self.topology():
+            if "master" in row["flags"] and "fail" not in row["flags"] and slot in row["slots"]:
+                return self.node_at(row["address"])
+        raise KeyError(f"RedisCluster: no live primary serves slot {slot}")
+
+    def replica_of(self, primary: ClusterNode) -> ClusterNode:
+        pid = primary.node_id()
+        for row in self.topology():
+            if row["primary"] == pid and "fail" not in row["flags"]:
+                return self.node_at(row["address"])
+        raise KeyError(f"RedisCluster: {primary.address} has no live replica")
+
+    def _settled(self) -> bool:
+        """Every live node says cluster_state:ok and maps all 16384 slots to the same nodes."""
+        views = []
+        for node in self.live_nodes():
+            try:
+                info = node.cluster_info()
+                if info.get("cluster_state") != "ok" or info.get("cluster_slots_ok") != "16384":
+                    return False
+                views.append(sorted((r["address"], tuple(r["slots"])) for r in self.topology(node)
+                                    if "master" in r["flags"] and r["slots"]))
+            except (OSError, ValueError, IndexError, redis.RedisError):
+                return False
+        return bool(views) and all(v == views[0] for v in views)
+
+    def wait_ok(self, timeout: float | None = None) -> None:
+        """Bounded wait until the cluster has settled (see :meth:`_settled`)."""
+        deadline = time.monotonic() + (timeout or self.settle_timeout_s)
+        while time.monotonic() < deadline:
+            if self._settled():
+                return
+            time.sleep(0.1)
+        states = {}
+        for node in self.live_nodes():
+            try:
+                states[node.address] = node.cluster_info().get("cluster_state")
+            except Exception as exc:  # noqa: BLE001 - a report of what each node says
+                states[node.address] = repr(exc)
+        raise TimeoutError(f"Redis Cluster not settled after {timeout or self.settle_timeout_s}s: {states}")
+
+    # -- faults -------------------------------------------------------------------------------
+
+    def kill_primary(self, primary: ClusterNode) -> ClusterNode:
+        """SIGKILL ``primary`` and wait (bounded) until its replica serves its slots; returns the replica."""
+        replica = self.replica_of(primary)
+        slots = set(next(r["slots"] for r in self.topology() if r["address"] == primary.address))
+        primary.kill()
+        deadline = time.monotonic() + self.settle_timeout_s
+        while time.monotonic() < deadline:
+            try:
+                row = next(r for r in self.topology(replica) if r["address"] == replica.address)
+                if "master" in row["flags"] and slots <= set(row["slots"]):
+                    break
+            except (OSError, redis.RedisError):
+                pass
+            time.sleep(0.05)
+        else:
+            raise TimeoutError(f"replica {replica.address} not promoted after {self.settle_timeout_s}s")
+        self.wait_ok()
+        return replica
+
+    def restart(self, node: ClusterNode) -> None:
+        """Start a stopped node again on its port and directory; it rejoins (a killed primary as a replica)."""
+        node.start()
+        deadline = time.monotonic() + self.settle_timeout_s
+        while time.monotonic() < deadline:
+            try:
+                row = next(r for r in self.topology(node) if r["address"] == node.address)
+                with node.client(socket_timeout=2) as c:
+                    link = c.info("replication").get("master_link_status")
+                if row["slots"] or ("slave" in row["flags"] and link == "up"):
+                    break
+            except (OSError, StopIteration, redis.RedisError):
+                pass
+            time.sleep(0.1)
+        else:
+            raise TimeoutError(f"{node.address} did not rejoin after {self.settle_timeout_s}s")
+        self.wait_ok()
+
+    def move_slot(self, slot: int, target: ClusterNode, *, keys_per_step: int = 10, pause_s: float = 0.0) -> int:
+        """Reshard ``slot`` to the primary ``target`` while clients keep using it; the keys moved.
+
+        The steps of the cluster specification's live resharding: ``SETSLOT
+        IMPORTING`` on the target, ``SETSLOT MIGRATING`` on the source, then
+        ``MIGRATE ... KEYS`` in steps of ``keys_per_step`` keys (``pause_s``
+        between steps keeps the slot half-moved while clients are served: they
+        get ASK, and a multi-key command on keys split between the two nodes
+        gets TRYAGAIN), then ``SETSLOT NODE`` on target, source and every other
+        primary.
+        """
+        source = self.primary_of(slot)
+        if source is target:
+            return 0
+        source_id, target_id = source.node_id(), target.node_id()
+        moved = 0
+        with source.client(socket_timeout=10) as src, target.client(socket_timeout=10) as dst:
+            dst.execute_command("CLUSTER", "SETSLOT", slot, "IMPORTING", source_id)
+            src.execute_command("CLUSTER", "SETSLOT", slot, "MIGRATING", target_id)
+            while True:
+                keys = src.execute_command("CLUSTER", "GETKEYSINSLOT", slot, keys_per_step)
+                if not keys:
+                    break
+                src.execute_command("MIGRATE", target.host, target.port, "", 0, 10_000, "KEYS", *keys)
+                moved += len(keys)
+                if pause_s:
+                    time.sleep(pause_s)
+            for node in [target, source] + [p for p in self.primaries() if p not in (source, target)]:
+                with node.client(socket_timeout=10) as c:
+                    c.execute_command("CLUSTER", "SETSLOT", slot, "NODE", target_id)
+        self.wait_ok()
+        return moved
+
+    def flushall(self) -> None:
+        """Empty every primary (replicas follow), between tests that share the cluster."""
+        for node in self.primaries():
+            with node.client() as c:
+                c.flushall()
