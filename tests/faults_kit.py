@@ -14,6 +14,7 @@ from pathlib import Path
 import redis
 
 from kit import Worker, stop_all, wait_for_progress, wait_until
+from worker.partitions import send_comment
 from worker.settings import Keys
 
 KEYS = Keys()
@@ -143,8 +144,9 @@ class Producer(threading.Thread):
             try:
                 pipe = self.client.pipeline(transaction=False)
                 for k in ids:
-                    pipe.xadd(self.keys.comments, {"id": f"{self.prefix}{k}", "text": comment_text(k),
-                                                   "site": f"site{k % 3}.example", "author": f"member{k % 97}"})
+                    send_comment(self.client, self.keys, {"id": f"{self.prefix}{k}", "text": comment_text(k),
+                                                          "site": f"site{k % 3}.example", "author": f"member{k % 97}"},
+                                 pipeline=pipe)
                 pipe.execute()
             except (redis.ConnectionError, redis.TimeoutError, redis.ResponseError):
                 # ResponseError: a restarting server answers LOADING while it reads its AOF.

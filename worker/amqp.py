@@ -309,7 +309,8 @@ class AmqpSink:
 
     def commit(self, batch: Batch, scored, dead, *, model: str, now: float) -> list[int]:
         with redis_errors():
-            codes = self.committer.commit(self.client, scored, dead, model=model, now=now, consumer="")
+            codes = self.committer.commit(self.client, scored, dead, model=model, now=now, consumer="",
+                                          partition=batch.partition)
         if isinstance(batch.token, Delivery):
             batch.token.verdicts = [verdict_message(s, model, repeat=code != WRITTEN) for s, code in zip(scored, codes)]
         return codes

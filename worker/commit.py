@@ -7,6 +7,14 @@ counts, the per-id ``done:{id}`` marker and the XACK land together; a worker
 SIGKILLed mid-batch has written either a whole comment or nothing of it, and
 its unacked entries are read again.
 
+The script gets only the keys of the partition the batch was read from
+(:mod:`worker.partitions`): its comment, verdict, hold, rates and dead-letter
+keys, and each comment's ``done`` and ``text`` keys, all under the partition's
+hash tag, so on a Redis Cluster the call touches one hash slot.  It builds no
+key name itself.  A batch read from a source without partitions (RabbitMQ) is
+split by the partition of each comment id and committed one script per
+partition (:meth:`BatchCommitter.commit`).
+
 Exactly one verdict per comment id *and text*, checked before anything is written:
 
 1. the entry is still pending **for this consumer** (one ``XPENDING`` over the
@@ -204,50 +212,71 @@ class BatchCommitter:
     limits : stream caps and TTLs.
     acknowledges : False when the entries did not come from the ``comments`` stream (a RabbitMQ
         source acknowledges its own messages): no pending check, no XACK; the done markers decide.
-    source : what dead letters name as their ``source`` (default: the ``comments`` stream).
+    source : what dead letters name as their ``source`` (default: the partition's ``comments`` stream).
     """
 
     def __init__(self, *, keys: Keys, limits: Limits, acknowledges: bool = True, source: str = ""):
         self.keys = keys
         self.limits = limits
         self.acknowledges = acknowledges
-        self.source = source or keys.comments
+        self.source = source
         self._sha = None
 
     def arguments(self, scored: Sequence[Scored], dead: Sequence[DeadLetter], *, model: str, now: float,
-                  consumer: str):
-        """``(keys, args)`` of the script call; pure, so tests can inspect them."""
-        k = self.keys
+                  consumer: str, partition: int = 0):
+        """``(keys, args)`` of the script call for ``partition``; pure, so tests can inspect them.
+
+        Every comment of ``scored`` must belong to ``partition`` (the worker
+        dead-letters the others as ``wrong_partition`` before scoring).
+        """
+        k = self.keys.part(partition)
         lim = self.limits
         keys = [k.comments, k.verdicts, k.held, k.rates(int(now // 60)), k.deadletter]
         ids = [s.comment.stream_id for s in scored] + [d.stream_id for d in dead]
         first, last = min(ids, key=_id_order), max(ids, key=_id_order)
         span = 2 * len(ids) + 64  # room for leftovers of an earlier failed commit in the same range
-        args = [k.group if self.acknowledges else "", lim.verdicts_maxlen, lim.text_cache_ttl_s, lim.done_ttl_s, lim.rates_ttl_s,
+        args = [self.keys.group if self.acknowledges else "", lim.verdicts_maxlen, lim.text_cache_ttl_s, lim.done_ttl_s, lim.rates_ttl_s,
                 f"{now:.3f}", model, lim.deadletter_maxlen, consumer, first, last, span]
         rows = []
+        partitions = self.keys.partitions
         for s in scored:
             c = s.comment
+            if partitions > 1 and self.keys.partition_of(c.id) != partition:
+                raise ValueError(f"BatchCommitter.arguments: comment id {c.id!r} belongs to partition "
+                                 f"{self.keys.partition_of(c.id)}, not {partition}")
             keys.append(k.done(c.id))
             keys.append(k.text(c.id))
             flags = action_flags(s.action)
             rows.append((c.stream_id, c.id, s.score, flags, s.reasons, c.site, c.text, c.author, c.ts, s.rule,
                          s.campaign, text_digest(c.text), s.action, f"{c.site}:{s.action}" if flags & COUNT_FLAG else ""))
-        source = self.source
+        source = self.source or k.comments
         packed_dead = [(d.stream_id, [x for pair in d.as_fields(source).items() for x in pair]) for d in dead]
         args.append(_dumps(rows))
         args.append(_dumps(packed_dead))
         return keys, args
 
-    def commit(self, client, scored, dead, *, model: str, now: float, consumer: str, pipeline=None):
+    def commit(self, client, scored, dead, *, model: str, now: float, consumer: str, partition: int | None = 0,
+               pipeline=None):
         """Run the script; returns one code per comment then per dead letter (1 written, 0 duplicate).
+
+        ``partition`` is the partition the batch was read from.  ``None`` means
+        a source without partitions (RabbitMQ): the batch is split by the
+        partition of each comment id (dead letters go to partition 0's
+        dead-letter stream), one script call
+        per partition, and the codes come back in the batch's order.
 
         With ``pipeline`` the call is queued there (EVAL, since a pipeline cannot
         recover from NOSCRIPT) and ``None`` is returned; the caller executes it.
         """
         if not scored and not dead:
             return []
-        keys, args = self.arguments(scored, dead, model=model, now=now, consumer=consumer)
+        if partition is None:
+            if self.keys.partitions == 1:
+                partition = 0
+            else:
+                return self._commit_split(client, scored, dead, model=model, now=now, consumer=consumer,
+                                          pipeline=pipeline)
+        keys, args = self.arguments(scored, dead, model=model, now=now, consumer=consumer, partition=partition)
         if pipeline is not None:
             pipeline.eval(COMMIT_LUA, len(keys), *keys, *args)
             return None
@@ -259,3 +288,24 @@ class BatchCommitter:
             self._sha = client.script_load(COMMIT_LUA)
             reply = client.evalsha(self._sha, len(keys), *keys, *args)
         return [int(x) for x in reply]
+
+    def _commit_split(self, client, scored, dead, *, model: str, now: float, consumer: str, pipeline=None):
+        # One script call per partition (a call spanning partitions would be CROSSSLOT on a cluster).
+        groups: dict[int, tuple[list, list, list, list]] = {}
+        for i, s in enumerate(scored):
+            g = groups.setdefault(self.keys.partition_of(s.comment.id), ([], [], [], []))
+            g[0].append(i)
+            g[1].append(s)
+        for j, d in enumerate(dead):
+            g = groups.setdefault(0, ([], [], [], []))
+            g[2].append(j)
+            g[3].append(d)
+        codes = [DUPLICATE] * (len(scored) + len(dead))
+        for p, (scored_at, part_scored, dead_at, part_dead) in sorted(groups.items()):
+            reply = self.commit(client, part_scored, part_dead, model=model, now=now, consumer=consumer,
+                                partition=p, pipeline=pipeline)
+            if reply is None:
+                continue
+            for i, code in zip(scored_at + [len(scored) + j for j in dead_at], reply):
+                codes[i] = code
+        return None if pipeline is not None else codes

@@ -9,8 +9,11 @@ One loop iteration (:meth:`StreamConsumer.step`):
    (``source.claim()``) and process them;
 2. read up to ``batch`` entries (``source.read()``): first this consumer's own
    unfinished entries (left by a crash or a lost connection), then new ones;
-3. validate each entry; bad ones become dead letters with their reason, and
-   entries delivered more than ``max_deliveries`` times become ``poison``;
+3. validate each entry; bad ones become dead letters with their reason,
+   entries delivered more than ``max_deliveries`` times become ``poison``, and
+   a comment read from a partition its id does not belong to (a producer's
+   mistake, :mod:`worker.partitions`) becomes ``wrong_partition`` in the
+   dead-letter stream of the partition it was read from;
 4. score all valid comments in ONE ``score_many`` call, decide each by the
    effective cutoffs of its site (:class:`worker.routing.Router`), let the
    batch policies adjust the decisions, and make sure the reasons of held and
@@ -127,7 +130,11 @@ class StreamConsumer:
         self._reports_verdicts = not isinstance(self.observer, NullObserver)
         self._executor: ThreadPoolExecutor | None = None
         self._inflight = None
-        self._deadletter_log = DeadLetterLog(logger=log, source=keys.comments, deadletter=keys.deadletter)
+        if keys.partitions == 1:
+            self._deadletter_log = DeadLetterLog(logger=log, source=keys.comments, deadletter=keys.deadletter)
+        else:
+            self._deadletter_log = DeadLetterLog(logger=log, source=f"the {keys.partitions} comment partitions",
+                                                 deadletter="each partition's deadletter stream")
 
     # -- life cycle ---------------------------------------------------------------------------
 
@@ -168,6 +175,9 @@ class StreamConsumer:
             if self._executor is not None:
                 self._executor.shutdown(wait=True)
                 self._executor = None
+            release = getattr(self.source, "release", None)
+            if release is not None:  # give back partition leases, for the other workers to take now
+                release()
         log.info("consumer %s stopped", self.consumer)
         return 0
 
@@ -282,6 +292,7 @@ class StreamConsumer:
         t0 = time.perf_counter()
         limits = self._input_limits
         max_deliveries = self.settings.max_deliveries
+        partition = batch.partition if self.keys.partitions > 1 else None
         comments: list[Comment] = []
         dead: list[DeadLetter] = list(batch.dead)
         for entry in entries:
@@ -289,6 +300,12 @@ class StreamConsumer:
             count = deliveries.get(entry.stream_id, 1) if deliveries else 1
             if count > max_deliveries:
                 checked = dead_letter(entry, "poison", f"delivered {count} times, limit {max_deliveries}", limits)
+            elif partition is not None and isinstance(checked, Comment):
+                belongs = self.keys.partition_of(checked.id)
+                if belongs != partition:
+                    checked = dead_letter(entry, "wrong_partition",
+                                          f"read from partition {partition}, but its id belongs to partition {belongs}",
+                                          limits)
             (comments if isinstance(checked, Comment) else dead).append(checked)
 
         scored, failed = self._score(comments)

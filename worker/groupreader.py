@@ -83,11 +83,14 @@ class GroupReader:
         """True once this consumer's own pending entries have all been read since the last restart."""
         return self._backlog_from is None
 
-    def read(self, *, block: bool = True, count_deliveries: bool = True) -> tuple[list[Entry], dict[bytes, int] | None]:
+    def read(self, *, block: bool = True, count_deliveries: bool = True,
+             block_ms: int | None = None) -> tuple[list[Entry], dict[bytes, int] | None]:
         """The next entries: own pending ones first (with their delivery counts), then new ones.
 
         Returns ``(entries, deliveries)``; ``deliveries`` is ``None`` for new
         entries (first delivery) or when ``count_deliveries`` is false.
+        ``block_ms`` shortens this one read's wait (a worker reading several
+        partitions blocks briefly on each).
         """
         if self._backlog_from is not None:
             entries = self.read_from(self._backlog_from, block=False)
@@ -96,13 +99,14 @@ class GroupReader:
                 counts = self.deliveries([e.stream_id for e in entries]) if count_deliveries else None
                 return entries, counts
             self._backlog_from = None
-        return self.read_from(b">", block=block), None
+        return self.read_from(b">", block=block, block_ms=block_ms), None
 
-    def read_from(self, start: bytes, *, block: bool) -> list[Entry]:
+    def read_from(self, start: bytes, *, block: bool, block_ms: int | None = None) -> list[Entry]:
         """One XREADGROUP from ``start`` (``b">"``: new entries; an id: this consumer's pending ones after it)."""
         args = ["XREADGROUP", "GROUP", self.group, self.consumer, "COUNT", self.batch]
-        if block and self.block_ms > 0:
-            args += ["BLOCK", self.block_ms]
+        wait = self.block_ms if block_ms is None else min(self.block_ms, block_ms)
+        if block and wait > 0:
+            args += ["BLOCK", wait]
         args += ["STREAMS", self.stream, start]
         return parse_xreadgroup(self.client.execute_command(*args), self._stream)
 

@@ -79,3 +79,40 @@ def partition_tag(partition: int, partitions: int) -> str:
         if low <= key_slot(tag) < high:
             return tag
         n += 1
+
+
+def stream_key(keys, comment_id: str | bytes) -> str:
+    """The stream a producer XADDs comment ``comment_id`` to: its partition's ``comments`` stream.
+
+    ``keys`` is the deployment's :class:`worker.settings.Keys`.
+
+    >>> from worker.settings import Keys
+    >>> stream_key(Keys(), "c-1"), stream_key(Keys(partitions=3), "c-1")
+    ('seawall:comments', 'seawall:{p2.4}:comments')
+    """
+    return keys.part_of(comment_id).comments
+
+
+def _field(fields, name: str):
+    for key in (name, name.encode()):
+        if key in fields:
+            return fields[key]
+    return None
+
+
+def send_comment(client, keys, fields, *, maxlen: int | None = None, pipeline=None):
+    """XADD one comment (a flat field map with at least ``id``) to the stream of its partition.
+
+    Returns the new entry's stream id; with ``pipeline`` the XADD is queued
+    there (nothing is executed) and ``None`` is returned.  ``maxlen`` caps the
+    stream approximately (``MAXLEN ~``).  A producer in another language does
+    the same: ``XADD <stream_key> * id <id> text <text> ...``.
+    """
+    comment_id = _field(fields, "id")
+    if not isinstance(comment_id, (str, bytes)) or not comment_id:
+        raise ValueError(f"send_comment: fields need a non-empty 'id' (str or bytes), got {comment_id!r}")
+    if maxlen is not None and (isinstance(maxlen, bool) or not isinstance(maxlen, int) or maxlen < 1):
+        raise ValueError(f"send_comment: maxlen must be a positive integer or None, got {maxlen!r}")
+    target = pipeline if pipeline is not None else client
+    reply = target.xadd(stream_key(keys, comment_id), fields, maxlen=maxlen, approximate=maxlen is not None)
+    return None if pipeline is not None else reply

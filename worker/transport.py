@@ -68,7 +68,9 @@ class Batch:
     source has already dead-lettered them (reason ``trimmed``).  ``dead`` holds
     :class:`worker.validation.DeadLetter` s for messages the source could not
     even turn into an entry (an AMQP body that is not a JSON object); the sink
-    writes them with the batch.
+    writes them with the batch.  ``partition`` is the partition of the comment
+    stream the entries came from (:mod:`worker.partitions`), ``None`` for a
+    source without partitions; the sink commits the batch to that partition.
     """
 
     entries: list[Entry]
@@ -77,6 +79,7 @@ class Batch:
     claimed: bool = False
     gone: list[bytes] = field(default_factory=list)
     dead: list = field(default_factory=list)
+    partition: int | None = None
 
     def __len__(self) -> int:
         return len(self.entries) + len(self.dead)

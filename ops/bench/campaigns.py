@@ -74,13 +74,15 @@ class PolicyHarness(Harness):
                 raise RuntimeError(f"bench: worker process exited with {proc.exitcode} before it was ready")
 
     def enqueue(self, comments, start: int = 0) -> None:
+        from worker.partitions import send_comment
+
         pipe = self.client.pipeline(transaction=False)
-        stream = self.key("comments")
+        keys = self.keys
         for i, (text, author, site) in enumerate(comments, start):
             fields = {"id": f"b{i}", "text": text, "site": site}
             if author:
                 fields["author"] = author
-            pipe.xadd(stream, fields)
+            send_comment(self.client, keys, fields, pipeline=pipe)
             if len(pipe) >= 1000:
                 pipe.execute()
         pipe.execute()

@@ -56,6 +56,7 @@ def fill_queue(url: str, keys, comments, model, *, site_thresholds=None, policie
     from ops.serving import build_consumer
     from worker.connection import connect
     from worker.loader import StaticModelSource
+    from worker.partitions import send_comment
     from worker.settings import WorkerSettings
 
     raw = connect(url, client_name="seawall-fill-queue")
@@ -63,7 +64,7 @@ def fill_queue(url: str, keys, comments, model, *, site_thresholds=None, policie
     try:
         pipe = plain.pipeline(transaction=False)
         for c in comments:
-            pipe.xadd(keys.comments, c)
+            send_comment(plain, keys, c, pipeline=pipe)
         pipe.execute()
         settings = WorkerSettings(batch=256, block_ms=10, site_thresholds=site_thresholds or {})
         config = Config(redis_url=url, keys=keys, worker=settings)

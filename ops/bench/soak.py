@@ -128,10 +128,12 @@ class Soak:
 
     def run(self) -> dict:
         from ops.bench.stream import invented_comments
+        from worker.partitions import send_comment
+        from worker.settings import Keys
 
         a = self.args
         texts = [t for t, _ in invented_comments(2000, seed=11, length=160)]
-        stream = self.prefix + "comments"
+        keys = Keys(prefix=self.prefix)  # the soak runs one partition
         duration = a.minutes * 60.0 if a.minutes else a.seconds
         burst_from, burst_to = a.burst_at, a.burst_at + a.burst_seconds
         sent = 0
@@ -158,7 +160,8 @@ class Soak:
             if n:
                 pipe = self.client.pipeline(transaction=False)
                 for i in range(sent, sent + n):
-                    pipe.xadd(stream, {"id": f"s{i}", "text": texts[i % len(texts)], "site": f"site{i % 4}.example"})
+                    send_comment(self.client, keys, {"id": f"s{i}", "text": texts[i % len(texts)],
+                                                     "site": f"site{i % 4}.example"}, pipeline=pipe)
                 pipe.execute()
                 sent += n
             if t >= next_sample:

@@ -175,6 +175,13 @@ class Harness:
     def key(self, name: str) -> str:
         return self.prefix + name
 
+    @property
+    def keys(self):
+        """The key names the workers use (``keys.partitions`` from the overrides, 1 by default)."""
+        from worker.settings import Keys
+
+        return Keys(prefix=self.prefix, partitions=int(self.overrides.get("keys.partitions", 1)))
+
     def redis_cpu_usec(self) -> float:
         """CPU time of the Redis server process so far (INFO cpu, user + system), in microseconds.
 
@@ -210,10 +217,12 @@ class Harness:
     def enqueue(self, comments, start: int = 0) -> None:
         if self.amqp:
             return self._publish(comments, start)
+        from worker.partitions import send_comment
+
         pipe = self.client.pipeline(transaction=False)
-        stream = self.key("comments")
+        keys = self.keys
         for i, (text, _label) in enumerate(comments, start):
-            pipe.xadd(stream, {"id": f"b{i}", "text": text, "site": f"site{i % 4}.example"})
+            send_comment(self.client, keys, {"id": f"b{i}", "text": text, "site": f"site{i % 4}.example"}, pipeline=pipe)
             if len(pipe) >= 1000:
                 pipe.execute()
         pipe.execute()
@@ -307,7 +316,9 @@ def _latency(url, prefix, model_path, comments, *, rate, seconds, batch, block_m
         tick_s = 0.005
         per_tick = max(1, round(rate * tick_s))
         total = int(rate * seconds)
-        stream = h.key("comments")
+        from worker.partitions import send_comment
+
+        keys = h.keys
         sent = 0
         t0 = time.perf_counter()
         while sent < total:
@@ -318,7 +329,7 @@ def _latency(url, prefix, model_path, comments, *, rate, seconds, batch, block_m
             pipe = h.client.pipeline(transaction=False)
             for i in range(sent, min(total, sent + per_tick)):
                 text, _ = comments[i % len(comments)]
-                pipe.xadd(stream, {"id": f"l{i}", "text": text, "site": "site0.example"})
+                send_comment(h.client, keys, {"id": f"l{i}", "text": text, "site": "site0.example"}, pipeline=pipe)
             pipe.execute()
             sent = min(total, sent + per_tick)
         offered = total / (time.perf_counter() - t0)

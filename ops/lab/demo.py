@@ -58,6 +58,7 @@ from worker.campaigns import campaign_keys
 from worker.consumer import StreamConsumer
 from worker.events import read_events
 from worker.labels import label_name
+from worker.partitions import send_comment
 
 log = logging.getLogger("seawall.demo")
 
@@ -388,7 +389,7 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
         for c in comments:
             truth[c.id] = c
             minute_of[c.id] = minute
-            pipe.xadd(keys.comments, c.fields())
+            send_comment(client, keys, c.fields(), pipeline=pipe)
         pipe.execute()
 
         # the workers score the minute's comments; the clock sits inside the minute
