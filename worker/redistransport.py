@@ -265,15 +265,22 @@ def redis_consumer(*, client, keys: Keys, settings: WorkerSettings, model_source
                    observer=None, policies=(), clock=None):
     """A :class:`worker.consumer.StreamConsumer` on Redis Streams: source, sink and state on ``client``.
 
-    ``consumer`` empty means ``settings.consumer`` or ``<hostname>-<pid>``.
+    ``consumer`` empty means ``settings.consumer`` or ``<hostname>-<pid>``.  With
+    ``keys.partitions > 1`` the worker reads the partitions it holds leases on
+    (:class:`worker.leases.Leases`).
     """
     import time
 
     from worker.consumer import StreamConsumer, default_consumer_name
 
     name = consumer or settings.consumer or default_consumer_name()
+    leases = None
+    if keys.partitions > 1:  # every partition has one active reader: workers share them through leases
+        from worker.leases import Leases
+
+        leases = Leases(client=client, keys=keys, consumer=name, lease_ms=int(settings.lease_ms))
     return StreamConsumer(
-        source=RedisStreamSource(client=client, keys=keys, settings=settings, consumer=name),
+        source=RedisStreamSource(client=client, keys=keys, settings=settings, consumer=name, leases=leases),
         sink=RedisStreamSink(client=client, keys=keys, settings=settings, consumer=name),
         state=RedisState(client),
         keys=keys, settings=settings, model_source=model_source, observer=observer, policies=policies,

@@ -155,6 +155,8 @@ class Keys:
     feedback = _Name("feedback", doc="Stream of moderators' labels on their way to the labelled store.")
     events = _Name("events", doc="Stream of events: waves, campaigns, retrains, model switches (worker/events.py).")
     group = _Name("workers", doc="The stream workers' consumer group.")
+    members = _Name("workers", "members",
+                    doc="Sorted set of live workers sharing the partitions (score = when the heartbeat runs out, ms).")
     held = _PartName("held", doc="Sorted set of held comments (score = when held).")
     labels = _Name("labels", doc="The labelled store: a bounded stream of label records (worker/labels.py).")
 
@@ -221,6 +223,9 @@ class WorkerSettings:
     processes: int = setting(1, "consumer processes to run on this host")
     claim_idle_ms: int = setting(60_000, "entries pending longer than this (ms) on another consumer are taken over with XAUTOCLAIM")
     claim_every_s: float = setting(5.0, "how often a worker looks for idle entries to take over, in seconds")
+    lease_ms: int = setting(10_000, "with keys.partitions > 1: how long a worker's lease on a partition (and its "
+                                    "heartbeat) lasts unless renewed, in ms; a dead worker's partitions move to the "
+                                    "others after this (and its unfinished entries after claim_idle_ms)")
     max_deliveries: int = setting(5, "an entry delivered more times than this goes to the dead-letter stream as poison")
     max_text_bytes: int = setting(65_536, "longest accepted comment text in UTF-8 bytes; longer ones are dead-lettered")
     max_fields: int = setting(16, "most fields an input entry may have; more are dead-lettered as too_many_fields")
@@ -357,6 +362,7 @@ _WORKER_MINIMUMS = {
     "processes": 1,
     "claim_idle_ms": 1,
     "claim_every_s": 0.01,
+    "lease_ms": 10,
     "max_deliveries": 1,
     "max_text_bytes": 1,
     "max_fields": 2,
