@@ -34,6 +34,22 @@ class ConfigError(ValueError):
 
 
 @dataclass(frozen=True, kw_only=True)
+class RedisSettings:
+    """How Seawall reaches Redis beyond ``redis_url``: a Redis Cluster, and where RQ keeps its jobs then."""
+
+    cluster: bool = setting(False, "redis_url names one node of a Redis Cluster: use redis-py's cluster client "
+                                   "(set keys.partitions to spread the comment stream over the shards)")
+    rq_url: str = setting("", "with cluster = true: a single (non-cluster) Redis where RQ keeps its job queue "
+                              "(RQ has no cluster support; rq cron and rq worker must use it too, e.g. "
+                              "RQ_REDIS_URL); empty: no RQ jobs, run the retrain from the systemd timer")
+
+    def __post_init__(self):
+        if not isinstance(self.rq_url, str) or (self.rq_url and not self.rq_url.startswith(
+                ("redis://", "rediss://", "unix://"))):
+            raise ValueError("RedisSettings: rq_url must be empty or a redis://, rediss:// or unix:// URL")
+
+
+@dataclass(frozen=True, kw_only=True)
 class Config:
     """Everything Seawall needs to run, read once."""
 
@@ -46,6 +62,7 @@ class Config:
     redis_tls_key: str = setting("", "client private key for mutual TLS on rediss:// URLs")
     model_path: str = setting("", "model file to serve; empty means the registry's active model")
     log_level: str = setting("INFO", "log level: DEBUG, INFO, WARNING or ERROR")
+    redis: RedisSettings = field(default_factory=RedisSettings, metadata={"help": "Redis Cluster"})
     keys: Keys = field(default_factory=Keys, metadata={"help": "Redis key names"})
     worker: WorkerSettings = field(default_factory=WorkerSettings, metadata={"help": "stream worker"})
     amqp: AmqpSettings = field(default_factory=AmqpSettings, metadata={"help": "RabbitMQ source (serve --source)"})

@@ -10,9 +10,11 @@ from ops.config import Config
 
 
 def connect(config: Config, **kwargs):
-    """A redis-py client for ``config.redis_url`` (redis://, rediss:// or unix://)."""
+    """A redis-py client for ``config.redis_url`` (redis://, rediss:// or unix://); a cluster client with
+    ``[redis] cluster = true``."""
     from worker.connection import connect as worker_connect
 
+    kwargs.setdefault("cluster", config.redis.cluster)
     try:
         return worker_connect(config.redis_url, tls_ca=config.redis_tls_ca, tls_cert=config.redis_tls_cert,
                               tls_key=config.redis_tls_key, raw_streams=False, **kwargs)

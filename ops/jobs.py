@@ -20,10 +20,41 @@ from worker.jobs import JOB_SERIALIZER, JobArgumentError
 RESCORE_FUNC = "ops.jobs.rescore_job"
 
 
+RQ_ON_CLUSTER = ("RQ has no Redis Cluster support, and this deployment's Redis is a cluster ([redis] cluster = "
+                 "true): set [redis] rq_url (SEAWALL_REDIS_RQ_URL) to a single Redis for the job queue, and point "
+                 "rq cron and rq worker at the same one (RQ_REDIS_URL); or run the retrain from the systemd timer "
+                 "(deploy/systemd/seawall-retrain.timer) and re-score with --rescore now")
+
+
+def rq_client(config, client=None):
+    """The Redis RQ keeps Seawall's jobs in: ``redis.rq_url`` when set, else the deployment's own.
+
+    A Redis Cluster cannot hold RQ's queues (RQ's commands span keys of
+    different slots): with ``redis.cluster`` and no ``rq_url`` this raises a
+    :class:`ops.config.ConfigError` that says what to do.
+    """
+    from ops.config import ConfigError
+
+    if config.redis.rq_url:
+        from worker.connection import connect as worker_connect
+
+        return worker_connect(config.redis.rq_url, tls_ca=config.redis_tls_ca, tls_cert=config.redis_tls_cert,
+                              tls_key=config.redis_tls_key, raw_streams=False, client_name="seawall-rq")
+    if config.redis.cluster:
+        raise ConfigError(RQ_ON_CLUSTER)
+    return client if client is not None else connect(config)
+
+
 def job_queue(client, name: str):
     """The RQ queue ``name``, serializing with JSON like every job Seawall enqueues."""
     from rq import Queue
 
+    from redis.cluster import RedisCluster
+
+    if isinstance(client, RedisCluster):
+        from ops.config import ConfigError
+
+        raise ConfigError(RQ_ON_CLUSTER)
     return Queue(name, connection=client, serializer=JOB_SERIALIZER)
 
 

@@ -36,7 +36,7 @@ def build_feedback_consumer(config: Config, *, consumer: str = "", client=None, 
     if client is None:
         client = connect(config.redis_url, tls_ca=config.redis_tls_ca, tls_cert=config.redis_tls_cert,
                          tls_key=config.redis_tls_key, socket_timeout=config.worker.socket_timeout_s
-                         + settings.block_ms / 1000.0, client_name="seawall-feedback")
+                         + settings.block_ms / 1000.0, client_name="seawall-feedback", cluster=config.redis.cluster)
     extra = {"clock": clock} if clock is not None else {}
     return FeedbackConsumer(client=client, keys=config.keys, settings=settings, consumer=consumer, observer=observer,
                             **extra)

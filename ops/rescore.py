@@ -129,12 +129,13 @@ def rescore_after_switch(mode: str, client, config, version: str) -> dict:
         return {"rescore_mode": "off"}
     out: dict = {}
     if mode == "queue":
-        from ops.jobs import enqueue_rescore, listening_workers
+        from ops.jobs import enqueue_rescore, listening_workers, rq_client
 
-        workers = listening_workers(client, config.retrain.queue)
+        jobs = rq_client(config, client)
+        workers = listening_workers(jobs, config.retrain.queue)
         out["rq_workers"] = workers
         if workers:
-            return dict(out, rescore_mode="queue", rescore_job=enqueue_rescore(client, config, version).id)
+            return dict(out, rescore_mode="queue", rescore_job=enqueue_rescore(jobs, config, version).id)
     from ops.registry import Registry
 
     model = Registry(client=client, keys=config.keys).load(version)

@@ -60,8 +60,17 @@ def use_json_jobs() -> None:
 
 
 def register_jobs(config=None) -> dict:
-    """Register the nightly retrain with RQ's cron registry; returns the registration."""
+    """Register the nightly retrain with RQ's cron registry; returns the registration.
+
+    On a Redis Cluster (``redis.cluster``) RQ needs a single Redis of its own
+    (``redis.rq_url``); without one this refuses to start and says so.
+    """
     config = config or load_config()
+    if config.redis.cluster and not config.redis.rq_url:
+        from ops.config import ConfigError
+        from ops.jobs import RQ_ON_CLUSTER
+
+        raise ConfigError(RQ_ON_CLUSTER)
     return cron.register(
         retrain_job,
         queue_name=config.retrain.queue,

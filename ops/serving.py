@@ -42,6 +42,7 @@ def redis_client(config: Config, *, blocking_ms: int = 0, client_name: str = "",
         socket_timeout=config.worker.socket_timeout_s + blocking_ms / 1000.0,
         client_name=client_name,
         raw_streams=raw_streams,
+        cluster=config.redis.cluster,
     )
 
 

@@ -1,0 +1,120 @@
+"""The Redis Cluster client: built from the same URL, its errors, and a worker on it (a one-node cluster).
+
+The many-node cluster (replicas, failover, resharding) has its own tests; here a
+single ``redis-server --cluster-enabled yes`` that owns all 16384 slots is enough
+to run redis-py's cluster client for real: slot routing of every command the
+worker sends, cluster pipelines, scripts and the raw stream replies.
+"""
+from __future__ import annotations
+
+import pytest
+import redis
+from redis.cluster import RedisCluster
+
+from scorers import WordScorer
+from kit import wait_until
+from worker.connection import connect
+from worker.loader import StaticModelSource
+from worker.partitions import send_comment
+from worker.redistransport import redis_consumer, redis_errors
+from worker.settings import Keys, WorkerSettings
+from worker.transport import TransientError
+
+K = 4
+KEYS = Keys(partitions=K)
+
+
+@pytest.mark.parametrize("url, match", [("unix:///tmp/redis.sock", "over TCP"),
+                                        ("redis://127.0.0.1:6379/3", "only database 0")],
+                         ids=["unix-socket", "database-3"])
+def test_a_cluster_url_is_checked_before_connecting(url, match):
+    with pytest.raises(ValueError, match=match):
+        connect(url, cluster=True)
+
+
+@pytest.mark.parametrize("error", [
+    redis.exceptions.ClusterDownError("CLUSTERDOWN The cluster is down"),
+    redis.exceptions.TryAgainError("TRYAGAIN Multiple keys request during rehashing of slot"),
+    redis.exceptions.MovedError("3999 127.0.0.1:6381"),
+    redis.exceptions.AskError("3999 127.0.0.1:6381"),
+    redis.exceptions.SlotNotCoveredError("Slot 3999 is not covered by the cluster."),
+    redis.exceptions.MasterDownError("MASTERDOWN Link with MASTER is down"),
+], ids=["clusterdown", "tryagain", "moved", "ask", "slot-not-covered", "masterdown"])
+def test_cluster_errors_that_pass_with_time_are_transient(error):
+    with pytest.raises(TransientError, match="Redis Cluster") as caught:
+        with redis_errors():
+            raise error
+    assert caught.value.__cause__ is error and not caught.value.regroup
+
+
+@pytest.fixture
+def one_node_cluster(redis_factory):
+    """A redis-server in cluster mode that owns every slot."""
+    server = redis_factory("cluster", extra=["--cluster-enabled", "yes", "--cluster-node-timeout", "2000"])
+    plain = server.client()
+    plain.execute_command("CLUSTER", "ADDSLOTSRANGE", 0, 16383)
+    wait_until(lambda: b"cluster_state:ok" in plain.execute_command("CLUSTER", "INFO"), timeout=30,
+               what="the one-node cluster to be ok")
+    plain.close()
+    return server
+
+
+@pytest.mark.redis_server
+def test_a_worker_on_the_cluster_client_reads_commits_and_claims_every_partition(one_node_cluster):
+    client = connect(one_node_cluster.url, cluster=True)
+    assert isinstance(client, RedisCluster)
+    pipe = client.pipeline(transaction=False)
+    for i in range(300):
+        send_comment(client, KEYS, {"id": f"c{i}", "text": "free casino bonus" if i % 3 == 0 else "lunch at noon",
+                                    "site": "a.example"}, pipeline=pipe)
+    pipe.execute()
+    settings = WorkerSettings(block_ms=5, overlap_commit=False, batch=64, claim_idle_ms=1, hold_floor=0.0,
+                              reject_floor=0.0)
+    # A worker reads one batch of each partition and dies before committing them.
+    dead = redis_consumer(client=client, keys=KEYS, settings=settings,
+                          model_source=StaticModelSource(model=WordScorer()), consumer="dead")
+    dead.prepare()
+    taken = [len(dead.source.read(block=False).entries) for _ in range(K)]
+    assert all(taken)
+    dead.source.release()  # its leases end (as they would run out)
+    alive = redis_consumer(client=client, keys=KEYS, settings=settings,
+                           model_source=StaticModelSource(model=WordScorer()), consumer="alive")
+    alive.prepare()
+    assert alive.source.held == tuple(range(K))
+    claimed = wait_until(lambda: alive.reclaim().written, timeout=30, what="the dead worker's entries taken over")
+    assert claimed == sum(taken)
+    for _ in range(50):  # bounded: the rest, then empty reads
+        if alive.step().read == 0 and sum(client.xlen(p.verdicts) for p in KEYS.parts) >= 300:
+            break
+    ids = [f[b"id"].decode() for p in KEYS.parts for _, f in client.xrange(p.verdicts)]
+    assert sorted(ids) == sorted(f"c{i}" for i in range(300))
+    lag = alive.source.lag()
+    assert lag.pending == 0 and lag.lag == 0
+    # The raw replies the parsers want, from the node clients too (a cluster pipeline parses with them).
+    entries, deliveries = alive.source.reader_of(0).read(block=False)
+    assert entries == [] and deliveries is None
+    client.close()
+
+
+@pytest.mark.redis_server
+def test_serve_builds_the_cluster_client_from_the_config(one_node_cluster):
+    from ops.config import load_config
+    from ops.serving import build_consumer
+
+    config = load_config({"redis_url": one_node_cluster.url, "redis.cluster": True, "keys.partitions": K,
+                          "waves.enabled": False}, environ={})
+    c = build_consumer(config, source=StaticModelSource(model=WordScorer()), consumer="w")
+    assert isinstance(c.sink.client, RedisCluster)
+    c.prepare()
+    send_comment(c.sink.client, KEYS, {"id": "c1", "text": "hello"})
+    wait_until(lambda: c.step().written, timeout=30, what="the comment's verdict")
+    assert c.sink.client.xlen(KEYS.part_of("c1").verdicts) == 1
+
+
+def test_rq_refuses_a_cluster_and_says_what_to_do():
+    from ops.config import ConfigError, load_config
+    from ops.jobs import rq_client
+
+    config = load_config({"redis.cluster": True}, environ={})
+    with pytest.raises(ConfigError, match="rq_url"):
+        rq_client(config)
