@@ -284,7 +284,9 @@ class ClusterNode(RedisServer):
         self.extra = ["--cluster-enabled", "yes", "--cluster-config-file", "nodes.conf",
                       "--cluster-port", str(self.bus_port), "--cluster-node-timeout", str(node_timeout_ms),
                       # a replica of a primary that died long ago may still take over (default 10x the timeout)
-                      "--cluster-replica-validity-factor", "0"]
+                      "--cluster-replica-validity-factor", "0",
+                      # a replica's first full sync starts at once (the default waits 5 s for more replicas)
+                      "--repl-diskless-sync-delay", "0"]
         self._node_id: str | None = None
 
     @property
@@ -420,12 +422,18 @@ class RedisCluster:
         raise KeyError(f"RedisCluster: {primary.address} has no live replica")
 
     def _settled(self) -> bool:
-        """Every live node says cluster_state:ok and maps all 16384 slots to the same nodes."""
+        """Every live node says cluster_state:ok and maps all 16384 slots to the same nodes, and every
+        live replica has finished its sync with its primary."""
         views = []
         for node in self.live_nodes():
             try:
                 info = node.cluster_info()
                 if info.get("cluster_state") != "ok" or info.get("cluster_slots_ok") != "16384":
+                    return False
+                with node.client(socket_timeout=2) as c:
+                    replication = c.info("replication")
+                if replication.get("role") == "slave" and (replication.get("master_link_status") != "up"
+                                                           or replication.get("master_sync_in_progress")):
                     return False
                 views.append(sorted((r["address"], tuple(r["slots"])) for r in self.topology(node)
                                     if "master" in r["flags"] and r["slots"]))
