@@ -19,6 +19,15 @@ history, so two concurrent ones leave one consistent active model, and the
 one that lost the race gets :class:`PromoteConflict` with what to do.
 The replay and canary sets are zlib-compressed JSON lines of
 ``{"text", "label"}`` (label 1 = spam); nothing here unpickles anything.
+
+On a partitioned deployment (``keys.partitions`` > 1, a Redis Cluster) every
+key above carries the shared hash tag (``seawall:{shared}:models:active``,
+``Keys.shared``), together with the events stream, so a promote's
+transaction (pointer, history, meta, event) stays in one hash slot; the
+change message is published after EXEC.  A single-partition deployment keeps
+the names above.  Moving an existing deployment to partitions means pushing
+and promoting its model again under the new names (``seawall models push
+--promote`` with the new configuration).
 """
 from __future__ import annotations
 
@@ -261,7 +270,6 @@ class Registry:
                     pipe.lpush(self.keys.models_history, target)
                     pipe.ltrim(self.keys.models_history, 0, HISTORY_MAX - 1)
                 pipe.hset(self.keys.model_meta(target), mapping={"promoted_at": f"{now:.3f}"})
-                pipe.publish(self.keys.models_changed, target)
                 data = {"version": target, "previous": active, "actor": actor, "reason": reason}
                 self._event(pipe, kind, data)
                 pipe.execute()
@@ -271,6 +279,9 @@ class Registry:
                     f"models {kind}: another promote or rollback changed the active model at the same time "
                     f"(active is now {now_active}); check `seawall models list` and run {kind} again if still wanted"
                 ) from None
+        # Told after EXEC, outside the transaction: PUBLISH names no key, so a cluster transaction cannot
+        # carry it.  A missed message is covered by the workers' polling of the active pointer.
+        self.client.publish(self.keys.models_changed, target)
         return data
 
     def _verify(self, client, version: str) -> None:

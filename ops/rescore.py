@@ -7,7 +7,9 @@ as the stream worker; a verdict marked ``rescored=1`` (with its ``rule``, and
 the ``version`` and ``digest`` of the cached text) goes to the verdicts stream, the cache records the new score, and the
 comment leaves the hold queue when the new model publishes or rejects it.
 
-The write of one batch is a Lua script that re-checks, id by id, that the
+Each partition's hold queue is walked in turn (``keys.parts``), and a
+re-scored verdict goes to the comment's own partition's verdicts stream.
+The write of one batch is a Lua script on one partition's keys that re-checks, id by id, that the
 comment is still held: a label that arrived while the batch was being scored
 wins, and that comment gets no re-scored verdict.  Comments whose cached text
 has expired stay held for a moderator.
@@ -19,7 +21,7 @@ import time
 from model.actions import Action
 from worker.commit import text_digest
 from worker.routing import Router, score_and_decide
-from worker.settings import Keys
+from worker.settings import Keys, PartKeys
 from worker.validation import Comment
 from worker.verdicts import Verdict
 
@@ -74,13 +76,25 @@ def rescore_held(client, keys: Keys, model, *, batch: int = 500, settings=None, 
     script = client.register_script(_WRITE)
     counts = {"held": 0, "rescored": 0, "released": 0, "no_text": 0, "model": model.version}
     t0 = time.perf_counter()
-    ids = [_s(m) for m in client.zrange(keys.held, 0, -1)]
-    counts["held"] = len(ids)
+    for part in keys.parts:
+        _rescore_partition(client, part, model, router, script, batch=batch, counts=counts,
+                           verdicts_maxlen=verdicts_maxlen)
+    counts["seconds"] = round(time.perf_counter() - t0, 3)
+    counts["still_held"] = counts["rescored"] - counts["released"]
+    return counts
+
+
+
+def _rescore_partition(client, part: PartKeys, model, router, script, *, batch: int, counts: dict,
+                       verdicts_maxlen: int) -> None:
+    """Re-score one partition's hold queue; each batch's write touches only this partition's keys."""
+    ids = [_s(m) for m in client.zrange(part.held, 0, -1)]
+    counts["held"] += len(ids)
     for start in range(0, len(ids), batch):
         chunk = ids[start:start + batch]
         lookup = client.pipeline(transaction=False)
         for comment_id in chunk:
-            lookup.hmget(keys.text(comment_id), ["text", "site", "stream_id", "version", "digest"])
+            lookup.hmget(part.text(comment_id), ["text", "site", "stream_id", "version", "digest"])
         found, marks = [], []
         for comment_id, (text, site, stream_id, version, digest) in zip(chunk, lookup.execute()):
             if text is None:
@@ -99,13 +113,9 @@ def rescore_held(client, keys: Keys, model, *, batch: int = 500, settings=None, 
             args += [comment.id, "1" if d.action == Action.HOLD else "0", len(fields)]
             for pair in fields.items():
                 args += pair
-        written, released = script(keys=[keys.held, keys.verdicts] + [keys.text(c.id) for c in found], args=args)
+        written, released = script(keys=[part.held, part.verdicts] + [part.text(c.id) for c in found], args=args)
         counts["rescored"] += int(written)
         counts["released"] += int(released)
-    counts["seconds"] = round(time.perf_counter() - t0, 3)
-    counts["still_held"] = counts["rescored"] - counts["released"]
-    return counts
-
 
 
 RESCORE_MODES = ("now", "queue", "off")
@@ -121,7 +131,9 @@ def rescore_after_switch(mode: str, client, config, version: str) -> dict:
     happened (``rescore_mode``: ``now``, ``queue`` or ``off``) with, when it
     ran here, ``rescore`` (the counts of :func:`rescore_held`) or, when it was
     queued, ``rescore_job`` and ``rq_workers``.  ``rq_workers`` is 0 when
-    ``queue`` found no worker and ran the re-score here.
+    ``queue`` found no worker and ran the re-score here; ``rq_unavailable``
+    is ``cluster`` when the deployment is a Redis Cluster without
+    ``[redis] rq_url`` (RQ has no cluster support), and it ran here too.
     """
     if mode not in RESCORE_MODES:
         raise ValueError(f"rescore_after_switch: mode must be one of {RESCORE_MODES}, got {mode!r}")
@@ -129,10 +141,17 @@ def rescore_after_switch(mode: str, client, config, version: str) -> dict:
         return {"rescore_mode": "off"}
     out: dict = {}
     if mode == "queue":
+        from ops.config import ConfigError
         from ops.jobs import enqueue_rescore, listening_workers, rq_client
 
-        jobs = rq_client(config, client)
-        workers = listening_workers(jobs, config.retrain.queue)
+        try:
+            jobs = rq_client(config, client)
+        except ConfigError:
+            # A cluster without [redis] rq_url has no RQ: the model has switched already, so re-score here
+            # rather than fail after the switch (the message says why).
+            jobs = None
+            out["rq_unavailable"] = "cluster"
+        workers = listening_workers(jobs, config.retrain.queue) if jobs is not None else 0
         out["rq_workers"] = workers
         if workers:
             return dict(out, rescore_mode="queue", rescore_job=enqueue_rescore(jobs, config, version).id)
@@ -158,6 +177,8 @@ def describe_rescore(result: dict, *, queue: str) -> str:
     done = result.get("rescore") or {}
     where = (f"no RQ worker listens on queue {queue!r}, so the re-score ran here: "
              if result.get("rq_workers") == 0 else "")
+    if result.get("rq_unavailable") == "cluster":
+        where = ("RQ cannot keep jobs on a Redis Cluster and [redis] rq_url is not set, so the re-score ran here: ")
     if not done.get("held"):
         return where + "no held comments to re-score"
     rescored = done.get("rescored", 0)

@@ -113,11 +113,11 @@ class LabelRow:
 
 
 def lock_key(keys: Keys) -> str:
-    return keys.key("retrain", "lock")
+    return keys.shared("retrain", "lock")
 
 
 def reports_key(keys: Keys) -> str:
-    return keys.key("retrain", "reports")
+    return keys.shared("retrain", "reports")
 
 
 # -- pure steps ---------------------------------------------------------------------

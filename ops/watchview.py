@@ -18,7 +18,7 @@ from ops.times import age, clock
 from ops.waves import read_active
 from worker.campaigns import read_campaigns
 from worker.events import Event, parse_event
-from worker.rates import rate_counts
+from worker.rates import rate_counts, read_minutes
 from worker.settings import Keys
 
 SPARK = "▁▂▃▄▅▆▇█"
@@ -57,12 +57,11 @@ def collect(client, keys: Keys, *, now: float | None = None, minutes: int = HIST
     now = time.time() if now is None else now
     current = int(now // 60)
     span = list(range(current - minutes + 1, current + 1))
+    hashes = read_minutes(client, keys, span)  # every partition's counts, summed per minute
     pipe = client.pipeline(transaction=False)
-    for m in span:
-        pipe.hgetall(keys.rates(m))
     pipe.get(keys.models_active)
     pipe.xrevrange(keys.events, count=EVENT_LOOKBACK)
-    *hashes, active, raw_events = pipe.execute()
+    active, raw_events = pipe.execute()
 
     snap = Snapshot(now=now)
     snap.sites = _site_rows(hashes)
@@ -91,17 +90,28 @@ def _site_rows(hashes) -> list[SiteRow]:
 
 
 def _group(client, keys: Keys) -> tuple[int | None, int | None, int | None]:
-    try:
-        groups = client.xinfo_groups(keys.comments)
-    except ResponseError as exc:  # no stream yet is a normal state ("ERR no such key"); anything else propagates
-        if "no such key" in str(exc).lower():
-            return None, None, None
-        raise
-    for g in groups:
-        if _text(g.get("name", b"")) == keys.group:
-            lag = g.get("lag")
-            return (int(lag) if lag is not None else None), int(g.get("pending", 0)), int(g.get("consumers", 0))
-    return None, None, None
+    """The workers' group over every partition's stream: lag and pending summed, consumers at most.
+
+    A partition with no stream or group yet adds nothing; None when no partition has one.  A lag Redis
+    cannot compute (None) makes the sum unknown.
+    """
+    found = []
+    for part in keys.parts:
+        try:
+            groups = client.xinfo_groups(part.comments)
+        except ResponseError as exc:  # no stream yet is a normal state ("ERR no such key"); anything else propagates
+            if "no such key" in str(exc).lower():
+                continue
+            raise
+        for g in groups:
+            if _text(g.get("name", b"")) == keys.group:
+                lag = g.get("lag")
+                found.append((int(lag) if lag is not None else None, int(g.get("pending", 0)),
+                              int(g.get("consumers", 0))))
+    if not found:
+        return None, None, None
+    lags = [lag for lag, _, _ in found]
+    return (None if None in lags else sum(lags)), sum(p for _, p, _ in found), max(c for _, _, c in found)
 
 
 # -- rendering (pure) -------------------------------------------------------------

@@ -25,7 +25,7 @@ from typing import TYPE_CHECKING
 
 from ops.cusum import WaveParams, WaveState, observe_minute
 from worker.events import EVENTS_MAXLEN, add_event
-from worker.rates import rate_counts
+from worker.rates import rate_counts, read_minutes
 from worker.settings import Keys
 
 if TYPE_CHECKING:  # ops.metrics imports prometheus-client, which `seawall watch` (a reader of this module) never needs
@@ -48,10 +48,10 @@ return 0
 
 def wave_keys(keys: Keys) -> dict[str, str]:
     return {
-        "state": keys.key("waves", "state"),
-        "active": keys.key("waves", "active"),
-        "cursor": keys.key("waves", "cursor"),
-        "lock": keys.key("waves", "lock"),
+        "state": keys.shared("waves", "state"),
+        "active": keys.shared("waves", "active"),
+        "cursor": keys.shared("waves", "cursor"),
+        "lock": keys.shared("waves", "lock"),
     }
 
 
@@ -127,11 +127,8 @@ class WaveDetector:
         minutes = list(range(cursor + 1, last + 1))
         if not minutes:
             return []
-        read = self.client.pipeline(transaction=False)
-        for m in minutes:
-            read.hgetall(self.keys.rates(m))
-        read.hgetall(self._k["state"])
-        *hashes, raw_states = read.execute()
+        hashes = read_minutes(self.client, self.keys, minutes)  # every partition's counts, summed per minute
+        raw_states = self.client.hgetall(self._k["state"])
         states = {_text(k): WaveState.from_dict(json.loads(v)) for k, v in raw_states.items()}
 
         events: list[dict] = []

@@ -68,7 +68,7 @@ def hold(client, n: int, *, start: int = 0, keys: Keys = Keys()) -> list[str]:
     ids = []
     for i in range(start, start + n):
         cid = f"c{i}"
-        client.zadd(keys.held, {cid: NOW - 1000 + i})
+        client.zadd(keys.part_of(cid).held, {cid: NOW - 1000 + i})
         client.hset(keys.text(cid), mapping={"text": f"comment number {i} about the allotment fence",
                                              "site": "plots.example", "author": f"m{i}", "score": "0.7312",
                                              "action": "hold", "model": "v1", "stream_id": f"{i + 1}-0",

@@ -11,7 +11,6 @@ from worker.feedback import (
     Feedback,
     FeedbackConsumer,
     Rejected,
-    held_key,
     join_label,
     parse_feedback,
     text_key,
@@ -69,7 +68,7 @@ def test_join_without_any_text_is_rejected():
 def test_consumer_labels_dead_letters_and_acks(fake_redis):
     r = fake_redis
     r.hset(text_key(KEYS, "c1"), mapping={"text": "cheap pills at pharmacy.example", "site": "news.example"})
-    r.zadd(held_key(KEYS), {"c1": 1.0, "c2": 2.0})
+    r.zadd(KEYS.held, {"c1": 1.0, "c2": 2.0})
     r.xadd(KEYS.feedback, {"id": "c1", "label": "spam", "moderator": "mod-a"})
     r.xadd(KEYS.feedback, {"id": "c2", "label": "ham"})                      # no cached text
     r.xadd(KEYS.feedback, {"id": "c3", "label": "ham", "text": "thanks for the recipe"})
@@ -82,7 +81,7 @@ def test_consumer_labels_dead_letters_and_acks(fake_redis):
     dead = r.xrange(KEYS.deadletter)
     assert [f[b"reason"] for _i, f in dead] == [b"feedback_no_text", b"feedback_unknown_label"]
     assert all(f[b"source"] == KEYS.feedback.encode() for _i, f in dead)
-    assert r.zrange(held_key(KEYS), 0, -1) == [b"c2"]       # c1 decided; c2 stays held (no text)
+    assert r.zrange(KEYS.held, 0, -1) == [b"c2"]       # c1 decided; c2 stays held (no text)
     assert r.xpending(KEYS.feedback, "labellers")["pending"] == 0
 
 
@@ -131,7 +130,7 @@ def test_drain_claims_entries_stuck_on_a_dead_consumer(redis_client):
 def test_run_thread_consumes_on_a_real_server(redis_client):
     r = redis_client
     r.hset(text_key(KEYS, "c7"), mapping={"text": "a kind reply", "site": "blog.example"})
-    r.zadd(held_key(KEYS), {"c7": 1.0})
+    r.zadd(KEYS.held, {"c7": 1.0})
     stop = threading.Event()
     c = FeedbackConsumer(client=r, keys=KEYS, consumer="serve-1", settings=FeedbackSettings(block_ms=50))
     thread = threading.Thread(target=c.run, args=(stop,), daemon=True)
@@ -147,7 +146,7 @@ def test_run_thread_consumes_on_a_real_server(redis_client):
         stop.set()
         thread.join(timeout=5)
     assert not thread.is_alive()
-    assert r.zcard(held_key(KEYS)) == 0
+    assert r.zcard(KEYS.held) == 0
     assert r.xrange(KEYS.deadletter)[0][1][b"reason"] == b"feedback_no_text"
 
 

@@ -85,7 +85,10 @@ def test_whole_deployment_names_refuse_to_stand_for_one_partition():
             getattr(keys, name)
     with pytest.raises(PartitionedKeyError, match="Keys.rates"):
         keys.rates(1)
-    assert keys.feedback == "seawall:feedback" and keys.events == "seawall:events"
+    # Keys outside the partitions share one hash tag when K > 1 (one slot for the control plane's
+    # multi-key operations) and keep their names with K = 1.
+    assert keys.feedback == "seawall:{shared}:feedback" and keys.events == "seawall:{shared}:events"
+    assert Keys().feedback == "seawall:feedback" and Keys().models_active == "seawall:models:active"
 
 
 def test_keys_check_partitions_and_prefix():

@@ -1,22 +1,30 @@
 """Moderators' decisions on held comments: first one wins, undo for a few seconds, then final.
 
 A decision on a held comment is *publish* (the label ``ham``) or *reject*
-(``spam``).  It goes through three steps, each one Lua call so that it is
-atomic against every other moderator, console process and worker:
+(``spam``).  Every script below touches the keys of one Redis Cluster hash
+slot: either the comment's partition (its ``held`` set, ``text`` cache and
+pending decision) or the shared keys (``feedback``, ``decisions``), never
+both, so a partitioned deployment runs them on a cluster.  The steps:
 
-1. :func:`claim` takes the comments out of the ``held`` queue and parks each
-   in ``decisions:pending:{id}`` (and the ``decisions:pending`` sorted set,
-   scored by when the decision becomes final), with an audit entry.  A comment
-   no longer held (another moderator decided it first, or a re-score released
-   it) is reported as *gone* and nothing is written for it.
+1. :func:`claim` takes the comments out of their partition's ``held`` set
+   and parks each in ``decisions:pending:{id}`` (and the partition's
+   ``decisions:pending`` sorted set, scored by when the decision becomes
+   final), one script per partition; the audit entries follow.  A comment no
+   longer held (another moderator decided it first, or a re-score released it)
+   is reported as *gone* and nothing is written for it: the first moderator
+   wins.
 2. :func:`undo` puts parked comments back in the queue with their original
    hold time, while their decision is not final yet; only the holder of the
    claim's random token can.
-3. :func:`finalize_due` writes each parked decision whose undo window is over:
-   the label on the ``feedback`` stream (moderator = who decided) and the
-   final decision on the ``decisions`` stream that the site's application
-   consumes.  It re-checks each comment inside the script, so any number of
-   processes may run it at once and every decision is written exactly once.
+3. :func:`finalize_due` writes each parked decision whose undo window is over,
+   in three steps that are each safe to repeat: *take* (in the partition: mark
+   it ``writing``, so it can no longer be undone, and push its due time
+   :data:`FINALIZE_RETRY_S` ahead, so a finalizer that dies mid-way leaves it
+   to another), *write* (on the shared keys: the label on the ``feedback``
+   stream and the final decision on the ``decisions`` stream, under a
+   once-only marker ``decisions:written:{id}:{token}``, so no label is ever
+   written twice) and *release* (in the partition).  Any number of processes
+   may run it at once.
 
 :func:`label_now` is the one-step form for scripts (``seawall feedback``):
 the label is sent at once, and if the comment was held it leaves the queue
@@ -30,6 +38,7 @@ Fields of a ``decisions`` entry (flat UTF-8 strings): ``id``, ``decision``
 """
 from __future__ import annotations
 
+import json
 import secrets
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -48,32 +57,23 @@ ID_MAX_BYTES = 256
 NAME_MAX_BYTES = 128
 REASON_MAX_BYTES = 1024
 
-# The decision entry, built from a pending hash's fields or the cache; shared by both writers.
+# The decision entry, built from a pending hash's fields; the README's table of the decisions stream lists them.
 _DECISION_FIELDS = ("id", "decision", "label", "moderator", "decided_at", "held_at", "score", "model", "site",
                     "rule", "campaign", "stream_id", "reason", "source")
-_ENTRY_LUA = """
-local DECISION_FIELDS = {%s}
-local function entry_of(map)
-  local out = {}
-  for _, name in ipairs(DECISION_FIELDS) do
-    out[#out + 1] = name
-    out[#out + 1] = map[name] or ''
-  end
-  return out
-end
-""" % ", ".join(f"'{name}'" for name in _DECISION_FIELDS)
+FINALIZE_RETRY_S = 30.0  # a finalizer that died between its steps leaves the decision to another after this
+WRITTEN_TTL_S = 7 * 86_400  # how long a written decision's marker stops a second write of the same claim
 
-# KEYS: held, deciding, audit, then decision:{id} and text:{id} per comment.
-# ARGV: final_at, audit maxlen, token, moderator, action, label, reason, source, now, n, ids...
+# Step 1 (the comment's partition).  KEYS: held, deciding, then decision:{id} and text:{id} per comment.
+# ARGV: final_at, token, moderator, action, label, reason, source, now, n, then per comment: id, feedback JSON.
 _CLAIM = """
-local held, deciding, audit = KEYS[1], KEYS[2], KEYS[3]
-local final_at, amax, token, moderator, action, label, reason, source, now =
-  ARGV[1], ARGV[2], ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7], ARGV[8], ARGV[9]
-local n = tonumber(ARGV[10])
+local held, deciding = KEYS[1], KEYS[2]
+local final_at, token, moderator, action, label, reason, source, now =
+  ARGV[1], ARGV[2], ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7], ARGV[8]
+local n = tonumber(ARGV[9])
 local out = {}
 for i = 1, n do
-  local id = ARGV[10 + i]
-  local parked, cache = KEYS[2 + 2 * i], KEYS[3 + 2 * i]
+  local id, feedback = ARGV[8 + 2 * i], ARGV[9 + 2 * i]
+  local parked, cache = KEYS[1 + 2 * i], KEYS[2 + 2 * i]
   local held_at = redis.call('ZSCORE', held, id)
   out[i] = 0
   if held_at then
@@ -83,86 +83,103 @@ for i = 1, n do
     redis.call('HSET', parked, 'id', id, 'decision', action, 'label', label, 'moderator', moderator,
                'reason', reason, 'source', source, 'decided_at', now, 'held_at', held_at, 'token', token,
                'score', c[1] or '', 'model', c[2] or '', 'site', c[3] or '', 'rule', c[4] or '',
-               'campaign', c[5] or '', 'stream_id', c[6] or '')
+               'campaign', c[5] or '', 'stream_id', c[6] or '', 'feedback', feedback)
     redis.call('ZADD', deciding, final_at, id)
-    redis.call('XADD', audit, 'MAXLEN', '~', amax, '*', 'event', 'decide', 'id', id, 'decision', action,
-               'moderator', moderator, 'source', source, 'ts', now)
     out[i] = 1
   end
 end
 return out
 """
 
-# KEYS: held, deciding, audit, then decision:{id} per comment.  ARGV: token, moderator, now, audit maxlen, n, ids...
+# The comment's partition.  KEYS: held, deciding, then decision:{id} per comment.  ARGV: token, n, ids...
+# A decision whose writing has begun (``writing``) can no longer be undone.
 _UNDO = """
-local held, deciding, audit = KEYS[1], KEYS[2], KEYS[3]
-local token, moderator, now, amax = ARGV[1], ARGV[2], ARGV[3], ARGV[4]
-local n = tonumber(ARGV[5])
+local held, deciding = KEYS[1], KEYS[2]
+local token = ARGV[1]
+local n = tonumber(ARGV[2])
 local out = {}
 for i = 1, n do
-  local id, parked = ARGV[5 + i], KEYS[3 + i]
+  local id, parked = ARGV[2 + i], KEYS[2 + i]
   out[i] = 0
-  if redis.call('ZSCORE', deciding, id) and redis.call('HGET', parked, 'token') == token then
+  if redis.call('ZSCORE', deciding, id) and redis.call('HGET', parked, 'token') == token
+     and not redis.call('HGET', parked, 'writing') then
     local held_at = redis.call('HGET', parked, 'held_at')
     redis.call('ZADD', held, held_at, id)
     redis.call('ZREM', deciding, id)
     redis.call('DEL', parked)
-    redis.call('XADD', audit, 'MAXLEN', '~', amax, '*', 'event', 'undo', 'id', id, 'moderator', moderator, 'ts', now)
     out[i] = 1
   end
 end
 return out
 """
 
-# KEYS: deciding, feedback, decisions, then decision:{id} per comment.  ARGV: now, decisions maxlen, n, ids...
-_FINALIZE = _ENTRY_LUA + """
-local deciding, feedback, decisions = KEYS[1], KEYS[2], KEYS[3]
-local now, dmax = tonumber(ARGV[1]), ARGV[2]
+# Step 2 (the comment's partition): take the due decisions for writing.  KEYS: deciding, then decision:{id} per
+# comment.  ARGV: now, retry_at, n, ids...  Each taken decision stays in ``deciding`` at retry_at, marked
+# ``writing``, so that if this finalizer dies another one writes it; a pending hash without a label is junk.
+_TAKE = """
+local deciding = KEYS[1]
+local now, retry_at = tonumber(ARGV[1]), ARGV[2]
 local n = tonumber(ARGV[3])
 local out = {}
 for i = 1, n do
-  local id, parked = ARGV[3 + i], KEYS[3 + i]
+  local id, parked = ARGV[3 + i], KEYS[1 + i]
   local due = redis.call('ZSCORE', deciding, id)
-  out[i] = 0
+  out[i] = {}
   if due and tonumber(due) <= now then
-    local flat = redis.call('HGETALL', parked)
-    local map = {}
-    for k = 1, #flat, 2 do map[flat[k]] = flat[k + 1] end
-    if map['label'] then
-      redis.call('XADD', feedback, '*', 'id', id, 'label', map['label'], 'moderator', map['moderator'] or '',
-                 'reason', map['reason'] or '', 'source', map['source'] or '')
-      local entry = entry_of(map)
-      redis.call('XADD', decisions, 'MAXLEN', '~', dmax, '*', unpack(entry))
-      out[i] = 1
+    if redis.call('HEXISTS', parked, 'label') == 1 then
+      redis.call('HSET', parked, 'writing', '1')
+      redis.call('ZADD', deciding, retry_at, id)
+      out[i] = redis.call('HGETALL', parked)
+    else
+      redis.call('ZREM', deciding, id)
+      redis.call('DEL', parked)
     end
-    redis.call('ZREM', deciding, id)
-    redis.call('DEL', parked)
   end
 end
 return out
 """
 
-# KEYS: held, feedback, decisions, text:{id}.
-# ARGV: id, label, action, moderator, reason, source, now, decisions maxlen, has_text, text
-_LABEL_NOW = _ENTRY_LUA + """
-local held, feedback, decisions, cache = KEYS[1], KEYS[2], KEYS[3], KEYS[4]
-local id, label, action, moderator, reason, source, now, dmax, has_text, text =
-  ARGV[1], ARGV[2], ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7], ARGV[8], ARGV[9], ARGV[10]
-local held_at = redis.call('ZSCORE', held, id)
-if held_at then
-  redis.call('ZREM', held, id)
-  local c = redis.call('HMGET', cache, 'score', 'model', 'site', 'rule', 'campaign', 'stream_id')
-  local map = {id = id, decision = action, label = label, moderator = moderator, decided_at = now, held_at = held_at,
-               score = c[1] or '', model = c[2] or '', site = c[3] or '', rule = c[4] or '', campaign = c[5] or '',
-               stream_id = c[6] or '', reason = reason, source = source}
-  redis.call('XADD', decisions, 'MAXLEN', '~', dmax, '*', unpack(entry_of(map)))
+# Step 3 (the shared keys): write each claim's label and decision once.  KEYS: feedback, decisions, then the
+# written marker per claim.  ARGV: decisions maxlen, marker TTL, n, then per claim: the feedback entry's pair count
+# and pairs, the decision entry's pair count (0: none) and pairs.  Returns per claim the feedback entry id, or
+# false when the marker shows an earlier call wrote it.
+_WRITE = """
+local feedback, decisions = KEYS[1], KEYS[2]
+local dmax, ttl = ARGV[1], ARGV[2]
+local n = tonumber(ARGV[3])
+local out = {}
+local a = 4
+for i = 1, n do
+  local nf = tonumber(ARGV[a])
+  local fb = {'XADD', feedback, '*'}
+  for k = a + 1, a + 2 * nf do fb[#fb + 1] = ARGV[k] end
+  a = a + 1 + 2 * nf
+  local nd = tonumber(ARGV[a])
+  local dec = {'XADD', decisions, 'MAXLEN', '~', dmax, '*'}
+  for k = a + 1, a + 2 * nd do dec[#dec + 1] = ARGV[k] end
+  a = a + 1 + 2 * nd
+  out[i] = false
+  if redis.call('SET', KEYS[2 + i], '1', 'NX', 'EX', ttl) then
+    out[i] = redis.call(unpack(fb))
+    if nd > 0 then redis.call(unpack(dec)) end
+  end
 end
-local fields = {'id', id, 'label', label}
-if moderator ~= '' then fields[#fields + 1] = 'moderator'; fields[#fields + 1] = moderator end
-if reason ~= '' then fields[#fields + 1] = 'reason'; fields[#fields + 1] = reason end
-if has_text == '1' then fields[#fields + 1] = 'text'; fields[#fields + 1] = text end
-local fid = redis.call('XADD', feedback, '*', unpack(fields))
-return {held_at and 1 or 0, fid}
+return out
+"""
+
+# Step 4 (the comment's partition): the written decisions leave.  KEYS: deciding, then decision:{id} per comment.
+# ARGV: n, then per comment: id, token.
+_DONE = """
+local deciding = KEYS[1]
+local n = tonumber(ARGV[1])
+for i = 1, n do
+  local id, token, parked = ARGV[2 * i], ARGV[1 + 2 * i], KEYS[1 + i]
+  if redis.call('HGET', parked, 'token') == token then
+    redis.call('ZREM', deciding, id)
+    redis.call('DEL', parked)
+  end
+end
+return n
 """
 
 
@@ -206,12 +223,53 @@ def check_action(operation: str, action) -> str:
     return action
 
 
+def _by_partition(keys: Keys, ids: Sequence[str]) -> dict[int, list[str]]:
+    """The ids grouped by partition, each group in the order given."""
+    groups: dict[int, list[str]] = {}
+    for comment_id in ids:
+        groups.setdefault(keys.partition_of(comment_id), []).append(comment_id)
+    return groups
+
+
+def _feedback_entry(fields: dict) -> str:
+    return json.dumps(fields, separators=(",", ":"), ensure_ascii=False)
+
+
+def _park(client, keys: Keys, ids: Sequence[str], *, token: str, final_at: float, moderator: str, action: str,
+          reason: str, source: str, now: float, feedback: dict[str, str]) -> list[str]:
+    """Step 1: move held comments into their partition's pending decisions; returns those that were held."""
+    decided = []
+    for p, group in _by_partition(keys, ids).items():
+        part = keys.part(p)
+        script_keys = [part.held, part.deciding]
+        args = [f"{final_at:.3f}", token, moderator, action, LABEL_OF[action], reason, source, f"{float(now):.3f}",
+                len(group)]
+        for comment_id in group:
+            script_keys += [part.decision(comment_id), part.text(comment_id)]
+            args += [comment_id, _feedback_entry(feedback[comment_id])]
+        flags = client.eval(_CLAIM, len(script_keys), *script_keys, *args)
+        decided += [i for i, ok in zip(group, flags) if int(ok)]
+    order = {comment_id: n for n, comment_id in enumerate(ids)}
+    return sorted(decided, key=order.__getitem__)
+
+
+def _audit_each(client, keys: Keys, event: str, ids: Sequence[str], fields: dict, *, now: float,
+                maxlen: int) -> None:
+    if not ids:
+        return
+    pipe = client.pipeline(transaction=False)
+    for comment_id in ids:
+        write_audit(client, keys, event, {"id": comment_id, **fields}, now=now, maxlen=maxlen, pipeline=pipe)
+    pipe.execute()
+
+
 def claim(client, keys: Keys, ids: Sequence[str], *, action: str, moderator: str, now: float, undo_s: float,
           reason: str = "", source: str = "console", audit_maxlen: int = AUDIT_MAXLEN) -> Claim:
     """Take held comments out of the queue for ``moderator``'s decision, final after ``undo_s`` seconds.
 
-    Atomic: of two moderators claiming the same comment, exactly one gets it
-    in ``decided``, the other in ``gone``.
+    Atomic per comment (one script per partition, on the partition's keys):
+    of two moderators claiming the same comment, exactly one gets it in
+    ``decided``, the other in ``gone``.  The audit entries follow the claim.
     """
     ids = check_ids("claim", ids)
     check_action("claim", action)
@@ -221,14 +279,13 @@ def claim(client, keys: Keys, ids: Sequence[str], *, action: str, moderator: str
         raise ValueError(f"claim: undo_s must be a number of seconds in [0, 3600], got {undo_s!r}")
     token = secrets.token_urlsafe(16)
     final_at = float(now) + float(undo_s)
-    script_keys = [keys.held, keys.deciding, keys.audit]
-    for comment_id in ids:
-        script_keys += [keys.decision(comment_id), keys.text(comment_id)]
-    args = [f"{final_at:.3f}", audit_maxlen, token, moderator, action, LABEL_OF[action], reason, source,
-            f"{float(now):.3f}", len(ids), *ids]
-    flags = client.eval(_CLAIM, len(script_keys), *script_keys, *args)
-    decided = [i for i, ok in zip(ids, flags) if int(ok)]
-    gone = [i for i, ok in zip(ids, flags) if not int(ok)]
+    feedback = {i: {"id": i, "label": LABEL_OF[action], "moderator": moderator, "reason": reason, "source": source}
+                for i in ids}
+    decided = _park(client, keys, ids, token=token, final_at=final_at, moderator=moderator, action=action,
+                    reason=reason, source=source, now=now, feedback=feedback)
+    _audit_each(client, keys, "decide", decided, {"decision": action, "moderator": moderator, "source": source},
+                now=now, maxlen=audit_maxlen)
+    gone = [i for i in ids if i not in set(decided)]
     return Claim(token=token, action=action, decided=decided, gone=gone, final_at=final_at)
 
 
@@ -237,39 +294,103 @@ def undo(client, keys: Keys, token: str, ids: Sequence[str], *, moderator: str, 
     """Put the claim's comments back in the queue if their decision is not final yet; returns those restored."""
     ids = check_ids("undo", ids)
     _check_text("undo", "token", token, 64, empty_ok=False)
-    script_keys = [keys.held, keys.deciding, keys.audit] + [keys.decision(i) for i in ids]
-    flags = client.eval(_UNDO, len(script_keys), *script_keys, token, moderator, f"{float(now):.3f}",
-                        audit_maxlen, len(ids), *ids)
-    return [i for i, ok in zip(ids, flags) if int(ok)]
+    restored = []
+    for p, group in _by_partition(keys, ids).items():
+        part = keys.part(p)
+        script_keys = [part.held, part.deciding] + [part.decision(i) for i in group]
+        flags = client.eval(_UNDO, len(script_keys), *script_keys, token, len(group), *group)
+        restored += [i for i, ok in zip(group, flags) if int(ok)]
+    restored = [i for i in ids if i in set(restored)]
+    _audit_each(client, keys, "undo", restored, {"moderator": moderator}, now=now, maxlen=audit_maxlen)
+    return restored
+
+
+def _pairs(raw) -> dict[str, str]:
+    flat = [_s(x) for x in raw]
+    return dict(zip(flat[0::2], flat[1::2]))
+
+
+def _feedback_of(parked: dict[str, str]) -> dict[str, str]:
+    """The feedback entry the claim recorded (a pending hash from before it did gets the console's form)."""
+    try:
+        recorded = json.loads(parked.get("feedback", ""))
+    except ValueError:
+        recorded = None
+    if isinstance(recorded, dict) and recorded.get("id") == parked.get("id"):
+        return {str(k): str(v) for k, v in recorded.items()}
+    return {"id": parked.get("id", ""), "label": parked.get("label", ""), "moderator": parked.get("moderator", ""),
+            "reason": parked.get("reason", ""), "source": parked.get("source", "")}
+
+
+def _write_once(client, keys: Keys, taken: list[dict[str, str]], *, decisions_maxlen: int) -> list:
+    """Step 3: each taken claim's label and decision, written once whoever repeats it; its feedback id or None."""
+    if not taken:
+        return []
+    script_keys = [keys.feedback, keys.decisions] + [keys.decision_written(t["id"], t["token"]) for t in taken]
+    args: list = [decisions_maxlen, int(WRITTEN_TTL_S), len(taken)]
+    for parked in taken:
+        fb = _feedback_of(parked)
+        args += [len(fb), *[x for pair in fb.items() for x in pair]]
+        args += [len(_DECISION_FIELDS), *[x for name in _DECISION_FIELDS for x in (name, parked.get(name, ""))]]
+    return [_s(r) if r else None for r in client.eval(_WRITE, len(script_keys), *script_keys, *args)]
+
+
+def _finish(client, keys: Keys, ids: Sequence[str], *, now: float, decisions_maxlen: int) -> dict[str, str]:
+    """Steps 2 to 4 for ``ids``: take the due ones, write them once, let them go; ``{id: feedback id}`` written."""
+    written: dict[str, str] = {}
+    retry_at = f"{float(now) + FINALIZE_RETRY_S:.3f}"
+    for p, group in _by_partition(keys, ids).items():
+        part = keys.part(p)
+        script_keys = [part.deciding] + [part.decision(i) for i in group]
+        replies = client.eval(_TAKE, len(script_keys), *script_keys, f"{float(now):.3f}", retry_at, len(group),
+                              *group)
+        taken = [_pairs(r) for r in replies if r]
+        for parked, feedback_id in zip(taken, _write_once(client, keys, taken, decisions_maxlen=decisions_maxlen)):
+            if feedback_id is not None:
+                written[parked["id"]] = feedback_id
+        if taken:
+            done_keys = [part.deciding] + [part.decision(t["id"]) for t in taken]
+            client.eval(_DONE, len(done_keys), *done_keys, len(taken),
+                        *[x for t in taken for x in (t["id"], t["token"])])
+    return written
 
 
 def finalize(client, keys: Keys, ids: Sequence[str], *, now: float,
              decisions_maxlen: int = DECISIONS_MAXLEN) -> list[str]:
-    """Write the label and the decision of each listed comment whose undo window is over; returns those written."""
+    """Write the label and the decision of each listed comment whose undo window is over; returns those written.
+
+    Safe to run from any number of processes at once, and to repeat after a
+    crash: a decision is taken in its partition, written to the shared
+    feedback and decisions streams under a once-only marker, then released.
+    """
     if not ids:
         return []
-    script_keys = [keys.deciding, keys.feedback, keys.decisions] + [keys.decision(i) for i in ids]
-    flags = client.eval(_FINALIZE, len(script_keys), *script_keys, f"{float(now):.3f}", decisions_maxlen,
-                        len(ids), *ids)
-    return [i for i, ok in zip(ids, flags) if int(ok)]
+    written = _finish(client, keys, list(dict.fromkeys(ids)), now=now, decisions_maxlen=decisions_maxlen)
+    return [i for i in dict.fromkeys(ids) if i in written]
 
 
 def finalize_due(client, keys: Keys, *, now: float, batch: int = 500,
                  decisions_maxlen: int = DECISIONS_MAXLEN) -> int:
-    """Finalize every decision whose undo window is over; safe to run from any number of processes."""
+    """Finalize every decision whose undo window is over, in every partition; safe from any number of processes."""
     total = 0
-    while True:
-        due = [_s(m) for m in client.zrangebyscore(keys.deciding, "-inf", f"{float(now):.3f}", start=0, num=batch)]
-        if not due:
-            return total
-        total += len(finalize(client, keys, due, now=now, decisions_maxlen=decisions_maxlen))
-        if len(due) < batch:
-            return total
+    for part in keys.parts:
+        while True:
+            due = [_s(m) for m in client.zrangebyscore(part.deciding, "-inf", f"{float(now):.3f}", start=0,
+                                                        num=batch)]
+            if not due:
+                break
+            total += len(finalize(client, keys, due, now=now, decisions_maxlen=decisions_maxlen))
+            if len(due) < batch:
+                break
+    return total
 
 
 def pending_count(client, keys: Keys) -> int:
-    """Decisions still inside their undo window."""
-    return int(client.zcard(keys.deciding))
+    """Decisions still inside their undo window, over every partition."""
+    pipe = client.pipeline(transaction=False)
+    for part in keys.parts:
+        pipe.zcard(part.deciding)
+    return sum(int(n) for n in pipe.execute())
 
 
 def label_now(client, keys: Keys, comment_id: str, label: str, *, moderator: str = "", reason: str = "",
@@ -277,6 +398,8 @@ def label_now(client, keys: Keys, comment_id: str, label: str, *, moderator: str
               decisions_maxlen: int = DECISIONS_MAXLEN) -> dict:
     """Send one label at once; a held comment also leaves the queue and gets its decision written.
 
+    A held comment is claimed and finalized at once (the same steps as the
+    console's, with no undo window); any other gets only the label.
     Returns ``{"feedback_id": ..., "decided": bool}``.
     """
     check_ids("label", [comment_id])
@@ -284,11 +407,21 @@ def label_now(client, keys: Keys, comment_id: str, label: str, *, moderator: str
         raise ValueError(f"label: label must be 'spam' or 'ham', got {label!r}")
     _check_text("label", "moderator", moderator, NAME_MAX_BYTES, empty_ok=True)
     _check_text("label", "reason", reason, REASON_MAX_BYTES, empty_ok=True)
-    script_keys = [keys.held, keys.feedback, keys.decisions, keys.text(comment_id)]
-    decided, feedback_id = client.eval(
-        _LABEL_NOW, len(script_keys), *script_keys, comment_id, label, ACTION_OF[label], moderator, reason, source,
-        f"{float(now):.3f}", decisions_maxlen, "1" if text is not None else "0", text if text is not None else "")
-    return {"feedback_id": _s(feedback_id), "decided": bool(int(decided))}
+    entry = {"id": comment_id, "label": label}
+    entry.update({k: v for k, v in (("moderator", moderator), ("reason", reason)) if v})
+    if text is not None:
+        entry["text"] = text
+    decided = _park(client, keys, [comment_id], token=secrets.token_urlsafe(16), final_at=float(now),
+                    moderator=moderator, action=ACTION_OF[label], reason=reason, source=source, now=now,
+                    feedback={comment_id: entry})
+    if decided:
+        written = _finish(client, keys, decided, now=now, decisions_maxlen=decisions_maxlen)
+        if comment_id in written:
+            return {"feedback_id": written[comment_id], "decided": True}
+        # Another process finalized the decision between the two steps: it wrote the same entries.
+        return {"feedback_id": "", "decided": True}
+    feedback_id = client.xadd(keys.feedback, entry)
+    return {"feedback_id": _s(feedback_id), "decided": False}
 
 
 def write_audit(client, keys: Keys, event: str, fields: dict, *, now: float, maxlen: int = AUDIT_MAXLEN,

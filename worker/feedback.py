@@ -75,8 +75,9 @@ class Rejected:
     detail: str = ""
 
 
-def held_key(keys: Keys) -> str:
-    return keys.held
+def held_key(keys: Keys, comment_id: str) -> str:
+    """The hold queue a comment would be in: its partition's."""
+    return keys.part_of(comment_id).held
 
 
 def text_key(keys: Keys, comment_id: str) -> str:
@@ -200,7 +201,7 @@ def write_deadletter(client, keys: Keys, rejected: Rejected, *, maxlen: int = 10
         while key in entry:
             key = "orig_" + key
         entry[key] = value
-    pipe.xadd(keys.deadletter, entry, maxlen=maxlen, approximate=True)
+    pipe.xadd(keys.feedback_deadletter, entry, maxlen=maxlen, approximate=True)
     if pipeline is None:
         return pipe.execute()
     return None
@@ -237,7 +238,8 @@ class FeedbackConsumer:
         self._backoff = Backoff(base_s=settings.backoff_initial_s, factor=settings.backoff_factor,
                                 cap_s=settings.backoff_cap_s)
         self._group_ready = False
-        self._deadletter_log = DeadLetterLog(logger=log, source=keys.feedback, deadletter=keys.deadletter)
+        self._deadletter_log = DeadLetterLog(logger=log, source=keys.feedback,
+                                             deadletter=keys.feedback_deadletter)
 
     # -- Redis -----------------------------------------------------------------
     def ensure_group(self) -> None:
@@ -246,7 +248,11 @@ class FeedbackConsumer:
         self._group_ready = True
 
     def handle(self, entries: list[tuple[str, dict]]) -> dict[str, int]:
-        """Label or dead-letter ``entries`` (``(stream_id, fields)``) and ack them, all in one MULTI."""
+        """Label or dead-letter ``entries`` (``(stream_id, fields)``) and ack them in one MULTI on the shared keys.
+
+        The labelled comments leave their partitions' hold queues first (an
+        idempotent ZREM each, so a crash before the MULTI only repeats it).
+        """
         if not entries:
             return {"labelled": 0, "deadlettered": 0}
         s = self.settings
@@ -262,19 +268,27 @@ class FeedbackConsumer:
         now = self.clock()
         counts = {"labelled": 0, "deadlettered": 0}
         dead = []
-        pipe = self.client.pipeline(transaction=True)
+        joined = []
         for (_sid, sent), item in zip(entries, parsed):
             if isinstance(item, Feedback):
                 item = join_label(item, cached.get(item.stream_id), now=now, text_max_bytes=s.text_max_bytes)
                 if isinstance(item, Rejected):
                     item = dataclasses.replace(item, fields=_printable(sent))  # every field the moderator sent
+            joined.append(item)
+        decided = [item.id for item in joined if not isinstance(item, Rejected)]
+        if decided:
+            release = self.client.pipeline(transaction=False)
+            for comment_id in decided:
+                release.zrem(held_key(self.keys, comment_id), comment_id)
+            release.execute()
+        pipe = self.client.pipeline(transaction=True)
+        for item in joined:
             if isinstance(item, Rejected):
                 write_deadletter(self.client, self.keys, item, maxlen=s.deadletter_maxlen, pipeline=pipe)
                 counts["deadlettered"] += 1
                 dead.append(item)
             else:
                 append_label(self.client, self.keys, item, labels_max=s.labels_max, pipeline=pipe)
-                pipe.zrem(held_key(self.keys), item.id)
                 counts["labelled"] += 1
         pipe.xack(self.keys.feedback, s.group, *[sid for sid, _ in entries])
         pipe.execute()

@@ -6,6 +6,11 @@ verdict in the ``text:{id}`` hash (see :mod:`worker.commit`).  A moderator
 tool reads both through :func:`read_held`; decisions go through
 :mod:`worker.decisions`, never through writes of its own.
 
+With K partitions (``keys.partitions``) each partition has its own ``held``
+set; the readers here merge them, so a moderator sees one queue: counts sum,
+and a page of the queue is the same page a single set of all held comments
+would give (ordered by hold time, ties by id).
+
 Parsing the cached hash is a pure function (:func:`parse_held`), so bad or
 missing values (an expired cache, a hash from an older worker without
 ``reasons``, a score that is not a number) are handled without a server: the
@@ -13,6 +18,7 @@ comment is still listed, with what is known.
 """
 from __future__ import annotations
 
+import heapq
 import json
 import math
 from collections.abc import Sequence
@@ -105,25 +111,81 @@ def parse_held(comment_id, held_at, values: Sequence) -> HeldComment:
 
 
 def held_count(client, keys: Keys) -> int:
-    return int(client.zcard(keys.held))
+    """Held comments over every partition."""
+    pipe = client.pipeline(transaction=False)
+    for part in keys.parts:
+        pipe.zcard(part.held)
+    return sum(int(n) for n in pipe.execute())
 
 
 def newest_held_at(client, keys: Keys) -> float | None:
     """When the most recent comment was held, or None for an empty queue."""
-    top = client.zrevrange(keys.held, 0, 0, withscores=True)
-    return float(top[0][1]) if top else None
+    pipe = client.pipeline(transaction=False)
+    for part in keys.parts:
+        pipe.zrevrange(part.held, 0, 0, withscores=True)
+    tops = [float(top[0][1]) for top in pipe.execute() if top]
+    return max(tops) if tops else None
+
+
+def merge_pages(pages: Sequence[Sequence[tuple]], *, offset: int, limit: int, newest_first: bool) -> list[tuple]:
+    """One page ``[offset, offset + limit)`` of the union of per-partition ``(member, score)`` lists (pure).
+
+    Each list is ordered as ZREVRANGE (``newest_first``) or ZRANGE gives it
+    and holds at least its first ``offset + limit`` members; the result is the
+    page one sorted set of every member would give: by score, ties by member.
+
+    >>> merge_pages([[(b"c", 3.0), (b"a", 1.0)], [(b"b", 2.0)]], offset=1, limit=2, newest_first=True)
+    [(b'b', 2.0), (b'a', 1.0)]
+    """
+    if newest_first:
+        merged = heapq.merge(*pages, key=lambda row: (-float(row[1]), _neg_bytes(row[0])))
+    else:
+        merged = heapq.merge(*pages, key=lambda row: (float(row[1]), _bytes(row[0])))
+    out = []
+    for i, row in enumerate(merged):
+        if i >= offset + limit:
+            break
+        if i >= offset:
+            out.append(row)
+    return out
+
+
+def _bytes(value) -> bytes:
+    return value if isinstance(value, bytes) else str(value).encode("utf-8")
+
+
+class _neg_bytes:
+    """Orders members descending, as ZREVRANGE orders equal scores."""
+
+    __slots__ = ("b",)
+
+    def __init__(self, value):
+        self.b = _bytes(value)
+
+    def __lt__(self, other):
+        return self.b > other.b
+
+    def __eq__(self, other):
+        return self.b == other.b
 
 
 def read_held(client, keys: Keys, *, limit: int = 500, offset: int = 0, newest_first: bool = True) -> list[HeldComment]:
     """Up to ``limit`` held comments from ``offset``, newest (or oldest) first, with their cached fields.
 
-    Two round trips: one ZRANGE, one pipeline of HMGETs.
+    Two round trips: one pipeline of ZRANGEs (one per partition), one pipeline of HMGETs.
     """
     for name, value, low in (("limit", limit, 1), ("offset", offset, 0)):
         if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= MAX_READ:
             raise ValueError(f"read_held: {name} must be an integer in [{low}, {MAX_READ}], got {value!r}")
-    read = client.zrevrange if newest_first else client.zrange
-    rows = read(keys.held, offset, offset + limit - 1, withscores=True)
+    parts = keys.parts
+    if len(parts) == 1:
+        read = client.zrevrange if newest_first else client.zrange
+        rows = read(parts[0].held, offset, offset + limit - 1, withscores=True)
+    else:
+        pipe = client.pipeline(transaction=False)
+        for part in parts:
+            (pipe.zrevrange if newest_first else pipe.zrange)(part.held, 0, offset + limit - 1, withscores=True)
+        rows = merge_pages(pipe.execute(), offset=offset, limit=limit, newest_first=newest_first)
     if not rows:
         return []
     pipe = client.pipeline(transaction=False)
@@ -138,7 +200,7 @@ def read_held_by_id(client, keys: Keys, ids: Sequence[str]) -> list[HeldComment]
         return []
     pipe = client.pipeline(transaction=False)
     for comment_id in ids:
-        pipe.zscore(keys.held, comment_id)
+        pipe.zscore(keys.part_of(comment_id).held, comment_id)
         pipe.hmget(keys.text(comment_id), CACHED_FIELDS)
     replies = pipe.execute()
     out = []

@@ -19,14 +19,25 @@ def setting(default, help: str, **extra):
 
 
 class _Name:
-    """A fixed key name of :class:`Keys`: ``keys.comments`` is the prefix followed by ``comments``."""
+    """A fixed key name of :class:`Keys` outside the partitions: ``keys.feedback`` is the prefix followed by
+    ``feedback`` (with the shared hash tag when the deployment is partitioned, see :meth:`Keys.shared`)."""
 
-    def __init__(self, *parts: str, doc: str = ""):
+    def __init__(self, *parts: str, doc: str = "", tagged: bool = True):
         self.parts = parts
+        self.tagged = tagged
+        self.name = parts[-1]
         self.__doc__ = doc
 
+    def __set_name__(self, owner, name):
+        self.name = name
+
     def __get__(self, keys, owner=None):
-        return self if keys is None else keys.key(*self.parts)
+        if keys is None:
+            return self
+        return keys.shared(*self.parts) if self.tagged else keys.key(*self.parts)
+
+
+SHARED_TAG = "shared"  # the hash tag of every key outside the partitions when K > 1 (Keys.shared)
 
 
 class _PartName(_Name):
@@ -38,8 +49,8 @@ class _PartName(_Name):
             return self
         if isinstance(keys, Keys) and keys.partitions != 1:
             raise PartitionedKeyError(
-                f"Keys.{self.parts[-1]}: this deployment splits its comment stream into "
-                f"{keys.partitions} partitions; use keys.part(p).{self.parts[-1]} or keys.parts")
+                f"Keys.{self.name}: this deployment splits its comment stream into "
+                f"{keys.partitions} partitions; use keys.part(p).{self.name} or keys.parts")
         return keys.key(*self.parts)
 
 
@@ -68,6 +79,13 @@ class PartKeys:
     deadletter = _PartName("deadletter", doc="Stream of entries that could not be judged, each with its reason.")
     held = _PartName("held", doc="Sorted set of held comments (score = when held).")
     lease = _PartName("lease", doc="Which worker reads this partition, and until when (a key with a TTL).")
+    deciding = _PartName("decisions", "pending",
+                         doc="Sorted set of this partition's decided comments still inside their undo window "
+                             "(score = when final).")
+
+    def decision(self, comment_id: str) -> str:
+        """Hash of one decision inside its undo window (the comment's claim, in its partition)."""
+        return self.key("decisions", "pending", comment_id)
 
     def text(self, comment_id: str) -> str:
         """Hash caching one comment's text and verdict (TTL ``worker.text_cache_ttl_s``)."""
@@ -97,9 +115,14 @@ class Keys:
     :class:`PartitionedKeyError`, so that no code reads one partition as if it
     were the whole deployment.
 
-    Keys outside the partitions (feedback, labels, events, the registry, the
-    campaign state, decisions, the console's) are single keys; no operation
-    may span two of them unless they share a hash tag.
+    Keys outside the partitions (feedback, labels, events, the registry,
+    decisions, the console's, the waves' and the retrain's) are single keys.
+    With K > 1 they all carry one shared hash tag after the prefix
+    (``seawall:{shared}:models:active``, :meth:`shared`), so that an operation
+    that changes several of them together (a promote and its event, a
+    feedback batch and its labels) stays in one Redis Cluster slot; with K = 1
+    their names are unchanged.  The campaign state names its own keys
+    (:meth:`campaigns`).  No operation spans a partition's keys and these.
     """
 
     prefix: str = setting("seawall:", "prefix of every Redis key; keep hash tags out of it when partitions > 1")
@@ -121,6 +144,17 @@ class Keys:
 
     def key(self, *parts: str) -> str:
         return self.prefix + ":".join(parts)
+
+    def shared(self, *parts: str) -> str:
+        """A key outside the partitions: ``<prefix><parts>`` with K = 1, ``<prefix>{shared}:<parts>`` with K > 1.
+
+        Every such key of a partitioned deployment shares the hash tag
+        :data:`SHARED_TAG`, so the control plane's multi-key operations stay in
+        one Redis Cluster slot.
+        """
+        if self.partitions == 1:
+            return self.key(*parts)
+        return f"{self.prefix}{{{SHARED_TAG}}}:" + ":".join(parts)
 
     def part(self, partition: int) -> PartKeys:
         """The keys of one partition, ``0 <= partition < self.partitions``."""
@@ -154,7 +188,7 @@ class Keys:
     deadletter = _PartName("deadletter", doc="Stream of entries that could not be judged, each with its reason.")
     feedback = _Name("feedback", doc="Stream of moderators' labels on their way to the labelled store.")
     events = _Name("events", doc="Stream of events: waves, campaigns, retrains, model switches (worker/events.py).")
-    group = _Name("workers", doc="The stream workers' consumer group.")
+    group = _Name("workers", doc="The stream workers' consumer group (a name, not a key).", tagged=False)
     members = _Name("workers", "members",
                     doc="Sorted set of live workers sharing the partitions (score = when the heartbeat runs out, ms).")
     held = _PartName("held", doc="Sorted set of held comments (score = when held).")
@@ -170,11 +204,11 @@ class Keys:
 
     def model_blob(self, version: str) -> str:
         """One pushed model file."""
-        return self.key("models", "blob", version)
+        return self.shared("models", "blob", version)
 
     def model_meta(self, version: str) -> str:
         """Hash of one pushed model's metadata (thresholds, source, parent, times, labels cursor)."""
-        return self.key("models", "meta", version)
+        return self.shared("models", "meta", version)
 
     def text(self, comment_id: str) -> str:
         """Hash caching one comment's text and verdict, in the comment's partition."""
@@ -197,20 +231,36 @@ class Keys:
 
     # -- moderators' decisions (worker/decisions.py) and the console's accounts --
     decisions = _Name("decisions", doc="Stream of final moderator decisions, for the site's application.")
-    deciding = _Name("decisions", "pending",
-                     doc="Sorted set of decided comments still inside their undo window (score = when final).")
+    deciding = _PartName("decisions", "pending",
+                         doc="Sorted set of decided comments still inside their undo window (score = when final); "
+                             "with K > 1 each partition has its own (``keys.part(p).deciding``).")
     audit = _Name("audit", doc="Stream of who did what in the console (sign-ins, decisions, undos, promotions).")
     accounts = _Name("console", "accounts", doc="Hash of console accounts: name -> JSON record (role, salted scrypt hash).")
     session_secret = _Name("console", "secret",
                            doc="The key that signs console session cookies, shared by every console process.")
 
     def decision(self, comment_id: str) -> str:
-        """Hash of one decision inside its undo window."""
-        return self.key("decisions", "pending", comment_id)
+        """Hash of one decision inside its undo window, in the comment's partition."""
+        return self.part_of(comment_id).decision(comment_id)
+
+    def decision_written(self, comment_id: str, token: str) -> str:
+        """Marker that one claim's label and decision were written (TTL); makes that write safe to repeat."""
+        return self.shared("decisions", "written", comment_id, token)
+
+    @property
+    def feedback_deadletter(self) -> str:
+        """Where bad feedback is dead-lettered: the dead-letter stream with K = 1, a shared one with K > 1."""
+        return self.shared("deadletter")
+
+    @property
+    def deadletter_streams(self) -> tuple[str, ...]:
+        """Every dead-letter stream: each partition's, then the feedback's when it is a separate one."""
+        names = tuple(p.deadletter for p in self.parts)
+        return names if self.feedback_deadletter in names else names + (self.feedback_deadletter,)
 
     def signin_failures(self, account: str) -> str:
         """Counter of one account's failed console sign-ins (TTL: the lockout window)."""
-        return self.key("console", "failures", account)
+        return self.shared("console", "failures", account)
 
 
 @dataclass(frozen=True, kw_only=True)

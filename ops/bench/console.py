@@ -182,12 +182,12 @@ def _bench(args, url: str) -> int:
     from ops.connection import connect
     from ops.console.accounts import Accounts
     from ops.console.app import Console
-    from worker.holdqueue import read_held
+    from worker.holdqueue import held_count, read_held
 
     config = load_config({"redis_url": url, "keys.prefix": "seawall-bench-console:"}, environ={})
     keys = config.keys
     client = connect(config)
-    if client.exists(keys.held, keys.accounts):
+    if held_count(client, keys) or client.exists(keys.accounts):
         raise SeawallError(f"bench console: keys under {keys.prefix!r} already exist; use an empty Redis")
     data = invented_comments(2000, seed=3)
     model = EmbeddingClassifier(seed=0, epochs=3).fit([t for t, _ in data], [y for _, y in data])
@@ -195,7 +195,7 @@ def _bench(args, url: str) -> int:
     comments = [{"id": f"bench-{i}", "text": t, "site": SITE, "author": f"member-{i % 97}"}
                 for i, (t, _y) in enumerate(texts)]
     fill_queue(url, keys, comments, model, site_thresholds={SITE: {Action.HOLD: 0.0, Action.REJECT: 1.0}})
-    held = client.zcard(keys.held)
+    held = held_count(client, keys)
     accounts = Accounts(client=client, keys=keys)
     accounts.add("bench-moderator", PASSWORD, role="moderator", now=time.time())
     console = Console(client=client, config=config, accounts=accounts)

@@ -123,7 +123,9 @@ def open_console(client, config, *, story_end: float, port: int, on_ready=None) 
     url = f"http://127.0.0.1:{port}/queue"
 
     def ready(server):
-        held = client.zcard(config.keys.held)
+        from worker.holdqueue import held_count
+
+        held = held_count(client, config.keys)
         print(f"\nconsole: {url}  ({held} held comments left for you)\n"
               f"  sign in as {DEMO_ACCOUNT!r} with the password {password}  (made for this run only)\n"
               "  Ctrl-C ends the demo", flush=True)

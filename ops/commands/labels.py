@@ -82,10 +82,16 @@ def run_import(args) -> int:
     records = read_label_file(args.file, text_max_bytes=config.retrain.feedback_text_max_bytes, now=time.time())
     client = connect(config)
     for i in range(0, len(records), 500):
+        chunk = records[i:i + 500]
+        # A labelled comment leaves its partition's hold queue (idempotent), then the labels go in one
+        # MULTI on the shared keys: no transaction spans a partition and the labelled store.
+        release = client.pipeline(transaction=False)
+        for record in chunk:
+            release.zrem(config.keys.part_of(record.id).held, record.id)
+        release.execute()
         pipe = client.pipeline(transaction=True)
-        for record in records[i:i + 500]:
+        for record in chunk:
             append_label(client, config.keys, record, labels_max=config.retrain.labels_max, pipeline=pipe)
-            pipe.zrem(config.keys.held, record.id)
         pipe.execute()
     if args.json:
         print(json.dumps({"imported": len(records), "file": args.file}))

@@ -2,14 +2,18 @@
 
 Reads what the workers, detectors and retrains already share: the per-minute
 counts (:func:`ops.watchview.collect`), waves, campaigns, consumer groups, the
-dead-letter stream, the decisions stream, the model registry and its retrain
-reports.  :func:`summarize_rates`, :func:`deadletter_counts` and
+dead-letter streams, the decisions stream, the model registry and its retrain
+reports.  With K partitions the counts, the held and deciding totals, the
+comment groups' lag and the dead letters by reason are sums over the
+partitions.  :func:`summarize_rates`, :func:`deadletter_counts` and
 :func:`gate_summary` are pure, so they are tested without a server.  Nothing
 returned holds an author; comment text appears only as a campaign's or a
 family's example, which the page renders escaped.
 """
 from __future__ import annotations
 
+import heapq
+import itertools
 import json
 from collections import Counter
 from collections.abc import Sequence
@@ -22,6 +26,7 @@ from ops.retrain import last_reports
 from ops.watchview import SiteRow, collect
 from worker.decisions import pending_count
 from worker.holdqueue import held_count
+from worker.streams import stream_id_order
 
 HOURS = 3  # the per-minute counts live worker.rates_ttl_s (3 h by default)
 BUCKET_MIN = 5
@@ -118,6 +123,35 @@ def _groups(client, stream: str) -> list[dict]:
     return out
 
 
+def _comment_groups(client, keys) -> list[dict]:
+    """The comment streams' consumer groups; with K partitions one row per group, lag and pending summed."""
+    parts = keys.parts
+    if len(parts) == 1:
+        return _groups(client, parts[0].comments)
+    merged: dict[str, dict] = {}
+    for part in parts:
+        for g in _groups(client, part.comments):
+            row = merged.setdefault(g["group"], {"stream": f"{keys.prefix}comments ({len(parts)} partitions)",
+                                                 "group": g["group"], "lag": 0, "pending": 0, "consumers": 0})
+            row["lag"] = None if row["lag"] is None or g["lag"] is None else row["lag"] + g["lag"]
+            row["pending"] += g["pending"]
+            row["consumers"] = max(row["consumers"], g["consumers"])
+    return list(merged.values())
+
+
+def newest_deadletters(client, keys, count: int = DEADLETTER_SAMPLE) -> list:
+    """The newest ``count`` entries over every dead-letter stream (each partition's and the feedback's), newest first."""
+    pipe = client.pipeline(transaction=False)
+    streams = keys.deadletter_streams
+    for stream in streams:
+        pipe.xrevrange(stream, count=count)
+    replies = pipe.execute()
+    if len(replies) == 1:
+        return replies[0]
+    merged = heapq.merge(*replies, key=lambda entry: stream_id_order(entry[0]), reverse=True)
+    return list(itertools.islice(merged, count))
+
+
 def _examples(client, keys, ids: Sequence[str]) -> dict[str, str]:
     if not ids:
         return {}
@@ -186,7 +220,7 @@ def collect_overview(client, keys, *, now: float, families: list[dict] | None = 
         c["example"] = examples.get(c["example_id"])
     waves = [{"site": site, "since": (w.get("minute") or 0) * 60 or None, "rate": w.get("rate"),
               "baseline": w.get("baseline")} for site, w in sorted(snap.waves.items())]
-    dead = deadletter_counts(client.xrevrange(keys.deadletter, count=DEADLETTER_SAMPLE))
+    dead = deadletter_counts(newest_deadletters(client, keys))
     return {
         "now": now,
         "held": held_count(client, keys),
@@ -197,7 +231,7 @@ def collect_overview(client, keys, *, now: float, families: list[dict] | None = 
         "campaigns": campaigns,
         "families": families or [],
         "deadletters": dead,
-        "groups": (_groups(client, keys.comments) + _groups(client, keys.feedback)
+        "groups": (_comment_groups(client, keys) + _groups(client, keys.feedback)
                    + _groups(client, keys.decisions)),
         "models": models(client, keys),
         "events": [{"type": e.type, "ts": e.ts, "summary": _event_summary(e.type, e.data)} for e in snap.events],

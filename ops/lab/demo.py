@@ -57,8 +57,10 @@ from ops.waves import WaveDetector
 from worker.campaigns import campaign_keys
 from worker.consumer import StreamConsumer
 from worker.events import read_events
+from worker.holdqueue import held_count, read_held
 from worker.labels import label_name
 from worker.partitions import send_comment
+from worker.streams import stream_id_order
 
 log = logging.getLogger("seawall.demo")
 
@@ -272,25 +274,27 @@ class ReaderReports:
     def __init__(self, *, keys, truth: dict[str, ScenarioComment]):
         self.keys = keys
         self.truth = truth
-        self._last = "-"
+        self._last = {part.verdicts: "-" for part in keys.parts}
 
     def since_last(self, client) -> list[str]:
-        """Ids of spam published since the previous call (first verdicts only, not re-scores)."""
+        """Ids of spam published since the previous call (first verdicts only, not re-scores), every partition."""
         out = []
-        start = self._last if self._last == "-" else f"({self._last}"
-        for sid, fields in client.xrange(self.keys.verdicts, min=start):
-            self._last = _text(sid)
-            f = {_text(k): _text(v) for k, v in fields.items()}
-            c = self.truth.get(f.get("id", ""))
-            if c is not None and c.label and f.get("action") == Action.PUBLISH and f.get("rescored") != "1":
-                out.append(c.id)
+        for stream, last in self._last.items():
+            start = last if last == "-" else f"({last}"
+            for sid, fields in client.xrange(stream, min=start):
+                self._last[stream] = _text(sid)
+                f = {_text(k): _text(v) for k, v in fields.items()}
+                c = self.truth.get(f.get("id", ""))
+                if c is not None and c.label and f.get("action") == Action.PUBLISH and f.get("rescored") != "1":
+                    out.append(c.id)
         return out
 
 
 def moderate(client, config: Config, rng: random.Random, truth: dict[str, ScenarioComment],
              published_spam: list[str], sent: Counter, *, review_held: bool = True) -> int:
     """One review round: label the oldest held comments and a sample of the published spam readers report."""
-    held = [_text(m) for m in client.zrange(config.keys.held, 0, HELD_REVIEWED_PER_ROUND - 1)] if review_held else []
+    held = ([c.id for c in read_held(client, config.keys, limit=HELD_REVIEWED_PER_ROUND, newest_first=False)]
+            if review_held else [])
     reported = [cid for cid in published_spam if rng.random() < REPORTED_SHARE]
     pipe = client.pipeline(transaction=False)
     n = 0
@@ -462,7 +466,7 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
              f"{gate.get(report.get('chosen'), {}).get('roc_auc', float('nan')):.3f}; promoted {version} "
              f"({report.get('chosen', '').replace('_', ' ')})")
     if not rescore:
-        progress(f"{stamp(clock.now)} the hold queue is left for you ({client.zcard(config.keys.held)} held): "
+        progress(f"{stamp(clock.now)} the hold queue is left for you ({held_count(client, config.keys)} held): "
                  "no re-score, no more simulated review")
     else:
         result.rescore = rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
@@ -503,29 +507,35 @@ def narrate(event: dict, result: DemoResult, seen: set) -> str:
 
 def _status(client, keys) -> str:
     pipe = client.pipeline(transaction=False)
-    pipe.xlen(keys.verdicts)
-    pipe.zcard(keys.held)
+    for part in keys.parts:
+        pipe.xlen(part.verdicts)
     pipe.hlen(campaign_keys(keys)["active"])
-    verdicts, held, campaigns = pipe.execute()
+    *lengths, campaigns = pipe.execute()
+    verdicts, held = sum(lengths), held_count(client, keys)
     return f"{verdicts:,} verdicts, {held} held for review, {campaigns} campaign cluster(s) active"
 
 
 def _read_verdicts(client, keys, truth, minute_of) -> list[Verdict]:
+    entries = []
+    for part in keys.parts:
+        last = "-"
+        while True:
+            chunk = client.xrange(part.verdicts, min=last, count=5000)
+            if last != "-":
+                chunk = chunk[1:]
+            if not chunk:
+                break
+            entries += chunk
+            last = _text(chunk[-1][0])
+    if len(keys.parts) > 1:
+        entries.sort(key=lambda entry: stream_id_order(entry[0]))  # the partitions' verdicts in time order
     out, seen = [], set()
-    last = "-"
-    while True:
-        chunk = client.xrange(keys.verdicts, min=last, count=5000)
-        if last != "-":
-            chunk = chunk[1:]
-        if not chunk:
-            break
-        for sid, fields in chunk:
-            f = {_text(k): _text(v) for k, v in fields.items()}
-            cid = f.get("id", "")
-            if f.get("rescored") == "1" or cid in seen or cid not in truth:
-                continue
-            seen.add(cid)
-            out.append(Verdict(truth[cid], f.get("action", ""), float(f.get("score", "nan")), f.get("model", ""),
-                               minute_of[cid]))
-        last = _text(chunk[-1][0])
+    for _sid, fields in entries:
+        f = {_text(k): _text(v) for k, v in fields.items()}
+        cid = f.get("id", "")
+        if f.get("rescored") == "1" or cid in seen or cid not in truth:
+            continue
+        seen.add(cid)
+        out.append(Verdict(truth[cid], f.get("action", ""), float(f.get("score", "nan")), f.get("model", ""),
+                           minute_of[cid]))
     return out
