@@ -288,6 +288,7 @@ class ClusterNode(RedisServer):
                       # a replica's first full sync starts at once (the default waits 5 s for more replicas)
                       "--repl-diskless-sync-delay", "0"]
         self._node_id: str | None = None
+        self.paused = False
 
     @property
     def address(self) -> str:
@@ -295,6 +296,15 @@ class ClusterNode(RedisServer):
 
     def alive(self) -> bool:
         return self.proc is not None and self.proc.poll() is None
+
+    def pause(self) -> None:
+        """SIGSTOP: the node stops answering (and reading its replication link) until :meth:`resume`."""
+        self.proc.send_signal(signal.SIGSTOP)
+        self.paused = True
+
+    def resume(self) -> None:
+        self.proc.send_signal(signal.SIGCONT)
+        self.paused = False
 
     def node_id(self) -> str:
         if self._node_id is None:
@@ -356,6 +366,9 @@ class RedisCluster:
 
     def stop(self) -> None:
         """SIGTERM every node at once (a primary waits for its replicas on shutdown), then reap each."""
+        for node in self.nodes:
+            if node.paused:
+                node.resume()
         for node in self.live_nodes():
             node.proc.send_signal(signal.SIGTERM)
         for node in self.nodes:
@@ -375,7 +388,8 @@ class RedisCluster:
     # -- what the nodes say -------------------------------------------------------------------
 
     def live_nodes(self) -> list[ClusterNode]:
-        return [n for n in self.nodes if n.alive()]
+        """Nodes running and not paused."""
+        return [n for n in self.nodes if n.alive() and not n.paused]
 
     def node_at(self, address: str) -> ClusterNode:
         for node in self.nodes:
@@ -458,11 +472,17 @@ class RedisCluster:
 
     # -- faults -------------------------------------------------------------------------------
 
-    def kill_primary(self, primary: ClusterNode) -> ClusterNode:
-        """SIGKILL ``primary`` and wait (bounded) until its replica serves its slots; returns the replica."""
-        replica = self.replica_of(primary)
+    def kill_primary(self, primary: ClusterNode, *, stalled_replica: ClusterNode | None = None) -> ClusterNode:
+        """SIGKILL ``primary`` and wait (bounded) until its replica serves its slots; returns the replica.
+
+        ``stalled_replica``: the primary's replica, paused (:meth:`ClusterNode.pause`); it is resumed
+        right after the kill and takes over with whatever it had received.
+        """
+        replica = stalled_replica or self.replica_of(primary)
         slots = set(next(r["slots"] for r in self.topology() if r["address"] == primary.address))
         primary.kill()
+        if stalled_replica is not None:
+            stalled_replica.resume()
         deadline = time.monotonic() + self.settle_timeout_s
         while time.monotonic() < deadline:
             try:

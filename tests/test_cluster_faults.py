@@ -8,6 +8,7 @@
 """
 from __future__ import annotations
 
+import contextlib
 import json
 import random
 import threading
@@ -19,7 +20,7 @@ import redis
 
 from faults_kit import comment_text, start_workers, tally
 from kit import stop_all, wait_for_progress, wait_until
-from worker.partitions import key_slot, send_comment
+from worker.partitions import key_slot, send_comment, stream_key
 from worker.settings import Keys
 
 pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
@@ -99,19 +100,60 @@ def deadletter_count(client, keys: Keys = KEYS) -> int:
 
 # -- a producer and a verdict reader on the cluster client ----------------------------------------------
 
+class NotReplicated(Exception):
+    """WAIT said no replica has the chunk's writes yet."""
+
+
 class ClusterProducer(threading.Thread):
     """Sends comments ``c<i>`` to their partitions at about ``rate``/s in chunks, surviving failovers.
 
     A chunk whose pipeline fails is sent again (so an entry may reach its stream twice: the done markers
     keep it to one verdict).  ``accepted_at[id]`` is when the cluster acknowledged the id's XADD.
+
+    With ``wait_ms``, a chunk counts as accepted only once ``WAIT 1 <wait_ms>`` says a replica has it: the
+    XADDs for each primary and the WAIT go down one connection to that primary (WAIT counts the writes of
+    its own connection), and a chunk WAIT does not confirm is sent again.  ``pad`` lengthens every text.
     """
 
-    def __init__(self, client, *, n: int, rate: float, chunk: int = 50, keys: Keys = KEYS):
+    def __init__(self, client, *, n: int, rate: float, chunk: int = 50, keys: Keys = KEYS, wait_ms: int = 0,
+                 pad: int = 0):
         super().__init__(name="cluster-producer", daemon=True)
         self.client, self.n, self.rate, self.chunk, self.keys = client, n, rate, chunk, keys
+        self.wait_ms, self.pad = wait_ms, pad
         self.accepted_at: dict[str, float] = {}
         self.errors = 0
         self.abort = threading.Event()
+
+    def fields(self, k: int) -> dict:
+        text = comment_text(k)
+        if self.pad:
+            text = (text + " " + " ".join(comment_text(k + j) for j in range(1, self.pad // 40 + 2)))[:self.pad]
+        return {"id": f"c{k}", "text": text, "site": f"site{k % 3}.example", "author": f"member{k % 97}"}
+
+    def send(self, ids) -> None:
+        if not self.wait_ms:
+            pipe = self.client.pipeline(transaction=False)
+            for k in ids:
+                send_comment(self.client, self.keys, self.fields(k), pipeline=pipe)
+            pipe.execute()
+            return
+        by_node: dict[str, tuple] = {}
+        for k in ids:
+            node = self.client.get_node_from_key(stream_key(self.keys, f"c{k}"))
+            by_node.setdefault(node.name, (node, []))[1].append(k)
+        try:
+            for node, ks in by_node.values():
+                direct = self.client.get_redis_connection(node)
+                pipe = direct.pipeline(transaction=False)
+                for k in ks:
+                    send_comment(direct, self.keys, self.fields(k), pipeline=pipe)
+                pipe.execute_command("WAIT", 1, self.wait_ms)
+                if pipe.execute()[-1] < 1:
+                    raise NotReplicated(node.name)
+        except (*CLUSTER_TRANSIENT, NotReplicated):
+            with contextlib.suppress(*CLUSTER_TRANSIENT):
+                self.client.nodes_manager.initialize()  # a failover moved the slots: ask the cluster again
+            raise
 
     def run(self) -> None:
         t0 = time.monotonic()
@@ -122,13 +164,8 @@ class ClusterProducer(threading.Thread):
                 time.sleep(pause)
             ids = range(i, min(self.n, i + self.chunk))
             try:
-                pipe = self.client.pipeline(transaction=False)
-                for k in ids:
-                    send_comment(self.client, self.keys, {"id": f"c{k}", "text": comment_text(k),
-                                                          "site": f"site{k % 3}.example", "author": f"member{k % 97}"},
-                                 pipeline=pipe)
-                pipe.execute()
-            except CLUSTER_TRANSIENT:
+                self.send(ids)
+            except (*CLUSTER_TRANSIENT, NotReplicated):
                 self.errors += 1
                 time.sleep(0.05)
                 continue
@@ -170,6 +207,14 @@ def replication_lag_bytes(primary, replica) -> int:
         ahead = int(p.info("replication")["master_repl_offset"])
         behind = int(r.info("replication")["slave_repl_offset"])
     return ahead - behind
+
+
+def replica_output_bytes(primary_client) -> int:
+    """Bytes the primary holds in its own output buffers for its replicas (CLIENT LIST TYPE replica, omem)."""
+    text = primary_client.execute_command("CLIENT", "LIST", "TYPE", "replica")
+    text = text.decode() if isinstance(text, bytes) else text
+    return sum(int(field.split("=", 1)[1]) for line in text.splitlines() for field in line.split()
+               if field.startswith("omem="))
 
 
 def wait_all_judged(client, *, what: str, expected: int | None = None) -> None:
@@ -327,5 +372,64 @@ def test_moving_a_partitions_slot_while_serving_loses_and_doubles_nothing(redis_
     with target.client() as direct:
         assert direct.execute_command("CLUSTER", "COUNTKEYSINSLOT", slot) > 0
     assert pending_total(client) == 0 and deadletter_count(client) == 0
+    assert codes == [0, 0]
+    client.close()
+
+
+@pytest.mark.parametrize("wait_ms", [0, 200], ids=["async", "producer-waits"])
+def test_a_primary_dying_after_its_replica_fell_behind_loses_comments_unless_the_producer_waits(
+        redis_cluster, tmp_path, wait_ms):
+    """A replica stalls (SIGSTOP); its primary keeps acknowledging writes, which pile up in its output
+    buffer for the replica, then dies (SIGKILL): the replica takes over without them.  A producer that waits
+    for a replica (``WAIT 1 <ms>`` after its XADDs, on the same connection) sends those comments again."""
+    n = 5_000
+    client = redis_cluster.client(socket_timeout=2, socket_connect_timeout=1)
+    workers = start_workers(redis_cluster.url, tmp_path, env=CLUSTER_ENV)
+    producer = ClusterProducer(client, n=n, rate=600, chunk=12, wait_ms=wait_ms, pad=4000)
+    victim = redis_cluster.primary_of(key_slot(KEYS.part(0).comments))
+    replica = redis_cluster.replica_of(victim)
+    ours = {p.index for p in KEYS.parts if redis_cluster.primary_of(key_slot(p.comments)) is victim}
+    try:
+        producer.start()
+        wait_for_progress(lambda: verdict_total(client) >= n // 5, lambda: verdict_total(client), stall_s=STALL_S,
+                          what="a fifth of the verdicts before the replica stalls")
+        with victim.client() as direct:
+            replica.pause()
+            # Once the replica stops reading, the kernel's socket buffers fill, and what the primary sends next
+            # piles up in its own output buffer for the replica: a SIGKILL loses all of that.
+            if wait_ms:
+                wait_until(lambda: False, timeout=2.0)  # the producer's WAITs time out meanwhile
+            else:
+                # (a few bytes there are normal between two turns of its event loop; half a megabyte is not)
+                wait_until(lambda: replica_output_bytes(direct) > 512 * 1024, timeout=120, interval=0.01,
+                           what="the primary's output buffer for its stalled replica filling")
+        piled_at = time.monotonic()
+        wait_until(lambda: False, timeout=1.0)  # the primary goes on alone for a second
+        killed_at = time.monotonic()
+        promoted = redis_cluster.kill_primary(victim, stalled_replica=replica)
+        redis_cluster.restart(victim)  # back as the promoted replica's replica: WAIT has a replica again
+        producer.join(timeout=600)
+        assert not producer.is_alive()
+        wait_all_judged(client, what="every surviving comment judged (progress: verdicts, pending)")
+        counts = verdict_counts(client)
+    finally:
+        producer.abort.set()
+        codes = stop_all(workers)
+    accepted = producer.accepted_at
+    lost_ids = sorted(set(accepted) - set(counts))
+    alone = [c for c, t in accepted.items() if piled_at <= t <= killed_at and KEYS.partition_of(c) in ours]
+    doubled = sum(v - 1 for v in counts.values() if v > 1)
+    print("faults:", json.dumps({"test": "cluster_replica_behind", "wait_ms": wait_ms, "comments": n,
+                                 "accepted": len(accepted), "accepted_while_primary_alone": len(alone),
+                                 "producer_retries": producer.errors, "lost_acknowledged_comments": len(lost_ids),
+                                 "duplicates": doubled}))
+    assert promoted is replica and doubled == 0
+    assert all(KEYS.partition_of(c) in ours for c in lost_ids)  # only the dead primary's partitions lose
+    if wait_ms:
+        assert lost_ids == [] and alone == []  # nothing counted as accepted while no replica had it
+        assert set(counts) == {f"c{i}" for i in range(n)}
+    else:
+        assert alone and set(alone) <= set(lost_ids)  # acknowledged by the primary alone, then gone with it
+    assert deadletter_count(client) == 0
     assert codes == [0, 0]
     client.close()
