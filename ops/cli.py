@@ -29,6 +29,7 @@ COMMANDS = (
     "evaluate",
     "score",
     "serve",
+    "partitions",
     "feedback",
     "labels",
     "retrain",

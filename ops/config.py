@@ -71,6 +71,12 @@ class Config:
     waves: WaveSettings = field(default_factory=WaveSettings, metadata={"help": "waves and campaigns"})
     console: ConsoleSettings = field(default_factory=ConsoleSettings, metadata={"help": "moderators' console"})
 
+    def __post_init__(self):
+        if self.redis.cluster and self.keys.partitions == 1 and "{" not in self.keys.prefix:
+            raise ValueError("on a Redis Cluster (redis.cluster = true) one commit's keys must share a slot: set "
+                             "keys.partitions > 1 (one hash tag per partition), or keep one partition under a "
+                             "hash-tagged prefix such as keys.prefix = '{seawall}:' (one shard does all the work)")
+
 
 def _is_section(tp) -> bool:
     return isinstance(tp, type) and dataclasses.is_dataclass(tp)

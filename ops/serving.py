@@ -32,18 +32,41 @@ from worker.transport import TransientError
 log = logging.getLogger("seawall.serve")
 
 
-def redis_client(config: Config, *, blocking_ms: int = 0, client_name: str = "", raw_streams: bool = True):
-    """A worker client for ``config.redis_url`` whose socket timeout outlasts a blocking read."""
-    return connect(
-        config.redis_url,
-        tls_ca=config.redis_tls_ca,
-        tls_cert=config.redis_tls_cert,
-        tls_key=config.redis_tls_key,
-        socket_timeout=config.worker.socket_timeout_s + blocking_ms / 1000.0,
-        client_name=client_name,
-        raw_streams=raw_streams,
-        cluster=config.redis.cluster,
-    )
+def redis_client(config: Config, *, blocking_ms: int = 0, client_name: str = "", raw_streams: bool = True,
+                 sleep=time.sleep):
+    """A worker client for ``config.redis_url`` whose socket timeout outlasts a blocking read.
+
+    A plain client connects on its first command; redis-py's cluster client
+    asks the node for the slot map as it is built, so with ``redis.cluster``
+    this waits for the cluster (capped exponential backoff, one log line per
+    wait) rather than failing a worker started before it.
+    """
+    def build():
+        return connect(
+            config.redis_url,
+            tls_ca=config.redis_tls_ca,
+            tls_cert=config.redis_tls_cert,
+            tls_key=config.redis_tls_key,
+            socket_timeout=config.worker.socket_timeout_s + blocking_ms / 1000.0,
+            client_name=client_name,
+            raw_streams=raw_streams,
+            cluster=config.redis.cluster,
+        )
+
+    if not config.redis.cluster:
+        return build()
+    s = config.worker
+    failures = 0
+    while True:
+        try:
+            return build()
+        except (redis.ConnectionError, redis.TimeoutError, redis.exceptions.ClusterError,
+                redis.exceptions.RedisClusterException) as exc:
+            failures += 1
+            delay = min(s.backoff_cap_s, s.backoff_base_s * s.backoff_factor ** (failures - 1))
+            log.warning("waiting for the Redis Cluster (%s: %s); retrying in %.2fs (attempt %d)",
+                        type(exc).__name__, exc, delay, failures)
+            sleep(delay)
 
 
 def model_source(config: Config) -> ModelSource:

@@ -13,6 +13,7 @@ from redis.cluster import RedisCluster
 
 from scorers import WordScorer
 from kit import wait_until
+from servers import free_port
 from worker.connection import connect
 from worker.loader import StaticModelSource
 from worker.partitions import send_comment
@@ -50,7 +51,9 @@ def test_cluster_errors_that_pass_with_time_are_transient(error):
 @pytest.fixture
 def one_node_cluster(redis_factory):
     """A redis-server in cluster mode that owns every slot."""
-    server = redis_factory("cluster", extra=["--cluster-enabled", "yes", "--cluster-node-timeout", "2000"])
+    # The bus port is named: by default it is the port + 10000, past 65535 for a high free port.
+    server = redis_factory("cluster", extra=["--cluster-enabled", "yes", "--cluster-node-timeout", "2000",
+                                             "--cluster-port", str(free_port())])
     plain = server.client()
     plain.execute_command("CLUSTER", "ADDSLOTSRANGE", 0, 16383)
     wait_until(lambda: b"cluster_state:ok" in plain.execute_command("CLUSTER", "INFO"), timeout=30,
@@ -115,6 +118,47 @@ def test_rq_refuses_a_cluster_and_says_what_to_do():
     from ops.config import ConfigError, load_config
     from ops.jobs import rq_client
 
-    config = load_config({"redis.cluster": True}, environ={})
+    config = load_config({"redis.cluster": True, "keys.partitions": 3}, environ={})
     with pytest.raises(ConfigError, match="rq_url"):
         rq_client(config)
+
+
+def test_one_partition_on_a_cluster_needs_a_hash_tagged_prefix():
+    from ops.config import ConfigError, load_config
+
+    with pytest.raises(ConfigError, match="keys.partitions > 1"):
+        load_config({"redis.cluster": True}, environ={})
+    assert load_config({"redis.cluster": True, "keys.prefix": "{seawall}:"}, environ={}).keys.partitions == 1
+
+
+@pytest.mark.redis_server
+def test_a_worker_started_before_its_cluster_waits_for_it(tmp_path):
+    """redis-py's cluster client reads the slot map as it is built: serve waits for the cluster, it does not crash."""
+    from ops.config import load_config
+    from ops.serving import redis_client
+    from servers import RedisServer, require
+    import shutil
+
+    require(shutil.which("redis-server") is not None, "redis-server binary not on PATH")
+    server = RedisServer(tmp_path / "late", extra=["--cluster-enabled", "yes", "--cluster-port", str(free_port())])
+    config = load_config({"redis_url": server.url, "redis.cluster": True, "keys.partitions": 2,
+                          "worker.backoff_base_s": 0.01}, environ={})
+    waits = []
+
+    def sleep(seconds):
+        waits.append(seconds)
+        if len(waits) == 2:  # the cluster comes up during the second wait
+            server.start()
+            plain = server.client()
+            plain.execute_command("CLUSTER", "ADDSLOTSRANGE", 0, 16383)
+            wait_until(lambda: b"cluster_state:ok" in plain.execute_command("CLUSTER", "INFO"), timeout=30,
+                       what="the cluster to be ok")
+            plain.close()
+
+    try:
+        client = redis_client(config, sleep=sleep)
+        assert isinstance(client, RedisCluster) and client.ping()
+        assert waits[:2] == [0.01, 0.02]
+        client.close()
+    finally:
+        server.stop()

@@ -130,3 +130,35 @@ def test_leases_check_their_arguments(fake_redis):
         Leases(client=fake_redis, keys=Keys(partitions=2), consumer="", lease_ms=1000)
     with pytest.raises(ValueError, match="Leases: lease_ms"):
         Leases(client=fake_redis, keys=Keys(partitions=2), consumer="a", lease_ms=1.5)
+
+
+def test_a_source_reads_only_the_partitions_it_holds(fake_redis, clock):
+    from worker.connection import raw_stream_replies
+    from worker.partitions import send_comment
+    from worker.redistransport import RedisStreamSource
+    from worker.settings import WorkerSettings
+
+    client = raw_stream_replies(fake_redis)
+    keys = Keys(partitions=4)
+    settings = WorkerSettings(block_ms=5, batch=100)
+    a, b = (RedisStreamSource(client=client, keys=keys, settings=settings, consumer=n,
+                              leases=worker(fake_redis, clock, n)) for n in "ab")
+    a.prepare()
+    assert a.held == (0, 1, 2, 3)  # alone at first
+    b.prepare()  # b joins: a gives back two at its next renewal, b takes them at its own
+    for _ in range(6):
+        clock.advance(a.leases.interval_s)
+        a.read(block=False)
+        b.read(block=False)
+    assert len(a.held) == len(b.held) == 2 and set(a.held) | set(b.held) == {0, 1, 2, 3}
+    for i in range(40):
+        send_comment(client, keys, {"id": f"c{i}", "text": "hello"})
+    seen = {"a": [], "b": []}
+    for source in (a, b):
+        for _ in range(3):  # bounded: two partitions each, then an empty read
+            batch = source.read(block=False)
+            if batch.entries:
+                seen[source.consumer].append(batch.partition)
+    assert sorted(seen["a"]) == list(a.held) and sorted(seen["b"]) == list(b.held)
+    a.release()
+    assert a.held == () and fake_redis.zscore(keys.members, "a") is None

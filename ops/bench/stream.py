@@ -247,30 +247,35 @@ class Harness:
         finally:
             connection.close()
 
+    def verdict_count(self) -> int:
+        """Verdicts written so far, over every partition's verdict stream."""
+        return sum(self.client.xlen(part.verdicts) for part in self.keys.parts)
+
     def wait_verdicts(self, n: int, *, timeout_s: float) -> int:
         deadline = time.monotonic() + timeout_s
-        stream = self.key("verdicts")
         while time.monotonic() < deadline:
-            count = self.client.xlen(stream)
+            count = self.verdict_count()
             if count >= n:
                 return count
             time.sleep(0.02)
-        raise RuntimeError(f"bench: only {self.client.xlen(stream)} of {n} verdicts after {timeout_s:.0f}s")
+        raise RuntimeError(f"bench: only {self.verdict_count()} of {n} verdicts after {timeout_s:.0f}s")
 
     def verdict_ids(self):
-        """(verdict ms, comment ms) for every verdict, read in pages."""
+        """(verdict ms, comment ms) for every verdict of every partition, read in pages, in verdict order."""
         out = []
-        last = "-"
-        stream = self.key("verdicts")
-        while True:
-            page = self.client.xrange(stream, min=last, count=5000)
-            if last != "-":
-                page = page[1:]
-            if not page:
-                return out
-            for vid, fields in page:
-                out.append((int(vid.split(b"-")[0]), int(fields[b"stream_id"].split(b"-")[0])))
-            last = page[-1][0].decode()
+        for part in self.keys.parts:
+            last = "-"
+            while True:
+                page = self.client.xrange(part.verdicts, min=last, count=5000)
+                if last != "-":
+                    page = page[1:]
+                if not page:
+                    break
+                for vid, fields in page:
+                    out.append((int(vid.split(b"-")[0]), int(fields[b"stream_id"].split(b"-")[0])))
+                last = page[-1][0].decode()
+        out.sort()
+        return out
 
     def cleanup(self) -> None:
         if self.amqp:
@@ -287,8 +292,10 @@ class Harness:
         self.client.close()
 
 
-def _throughput(url, prefix, model_path, comments, *, processes, noop, batch, block_ms, amqp: str = "") -> dict:
+def _throughput(url, prefix, model_path, comments, *, processes, noop, batch, block_ms, amqp: str = "",
+                overrides: dict | None = None) -> dict:
     h = Harness(url=url, prefix=prefix, model_path=model_path, batch=batch, block_ms=block_ms, amqp=amqp)
+    h.overrides.update(overrides or {})  # e.g. {"keys.partitions": 4}
     try:
         h.enqueue(comments)
         h.start(processes, noop=noop)

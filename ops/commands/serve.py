@@ -2,7 +2,9 @@
 
 One process runs one consumer of the ``workers`` group; ``--processes N``
 supervises N of them, each with its own consumer name.  The same command on
-other hosts joins the same group.  SIGTERM or SIGINT finishes and acks the
+other hosts joins the same group.  With ``keys.partitions`` > 1 the workers
+share the partitions through leases (``worker.lease_ms``): each partition has
+one reader at a time, and each worker logs the partitions it holds.  SIGTERM or SIGINT finishes and acks the
 batch in hand, then exits 0.
 """
 from __future__ import annotations
