@@ -27,8 +27,9 @@ both, so a partitioned deployment runs them on a cluster.  The steps:
    may run it at once.
 
 :func:`label_now` is the one-step form for scripts (``seawall feedback``):
-the label is sent at once, and if the comment was held it leaves the queue
-and its decision is written in the same call.
+the label is sent at once; a held comment is claimed and finalized in the
+same call (the steps above with no undo window), so it leaves the queue and
+its decision is written once.
 
 Fields of a ``decisions`` entry (flat UTF-8 strings): ``id``, ``decision``
 (publish|reject), ``label`` (ham|spam), ``moderator``, ``decided_at`` and
@@ -285,7 +286,8 @@ def claim(client, keys: Keys, ids: Sequence[str], *, action: str, moderator: str
                     reason=reason, source=source, now=now, feedback=feedback)
     _audit_each(client, keys, "decide", decided, {"decision": action, "moderator": moderator, "source": source},
                 now=now, maxlen=audit_maxlen)
-    gone = [i for i in ids if i not in set(decided)]
+    taken = set(decided)
+    gone = [i for i in ids if i not in taken]
     return Claim(token=token, action=action, decided=decided, gone=gone, final_at=final_at)
 
 
@@ -300,7 +302,8 @@ def undo(client, keys: Keys, token: str, ids: Sequence[str], *, moderator: str, 
         script_keys = [part.held, part.deciding] + [part.decision(i) for i in group]
         flags = client.eval(_UNDO, len(script_keys), *script_keys, token, len(group), *group)
         restored += [i for i, ok in zip(group, flags) if int(ok)]
-    restored = [i for i in ids if i in set(restored)]
+    back = set(restored)
+    restored = [i for i in ids if i in back]
     _audit_each(client, keys, "undo", restored, {"moderator": moderator}, now=now, maxlen=audit_maxlen)
     return restored
 

@@ -138,7 +138,7 @@ def merge_pages(pages: Sequence[Sequence[tuple]], *, offset: int, limit: int, ne
     [(b'b', 2.0), (b'a', 1.0)]
     """
     if newest_first:
-        merged = heapq.merge(*pages, key=lambda row: (-float(row[1]), _neg_bytes(row[0])))
+        merged = heapq.merge(*pages, key=lambda row: (-float(row[1]), _Descending(row[0])))
     else:
         merged = heapq.merge(*pages, key=lambda row: (float(row[1]), _bytes(row[0])))
     out = []
@@ -154,7 +154,7 @@ def _bytes(value) -> bytes:
     return value if isinstance(value, bytes) else str(value).encode("utf-8")
 
 
-class _neg_bytes:
+class _Descending:
     """Orders members descending, as ZREVRANGE orders equal scores."""
 
     __slots__ = ("b",)
