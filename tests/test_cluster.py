@@ -75,12 +75,13 @@ def test_cluster_client_writes_and_reads_every_partition(shared_cluster):
 @pytest.mark.slow
 def test_a_killed_primary_is_replaced_by_its_replica_and_rejoins_as_a_replica(redis_cluster):
     slot = key_slot("{p0}")
-    with redis_cluster.client() as client:
-        client.set("{p0}:kept", "before")
     primary = redis_cluster.primary_of(slot)
     replica = redis_cluster.replica_of(primary)
     with primary.client() as direct:
-        direct.execute_command("WAIT", 1, 5000)  # so the write is on the replica before the kill
+        pipe = direct.pipeline(transaction=False)  # WAIT counts the writes of its own connection
+        pipe.set("{p0}:kept", "before")
+        pipe.execute_command("WAIT", 1, 5000)
+        assert pipe.execute() == [True, 1]  # the write is on the replica before the kill
     promoted = redis_cluster.kill_primary(primary)
     assert promoted is replica and redis_cluster.primary_of(slot) is replica
     with redis_cluster.client() as client:
