@@ -503,10 +503,12 @@ class RedisCluster:
         deadline = time.monotonic() + self.settle_timeout_s
         while time.monotonic() < deadline:
             try:
-                row = next(r for r in self.topology(node) if r["address"] == node.address)
                 with node.client(socket_timeout=2) as c:
                     link = c.info("replication").get("master_link_status")
-                if row["slots"] or ("slave" in row["flags"] and link == "up"):
+                # every live node sees it back: serving slots, or a replica no longer flagged as failed
+                rows = [next(r for r in self.topology(v) if r["address"] == node.address) for v in self.live_nodes()]
+                if all(r["slots"] or ("slave" in r["flags"] and "fail" not in r["flags"]) for r in rows) and (
+                        rows[0]["slots"] or link == "up"):
                     break
             except (OSError, StopIteration, redis.RedisError):
                 pass
