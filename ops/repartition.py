@@ -3,10 +3,14 @@
 When ``keys.partitions`` changes, every key named by a comment id moves to
 another name (the hash tag of the comment's new partition): its cached text
 and verdict (``text``), its "already judged" marker (``done``), and its place
-in the hold queue (``held``).  :func:`move_partition_state` copies them to the
+in the hold queue (``held``), and a decision still inside its undo window
+(``decisions:pending``).  :func:`move_partition_state` copies them to the
 new names with their time to live (``DUMP``/``PTTL``/``RESTORE``, which work
 between any two keys, on one Redis or across the shards of a cluster) and then
-deletes the old ones; held comments keep the time they were held.
+deletes the old ones; held comments keep the time they were held.  The keys
+outside the partitions (registry, feedback, labels, events, decisions, ...)
+change names when the shared hash tag comes or goes (K = 1 to K > 1); they
+move too (:func:`ops.sharedstate.move_shared_state`).
 
 The streams do not move: drain the old comment streams before switching (stop
 the producers, let the workers finish), and let readers of the old verdict and
@@ -30,10 +34,13 @@ class MoveReport:
     text: int = 0
     done: int = 0
     kept: int = 0  # the new name already existed: the old key was left in place
+    pending: int = 0  # decisions inside their undo window (worker.decisions.move_pending)
+    shared: int = 0  # keys outside the partitions, renamed when the shared hash tag comes or goes (ops.sharedstate)
     undrained: dict = field(default_factory=dict)  # old stream -> (lag, pending), when not drained
 
     def as_dict(self) -> dict:
         return {"held": self.held, "text": self.text, "done": self.done, "kept": self.kept,
+                "pending": self.pending, "shared": self.shared,
                 "undrained": {k: list(v) for k, v in self.undrained.items()}}
 
 
@@ -122,4 +129,10 @@ def move_partition_state(client, old: Keys, new: Keys, *, dry_run: bool = False,
             if not dry_run:
                 client.zadd(target, {cid: score})
                 client.zrem(part.held, cid)
+    from ops.sharedstate import move_shared_state
+    from worker.decisions import move_pending
+
+    report.pending = move_pending(client, old, new, dry_run=dry_run)
+    shared = move_shared_state(client, old, new, dry_run=dry_run)
+    report.shared, report.kept = shared["moved"], report.kept + shared["kept"]
     return report

@@ -303,3 +303,43 @@ def test_accounts_and_the_registry_sets_stay_in_one_slot(checked):
     multi = [keys for kind, keys in checked.checked if kind == "multi"]
     assert any(K4.accounts in map(str, k) for k in multi)
     assert any(K4.models_canary in map(str, k) for k in multi)
+
+
+# -- moving to partitions ---------------------------------------------------------------------------
+
+def test_moving_from_one_partition_to_four_takes_the_registry_labels_and_decisions_along(fake_redis):
+    from ops.registry import Registry
+    from ops.repartition import move_partition_state
+    from ops.retrain import last_reports, store_report
+    from retrain_kit import model_bytes
+
+    one = Keys()
+    registry = Registry(client=fake_redis, keys=one, clock=lambda: NOW)
+    version = registry.push(model_bytes(0))
+    registry.promote(version, actor="t")
+    registry.set_examples(canary=[("cheap pills", 1)])
+    store_report(fake_redis, one, {"decision": "kept"}, kept=5, clock=lambda: NOW)
+    hold(fake_redis, 6)
+    fake_redis.xgroup_create(one.feedback, "labellers", id="0", mkstream=True)
+    decisions.label_now(fake_redis, one, "c0", "spam", moderator="mod-ana", now=NOW)
+    claimed = decisions.claim(fake_redis, one, ["c1", "c2"], action="publish", moderator="mod-bo", now=NOW,
+                              undo_s=60)
+    assert claimed.decided == ["c1", "c2"]
+
+    dry = move_partition_state(fake_redis, one, K4, dry_run=True)
+    assert dry.pending == 2 and dry.shared >= 10 and Registry(client=fake_redis, keys=K4).active() is None
+    report = move_partition_state(fake_redis, one, K4)
+    assert (report.pending, report.shared, report.kept) == (2, dry.shared, 0)
+    moved = Registry(client=fake_redis, keys=K4)
+    assert moved.active() == version and moved.load().version == version and moved.canary() == [("cheap pills", 1)]
+    assert last_reports(fake_redis, K4)[0]["decision"] == "kept"
+    assert [g["name"] for g in fake_redis.xinfo_groups(K4.feedback)] == [b"labellers"]  # the group came along
+    assert [e["id"] for e in stream(fake_redis, K4.decisions)] == ["c0"]
+    assert held_count(fake_redis, K4) == 3 and decisions.pending_count(fake_redis, K4) == 2
+    assert decisions.undo(fake_redis, K4, claimed.token, ["c1"], moderator="mod-bo", now=NOW + 1) == ["c1"]
+    assert decisions.finalize_due(fake_redis, K4, now=NOW + 60) == 1
+    assert [e["id"] for e in stream(fake_redis, K4.decisions)] == ["c0", "c2"]
+    assert not fake_redis.exists(one.models_active, one.feedback, one.decisions)
+
+    back = move_partition_state(fake_redis, K4, one)  # and back again
+    assert back.shared == report.shared and Registry(client=fake_redis, keys=one).active() == version

@@ -427,6 +427,32 @@ def label_now(client, keys: Keys, comment_id: str, label: str, *, moderator: str
     return {"feedback_id": _s(feedback_id), "decided": False}
 
 
+def move_pending(client, old: Keys, new: Keys, *, dry_run: bool = False) -> int:
+    """Move the decisions inside their undo window from ``old``'s partitions to ``new``'s; returns how many.
+
+    For a change of ``keys.partitions``: each pending hash and its place in the
+    undo set go to the comment's new partition, with the time it becomes
+    final.  A console stopped cleanly leaves none (it waits out the windows).
+    """
+    moved = 0
+    for part in old.parts:
+        for member, final_at in client.zrange(part.deciding, 0, -1, withscores=True):
+            comment_id = _s(member)
+            target = new.part_of(comment_id)
+            if target.deciding == part.deciding and target.decision(comment_id) == part.decision(comment_id):
+                continue
+            moved += 1
+            if dry_run:
+                continue
+            parked = client.hgetall(part.decision(comment_id))
+            if parked:
+                client.hset(target.decision(comment_id), mapping=parked)
+            client.zadd(target.deciding, {comment_id: final_at})
+            client.zrem(part.deciding, comment_id)
+            client.delete(part.decision(comment_id))
+    return moved
+
+
 def write_audit(client, keys: Keys, event: str, fields: dict, *, now: float, maxlen: int = AUDIT_MAXLEN,
                 pipeline=None):
     """One audit entry (``event``, ``ts`` and flat string fields) for actions outside a decision."""

@@ -12,7 +12,10 @@ talks to it over HTTP, signed in like a browser:
   (:func:`worker.holdqueue.read_held`), measured in turns; and the first
   render of a console with every cache cold;
 * a decision's round trip: ``POST /api/decide`` for one comment, against
-  ``GET /healthz`` on the same connection (the HTTP floor), in turns.
+  ``GET /healthz`` on the same connection (the HTTP floor), in turns;
+* with ``--partitions K`` (K > 1) the held comments are spread over K
+  partitions, and the merged read of the queue is timed against the same
+  comments held in one partition (a second prefix), in turns.
 
 Every timing is a median (and p99 for decisions) over many runs; the figures
 are printed, never asserted.
@@ -41,6 +44,9 @@ def register(sub) -> None:
     parser.add_argument("--held", type=int, default=500, help="held comments on the page (default 500)")
     parser.add_argument("--pages", type=int, default=30, help="timed page loads (default 30)")
     parser.add_argument("--decisions", type=int, default=300, help="timed single-comment decisions (default 300)")
+    parser.add_argument("--partitions", type=int, default=1,
+                        help="K: spread the held comments over K partitions (keys.partitions); with K > 1 the "
+                             "merged queue read is also timed against the same comments in one partition")
     parser.add_argument("--json", action="store_true", help="print one JSON object")
     parser.set_defaults(func=run)
 
@@ -64,7 +70,10 @@ def fill_queue(url: str, keys, comments, model, *, site_thresholds=None, policie
     try:
         pipe = plain.pipeline(transaction=False)
         for c in comments:
-            send_comment(plain, keys, c, pipeline=pipe)
+            if isinstance(c.get("id"), str) and c["id"]:
+                send_comment(plain, keys, c, pipeline=pipe)
+            else:  # a malformed entry (the tests' dead-letter cases): it has no partition, the first one takes it
+                pipe.xadd(keys.parts[0].comments, c)
         pipe.execute()
         settings = WorkerSettings(batch=256, block_ms=10, site_thresholds=site_thresholds or {})
         config = Config(redis_url=url, keys=keys, worker=settings)
@@ -167,10 +176,30 @@ def _p99(values) -> float:
 def run(args) -> int:
     if args.held < 1 or args.pages < 1 or args.decisions < 1 or args.decisions > args.held:
         raise SeawallError("bench console: --held, --pages and --decisions must be >= 1, decisions <= held")
+    if not 1 <= args.partitions <= 256:
+        raise SeawallError(f"bench console: --partitions must be in [1, 256], got {args.partitions}")
     if args.redis:
         return _bench(args, args.redis)
     with LocalRedis() as url:
         return _bench(args, url)
+
+
+def _merged_read(url: str, client, keys, comments, model, *, pages: int) -> dict:
+    """The hold queue read over K partitions against the same comments held in one partition, in turns."""
+    from ops.config import load_config
+    from worker.holdqueue import read_held
+
+    one = load_config({"redis_url": url, "keys.prefix": "seawall-bench-console-one:"}, environ={}).keys
+    fill_queue(url, one, comments, model, site_thresholds={SITE: {Action.HOLD: 0.0, Action.REJECT: 1.0}})
+    merged_s, single_s = [], []
+    for _ in range(pages):
+        for k, times in ((keys, merged_s), (one, single_s)):
+            t0 = time.perf_counter()
+            read_held(client, k, limit=len(comments))
+            times.append(time.perf_counter() - t0)
+    return {f"read every held comment over {keys.partitions} partitions, median ms": _ms(merged_s),
+            "reference: the same comments in one partition, median ms": _ms(single_s),
+            "ratio merged / one partition": round(statistics.median(merged_s) / statistics.median(single_s), 2)}
 
 
 def _bench(args, url: str) -> int:
@@ -184,7 +213,8 @@ def _bench(args, url: str) -> int:
     from ops.console.app import Console
     from worker.holdqueue import held_count, read_held
 
-    config = load_config({"redis_url": url, "keys.prefix": "seawall-bench-console:"}, environ={})
+    config = load_config({"redis_url": url, "keys.prefix": "seawall-bench-console:",
+                          "keys.partitions": args.partitions}, environ={})
     keys = config.keys
     client = connect(config)
     if held_count(client, keys) or client.exists(keys.accounts):
@@ -199,7 +229,9 @@ def _bench(args, url: str) -> int:
     accounts = Accounts(client=client, keys=keys)
     accounts.add("bench-moderator", PASSWORD, role="moderator", now=time.time())
     console = Console(client=client, config=config, accounts=accounts)
-    out = {"held": held}
+    out = {"held": held, "partitions": args.partitions}
+    if args.partitions > 1:
+        out.update(_merged_read(url, client, keys, comments, model, pages=args.pages))
     with ConsoleThread(console) as server:
         browser = Browser(server.port)
         browser.sign_in("bench-moderator", PASSWORD)

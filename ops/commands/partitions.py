@@ -80,7 +80,8 @@ def move(config, old_k: int, *, old_prefix: str, dry_run: bool, force: bool, out
                            "workers finish first (or pass --force)")
     verb = "would move" if dry_run else "moved"
     out.write(f"{verb} from {old_k} to {config.keys.partitions} partition(s): {report.held} held comment(s), "
-              f"{report.text} cached text(s), {report.done} done marker(s)"
+              f"{report.text} cached text(s), {report.done} done marker(s), {report.pending} pending decision(s), "
+              f"{report.shared} shared key(s) (registry, feedback, labels, ...)"
               + (f"; {report.kept} left in place (the new name existed)" if report.kept else "") + "\n")
     return 0
 
