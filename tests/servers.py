@@ -278,8 +278,9 @@ class ClusterNode(RedisServer):
     so a restart on the same port and directory rejoins the cluster as the same node.
     """
 
-    def __init__(self, workdir: Path, *, node_timeout_ms: int, appendonly: bool = False):
+    def __init__(self, workdir: Path, *, node_timeout_ms: int, appendonly: bool = False, password: str = ""):
         super().__init__(workdir, appendonly=appendonly)
+        self.password = password
         self.bus_port = free_port()
         self.extra = ["--cluster-enabled", "yes", "--cluster-config-file", "nodes.conf",
                       "--cluster-port", str(self.bus_port), "--cluster-node-timeout", str(node_timeout_ms),
@@ -287,12 +288,20 @@ class ClusterNode(RedisServer):
                       "--cluster-replica-validity-factor", "0",
                       # a replica's first full sync starts at once (the default waits 5 s for more replicas)
                       "--repl-diskless-sync-delay", "0"]
+        if password:  # clients and the replicas' link to their primary both authenticate
+            self.extra += ["--requirepass", password, "--masterauth", password]
         self._node_id: str | None = None
         self.paused = False
 
     @property
     def address(self) -> str:
         return f"{self.host}:{self.port}"
+
+    @property
+    def url(self) -> str:
+        """The node's URL, with the password when the cluster has one (AUTH in the URL, as Seawall takes it)."""
+        auth = f":{self.password}@" if self.password else ""
+        return f"redis://{auth}127.0.0.1:{self.port}/0"
 
     def alive(self) -> bool:
         return self.proc is not None and self.proc.poll() is None
@@ -336,15 +345,16 @@ class RedisCluster:
     """
 
     def __init__(self, workdir: Path, *, primaries: int = 3, replicas: int = 1, node_timeout_ms: int = 1000,
-                 appendonly: bool = False, settle_timeout_s: float = 60.0):
+                 appendonly: bool = False, password: str = "", settle_timeout_s: float = 60.0):
         if primaries < 1 or replicas < 0:
             raise ValueError(f"RedisCluster: need at least one primary, got {primaries} and {replicas} replicas")
         self.workdir = Path(workdir)
         self.replicas = replicas
         self.node_timeout_ms = node_timeout_ms
         self.settle_timeout_s = settle_timeout_s
-        self.nodes = [ClusterNode(self.workdir / f"node{i}", node_timeout_ms=node_timeout_ms, appendonly=appendonly)
-                      for i in range(primaries * (1 + replicas))]
+        self.password = password
+        self.nodes = [ClusterNode(self.workdir / f"node{i}", node_timeout_ms=node_timeout_ms, appendonly=appendonly,
+                                  password=password) for i in range(primaries * (1 + replicas))]
 
     # -- start and stop -----------------------------------------------------------------------
 
@@ -354,7 +364,8 @@ class RedisCluster:
                 node.start()
             create = [shutil.which("redis-cli") or "redis-cli", "--cluster", "create",
                       *[n.address for n in self.nodes], "--cluster-replicas", str(self.replicas), "--cluster-yes"]
-            done = subprocess.run(create, capture_output=True, text=True, timeout=self.settle_timeout_s)
+            env = dict(os.environ, REDISCLI_AUTH=self.password) if self.password else None  # not on the command line
+            done = subprocess.run(create, capture_output=True, text=True, timeout=self.settle_timeout_s, env=env)
             if done.returncode != 0:
                 raise RuntimeError(f"redis-cli --cluster create failed ({done.returncode}):\n"
                                    f"{done.stdout[-2000:]}\n{done.stderr[-2000:]}")
@@ -540,7 +551,8 @@ class RedisCluster:
                 keys = src.execute_command("CLUSTER", "GETKEYSINSLOT", slot, keys_per_step)
                 if not keys:
                     break
-                src.execute_command("MIGRATE", target.host, target.port, "", 0, 10_000, "KEYS", *keys)
+                auth = ("AUTH", self.password) if self.password else ()
+                src.execute_command("MIGRATE", target.host, target.port, "", 0, 10_000, *auth, "KEYS", *keys)
                 moved += len(keys)
                 if pause_s:
                     time.sleep(pause_s)

@@ -4,13 +4,15 @@
   every comment gets exactly one verdict across the partitions' verdict streams;
 * a primary killed with SIGKILL mid-stream: its replica takes over; the test counts what was lost
   (acknowledged writes that never reached the replica) and what a verdict reader saw vanish;
-* a partition's slot moved to another primary while serving: nothing lost or doubled.
+* a partition's slot moved to another primary while serving: nothing lost or doubled;
+* a cluster with a password: the worker authenticates with the password in its URL, slot moves included.
 """
 from __future__ import annotations
 
 import contextlib
 import json
 import random
+import shutil
 import threading
 import time
 from collections import Counter
@@ -20,6 +22,7 @@ import redis
 
 from faults_kit import comment_text, start_workers, tally
 from kit import stop_all, wait_for_progress, wait_until
+from servers import RedisCluster, require
 from worker.partitions import key_slot, send_comment, stream_key
 from worker.settings import Keys
 
@@ -449,3 +452,34 @@ def test_a_primary_dying_after_its_replica_fell_behind_loses_comments_unless_the
     assert deadletter_count(client) == 0
     assert codes == [0, 0]
     client.close()
+
+
+def test_a_cluster_with_a_password_serves_a_worker_with_the_password_in_its_url(tmp_path):
+    require(shutil.which("redis-server") is not None, "redis-server binary not on PATH")
+    require(shutil.which("redis-cli") is not None, "redis-cli binary not on PATH (redis-tools)")
+    cluster = RedisCluster(tmp_path / "cluster", password="cluster-pw-7f3a").start()
+    workers = []
+    try:
+        anonymous = redis.Redis(host="127.0.0.1", port=cluster.nodes[0].port)
+        with pytest.raises(redis.AuthenticationError):
+            anonymous.ping()
+        anonymous.close()
+        assert cluster.url.startswith("redis://:cluster-pw-7f3a@")
+        client = cluster.client()
+        workers = start_workers(cluster.url, tmp_path, env=CLUSTER_ENV, n=1)
+        ClusterProducer(client, n=600, rate=1e9, chunk=100).run()
+        wait_for_progress(lambda: verdict_total(client) >= 300, lambda: verdict_total(client), stall_s=STALL_S,
+                          what="half the verdicts before the slot moves")
+        # MIGRATE between the nodes authenticates too (AUTH in the harness's MIGRATE)
+        slot = key_slot(KEYS.part(1).comments)
+        source = cluster.primary_of(slot)
+        assert cluster.move_slot(slot, next(p for p in cluster.primaries() if p is not source)) > 0
+        wait_all_judged(client, expected=600, what="every verdict (progress: verdicts, pending)")
+        counts = verdict_counts(client)
+        assert tally(counts, 600) == (0, 0)
+        assert set(counts) == {f"c{i}" for i in range(600)}
+        client.close()
+    finally:
+        codes = stop_all(workers)
+        cluster.stop()
+    assert codes == [0]
