@@ -278,8 +278,9 @@ class ClusterNode(RedisServer):
     so a restart on the same port and directory rejoins the cluster as the same node.
     """
 
-    def __init__(self, workdir: Path, *, node_timeout_ms: int, appendonly: bool = False, password: str = ""):
-        super().__init__(workdir, appendonly=appendonly)
+    def __init__(self, workdir: Path, *, node_timeout_ms: int, appendonly: bool = False, password: str = "",
+                 tls: dict | None = None):
+        super().__init__(workdir, appendonly=appendonly, tls=tls)
         self.password = password
         self.bus_port = free_port()
         self.extra = ["--cluster-enabled", "yes", "--cluster-config-file", "nodes.conf",
@@ -290,6 +291,8 @@ class ClusterNode(RedisServer):
                       "--repl-diskless-sync-delay", "0"]
         if password:  # clients and the replicas' link to their primary both authenticate
             self.extra += ["--requirepass", password, "--masterauth", password]
+        if tls:  # the cluster bus and replication over TLS too, with the same certificate
+            self.extra += ["--tls-cluster", "yes", "--tls-replication", "yes"]
         self._node_id: str | None = None
         self.paused = False
 
@@ -301,7 +304,12 @@ class ClusterNode(RedisServer):
     def url(self) -> str:
         """The node's URL, with the password when the cluster has one (AUTH in the URL, as Seawall takes it)."""
         auth = f":{self.password}@" if self.password else ""
-        return f"redis://{auth}127.0.0.1:{self.port}/0"
+        return f"{'rediss' if self.tls else 'redis'}://{auth}127.0.0.1:{self.port}/0"
+
+    def client(self, **kwargs):
+        if self.tls:
+            kwargs.setdefault("ssl_ca_certs", self.tls["ca"])
+        return super().client(**kwargs)
 
     def alive(self) -> bool:
         return self.proc is not None and self.proc.poll() is None
@@ -345,7 +353,8 @@ class RedisCluster:
     """
 
     def __init__(self, workdir: Path, *, primaries: int = 3, replicas: int = 1, node_timeout_ms: int = 1000,
-                 appendonly: bool = False, password: str = "", settle_timeout_s: float = 60.0):
+                 appendonly: bool = False, password: str = "", tls: dict | None = None,
+                 settle_timeout_s: float = 60.0):
         if primaries < 1 or replicas < 0:
             raise ValueError(f"RedisCluster: need at least one primary, got {primaries} and {replicas} replicas")
         self.workdir = Path(workdir)
@@ -353,8 +362,9 @@ class RedisCluster:
         self.node_timeout_ms = node_timeout_ms
         self.settle_timeout_s = settle_timeout_s
         self.password = password
+        self.tls = tls
         self.nodes = [ClusterNode(self.workdir / f"node{i}", node_timeout_ms=node_timeout_ms, appendonly=appendonly,
-                                  password=password) for i in range(primaries * (1 + replicas))]
+                                  password=password, tls=tls) for i in range(primaries * (1 + replicas))]
 
     # -- start and stop -----------------------------------------------------------------------
 
@@ -362,7 +372,8 @@ class RedisCluster:
         try:
             for node in self.nodes:
                 node.start()
-            create = [shutil.which("redis-cli") or "redis-cli", "--cluster", "create",
+            tls = ["--tls", "--cacert", self.tls["ca"]] if self.tls else []
+            create = [shutil.which("redis-cli") or "redis-cli", *tls, "--cluster", "create",
                       *[n.address for n in self.nodes], "--cluster-replicas", str(self.replicas), "--cluster-yes"]
             env = dict(os.environ, REDISCLI_AUTH=self.password) if self.password else None  # not on the command line
             done = subprocess.run(create, capture_output=True, text=True, timeout=self.settle_timeout_s, env=env)
@@ -394,6 +405,8 @@ class RedisCluster:
         """redis-py's cluster client (:class:`redis.cluster.RedisCluster`), from a live node's URL."""
         from redis.cluster import RedisCluster as Client
 
+        if self.tls:
+            kwargs.setdefault("ssl_ca_certs", self.tls["ca"])
         return Client.from_url(self.url, **kwargs)
 
     # -- what the nodes say -------------------------------------------------------------------

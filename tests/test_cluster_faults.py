@@ -5,7 +5,8 @@
 * a primary killed with SIGKILL mid-stream: its replica takes over; the test counts what was lost
   (acknowledged writes that never reached the replica) and what a verdict reader saw vanish;
 * a partition's slot moved to another primary while serving: nothing lost or doubled;
-* a cluster with a password: the worker authenticates with the password in its URL, slot moves included.
+* a cluster with a password: the worker authenticates with the password in its URL, slot moves included;
+* a cluster over TLS (clients, cluster bus and replication): the worker verifies the nodes against the CA.
 """
 from __future__ import annotations
 
@@ -23,6 +24,7 @@ import redis
 from faults_kit import comment_text, start_workers, tally
 from kit import stop_all, wait_for_progress, wait_until
 from servers import RedisCluster, require
+from tlscerts import make_ca
 from worker.partitions import key_slot, send_comment, stream_key
 from worker.settings import Keys
 
@@ -478,6 +480,31 @@ def test_a_cluster_with_a_password_serves_a_worker_with_the_password_in_its_url(
         counts = verdict_counts(client)
         assert tally(counts, 600) == (0, 0)
         assert set(counts) == {f"c{i}" for i in range(600)}
+        client.close()
+    finally:
+        codes = stop_all(workers)
+        cluster.stop()
+    assert codes == [0]
+
+
+def test_a_cluster_over_tls_serves_a_worker_that_verifies_the_nodes(tmp_path):
+    require(shutil.which("redis-server") is not None, "redis-server binary not on PATH")
+    require(shutil.which("redis-cli") is not None, "redis-cli binary not on PATH (redis-tools)")
+    require(shutil.which("openssl") is not None, "openssl not on PATH")
+    certs = make_ca(tmp_path / "pki")
+    cluster = RedisCluster(tmp_path / "cluster", tls={"ca": certs["ca"], "cert": certs["cert"],
+                                                      "key": certs["key"]}).start()
+    workers = []
+    try:
+        assert cluster.url.startswith("rediss://")
+        client = cluster.client()
+        env = {**CLUSTER_ENV, "SEAWALL_REDIS_TLS_CA": certs["ca"]}
+        workers = start_workers(cluster.url, tmp_path, env=env, n=1)
+        ClusterProducer(client, n=300, rate=1e9, chunk=100).run()
+        wait_all_judged(client, expected=300, what="every verdict over TLS (progress: verdicts, pending)")
+        counts = verdict_counts(client)
+        assert tally(counts, 300) == (0, 0) and set(counts) == {f"c{i}" for i in range(300)}
+        assert len({KEYS.partition_of(c) for c in counts}) == PARTITIONS
         client.close()
     finally:
         codes = stop_all(workers)
