@@ -334,7 +334,7 @@ def test_a_primary_killed_mid_stream_fails_over_and_the_loss_is_counted(redis_cl
     victims = {p.index for p in KEYS.parts if redis_cluster.primary_of(key_slot(p.comments)) is promoted}
     for cid in lost_ids:
         assert KEYS.partition_of(cid) in victims, cid
-        assert killed_at - 2.0 <= accepted[cid] <= killed_at + failover_s, cid
+        assert killed_at - 5.0 <= accepted[cid] <= killed_at + failover_s, cid  # a loaded replica may lag seconds
     # a verdict rolled back with the dead primary is written again: its comment still has exactly one verdict
     for _p, _sid, cid in vanished:
         assert counts[cid] == 1 or cid in lost_ids
@@ -389,10 +389,10 @@ def test_a_primary_dying_after_its_replica_fell_behind_loses_comments_unless_the
     """A replica stalls (SIGSTOP); its primary keeps acknowledging writes, which pile up in its output
     buffer for the replica, then dies (SIGKILL): the replica takes over without them.  A producer that waits
     for a replica (``WAIT 1 <ms>`` after its XADDs, on the same connection) sends those comments again."""
-    n = 5_000
+    n = 1_000  # verdicts before the replica stalls; the producer runs until the failover is over
     client = redis_cluster.client(socket_timeout=2, socket_connect_timeout=1)
     workers = start_workers(redis_cluster.url, tmp_path, env=CLUSTER_ENV)
-    producer = ClusterProducer(client, n=n, rate=600, chunk=12, wait_ms=wait_ms, pad=4000)
+    producer = ClusterProducer(client, n=10**9, rate=600, chunk=12, wait_ms=wait_ms, pad=4000)
     reader = VerdictReader(redis_cluster.client(socket_timeout=2, socket_connect_timeout=1))
     victim = redis_cluster.primary_of(key_slot(KEYS.part(0).comments))
     replica = redis_cluster.replica_of(victim)
@@ -400,8 +400,8 @@ def test_a_primary_dying_after_its_replica_fell_behind_loses_comments_unless_the
     try:
         producer.start()
         reader.start()
-        wait_for_progress(lambda: verdict_total(client) >= n // 5, lambda: verdict_total(client), stall_s=STALL_S,
-                          what="a fifth of the verdicts before the replica stalls")
+        wait_for_progress(lambda: verdict_total(client) >= n, lambda: verdict_total(client), stall_s=STALL_S,
+                          what=f"{n} verdicts before the replica stalls")
         with victim.client() as direct:
             replica.pause()
             # Once the replica stops reading, the kernel's socket buffers fill, and what the primary sends next
@@ -417,7 +417,11 @@ def test_a_primary_dying_after_its_replica_fell_behind_loses_comments_unless_the
         killed_at = time.monotonic()
         promoted = redis_cluster.kill_primary(victim, stalled_replica=replica)
         redis_cluster.restart(victim)  # back as the promoted replica's replica: WAIT has a replica again
-        producer.join(timeout=600)
+        after = len(producer.accepted_at)
+        wait_until(lambda: len(producer.accepted_at) >= after + 600, timeout=120,
+                   what="the producer going on after the failover")
+        producer.abort.set()
+        producer.join(timeout=60)
         assert not producer.is_alive()
         wait_all_judged(client, what="every surviving comment judged (progress: verdicts, pending)")
         reader.stop.set()
@@ -436,8 +440,7 @@ def test_a_primary_dying_after_its_replica_fell_behind_loses_comments_unless_the
     # back whole, so its entry was still pending there and got judged again (or the comment itself was lost)
     vanished = sorted(reader.seen - final)
     again = [cid for _p, _sid, cid in vanished if counts[cid] == 1]
-    print("faults:", json.dumps({"test": "cluster_replica_behind", "wait_ms": wait_ms, "comments": n,
-                                 "accepted": len(accepted), "accepted_while_primary_alone": len(alone),
+    print("faults:", json.dumps({"test": "cluster_replica_behind", "wait_ms": wait_ms, "accepted": len(accepted), "accepted_while_primary_alone": len(alone),
                                  "producer_retries": producer.errors, "lost_acknowledged_comments": len(lost_ids),
                                  "duplicates": doubled, "verdicts_seen_then_rolled_back": len(vanished),
                                  "rolled_back_then_judged_again": len(again)}))
@@ -447,7 +450,7 @@ def test_a_primary_dying_after_its_replica_fell_behind_loses_comments_unless_the
     assert all(p in ours for p, _sid, _cid in vanished)
     if wait_ms:
         assert lost_ids == [] and alone == []  # nothing counted as accepted while no replica had it
-        assert set(counts) == {f"c{i}" for i in range(n)}
+        assert set(accepted) <= set(counts)
     else:
         assert alone and set(alone) <= set(lost_ids)  # acknowledged by the primary alone, then gone with it
         assert vanished  # and a verdict reader saw verdicts that vanished with it
