@@ -1,7 +1,7 @@
 """``seawall bench cluster``: the same workers against a Redis Cluster of 1 shard and of 3 shards.
 
-Two local clusters are started on free loopback ports (no replicas, nothing
-on disk): one primary serving all 16384 slots, and three primaries each
+Two local clusters are started on free loopback ports (nothing on disk; with
+``--replicas 1`` one replica per primary, whose CPU is reported apart): one primary serving all 16384 slots, and three primaries each
 serving a third (slots ``[s * 16384 // 3, (s + 1) * 16384 // 3)``, the runs
 the partition tags are chosen for, so K = 3 or 6 partitions spread evenly).
 Each run queues ``--comments`` invented comments over ``--partitions``
@@ -55,8 +55,9 @@ class LocalCluster:
     ``cluster_state:ok``.
     """
 
-    def __init__(self, shards: int, *, start_timeout_s: float = 30.0):
+    def __init__(self, shards: int, *, replicas: int = 0, start_timeout_s: float = 30.0):
         self.shards = shards
+        self.replicas = replicas
         self.start_timeout_s = start_timeout_s
         self.ports: list[tuple[int, int]] = []
         self.procs: list[subprocess.Popen] = []
@@ -64,7 +65,12 @@ class LocalCluster:
 
     @property
     def urls(self) -> list[str]:
-        return [f"redis://127.0.0.1:{port}/0" for port, _bus in self.ports]
+        """The primaries' URLs (the first ``shards`` nodes)."""
+        return [f"redis://127.0.0.1:{port}/0" for port, _bus in self.ports[:self.shards]]
+
+    @property
+    def replica_urls(self) -> list[str]:
+        return [f"redis://127.0.0.1:{port}/0" for port, _bus in self.ports[self.shards:]]
 
     def __enter__(self) -> "LocalCluster":
         binary = shutil.which("redis-server")
@@ -72,14 +78,15 @@ class LocalCluster:
             raise SeawallError("bench cluster: redis-server is not on PATH")
         self._dir = tempfile.TemporaryDirectory(prefix="seawall-bench-cluster-")
         try:
-            for s in range(self.shards):
+            for s in range(self.shards * (1 + self.replicas)):
                 port, bus = free_port(), free_port()
                 workdir = os.path.join(self._dir.name, f"node{s}")
                 os.mkdir(workdir)
                 self.procs.append(subprocess.Popen(
                     [binary, "--bind", "127.0.0.1", "--port", str(port), "--save", "", "--appendonly", "no",
                      "--dir", workdir, "--protected-mode", "no", "--daemonize", "no", "--cluster-enabled", "yes",
-                     "--cluster-config-file", "nodes.conf", "--cluster-port", str(bus)],
+                     "--cluster-config-file", "nodes.conf", "--cluster-port", str(bus),
+                     "--repl-diskless-sync-delay", "0"],
                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL))
                 self.ports.append((port, bus))
             self._join()
@@ -99,20 +106,38 @@ class LocalCluster:
                     if time.monotonic() > deadline:
                         raise SeawallError(f"bench cluster: redis-server did not start on port {port}") from None
                     time.sleep(0.02)
+        import redis
+
         first_port, first_bus = self.ports[0]
+        primary_ids = []
         for s, client in enumerate(self.direct_clients()):
             with client:
                 low, high = s * SLOTS // self.shards, (s + 1) * SLOTS // self.shards - 1
                 client.execute_command("CLUSTER", "ADDSLOTSRANGE", low, high)
+                primary_ids.append(client.execute_command("CLUSTER", "MYID").decode())
                 if s:
                     client.execute_command("CLUSTER", "MEET", "127.0.0.1", first_port, first_bus)
+        for client in self.replica_clients():
+            with client:
+                client.execute_command("CLUSTER", "MEET", "127.0.0.1", first_port, first_bus)
+        nodes = self.shards * (1 + self.replicas)
+        pending = list(enumerate(self.replica_clients()))  # replica r follows primary r % shards
         while time.monotonic() < deadline:
+            for r, client in list(pending):
+                with client:
+                    try:  # it must know its primary first (the MEET spreads by gossip)
+                        client.execute_command("CLUSTER", "REPLICATE", primary_ids[r % self.shards])
+                        pending.remove((r, client))
+                    except redis.ResponseError:
+                        pass
             states = []
-            for client in self.direct_clients():
+            for client in self.direct_clients() + self.replica_clients():
                 with client:
                     info = client.execute_command("CLUSTER", "INFO").decode()
-                    states.append("cluster_state:ok" in info and f"cluster_known_nodes:{self.shards}" in info)
-            if all(states):
+                    replication = client.info("replication")
+                    states.append("cluster_state:ok" in info and f"cluster_known_nodes:{nodes}" in info
+                                  and replication.get("master_link_status", "up") == "up")
+            if not pending and all(states):
                 return
             time.sleep(0.1)
         raise SeawallError(f"bench cluster: {self.shards}-shard cluster not ok after {self.start_timeout_s}s")
@@ -122,6 +147,11 @@ class LocalCluster:
         import redis
 
         return [redis.Redis.from_url(url) for url in self.urls]
+
+    def replica_clients(self):
+        import redis
+
+        return [redis.Redis.from_url(url) for url in self.replica_urls]
 
     def client(self):
         from redis.cluster import RedisCluster
@@ -154,6 +184,16 @@ def _node_cpu_and_memory(cluster: LocalCluster) -> list[tuple[float, int]]:
     return out
 
 
+def _replica_cpu(cluster: LocalCluster) -> float:
+    """CPU seconds so far of all the replicas together."""
+    total = 0.0
+    for client in cluster.replica_clients():
+        with client:
+            cpu = client.info("cpu")
+        total += float(cpu["used_cpu_user"]) + float(cpu["used_cpu_sys"])
+    return total
+
+
 def _one_run(cluster: LocalCluster, comments, *, run: str, model_path: str, args) -> dict:
     """Queue the comments, let the workers drain them, and measure; the cluster is emptied afterwards."""
     import multiprocessing
@@ -178,7 +218,7 @@ def _one_run(cluster: LocalCluster, comments, *, run: str, model_path: str, args
             if len(pipe) >= 1000:
                 pipe.execute()
         pipe.execute()
-        before = _node_cpu_and_memory(cluster)
+        before, replicas_before = _node_cpu_and_memory(cluster), _replica_cpu(cluster)
         events = []
         for w in range(args.workers):
             ready = ctx.Event()
@@ -196,7 +236,7 @@ def _one_run(cluster: LocalCluster, comments, *, run: str, model_path: str, args
             if time.monotonic() > deadline:
                 raise SeawallError(f"bench cluster: not every verdict after {args.timeout_s:.0f}s")
             time.sleep(0.02)
-        after = _node_cpu_and_memory(cluster)
+        after, replicas_after = _node_cpu_and_memory(cluster), _replica_cpu(cluster)
         for proc in procs:
             proc.terminate()
         stats = [results.get(timeout=60) for _ in procs]
@@ -223,6 +263,7 @@ def _one_run(cluster: LocalCluster, comments, *, run: str, model_path: str, args
         by_shard = [(a[0] - b[0]) * 1e6 / n for a, b in zip(after, before)]
         return {"per_s": (len(stamps) - 1) / span_s, "verdicts": len(stamps),
                 "redis_cpu_us_by_shard": by_shard, "redis_cpu_us": sum(by_shard),
+                "replica_cpu_us": (replicas_after - replicas_before) * 1e6 / n,
                 "worker_cpu_us": sum(s["cpu_s"] for s in stats) / n * 1e6,
                 "redis_bytes": sum(a[1] - b[1] for a, b in zip(after, before)) / n,
                 "text_bytes": text_bytes, "done_bytes": done_bytes, "stream_bytes": stream_bytes}
@@ -268,7 +309,7 @@ def run(args) -> int:
     with tempfile.TemporaryDirectory(prefix="seawall-bench-") as tmp:
         model_path = os.path.join(tmp, "model.bin")
         train_model(model_path)
-        with LocalCluster(1) as one, LocalCluster(3) as three:
+        with LocalCluster(1, replicas=args.replicas) as one, LocalCluster(3, replicas=args.replicas) as three:
             for r in range(args.repeats):
                 for shards, cluster in ((1, one), (3, three)):
                     runs[shards].append(_one_run(cluster, comments, run=f"{os.getpid()}-{shards}-{r}",
@@ -287,12 +328,15 @@ def run(args) -> int:
         "workers": args.workers,
         "cores_on_this_machine": os.cpu_count(),
         "repeats": args.repeats,
+        "replicas_per_primary": args.replicas,
         "one_shard_per_s": med(1, "per_s"),
         "three_shards_per_s": med(3, "per_s"),
         "ratio_per_s_3_to_1": med(3, "per_s") / med(1, "per_s"),
         "one_shard_redis_cpu_us_per_comment": med(1, "redis_cpu_us"),
         "three_shards_redis_cpu_us_per_comment": redis_cpu,
         "ratio_redis_cpu_3_to_1": redis_cpu / med(1, "redis_cpu_us"),
+        "one_shard_replica_cpu_us_per_comment": med(1, "replica_cpu_us"),
+        "three_shards_replica_cpu_us_per_comment": med(3, "replica_cpu_us"),
         "three_shards_redis_cpu_us_per_comment_by_shard": " / ".join(f"{v:.1f}" for v in by_shard),
         "busiest_shard_share": max(by_shard) / max(sum(by_shard), 1e-9),
         "one_shard_worker_cpu_us_per_comment": med(1, "worker_cpu_us"),
@@ -323,6 +367,8 @@ def register(sub) -> None:
     parser.add_argument("--partitions", type=int, default=6, help="K partitions of the comment stream (>= 3)")
     parser.add_argument("--workers", type=int, default=2, help="worker processes, the same for both layouts")
     parser.add_argument("--repeats", type=int, default=3, help="runs of each layout, taken in turns")
+    parser.add_argument("--replicas", type=int, choices=(0, 1), default=0,
+                        help="replicas per primary (their CPU is reported apart; the primaries' includes feeding them)")
     parser.add_argument("--batch", type=int, default=256, help="worker batch size")
     parser.add_argument("--block-ms", type=int, default=100, help="worker XREADGROUP block time")
     parser.add_argument("--timeout-s", type=float, default=600.0, help="longest wait for one run's verdicts")
