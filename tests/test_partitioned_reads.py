@@ -343,3 +343,18 @@ def test_moving_from_one_partition_to_four_takes_the_registry_labels_and_decisio
 
     back = move_partition_state(fake_redis, K4, one)  # and back again
     assert back.shared == report.shared and Registry(client=fake_redis, keys=one).active() == version
+
+
+def test_every_module_with_a_script_or_transaction_is_in_the_slot_table():
+    """DEVELOPERS.md lists the slot of every atomic operation; a module that gains one must be listed there."""
+    import re
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parent.parent
+    table = (root / "DEVELOPERS.md").read_text(encoding="utf-8").split("## Redis Cluster: the slot", 1)[1]
+    atomic = re.compile(r"register_script\(|\.eval\(|transaction=True")
+    modules = sorted(str(p.relative_to(root)) for folder in ("ops", "worker") for p in (root / folder).rglob("*.py")
+                     if atomic.search(p.read_text(encoding="utf-8")))
+    assert "worker/decisions.py" in modules  # the scan finds them
+    missing = [m for m in modules if m not in table]
+    assert missing == []
