@@ -380,6 +380,7 @@ class RedisCluster:
             if done.returncode != 0:
                 raise RuntimeError(f"redis-cli --cluster create failed ({done.returncode}):\n"
                                    f"{done.stdout[-2000:]}\n{done.stderr[-2000:]}")
+            self._wait_roles()
             self.wait_ok()
         except BaseException:
             self.stop()
@@ -478,6 +479,27 @@ class RedisCluster:
             except (OSError, ValueError, IndexError, redis.RedisError):
                 return False
         return bool(views) and all(v == views[0] for v in views)
+
+    def _wait_roles(self) -> None:
+        """Bounded wait until every node's view has all the primaries serving slots and all the replicas
+        (gossip spreads CLUSTER REPLICATE a moment after redis-cli returns)."""
+        primaries = len(self.nodes) // (1 + self.replicas)
+        want = (primaries, primaries * self.replicas)
+
+        def counts(view) -> tuple[int, int]:
+            rows = self.topology(view)
+            return (sum(1 for r in rows if "master" in r["flags"] and r["slots"]),
+                    sum(1 for r in rows if "slave" in r["flags"] and "fail" not in r["flags"]))
+
+        deadline = time.monotonic() + self.settle_timeout_s
+        while time.monotonic() < deadline:
+            try:
+                if all(counts(node) == want for node in self.nodes):
+                    return
+            except (OSError, ValueError, IndexError, redis.RedisError):
+                pass
+            time.sleep(0.1)
+        raise TimeoutError(f"Redis Cluster: the nodes do not all see {want[0]} primaries and {want[1]} replicas")
 
     def wait_ok(self, timeout: float | None = None) -> None:
         """Bounded wait until the cluster has settled (see :meth:`_settled`)."""
