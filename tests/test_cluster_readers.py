@@ -14,7 +14,7 @@ from collections import Counter
 
 import pytest
 
-from kit import wait_until
+from kit import wait_for_progress, wait_until
 from ops.bench.console import Browser, ConsoleThread
 from ops.bench.stream import invented_comments
 from ops.config import load_config
@@ -45,7 +45,7 @@ def _stream(client, key) -> list[dict[str, str]]:
 
 
 def fill_through_a_cluster_worker(config, comments, model) -> int:
-    """Send ``comments`` to their partitions and run one in-process worker in cluster mode until idle."""
+    """Send ``comments`` to their partitions and run one in-process worker in cluster mode until all are judged."""
     raw = worker_connect(config.redis_url, cluster=True, client_name="seawall-test-fill")
     try:
         pipe = raw.pipeline(transaction=False)
@@ -54,11 +54,16 @@ def fill_through_a_cluster_worker(config, comments, model) -> int:
         pipe.execute()
         consumer = build_consumer(config, source=StaticModelSource(model=model), consumer="fill", client=raw)
         consumer.prepare()
-        written, idle = 0, 0
-        while idle < 3:
-            done = consumer.step()
-            written += done.written
-            idle = idle + 1 if done.read == 0 else 0
+        written = 0
+
+        def step() -> int:
+            nonlocal written
+            written += consumer.step().written
+            return written
+
+        # step until every comment is written; fail only if nothing moves for 30 s (leases, a slow machine)
+        wait_for_progress(lambda: step() >= len(comments), lambda: written, stall_s=30.0, interval=0.0,
+                          what=f"{len(comments)} comments through the in-process worker")
         return written
     finally:
         raw.close()
