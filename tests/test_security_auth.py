@@ -35,6 +35,8 @@ WORKER_COMMANDS = (
     "evalsha", "eval", "script|load", "set", "get", "del", "exists", "expire", "hset", "hget", "hgetall", "hmget",
     "hkeys", "hdel", "hincrby", "hlen", "hsetnx", "rpush", "lrange", "zadd", "zrem", "zcard", "zscore",
     "zrevrange", "zremrangebyscore",
+    # partition leases with keys.partitions > 1 (renewed by a compare-and-pexpire script)
+    "pexpire",
     # feedback batches are MULTI/EXEC transactions
     "multi", "exec", "discard",
     # model hot reload over pub/sub

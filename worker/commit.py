@@ -235,8 +235,8 @@ class BatchCommitter:
         ids = [s.comment.stream_id for s in scored] + [d.stream_id for d in dead]
         first, last = min(ids, key=_id_order), max(ids, key=_id_order)
         span = 2 * len(ids) + 64  # room for leftovers of an earlier failed commit in the same range
-        args = [self.keys.group if self.acknowledges else "", lim.verdicts_maxlen, lim.text_cache_ttl_s, lim.done_ttl_s, lim.rates_ttl_s,
-                f"{now:.3f}", model, lim.deadletter_maxlen, consumer, first, last, span]
+        args = [self.keys.group if self.acknowledges else "", lim.verdicts_maxlen, lim.text_cache_ttl_s,
+                lim.done_ttl_s, lim.rates_ttl_s, f"{now:.3f}", model, lim.deadletter_maxlen, consumer, first, last, span]
         rows = []
         partitions = self.keys.partitions
         for s in scored:
