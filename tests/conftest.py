@@ -6,7 +6,7 @@ import shutil
 
 import pytest
 
-from servers import RabbitServer, RedisServer, rabbitmq_server_path, require
+from servers import RabbitServer, RedisCluster, RedisServer, rabbitmq_server_path, require
 
 
 @pytest.fixture
@@ -69,3 +69,34 @@ def rabbit_node(tmp_path_factory) -> RabbitServer:
     server = _rabbit(tmp_path_factory.mktemp("rabbitmq"))
     yield server
     server.stop()
+
+
+def _cluster_binaries() -> None:
+    require(shutil.which("redis-server") is not None, "redis-server binary not on PATH")
+    require(shutil.which("redis-cli") is not None, "redis-cli binary not on PATH (redis-tools)")
+
+
+@pytest.fixture(scope="session")
+def cluster_session(tmp_path_factory) -> RedisCluster:
+    """One Redis Cluster (3 primaries, 3 replicas) for every test that leaves it whole; see ``shared_cluster``."""
+    _cluster_binaries()
+    cluster = RedisCluster(tmp_path_factory.mktemp("cluster")).start()
+    yield cluster
+    cluster.stop()
+
+
+@pytest.fixture
+def shared_cluster(cluster_session) -> RedisCluster:
+    """The session's Redis Cluster, emptied and settled for this test; the test must not break it."""
+    cluster_session.wait_ok()
+    cluster_session.flushall()
+    return cluster_session
+
+
+@pytest.fixture
+def redis_cluster(tmp_path) -> RedisCluster:
+    """A Redis Cluster of its own (3 primaries, 3 replicas) for a test that kills or reshards it."""
+    _cluster_binaries()
+    cluster = RedisCluster(tmp_path / "cluster").start()
+    yield cluster
+    cluster.stop()

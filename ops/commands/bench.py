@@ -8,7 +8,8 @@ from __future__ import annotations
 
 import importlib
 
-BENCHES = ("model", "score", "stream", "retrain", "soak", "campaigns", "calibration", "startup", "console")
+BENCHES = ("model", "score", "stream", "retrain", "soak", "campaigns", "calibration", "startup", "console",
+           "cluster")
 
 
 def register(sub) -> None:
