@@ -611,3 +611,19 @@ def test_a_server_that_lost_its_scripts_gets_them_again(fake_redis):
     clock.t += 5
     assert len(p.observe(s, comments([campaign_text(i) for i in range(5, 14)], start=5))) == 14 - 5
     assert len(read_campaigns(fake_redis, KEYS)) == 1
+
+
+@pytest.mark.parametrize("signals", ["either", "authors", "lean", "both"])
+def test_the_cheap_bucket_flags_agree_with_the_bucket_facts(signals):
+    """Every observed bucket gets only (dense, qualifies); the full facts are built for a starting campaign.
+    Both must decide alike on any figures, an empty bucket included."""
+    rng = np.random.default_rng(11)
+    p = policy(Clock(), signals=signals)
+    for _ in range(5000):
+        total = int(rng.integers(0, 60))
+        authors, new_hits, lean_hits = (int(rng.integers(0, total + 1)) for _ in range(3))
+        history, peak = int(rng.integers(0, 500)), int(rng.integers(0, 40))
+        history_s = float(rng.choice([600.0, 86_400.0, 7 * 86_400.0]))
+        facts = p._bucket_facts(total, authors, new_hits, lean_hits, history, peak, history_s)
+        assert p._bucket_flags(total, authors, new_hits, lean_hits, history, peak, history_s) == (
+            facts["dense"], facts["bursty"] and facts["signal"])

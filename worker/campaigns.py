@@ -258,6 +258,9 @@ class Sightings:
             chunks[-1] = _sorted_unique(np.concatenate((chunks[-1], last)), kind="stable")
 
 
+_NOT_OBSERVED = (False, False)  # (dense, qualifies) of a band key the batch's script call did not report
+
+
 class CampaignPolicy:
     """A :class:`worker.policies.BatchPolicy` that finds campaigns (see the module doc).
 
@@ -535,26 +538,29 @@ class CampaignPolicy:
             on_link = np.isin(keys, np.fromiter(linked, dtype=np.uint64, count=len(linked)))
             for row in np.flatnonzero(on_link.any(axis=1)).tolist():
                 members.setdefault(int(eligible[row]), linked[int(keys[row][on_link[row]][0])])
-        facts_of = {key: self._bucket_facts(t, a, w, h, e, m, history_s)
-                    for key, (_band, t, a, w, h, e, m) in observed.buckets.items()}
-        on_bucket = np.isin(keys, np.fromiter(facts_of, dtype=np.uint64, count=len(facts_of))) if facts_of else None
+        figures = observed.buckets  # band key -> (band, members, authors, new hits, lean hits, history, peak)
+        # (dense, qualifies) of each bucket: qualifying buckets are bursty and carry the second signal
+        flags = {key: self._bucket_flags(t, a, w, h, e, m, history_s)
+                 for key, (_band, t, a, w, h, e, m) in figures.items()}
+        on_bucket = np.isin(keys, np.fromiter(flags, dtype=np.uint64, count=len(flags))) if flags else None
         links: dict[tuple[int, int], str] = {}  # (band, band key) this batch links, with their campaign
         linked_now: dict[int, str] = {}
         seeds: dict[str, set[str]] | None = None  # campaign -> its first member's band keys, read when needed
         rows = np.flatnonzero(on_bucket.any(axis=1)).tolist() if on_bucket is not None else []
+        eligible_list = eligible.tolist()
         for row in rows:
-            i = int(eligible[row])
+            i = eligible_list[row]
             row_keys = keys[row]
-            # (count, band, facts) of buckets that could start or extend a campaign
-            qualifying = [(facts_of[int(row_keys[band])]["members"], band, facts_of[int(row_keys[band])])
-                          for band in np.flatnonzero(on_bucket[row]).tolist()]
-            qualifying = [q for q in qualifying if q[2]["bursty"] and q[2]["signal"]]
-            campaign = members.get(i) or next((linked_now[k] for k in map(int, row_keys) if k in linked_now), None)
+            row_list = row_keys.tolist()
+            # (band, band key) of buckets that could start or extend a campaign
+            qualifying = [(band, key) for band, key in enumerate(row_list) if flags.get(key, _NOT_OBSERVED)[1]]
+            campaign = members.get(i) or next((linked_now[k] for k in row_list if k in linked_now), None)
             if campaign is None:
-                starters = [q for q in qualifying if q[2]["dense"]]
+                starters = [q for q in qualifying if flags[q[1]][0]]
                 if not starters:
                     continue
-                total, band, facts = max(starters, key=lambda q: (q[0], q[2]["authors"]))
+                band, key = max(starters, key=lambda q: (figures[q[1]][1], figures[q[1]][2]))
+                facts = self._bucket_facts(*figures[key][1:], history_s)
                 bucket_list = [f"{int(k):016x}" for k in row_keys]
                 if seeds is None:
                     seeds = store.load_seeds()
@@ -566,16 +572,34 @@ class CampaignPolicy:
                     active.add(campaign)
                     seeds[campaign] = set(bucket_list)
             members[i] = campaign
-            for _total, band, _facts in qualifying:
+            for band, key in qualifying:
                 # only a bucket that is bursty and new-authored (or spam-ward) itself, with link_size
                 # comments, joins the campaign: linking every bucket of every member would chain
                 # merely similar comments into it (a format the campaign imitates, for one)
-                links[(band, int(row_keys[band]))] = campaign
-                linked_now[int(row_keys[band])] = campaign
-                self._learn(int(row_keys[band]), campaign, now)
+                links[(band, key)] = campaign
+                linked_now[key] = campaign
+                self._learn(key, campaign, now)
         if members:
             store.record_members(window, links=links, sizes=dict(Counter(members.values())), now=now)
         return members
+
+    def _bucket_flags(self, total: int, n_authors: int, new_hits: int, lean_hits: int, history: int, peak: int,
+                      history_s: float) -> tuple[bool, bool]:
+        """``(dense, qualifies)`` of one bucket, as :meth:`_bucket_facts` decides them: qualifies is bursty
+        and carrying the second signal.  Called for every bucket a batch observes, so it builds nothing."""
+        dense = total >= self.min_size and n_authors >= self.min_authors
+        if total < self.burst_ratio * (history * self.window_s / history_s) or total < self.peak_ratio * peak:
+            return dense, False
+        by_authors = (new_hits / total if total else 0.0) >= self.new_author_share
+        by_lean = (lean_hits / total if total else 0.0) >= self.lean_share
+        signals = self.signals
+        if signals == "either":
+            return dense, by_authors or by_lean
+        if signals == "authors":
+            return dense, by_authors
+        if signals == "lean":
+            return dense, by_lean
+        return dense, by_authors and by_lean
 
     def _bucket_facts(self, total: int, n_authors: int, new_hits: int, lean_hits: int, history: int, peak: int,
                       history_s: float) -> dict:
