@@ -63,24 +63,15 @@ def undrained_streams(client, old: Keys) -> dict[str, tuple[int, int]]:
 
 
 def _move_key(client, old_key: str, new_key: str, report: MoveReport, kind: str, *, dry_run: bool) -> None:
+    from ops.sharedstate import move_key
+
     if old_key == new_key:
         return
-    if dry_run:
+    outcome = "moved" if dry_run else move_key(client, old_key, new_key)
+    if outcome == "moved":
         setattr(report, kind, getattr(report, kind) + 1)
-        return
-    payload = client.dump(old_key)
-    if payload is None:  # expired meanwhile
-        return
-    ttl = client.pttl(old_key)
-    try:
-        client.restore(new_key, max(0, int(ttl)) if ttl and ttl > 0 else 0, payload)
-    except redis.ResponseError as exc:
-        if "BUSYKEY" not in str(exc):
-            raise
+    elif outcome == "kept":
         report.kept += 1
-        return
-    client.delete(old_key)
-    setattr(report, kind, getattr(report, kind) + 1)
 
 
 def _ids_under(client, prefix: str):

@@ -49,6 +49,27 @@ def shared_pairs(client, old: Keys, new: Keys) -> list[tuple[str, str]]:
     return [(a, b) for a, b in pairs if a != b and client.exists(a)]
 
 
+def move_key(client, old_key: str, new_key: str) -> str:
+    """Give ``old_key`` the name ``new_key`` with its time to live, across shards; ``"moved"``, ``"kept"`` (the
+    new name is taken: nothing changes) or ``"gone"`` (the old key expired meanwhile).
+
+    ``DUMP``/``PTTL``/``RESTORE`` then ``DEL``, not ``RENAME``: on a Redis Cluster the two names may live
+    on different shards, and a stream keeps its consumer groups.
+    """
+    payload = client.dump(old_key)
+    if payload is None:
+        return "gone"
+    ttl = client.pttl(old_key)
+    try:
+        client.restore(new_key, int(ttl) if ttl and ttl > 0 else 0, payload)
+    except redis.ResponseError as exc:
+        if "BUSYKEY" not in str(exc):
+            raise
+        return "kept"
+    client.delete(old_key)
+    return "moved"
+
+
 def move_shared_state(client, old: Keys, new: Keys, *, dry_run: bool = False) -> dict[str, int]:
     """Rename the durable shared keys from ``old``'s layout to ``new``'s; returns ``{"moved", "kept"}``.
 
@@ -56,20 +77,7 @@ def move_shared_state(client, old: Keys, new: Keys, *, dry_run: bool = False) ->
     """
     counts = {"moved": 0, "kept": 0}
     for old_key, new_key in shared_pairs(client, old, new):
-        if dry_run:
-            counts["moved"] += 1
-            continue
-        payload = client.dump(old_key)
-        if payload is None:  # expired meanwhile
-            continue
-        ttl = client.pttl(old_key)
-        try:
-            client.restore(new_key, int(ttl) if ttl and ttl > 0 else 0, payload)
-        except redis.ResponseError as exc:
-            if "BUSYKEY" not in str(exc):
-                raise
-            counts["kept"] += 1
-            continue
-        client.delete(old_key)
-        counts["moved"] += 1
+        outcome = "moved" if dry_run else move_key(client, old_key, new_key)
+        if outcome in counts:
+            counts[outcome] += 1
     return counts
