@@ -31,6 +31,8 @@ from kit import wait_until
 from ops.bench.console import ConsoleThread, fill_queue
 from ops.config import load_config
 from ops.connection import connect
+from ops.cusum import WaveParams
+from ops.waves import GRACE_S, WaveDetector, wave_keys
 from ops.console.accounts import Accounts
 from ops.console.app import Console
 from ops.lab.demo import DEMO_SETTINGS, demo_scenario, run_demo
@@ -83,17 +85,24 @@ class Story:
         for i, comment in enumerate(strict_section_comments()):
             fill_queue(self.server.url, self.keys, [comment], model, site_thresholds=STRICT_SECTIONS,
                        clock=lambda i=i: self.story_end - 1500 + 50 * i)
-        # the demo's campaign ran for half an hour and became its own history; a new one is still going at the end
-        late = lambda: self.story_end - 120  # noqa: E731
+        # the demo's campaign ran for half an hour and became its own history; a new one is still going when the
+        # console opens, in the minute after the last one the demo's wave detector read, and the detector reads
+        # it (as the monitor does every minute): the section it floods is in a wave
+        cursor = int(self.client.get(wave_keys(self.keys)["cursor"]))
+        late_ts = max(self.story_end - 120, (cursor + 1) * 60 + 1)
         fill_queue(self.server.url, self.keys, late_campaign_comments(), model,
-                   policies=[campaign_policy(self.config, clock=late)], clock=late)
+                   policies=[campaign_policy(self.config, clock=lambda: late_ts)], clock=lambda: late_ts)
+        read_at = (int(late_ts) // 60 + 1) * 60 + GRACE_S + 1
+        WaveDetector(client=self.client, keys=self.keys, params=WaveParams.from_settings(self.config.waves),
+                     sites=self.config.metrics.sites, clock=lambda: read_at).tick()
+        self.console_now = max(self.story_end, read_at)
         bad = [{"id": "bad-1", "body": "the text under another name"}, {"id": "bad-2", "text": "   "},
                {"text": "no id"}, {"id": "bad-3", "text": "x", "a": "1", **{f"f{i}": "y" for i in range(20)}}]
         fill_queue(self.server.url, self.keys, bad, model, clock=lambda: self.story_end - 100)
         accounts = Accounts(client=self.client, keys=self.keys, cost=2**14)
         for name, role in (("mod-hazel", "moderator"), ("mod-idris", "moderator"), ("boss", "admin")):
             accounts.add(name, PASSWORD, role=role, now=time.time())
-        offset = self.story_end - time.time()
+        offset = self.console_now - time.time()
         self.console = Console(client=self.client, config=self.config, accounts=accounts,
                                clock=lambda: time.time() + offset)
 
@@ -306,7 +315,7 @@ def test_the_queue_notices_newly_held_comments_without_a_reload(story, hazel):
     assert page.locator("#fresh").is_hidden()
     model = Registry(client=story.client, keys=story.keys).load()
     fill_queue(story.server.url, story.keys, [{"id": "x-late", "text": "a late note for the sandbox", "site": SANDBOX}],
-               model, site_thresholds=SITE_THRESHOLDS, clock=lambda: story.story_end)
+               model, site_thresholds=SITE_THRESHOLDS, clock=lambda: story.console_now)
     expect(page.locator("#fresh")).to_be_visible()
     expect(page.locator("#held-count")).not_to_have_text(count)
     assert navigations == []
