@@ -3,6 +3,8 @@ from __future__ import annotations
 
 import pytest
 
+from kit import wait_until
+
 from scorers import WordScorer
 from worker.commit import BatchCommitter, Limits as CommitLimits, Scored, WRITTEN
 from worker.connection import raw_stream_replies
@@ -129,11 +131,13 @@ def test_claims_come_partition_by_partition(fake_redis):
         dead.read(block=False)  # read everything, then "die"
     alive = RedisStreamSource(client=client, keys=KEYS, settings=settings, consumer="alive")
     alive.prepare()
-    batches = []
-    for _ in range(1000):  # bounded: the entries turn idle for 1 ms
-        batches += list(alive.claim())
-        if sum(len(b.entries) for b in batches) >= 20:
-            break
+    # once every entry has been idle past claim_idle_ms (XPENDING rows: id, consumer, idle ms, deliveries), one
+    # claim round takes them all over (claiming earlier would take some now and, 1 ms later, take them again
+    # from "alive" itself)
+    assert wait_until(lambda: all(int(row[2]) >= 2 for part in KEYS.parts
+                                  for row in fake_redis.xpending_range(part.comments, KEYS.group, "-", "+", 100)),
+                      timeout=5, interval=0.002)
+    batches = list(alive.claim())
     assert sorted(b.partition for b in batches) == [0, 1, 2, 3] and all(b.claimed for b in batches)
     assert sum(len(b.entries) for b in batches) == 20
 
