@@ -6,7 +6,9 @@ threshold holds everything, so the console shows them exactly as the worker cach
 """
 from __future__ import annotations
 
+import contextlib
 import json
+import time
 
 from worker.settings import Keys
 
@@ -75,3 +77,24 @@ def hold(client, n: int, *, start: int = 0, keys: Keys = Keys()) -> list[str]:
                                              "reasons": json.dumps([["fence", 0.4], ["allotment", -0.2]])})
         ids.append(cid)
     return ids
+
+
+MODERATOR_PASSWORD = "a long enough password"
+
+
+@contextlib.contextmanager
+def two_moderators(client, config, *, password: str = MODERATOR_PASSWORD):
+    """A console on ``client`` with two signed-in moderators, ``mod-ana`` and ``mod-bo``: ``(ana, bo)``, each
+    a :class:`ops.bench.console.Browser` on the console's port (cheap scrypt cost: a test, not a deployment)."""
+    from ops.bench.console import Browser, ConsoleThread
+    from ops.console.accounts import Accounts
+    from ops.console.app import Console
+
+    accounts = Accounts(client=client, keys=config.keys, cost=1024)
+    for name in ("mod-ana", "mod-bo"):
+        accounts.add(name, password, role="moderator", now=time.time())
+    with ConsoleThread(Console(client=client, config=config, accounts=accounts)) as server:
+        ana, bo = Browser(server.port), Browser(server.port)
+        ana.sign_in("mod-ana", password)
+        bo.sign_in("mod-bo", password)
+        yield ana, bo

@@ -21,7 +21,7 @@ from collections import Counter
 import pytest
 import redis
 
-from faults_kit import comment_text, start_workers, tally
+from faults_kit import comment_text, doubled as verdicts_beyond_one, start_workers, tally
 from kit import stop_all, wait_for_progress, wait_until
 from servers import RedisCluster, require
 from tlscerts import make_ca
@@ -235,6 +235,24 @@ def wait_all_judged(client, *, what: str, expected: int | None = None) -> None:
                       what=what)
 
 
+def judged_after_failover(client, reader) -> tuple[set, Counter]:
+    """Once every surviving comment is judged: the verdict entries the promoted primaries hold, and the
+    verdicts per comment id (the reader of the verdict streams stopped)."""
+    wait_all_judged(client, what="every surviving comment judged (progress: verdicts, pending)")
+    reader.stop.set()
+    reader.join(timeout=30)
+    return set(verdict_entries(client)), verdict_counts(client)
+
+
+def failover_outcome(producer, reader, final: set, counts: Counter):
+    """``(accepted, lost ids, doubled, vanished)`` of a run with a failover: the ids the cluster acknowledged
+    and when, those of them with no verdict, verdicts beyond one per id, and the verdicts a reader saw on the
+    dead primary that the promoted replica never had (the commit was rolled back whole, so its entry was still
+    pending there and got judged again, or the comment itself was lost)."""
+    accepted = producer.accepted_at
+    return accepted, sorted(set(accepted) - set(counts)), verdicts_beyond_one(counts), sorted(reader.seen - final)
+
+
 def kill_busy_worker(client, workers, rng, kill_number: int) -> tuple[str, int]:
     """SIGKILL a worker holding unacknowledged entries (any worker if none does) and start it again,
     under the same name on even kills and a new one on odd kills."""
@@ -311,19 +329,12 @@ def test_a_primary_killed_mid_stream_fails_over_and_the_loss_is_counted(redis_cl
         failover_s = time.monotonic() - killed_at
         producer.join(timeout=600)
         assert not producer.is_alive()
-        wait_all_judged(client, what="every surviving comment judged (progress: verdicts, pending)")
-        reader.stop.set()
-        reader.join(timeout=30)
-        final = set(verdict_entries(client))
-        counts = verdict_counts(client)
+        final, counts = judged_after_failover(client, reader)
     finally:
         producer.abort.set()
         reader.stop.set()
         codes = stop_all(workers)
-    accepted = producer.accepted_at
-    lost_ids = sorted(set(accepted) - set(counts))
-    doubled = sum(v - 1 for v in counts.values() if v > 1)
-    vanished = sorted(reader.seen - final)  # verdicts a reader saw that the promoted replica never had
+    accepted, lost_ids, doubled, vanished = failover_outcome(producer, reader, final, counts)
     print("faults:", json.dumps({"test": "cluster_primary_kill", "comments": n, "accepted": len(accepted),
                                  "producer_retries": producer.errors, "failover_s": round(failover_s, 2),
                                  "lost_acknowledged_comments": len(lost_ids), "duplicates": doubled,
@@ -427,22 +438,13 @@ def test_a_primary_dying_after_its_replica_fell_behind_loses_comments_unless_the
         producer.abort.set()
         producer.join(timeout=60)
         assert not producer.is_alive()
-        wait_all_judged(client, what="every surviving comment judged (progress: verdicts, pending)")
-        reader.stop.set()
-        reader.join(timeout=30)
-        final = set(verdict_entries(client))
-        counts = verdict_counts(client)
+        final, counts = judged_after_failover(client, reader)
     finally:
         producer.abort.set()
         reader.stop.set()
         codes = stop_all(workers)
-    accepted = producer.accepted_at
-    lost_ids = sorted(set(accepted) - set(counts))
+    accepted, lost_ids, doubled, vanished = failover_outcome(producer, reader, final, counts)
     alone = [c for c, t in accepted.items() if piled_at <= t <= killed_at and KEYS.partition_of(c) in ours]
-    doubled = sum(v - 1 for v in counts.values() if v > 1)
-    # verdicts a reader saw on the dead primary that the promoted replica never had: the commit was rolled
-    # back whole, so its entry was still pending there and got judged again (or the comment itself was lost)
-    vanished = sorted(reader.seen - final)
     again = [cid for _p, _sid, cid in vanished if counts[cid] == 1]
     print("faults:", json.dumps({"test": "cluster_replica_behind", "wait_ms": wait_ms, "accepted": len(accepted), "accepted_while_primary_alone": len(alone),
                                  "producer_retries": producer.errors, "lost_acknowledged_comments": len(lost_ids),

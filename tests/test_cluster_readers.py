@@ -14,13 +14,11 @@ from collections import Counter
 
 import pytest
 
+from console_kit import two_moderators
 from kit import wait_for_progress, wait_until
-from ops.bench.console import Browser, ConsoleThread
 from ops.bench.stream import invented_comments
 from ops.config import load_config
 from ops.connection import connect
-from ops.console.accounts import Accounts
-from ops.console.app import Console
 from ops.registry import load_model
 from ops.rescore import rescore_held
 from ops.serving import build_consumer
@@ -35,7 +33,6 @@ from worker_models import tiny_model
 
 pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
 
-PASSWORD = "a long enough password"
 SITE = "plots.example"
 N = 48
 
@@ -87,14 +84,7 @@ def test_console_watch_feedback_and_rescore_read_six_partitions_on_a_cluster(sha
     snap = collect(client, keys)  # `seawall watch`: every partition's per-minute counts, summed
     assert sum(sum(row.totals) for row in snap.sites) == N and [row.site for row in snap.sites] == [SITE]
 
-    accounts = Accounts(client=client, keys=keys, cost=1024)
-    for name in ("mod-ana", "mod-bo"):
-        accounts.add(name, PASSWORD, role="moderator", now=time.time())
-    console = Console(client=client, config=config, accounts=accounts)
-    with ConsoleThread(console) as server:
-        ana, bo = Browser(server.port), Browser(server.port)
-        ana.sign_in("mod-ana", PASSWORD)
-        bo.sign_in("mod-bo", PASSWORD)
+    with two_moderators(client, config) as (ana, bo):
         res, page = ana.request("GET", "/queue?view=list")
         assert res.status == 200 and page.count(b'class="row ') == N  # one queue over six partitions
         newest = [c.id for c in read_held(client, keys, limit=12)]

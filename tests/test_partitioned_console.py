@@ -14,12 +14,11 @@ from collections import Counter
 
 import pytest
 
+from console_kit import two_moderators
 from kit import wait_until
-from ops.bench.console import Browser, ConsoleThread, fill_queue
+from ops.bench.console import fill_queue
 from ops.config import load_config
 from ops.connection import connect
-from ops.console.accounts import Accounts
-from ops.console.app import Console
 from ops.bench.stream import invented_comments
 from ops.registry import load_model
 from ops.rescore import rescore_held
@@ -31,7 +30,6 @@ from worker_models import tiny_model
 
 pytestmark = pytest.mark.redis_server
 
-PASSWORD = "a long enough password"
 SITE = "plots.example"
 N = 40
 
@@ -53,14 +51,7 @@ def test_console_decisions_feedback_and_rescore_over_four_partitions(redis_serve
     per_partition = [client.zcard(p.held) for p in keys.parts]
     assert sum(per_partition) == N and all(per_partition), per_partition  # every partition holds some
 
-    accounts = Accounts(client=client, keys=keys, cost=1024)
-    for name in ("mod-ana", "mod-bo"):
-        accounts.add(name, PASSWORD, role="moderator", now=time.time())
-    console = Console(client=client, config=config, accounts=accounts)
-    with ConsoleThread(console) as server:
-        ana, bo = Browser(server.port), Browser(server.port)
-        ana.sign_in("mod-ana", PASSWORD)
-        bo.sign_in("mod-bo", PASSWORD)
+    with two_moderators(client, config) as (ana, bo):
         res, page = ana.request("GET", "/queue?view=list")
         assert res.status == 200 and page.count(b'class="row ') == N  # one queue over the four partitions
         res, body = ana.request("GET", "/api/queue/status")
