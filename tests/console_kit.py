@@ -10,6 +10,8 @@ import contextlib
 import json
 import time
 
+from kit import wait_until
+from worker.holdqueue import read_held
 from worker.settings import Keys
 
 NOW = 1_800_000_000.0
@@ -98,3 +100,19 @@ def two_moderators(client, config, *, password: str = MODERATOR_PASSWORD):
         ana.sign_in("mod-ana", password)
         bo.sign_in("mod-bo", password)
         yield ana, bo
+
+
+def race_two_moderators(client, keys, ana, bo, *, n: int = 12) -> list[str]:
+    """Ana rejects the newest ``2n/3`` held comments, then Bo publishes the newest ``n/3`` to ``n``: the ones Ana
+    decided first are gone for Bo (the first moderator wins), and ``n`` decisions become final. The ids, newest
+    first; they must come from more than one partition."""
+    newest = [c.id for c in read_held(client, keys, limit=n)]
+    assert len({keys.partition_of(i) for i in newest}) > 1
+    first, overlap = 2 * n // 3, n // 3
+    res, body = ana.post_json("/api/decide", json.dumps({"ids": newest[:first], "action": "reject"}).encode())
+    assert res.status == 200 and json.loads(body)["decided"] == newest[:first]
+    res, body = bo.post_json("/api/decide", json.dumps({"ids": newest[overlap:], "action": "publish"}).encode())
+    second = json.loads(body)
+    assert second["decided"] == newest[first:] and second["gone"] == newest[overlap:first]  # the first moderator won
+    wait_until(lambda: client.xlen(keys.decisions) == n, timeout=30, what=f"{n} decisions final")
+    return newest

@@ -8,14 +8,13 @@ spans two slots fails here with CROSSSLOT (or the client's own refusal) instead 
 """
 from __future__ import annotations
 
-import json
 import time
 from collections import Counter
 
 import pytest
 
-from console_kit import two_moderators
-from kit import wait_for_progress, wait_until
+from console_kit import race_two_moderators, two_moderators
+from kit import wait_for_progress
 from ops.bench.stream import invented_comments
 from ops.config import load_config
 from ops.connection import connect
@@ -25,7 +24,7 @@ from ops.serving import build_consumer
 from ops.watchview import collect
 from worker.connection import connect as worker_connect
 from worker.feedback import FeedbackConsumer
-from worker.holdqueue import held_count, read_held
+from worker.holdqueue import held_count
 from worker.labels import scan_labels
 from worker.loader import StaticModelSource
 from worker.partitions import key_slot, send_comment
@@ -87,14 +86,7 @@ def test_console_watch_feedback_and_rescore_read_six_partitions_on_a_cluster(sha
     with two_moderators(client, config) as (ana, bo):
         res, page = ana.request("GET", "/queue?view=list")
         assert res.status == 200 and page.count(b'class="row ') == N  # one queue over six partitions
-        newest = [c.id for c in read_held(client, keys, limit=12)]
-        assert len({keys.partition_of(i) for i in newest}) > 1
-        res, body = ana.post_json("/api/decide", json.dumps({"ids": newest[:8], "action": "reject"}).encode())
-        assert res.status == 200 and json.loads(body)["decided"] == newest[:8]
-        res, body = bo.post_json("/api/decide", json.dumps({"ids": newest[4:12], "action": "publish"}).encode())
-        second = json.loads(body)
-        assert second["decided"] == newest[8:12] and second["gone"] == newest[4:8]  # the first moderator won
-        wait_until(lambda: client.xlen(keys.decisions) == 12, timeout=30, what="12 decisions final")
+        newest = race_two_moderators(client, keys, ana, bo)
 
     decided = Counter(e["id"] for e in _stream(client, keys.decisions))
     assert set(decided) == set(newest) and set(decided.values()) == {1}

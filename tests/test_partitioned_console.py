@@ -14,8 +14,7 @@ from collections import Counter
 
 import pytest
 
-from console_kit import two_moderators
-from kit import wait_until
+from console_kit import race_two_moderators, two_moderators
 from ops.bench.console import fill_queue
 from ops.config import load_config
 from ops.connection import connect
@@ -24,7 +23,7 @@ from ops.registry import load_model
 from ops.rescore import rescore_held
 from slotcheck import SlotChecked
 from worker.feedback import FeedbackConsumer
-from worker.holdqueue import held_count, read_held
+from worker.holdqueue import held_count
 from worker.labels import scan_labels
 from worker_models import tiny_model
 
@@ -57,14 +56,7 @@ def test_console_decisions_feedback_and_rescore_over_four_partitions(redis_serve
         res, body = ana.request("GET", "/api/queue/status")
         assert json.loads(body)["held"] == N
 
-        newest = [c.id for c in read_held(client, keys, limit=12)]
-        assert len({keys.partition_of(i) for i in newest}) > 1
-        res, body = ana.post_json("/api/decide", json.dumps({"ids": newest[:8], "action": "reject"}).encode())
-        assert res.status == 200 and json.loads(body)["decided"] == newest[:8]
-        res, body = bo.post_json("/api/decide", json.dumps({"ids": newest[4:12], "action": "publish"}).encode())
-        second = json.loads(body)
-        assert second["decided"] == newest[8:12] and second["gone"] == newest[4:8]  # the first moderator won
-        wait_until(lambda: client.xlen(keys.decisions) == 12, timeout=30, what="12 decisions final")
+        newest = race_two_moderators(client, keys, ana, bo)
         res, body = ana.request("GET", "/api/queue/status")
         assert json.loads(body) | {"now": 0} == {"held": N - 12, "deciding": 0,
                                                  "newest": json.loads(body)["newest"], "now": 0}
