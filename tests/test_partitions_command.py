@@ -105,3 +105,12 @@ def test_moving_refuses_while_the_old_stream_has_entries_in_flight(fake_redis):
     report = move_partition_state(fake_redis, old, Keys(partitions=2))
     assert report.undrained == {old.comments: (0, 1)} and report.held == 0
     assert fake_redis.zcard(old.held) == 1  # nothing moved
+
+
+def test_the_table_names_the_feedback_stream_producers_write_labels_to(capsys, monkeypatch):
+    """With K > 1 the feedback stream carries the shared hash tag: a producer of labels must see its name."""
+    monkeypatch.delenv("SEAWALL_KEYS_PARTITIONS", raising=False)
+    assert main(["partitions", "--partitions", "4"]) == 0
+    assert capsys.readouterr().out.splitlines()[-1].endswith(" seawall:{shared}:feedback")
+    assert main(["partitions"]) == 0
+    assert capsys.readouterr().out.splitlines()[-1].endswith(" seawall:feedback")

@@ -112,4 +112,5 @@ def run(args) -> int:
         low, high = row["slots"]
         out.write(f"{row['partition']:>9}  {row['tag'] or '-':<8} {row['slot']:>5}  {f'{low}-{high}':<13} "
                   f"{row['stream']}\n")
+    out.write(f"moderators' labels go to one stream, whatever the partition: {keys.feedback}\n")
     return 0
