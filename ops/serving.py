@@ -164,12 +164,17 @@ def build_consumer(
 
     ``policies=None`` builds :func:`default_policies`; ``client`` (a raw-stream
     Redis client, e.g. a fakeredis one in the demo) replaces the one built
-    from ``redis_url``.
+    from ``redis_url``.  Whatever the comment transport, Redis keeps the
+    policies' state: one :class:`worker.redistransport.RedisState` on ``client``
+    (campaign buckets, links and members through its campaign store).
     """
+    from worker.redistransport import RedisState
+
     name = consumer or config.worker.consumer or default_consumer_name()
     if client is None:
         client = redis_client(config, blocking_ms=config.worker.block_ms, client_name="seawall-worker")
     common = dict(
+        state=RedisState(client, config.keys),
         keys=config.keys,
         settings=config.worker,
         model_source=source if source is not None else model_source(config),

@@ -330,13 +330,16 @@ def verdict_message(scored, model: str, *, repeat: bool) -> tuple[str, bytes]:
 
 
 def amqp_consumer(*, client, amqp: AmqpSettings, keys: Keys, settings: WorkerSettings, model_source, consumer: str,
-                  observer=None, policies=(), clock=time.time):
-    """A :class:`worker.consumer.StreamConsumer` reading RabbitMQ, with Redis (``client``) as its state store."""
+                  observer=None, policies=(), clock=time.time, state=None):
+    """A :class:`worker.consumer.StreamConsumer` reading RabbitMQ, with Redis (``client``) as its state store.
+
+    ``state`` is the policies' state port (:class:`RedisState` on ``client`` when not given).
+    """
     from worker.consumer import StreamConsumer
 
     return StreamConsumer(
         source=AmqpSource(settings=amqp, worker=settings, consumer=consumer),
         sink=AmqpSink(client=client, keys=keys, settings=settings, queue=amqp.queue),
-        state=RedisState(client, keys),
+        state=state if state is not None else RedisState(client, keys),
         keys=keys, settings=settings, model_source=model_source, observer=observer, policies=policies, clock=clock,
     )

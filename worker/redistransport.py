@@ -264,8 +264,10 @@ class RedisState:
 
 
 def redis_consumer(*, client, keys: Keys, settings: WorkerSettings, model_source, consumer: str = "",
-                   observer=None, policies=(), clock=None):
-    """A :class:`worker.consumer.StreamConsumer` on Redis Streams: source, sink and state on ``client``.
+                   observer=None, policies=(), clock=None, state=None):
+    """A :class:`worker.consumer.StreamConsumer` on Redis Streams: source and sink on ``client``.
+
+    ``state`` is the policies' state port (:class:`RedisState` on ``client`` when not given).
 
     ``consumer`` empty means ``settings.consumer`` or ``<hostname>-<pid>``.  With
     ``keys.partitions > 1`` the worker reads the partitions it holds leases on
@@ -284,7 +286,7 @@ def redis_consumer(*, client, keys: Keys, settings: WorkerSettings, model_source
     return StreamConsumer(
         source=RedisStreamSource(client=client, keys=keys, settings=settings, consumer=name, leases=leases),
         sink=RedisStreamSink(client=client, keys=keys, settings=settings, consumer=name),
-        state=RedisState(client, keys),
+        state=state if state is not None else RedisState(client, keys),
         keys=keys, settings=settings, model_source=model_source, observer=observer, policies=policies,
         clock=clock if clock is not None else time.time,
     )
