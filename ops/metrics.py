@@ -95,6 +95,8 @@ class Metrics:
     deadletters: Counter
     lag: Gauge
     pending: Gauge
+    partitions_held: Gauge
+    partitions: Gauge
     flagged_ratio: Gauge
     model: Info
     model_created: Gauge
@@ -128,6 +130,11 @@ def build_metrics(registry: CollectorRegistry) -> Metrics:
         deadletters=Counter("seawall_deadletters", "Entries sent to the dead-letter stream, by reason", ["reason"], registry=r),
         lag=Gauge("seawall_consumer_lag", "Entries in the comments stream not yet delivered to the consumer group", registry=r),
         pending=Gauge("seawall_consumer_pending", "Entries delivered to the consumer group and not yet acknowledged", registry=r),
+        partitions_held=Gauge("seawall_partitions_held",
+                              "Comment stream partitions this process reads now (its leases; all of them when K = 1)",
+                              registry=r),
+        partitions=Gauge("seawall_partitions", "Comment stream partitions of the deployment (keys.partitions, K)",
+                         registry=r),
         flagged_ratio=Gauge(
             "seawall_flagged_ratio", "Share of this process's verdicts held or rejected over the sliding window, by site",
             ["site"], registry=r,
@@ -199,11 +206,12 @@ class PrometheusObserver:
     metrics : from :func:`build_metrics`.
     sites : the site allow-list (``metrics.sites``).
     flagged_window_s : window of the ``seawall_flagged_ratio`` gauge.
+    partitions : the deployment's comment stream partitions (``keys.partitions``).
     clock : wall clock, injectable for tests.
     """
 
     def __init__(self, *, metrics: Metrics, sites: Iterable[str] = (), flagged_window_s: float = 300.0,
-                 clock: Callable[[], float] = time.time):
+                 partitions: int = 1, clock: Callable[[], float] = time.time):
         if not isinstance(metrics, Metrics):
             raise ValueError(f"PrometheusObserver: metrics must come from build_metrics, got {type(metrics).__name__}")
         self.metrics = metrics
@@ -216,6 +224,14 @@ class PrometheusObserver:
             metrics.flagged_ratio.labels(site).set_function(lambda s=site: self.window.ratio(s))
             metrics.waves_active.labels(site).set(0)
         metrics.model_age.set_function(self._model_age)
+        metrics.partitions.set(partitions)
+
+    @classmethod
+    def for_config(cls, config, registry: CollectorRegistry, *, clock: Callable[[], float] = time.time):
+        """The observer of one serving process, on a fresh ``registry``, from the Config's
+        ``[metrics]`` sites and window and its ``keys.partitions``."""
+        return cls(metrics=build_metrics(registry), sites=config.metrics.sites,
+                   flagged_window_s=config.metrics.flagged_window_s, partitions=config.keys.partitions, clock=clock)
 
     # -- WorkerObserver -------------------------------------------------
     def on_batch(self, size: int, seconds: float) -> None:
@@ -247,11 +263,13 @@ class PrometheusObserver:
             self.metrics.model_created.set(created_at)
         self.model_loaded = True
 
-    def on_lag(self, lag, pending) -> None:
+    def on_lag(self, lag, pending, partitions=None) -> None:
         if lag is not None:
             self.metrics.lag.set(max(0, lag))
         if pending is not None:
             self.metrics.pending.set(max(0, pending))
+        if partitions is not None:
+            self.metrics.partitions_held.set(partitions)
 
     def on_reconnect(self) -> None:
         self.metrics.reconnects.inc()

@@ -28,7 +28,7 @@ from redis.exceptions import RedisError
 from model.params import integer, positive, set_params
 from ops.cusum import WaveParams
 from ops.httpserver import MetricsServer, redis_model_ready
-from ops.metrics import OTHER, RETRAIN_OUTCOMES, PrometheusObserver, build_metrics
+from ops.metrics import OTHER, RETRAIN_OUTCOMES, PrometheusObserver
 from ops.waves import WaveDetector, read_active
 from worker.campaignstore import end_idle_campaigns, read_campaigns
 from worker.events import parse_event, read_events
@@ -168,8 +168,7 @@ def start_observability(config, *, client=None, registry: CollectorRegistry | No
     from ops.connection import connect
 
     registry = registry if registry is not None else CollectorRegistry()
-    observer = PrometheusObserver(metrics=build_metrics(registry), sites=config.metrics.sites,
-                                  flagged_window_s=config.metrics.flagged_window_s)
+    observer = PrometheusObserver.for_config(config, registry)
     client = client if client is not None else connect(config, socket_timeout=5.0, client_name="seawall-monitor")
     out = Observability(registry=registry, observer=observer)
     detector = None

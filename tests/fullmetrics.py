@@ -10,12 +10,12 @@ from ops.metrics import PrometheusObserver, build_metrics
 def full_exposition() -> tuple[str, set[str]]:
     """The exposition text of a registry on which every hook ran once, and its sample names."""
     registry = CollectorRegistry()
-    obs = PrometheusObserver(metrics=build_metrics(registry), sites=["news.example"])
+    obs = PrometheusObserver(metrics=build_metrics(registry), sites=["news.example"], partitions=3)
     obs.on_batch(10, 0.01)
     obs.on_verdicts([{"site": "news.example", "action": a, "latency_s": 0.02} for a in ("publish", "hold", "reject")])
     obs.on_deadletter("missing_id")
     obs.on_model("v1", 1.0)
-    obs.on_lag(1, 1)
+    obs.on_lag(1, 1, 2)
     obs.on_reconnect()
     obs.on_feedback("spam")
     obs.on_retrain("promoted")

@@ -39,8 +39,9 @@ class Recorder:
     def on_model(self, version, created_at):
         self.models.append(version)
 
-    def on_lag(self, lag, pending):
+    def on_lag(self, lag, pending, partitions=None):
         self.lags.append((lag, pending))
+        self.partitions = partitions
 
     def on_reconnect(self):
         pass
@@ -289,6 +290,7 @@ def test_observer_sees_verdicts_with_latency(client):
     assert all(v["latency_s"] >= 0 and v["action"] == "publish" for v in rec.verdicts)
     assert rec.models == ["standin0001"] and rec.batches == [3]
     assert rec.lags == [(3, 0)]                                  # reported before the read: 3 waiting, none pending
+    assert rec.partitions == 1                                   # K = 1: the one stream
 
 
 def test_verdicts_stream_is_capped(client):

@@ -162,3 +162,40 @@ def test_a_source_reads_only_the_partitions_it_holds(fake_redis, clock):
     assert sorted(seen["a"]) == list(a.held) and sorted(seen["b"]) == list(b.held)
     a.release()
     assert a.held == () and fake_redis.zscore(keys.members, "a") is None
+
+
+def test_each_worker_reports_the_partitions_it_holds_and_the_deployment_reports_k(fake_redis, clock):
+    """``seawall_partitions_held`` summed over the workers equals ``seawall_partitions`` once the leases settle;
+    a worker that stopped reading drops out of the sum (the SeawallPartitionUnread alert)."""
+    from prometheus_client import CollectorRegistry
+
+    from ops.config import load_config
+    from ops.metrics import PrometheusObserver
+    from ops.serving import build_consumer
+    from scorers import WordScorer
+    from worker.connection import raw_stream_replies
+    from worker.loader import StaticModelSource
+
+    config = load_config({"keys.partitions": 4, "worker.block_ms": 5}, environ={})
+    client = raw_stream_replies(fake_redis)
+    registries, consumers = [], []
+    for name in "ab":
+        registry = CollectorRegistry()
+        registries.append(registry)
+        consumers.append(build_consumer(config, source=StaticModelSource(model=WordScorer()), consumer=name,
+                                        client=client, policies=(),
+                                        observer=PrometheusObserver.for_config(config, registry, clock=clock)))
+    for c in consumers:
+        c.source.leases.clock = clock
+        c.source.prepare()
+    for _ in range(6):
+        clock.advance(consumers[0].source.leases.interval_s)
+        for c in consumers:
+            c.source.read(block=False)
+            c.report_lag()
+    held = [r.get_sample_value("seawall_partitions_held") for r in registries]
+    assert held == [2.0, 2.0]
+    assert {r.get_sample_value("seawall_partitions") for r in registries} == {4.0}
+    consumers[1].source.release()
+    consumers[1].report_lag()
+    assert registries[1].get_sample_value("seawall_partitions_held") == 0

@@ -118,6 +118,9 @@ def test_model_lag_reconnect_feedback_retrain(observed):
     assert get("seawall_model_info", {"version": "abc123def456"}) == 1
     assert get("seawall_model_age_seconds") == pytest.approx(86400)
     assert get("seawall_consumer_lag") == 42 and get("seawall_consumer_pending") == 7
+    assert get("seawall_partitions_held") == 0  # a source without partitions leaves it alone
+    obs.on_lag(40, 6, 3)
+    assert get("seawall_partitions_held") == 3 and get("seawall_partitions") == 1
     assert get("seawall_redis_reconnects_total") == 1
     assert get("seawall_feedback_total", {"label": "spam"}) == 1
     assert get("seawall_feedback_total", {"label": "other"}) == 1

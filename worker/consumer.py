@@ -270,7 +270,7 @@ class StreamConsumer:
     def report_lag(self) -> None:
         lag = self.source.lag()
         if lag is not None:
-            self.observer.on_lag(lag.lag, lag.pending)
+            self.observer.on_lag(lag.lag, lag.pending, lag.partitions)
 
     # -- one batch ------------------------------------------------------------------------------
 

@@ -23,7 +23,7 @@ class WorkerObserver(Protocol):
 
     def on_model(self, version: str, created_at: float) -> None: ...
 
-    def on_lag(self, lag: int | None, pending: int) -> None: ...
+    def on_lag(self, lag: int | None, pending: int, partitions: int | None = None) -> None: ...
 
     def on_reconnect(self) -> None: ...
 
@@ -43,7 +43,7 @@ class NullObserver:
     def on_model(self, version: str, created_at: float) -> None:
         pass
 
-    def on_lag(self, lag: int | None, pending: int) -> None:
+    def on_lag(self, lag: int | None, pending: int, partitions: int | None = None) -> None:
         pass
 
     def on_reconnect(self) -> None:

@@ -215,7 +215,7 @@ class RedisStreamSource:
                 lag = self.reader_of(p).lag()
                 pending += lag.pending
                 total_lag = None if total_lag is None or lag.lag is None else total_lag + lag.lag
-        return Lag(total_lag, pending)
+        return Lag(total_lag, pending, len(self._held))
 
     def release(self) -> None:
         """Give back this worker's leases so that the others take its partitions now (best effort)."""

@@ -87,10 +87,15 @@ class Batch:
 
 @dataclass(slots=True)
 class Lag:
-    """How far behind the group is: entries not yet delivered (``None`` when unknown) and unacknowledged."""
+    """How far behind the group is: entries not yet delivered (``None`` when unknown) and unacknowledged.
+
+    ``partitions`` is how many stream partitions this worker reads now (its leases), ``None`` for a
+    source without partitions.
+    """
 
     lag: int | None
     pending: int
+    partitions: int | None = None
 
 
 @runtime_checkable

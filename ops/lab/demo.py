@@ -45,7 +45,7 @@ from model.actions import FLAGGED_ACTIONS, Action
 from model.classifier import EmbeddingClassifier
 from ops.config import Config
 from ops.cusum import WaveParams
-from ops.metrics import PrometheusObserver, build_metrics
+from ops.metrics import PrometheusObserver
 from ops.labelling import build_feedback_consumer, feedback_settings
 from ops.monitor import Monitor
 from ops.registry import Registry, RegistryModelSource, split_replay
@@ -360,8 +360,7 @@ def run_demo(*, client, worker_client, config: Config, scenario: Scenario | None
     # What one `seawall serve` process runs beside its consumer: the metrics
     # observer and the monitor pass (wave detector, idle campaigns, gauges).
     registry = CollectorRegistry()
-    observer = PrometheusObserver(metrics=build_metrics(registry), sites=config.metrics.sites,
-                                  flagged_window_s=config.metrics.flagged_window_s, clock=clock)
+    observer = PrometheusObserver.for_config(config, registry, clock=clock)
     workers = build_workers(worker_client, config, clock=clock, observer=observer)
     for w in workers:
         w.prepare()
