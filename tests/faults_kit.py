@@ -33,18 +33,18 @@ def comment_text(i: int) -> str:
 
 
 def consumer_pending(client, name: str, keys: Keys = KEYS) -> int:
-    """Entries pending on consumer ``name`` (0 when it has not read yet)."""
-    try:
-        rows = client.xinfo_consumers(keys.comments, keys.group)
-    except redis.ResponseError:
-        return 0
-    for row in rows:
-        if _s(row["name"]) == name:
-            return int(row["pending"])
-    return 0
+    """Entries pending on consumer ``name`` over every partition (0 when it has not read yet)."""
+    total = 0
+    for part in keys.parts:
+        try:
+            rows = client.xinfo_consumers(part.comments, keys.group)
+        except redis.ResponseError:  # the group is not made yet
+            continue
+        total += sum(int(row["pending"]) for row in rows if _s(row["name"]) == name)
+    return total
 
 
-def kill_mid_batch(client, workers, rng, kill_number: int) -> tuple[str, int]:
+def kill_mid_batch(client, workers, rng, kill_number: int, keys: Keys = KEYS) -> tuple[str, int]:
     """SIGKILL a worker holding unacknowledged entries (any worker if none does) and start it again.
 
     Even kills restart it under the same name (it reads its own backlog first); odd kills under a
@@ -53,14 +53,38 @@ def kill_mid_batch(client, workers, rng, kill_number: int) -> tuple[str, int]:
     """
     # Generous: on a loaded machine the workers restarted by earlier kills may take a while to load the
     # model and hold a batch again; the kill should still land mid-batch rather than on an idle worker.
-    busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name)],
+    busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name, keys)],
                       timeout=60, interval=0.01)
     victim = rng.choice(busy or workers)
-    name, held = victim.name, consumer_pending(client, victim.name)
+    name, held = victim.name, consumer_pending(client, victim.name, keys)
     assert victim.kill() == -signal.SIGKILL
     base = name.split(".")[0]
     victim.start(name=name if kill_number % 2 == 0 else f"{base}.{kill_number}")
     return name, held
+
+
+def kills_on_fresh_backlogs(workers, rng, *, kills: int, feed, kill) -> list:
+    """Run ``kills`` kills, each on a fresh backlog: ``feed(0)``, then before kill ``k`` (1..kills) wait until
+    every worker has started and ``feed(k)``; ``feed(kills + 1)`` after the last.  The kills' results, in order.
+
+    Queued all at once, a run can be drained by a fast machine before the later kills, which then hit idle
+    workers; fed in slices, every kill finds work in hand.  A worker still loading its model after the
+    previous kill may hold its former self's entries without working on them, so kills wait for it.
+    """
+    feed(0)
+    out = []
+    for k in range(1, kills + 1):
+        assert wait_until(lambda: all(w.started() for w in workers), timeout=60), "a restarted worker did not start"
+        feed(k)
+        time.sleep(rng.uniform(0.0, 0.02))
+        out.append(kill(k))
+    feed(kills + 1)
+    return out
+
+
+def slice_of(n: int, k: int, slices: int) -> range:
+    """The ``k``-th of ``slices`` consecutive slices of ``range(n)``."""
+    return range(k * n // slices, (k + 1) * n // slices)
 
 
 def consumer_seen(client, name: str, keys: Keys = KEYS) -> bool:
@@ -132,6 +156,15 @@ class Producer(threading.Thread):
         self.done = threading.Event()
         self.abort = threading.Event()
 
+    def send(self, ids) -> None:
+        """XADD comments ``ids`` in one pipeline (raises on a Redis error; :meth:`run` retries)."""
+        pipe = self.client.pipeline(transaction=False)
+        for k in ids:
+            send_comment(self.client, self.keys, {"id": f"{self.prefix}{k}", "text": comment_text(k),
+                                                  "site": f"site{k % 3}.example", "author": f"member{k % 97}"},
+                         pipeline=pipe)
+        pipe.execute()
+
     def run(self) -> None:
         t0 = time.monotonic()
         i = 0
@@ -142,12 +175,7 @@ class Producer(threading.Thread):
                 time.sleep(pause)
             ids = range(i, min(self.n, i + self.chunk))
             try:
-                pipe = self.client.pipeline(transaction=False)
-                for k in ids:
-                    send_comment(self.client, self.keys, {"id": f"{self.prefix}{k}", "text": comment_text(k),
-                                                          "site": f"site{k % 3}.example", "author": f"member{k % 97}"},
-                                 pipeline=pipe)
-                pipe.execute()
+                self.send(ids)
             except (redis.ConnectionError, redis.TimeoutError, redis.ResponseError):
                 # ResponseError: a restarting server answers LOADING while it reads its AOF.
                 self.errors += 1

@@ -21,7 +21,8 @@ from collections import Counter
 import pytest
 import redis
 
-from faults_kit import comment_text, doubled as verdicts_beyond_one, start_workers, tally
+from faults_kit import (comment_text, doubled as verdicts_beyond_one, kill_mid_batch, kills_on_fresh_backlogs, slice_of,
+                        start_workers, tally)
 from kit import stop_all, wait_for_progress, wait_until
 from servers import RedisCluster, require
 from tlscerts import make_ca
@@ -80,17 +81,6 @@ def pending_total(client, keys: Keys = KEYS) -> int:
             total += int(client.xpending(part.comments, keys.group)["pending"])
         except redis.ResponseError:  # the group is not made yet
             pass
-    return total
-
-
-def consumer_pending(client, name: str, keys: Keys = KEYS) -> int:
-    total = 0
-    for part in keys.parts:
-        try:
-            rows = client.xinfo_consumers(part.comments, keys.group)
-        except redis.ResponseError:
-            continue
-        total += sum(int(r["pending"]) for r in rows if _s(r["name"]) == name)
     return total
 
 
@@ -253,19 +243,6 @@ def failover_outcome(producer, reader, final: set, counts: Counter):
     return accepted, sorted(set(accepted) - set(counts)), verdicts_beyond_one(counts), sorted(reader.seen - final)
 
 
-def kill_busy_worker(client, workers, rng, kill_number: int) -> tuple[str, int]:
-    """SIGKILL a worker holding unacknowledged entries (any worker if none does) and start it again,
-    under the same name on even kills and a new one on odd kills."""
-    busy = wait_until(lambda: [w for w in workers if w.alive() and consumer_pending(client, w.name)],
-                      timeout=60, interval=0.01)
-    victim = rng.choice(busy or workers)
-    name, held = victim.name, consumer_pending(client, victim.name)
-    victim.kill()
-    base = name.split(".")[0]
-    victim.start(name=name if kill_number % 2 == 0 else f"{base}.{kill_number}")
-    return name, held
-
-
 # -- the tests --------------------------------------------------------------------------------------
 
 COMMENTS = 10_000
@@ -278,13 +255,10 @@ def test_ten_worker_sigkills_on_a_cluster_leave_each_of_10000_comments_exactly_o
     workers = start_workers(shared_cluster.url, tmp_path, env=CLUSTER_ENV)
     kills = []
     try:
-        ClusterProducer(client, n=COMMENTS, rate=1e9, chunk=1000).run()  # the whole run queued up front
-        for k in range(KILLS):
-            due = (k + 1) * COMMENTS // (KILLS + 2)
-            wait_for_progress(lambda: verdict_total(client) >= due, lambda: verdict_total(client),
-                              stall_s=STALL_S, what=f"{due} verdicts before kill {k + 1}")
-            time.sleep(rng.uniform(0.0, 0.2))
-            name, held = kill_busy_worker(client, workers, rng, len(kills) + 1)
+        producer = ClusterProducer(client, n=COMMENTS, rate=1e9)
+        for name, held in kills_on_fresh_backlogs(  # a slice of the run before each kill: a backlog to kill in
+                workers, rng, kills=KILLS, feed=lambda k: producer.send(slice_of(COMMENTS, k, KILLS + 2)),
+                kill=lambda k: kill_mid_batch(client, workers, rng, k, KEYS)):
             kills.append({"worker": name, "pending_at_kill": held})
         wait_all_judged(client, expected=COMMENTS, what="every verdict, nothing pending (progress: verdicts, pending)")
         counts = verdict_counts(client)

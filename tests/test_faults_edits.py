@@ -3,7 +3,6 @@ from __future__ import annotations
 
 import json
 import random
-import time
 from collections import Counter, defaultdict
 
 import pytest
@@ -14,7 +13,9 @@ from faults_kit import (
     deadletters,
     group_pending,
     kill_mid_batch,
+    kills_on_fresh_backlogs,
     read_stream,
+    slice_of,
     start_workers,
     wait_for_verdicts,
 )
@@ -77,21 +78,12 @@ def test_sigkills_while_comments_are_edited_give_one_verdict_per_version(redis_s
                             env={"SEAWALL_WORKER_MAX_DELIVERIES": "1000", "SEAWALL_WAVES_ENABLED": "0"})
     kills = []
     try:
-        # The entries go in slices, one before each kill: every kill then finds a fresh backlog, so it lands
-        # on a worker holding a batch however fast the machine drains the stream (queued all at once, a
-        # fast machine finished them before the later kills, which then hit idle workers).
-        step = -(-len(sent) // (KILLS + 2))
-        slices = [list(enumerate(sent))[i:i + step] for i in range(0, len(sent), step)]
-        send(client, slices[0])
-        for k in range(KILLS):
-            # Kill only started workers: one still loading its model after the last kill may hold its
-            # former self's entries without working on them, and that would not be a mid-batch kill.
-            assert wait_until(lambda: all(w.started() for w in workers), timeout=60)
-            send(client, slices[k + 1])
-            time.sleep(rng.uniform(0.0, 0.02))
-            kills.append(kill_mid_batch(client, workers, rng, len(kills) + 1)[1])
-        for rest in slices[KILLS + 1:]:
-            send(client, rest)
+        # The entries go in slices, one before each kill, in the order a site sends them.
+        numbered = list(enumerate(sent))
+        kills = [held for _name, held in kills_on_fresh_backlogs(
+            workers, rng, kills=KILLS,
+            feed=lambda k: send(client, [numbered[i] for i in slice_of(len(numbered), k, KILLS + 2)]),
+            kill=lambda k: kill_mid_batch(client, workers, rng, k))]
         wait_for_verdicts(client, expected)
         assert wait_until(lambda: all(w.started() for w in workers), timeout=60)
     finally:

@@ -3,11 +3,11 @@ from __future__ import annotations
 
 import json
 import random
-import time
 
 import pytest
 
-from faults_kit import KEYS, Producer, deadletters, group_lag, group_pending, kill_mid_batch, start_workers, tally, verdict_ids
+from faults_kit import (KEYS, Producer, deadletters, group_lag, group_pending, kill_mid_batch, kills_on_fresh_backlogs,
+                        slice_of, start_workers, tally, verdict_ids)
 from kit import stop_all, wait_for_progress, wait_until
 
 pytestmark = [pytest.mark.redis_server, pytest.mark.slow]
@@ -26,17 +26,13 @@ def test_twenty_sigkills_during_a_20000_comment_run_lose_and_double_nothing(redi
     workers = start_workers(redis_server.url, tmp_path, env={"SEAWALL_WORKER_MAX_DELIVERIES": "1000"})
     kills = []
     try:
-        # The whole run is queued up front, so the workers always have a batch in hand.
-        Producer(url=redis_server.url, n=COMMENTS, rate=1e9, chunk=1000).run()
-        for k in range(KILLS):
-            # Kills are spread over the run: the k-th waits for its share of the verdicts.
-            due = (k + 1) * COMMENTS // (KILLS + 2)
-            wait_for_progress(lambda: client.xlen(KEYS.verdicts) >= due, lambda: client.xlen(KEYS.verdicts),
-                              stall_s=STALL_S, what=f"{due} verdicts before kill {k + 1}")
-            time.sleep(rng.uniform(0.0, 0.2))
-            # Aim at a worker holding unacknowledged entries, so the kill lands mid-batch; restart it
-            # under the same name or a new one, in turns.
-            name, held = kill_mid_batch(client, workers, rng, len(kills) + 1)
+        # The run goes in slices, one before each kill, so that every kill finds a backlog; each kill aims
+        # at a worker holding unacknowledged entries (mid-batch) and restarts it under the same name or a
+        # new one, in turns.
+        producer = Producer(url=redis_server.url, n=COMMENTS, rate=1e9)
+        for name, held in kills_on_fresh_backlogs(
+                workers, rng, kills=KILLS, feed=lambda k: producer.send(slice_of(COMMENTS, k, KILLS + 2)),
+                kill=lambda k: kill_mid_batch(client, workers, rng, k)):
             kills.append({"worker": name, "pending_at_kill": held})
         wait_for_progress(lambda: client.xlen(KEYS.verdicts) >= COMMENTS and group_pending(client) == 0,
                           lambda: (client.xlen(KEYS.verdicts), group_pending(client)), stall_s=STALL_S,
