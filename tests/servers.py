@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import random
 import shutil
 import signal
 import socket
@@ -31,7 +32,35 @@ def require(condition: bool, why: str) -> None:
     pytest.skip(why)
 
 
+def _ephemeral_range() -> tuple[int, int]:
+    try:
+        low, high = map(int, Path("/proc/sys/net/ipv4/ip_local_port_range").read_text().split())
+        return low, high
+    except (OSError, ValueError):
+        return 32768, 60999  # Linux's default range
+
+
+_ports = random.Random(os.getpid() ^ time.time_ns())
+
+
 def free_port() -> int:
+    """A loopback port nothing listens on, chosen below the kernel's ephemeral range.
+
+    A port from the ephemeral range (what binding port 0 gives) can be taken again by any outgoing
+    connection between this check and the server's own bind, and a server then fails with "Address
+    already in use" (seen with a cluster node's bus port); outgoing connections never take a port
+    below the range.  Falls back to port 0 when no port below it is free.
+    """
+    low, _high = _ephemeral_range()
+    first = 10_000 if low > 12_000 else 1_024
+    for _ in range(50):
+        port = _ports.randrange(first, low)
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            try:
+                s.bind(("127.0.0.1", port))
+            except OSError:
+                continue
+            return port
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))
         return s.getsockname()[1]
