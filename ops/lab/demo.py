@@ -471,8 +471,9 @@ def _nightly_retrain(client, config, workers, result: DemoResult, clock: SimCloc
         result.rescore = rescore_held(client, config.keys, model, batch=config.retrain.rescore_batch,
                                       settings=config.worker,
                                       verdicts_maxlen=config.worker.verdicts_maxlen)
-        progress(f"{stamp(clock.now)} re-scored the hold queue: {result.rescore.get('held', 0)} held, "
-                 f"{result.rescore.get('released', 0)} released by the new model")
+        progress(f"{stamp(clock.now)} re-scored the hold queue: of {result.rescore.get('held', 0)} held, "
+                 f"{result.rescore.get('released', 0)} published or rejected by the new model, "
+                 f"{result.rescore.get('still_held', 0)} still held for a moderator")
     for w in workers:
         w.reload()  # what step() does every reload_poll_s: RegistryModelSource.poll() sees the promotion
     progress(f"{stamp(clock.now)} workers now serve {', '.join(sorted({str(w.model.version) for w in workers}))}")
