@@ -128,6 +128,37 @@ PARAMS = {
 }
 
 
+def _grouping_order(doc: np.ndarray, bucket: np.ndarray, shift: int, key_bits: int, key_type,
+                    *, packed: bool = True) -> tuple[np.ndarray, np.ndarray]:
+    """The stable order of the keys ``doc << shift | bucket`` and the keys in that order.
+
+    Token occurrences are grouped into (comment, bucket) pairs, and the
+    earliest occurrence of each pair names its bucket in an explanation, so it
+    must come first in its run: a stable order.  With each occurrence's
+    position in the low bits every key is distinct, and a plain sort of the
+    values (numpy's SIMD quicksort) gives that order several times faster than
+    a stable argsort; keys of more than ``63 - key_bits`` position bits (or
+    ``packed=False``) take the stable argsort.
+
+    Examples
+    --------
+    >>> order, keys = _grouping_order(np.array([0, 0, 1, 0]), np.array([5, 2, 2, 2]), 3, 5, np.int32)
+    >>> order.tolist(), keys.tolist()
+    ([1, 3, 0, 2], [2, 2, 5, 10])
+    """
+    size = bucket.size
+    position_bits = max(1, (size - 1).bit_length())
+    if packed and key_bits + position_bits <= 63:
+        keys = doc.astype(np.int64) << np.int64(shift + position_bits)
+        keys |= bucket.astype(np.int64) << np.int64(position_bits)
+        keys |= np.arange(size, dtype=np.int64)
+        keys.sort()
+        return keys & np.int64((1 << position_bits) - 1), (keys >> np.int64(position_bits)).astype(key_type, copy=False)
+    keys = (doc.astype(key_type, copy=False) << key_type(shift)) | bucket.astype(key_type, copy=False)
+    order = np.argsort(keys, kind="stable")
+    return order, keys[order]
+
+
 @dataclass
 class _Bag:
     """A batch of comments as (comment, bucket) pairs with their pooling weights."""
@@ -243,13 +274,8 @@ class EmbeddingClassifier:
         buckets = features.bucket
         key_type = np.int32 if n * self.buckets < 2**31 else np.int64
         shift = key_type(self.buckets.bit_length() - 1)  # buckets is a power of two
-        keys = (features.doc.astype(key_type, copy=False) << shift) | buckets.astype(key_type, copy=False)
-        # Group token occurrences into (comment, bucket) pairs; the earliest
-        # occurrence of each pair names its bucket in an explanation.  A stable
-        # sort puts it first in its run (and beats quicksort here: the keys come
-        # in two runs already sorted by comment, words then pairs).
-        order = np.argsort(keys, kind="stable")
-        sorted_keys = keys[order]
+        order, sorted_keys = _grouping_order(features.doc, buckets, int(shift), (n * self.buckets).bit_length(),
+                                             key_type)
         edge = np.empty(sorted_keys.size, dtype=bool)
         if sorted_keys.size:
             edge[0] = True

@@ -354,3 +354,28 @@ def test_every_featurization_path_gives_the_same_tokens_and_buckets(texts):
         mine = np.flatnonzero(together.doc == i)
         assert alone.bucket.tolist() == together.bucket[mine].tolist(), text
         assert alone.names.take(np.arange(alone.bucket.size)) == together.names.take(mine) == tok.features(text)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.data())
+def test_grouping_by_a_packed_sort_equals_the_stable_argsort(data):
+    # _bag groups (comment, bucket) keys by sorting values with each
+    # occurrence's position packed in; it must give the stable argsort's order
+    # exactly, so that the first occurrence of a repeated bucket still names it.
+    from model.classifier import _grouping_order
+
+    n_docs = data.draw(st.integers(1, 40))
+    shift = data.draw(st.integers(1, 18))
+    size = data.draw(st.integers(0, 400))
+    doc = np.sort(np.array(data.draw(st.lists(st.integers(0, n_docs - 1), min_size=size, max_size=size)),
+                          dtype=np.int32))
+    # few distinct buckets, so repeats and collisions abound
+    bucket = np.array(data.draw(st.lists(st.integers(0, min(2**shift - 1, 7)), min_size=size, max_size=size)),
+                      dtype=np.int32)
+    key_bits = (n_docs << shift).bit_length()
+    order, keys = _grouping_order(doc, bucket, shift, key_bits, np.int32)
+    want_order, want_keys = _grouping_order(doc, bucket, shift, key_bits, np.int32, packed=False)
+    expected = (doc.astype(np.int64) << shift) | bucket
+    assert order.tolist() == want_order.tolist() == np.argsort(expected, kind="stable").tolist()
+    assert keys.tolist() == want_keys.tolist() == expected[want_order].tolist()
+    assert keys.dtype == want_keys.dtype == np.int32
