@@ -379,3 +379,20 @@ def test_grouping_by_a_packed_sort_equals_the_stable_argsort(data):
     assert order.tolist() == want_order.tolist() == np.argsort(expected, kind="stable").tolist()
     assert keys.tolist() == want_keys.tolist() == expected[want_order].tolist()
     assert keys.dtype == want_keys.dtype == np.int32
+
+
+@pytest.mark.parametrize("spamward_from", [None, 0.0, 1.0], ids=["plain", "spamward", "spamward-never"])
+def test_one_comment_ranking_breaks_ties_by_position_as_the_batch_path(trained, monkeypatch, spamward_from):
+    # With every term +-0.25 most contributions tie; both paths must keep the
+    # tied tokens in the order they appear (spam-ward first when asked).
+    tables = trained._scoring_tables()
+    tied = np.where(tables.bucket_logit > 0, 0.25, np.where(tables.bucket_logit < 0, -0.25, 0.0)).astype(np.float32)
+    monkeypatch.setattr(tables, "bucket_logit", tied)
+    texts = SPAM + HAM + ["free free prize prize notes notes meeting free"]
+    assert len(texts) > FEW
+    batch_scores, batch_reasons = trained.score_many(texts, top_k=6, spamward_from=spamward_from)
+    for text, score, want in zip(texts, batch_scores, batch_reasons):
+        (got_score,), (got,) = trained.score_many([text], top_k=6, spamward_from=spamward_from)
+        assert got_score == pytest.approx(score, abs=1e-12)
+        assert [t for t, _ in got] == [t for t, _ in want]
+        np.testing.assert_allclose([c for _, c in got], [c for _, c in want], rtol=0, atol=1e-12)
