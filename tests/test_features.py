@@ -177,8 +177,11 @@ def test_one_comment_path_of_one_token_chunks_equals_the_batch_path():
     "www.prize.example domain:typed.example <url> then words",
     "a b https://prize.example/4 c",
     "free 5x,7 https://prize.example/5",
+    "https://prize.example/6",
+    "https://prize.example/7 now",
+    "free www.prize.example",
 ], ids=["middle", "three-links", "last", "typed-marker-before", "typed-domain-after", "single-letters",
-        "two-token-chunk"])
+        "two-token-chunk", "link-alone", "link-then-one-word", "one-word-then-link"])
 def test_one_comment_path_splices_links_as_the_batch_path_pairs_them(text, monkeypatch):
     # Once the chunks are held, a comment of one-token chunks and links takes
     # the spliced route; each link's domain sits out of the pairs exactly as
