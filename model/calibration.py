@@ -39,7 +39,7 @@ import numpy as np
 
 from model.actions import THRESHOLD_ACTIONS, Action
 from model.errors import DataError
-from model.network import sigmoid  # the scoring paths' own logistic: numpy only, fast on a few values
+from model.network import sigmoid, sigmoid_one  # the scoring paths' own logistic: numpy only, fast on a few values
 
 DEFAULT_REJECT_FPR = 0.001
 DEFAULT_HOLD_FPR = 0.02
@@ -166,12 +166,29 @@ class ProbabilityMap:
 
     def probability(self, logits: np.ndarray) -> np.ndarray:
         """Calibrated spam probabilities, float64, for raw log-odds ``logits``."""
+        if type(logits) is np.ndarray and logits.shape == (1,):  # one comment: plain floats, the same value
+            return np.array([self.probability_one(float(logits[0]))])
         z = np.asarray(logits, dtype=np.float64)
         if self.method == "identity":
             return sigmoid(z)
         if self.method == "isotonic":
             return np.interp(z, self.knots_z, self.knots_p)
         return sigmoid(self.slope * z + self.intercept)
+
+    def probability_one(self, logit: float) -> float:
+        """:meth:`probability` of one raw log-odds value, in plain float arithmetic (the same result).
+
+        Examples
+        --------
+        >>> m = ProbabilityMap(method="platt", slope=2.0, intercept=-1.0)
+        >>> m.probability_one(0.75) == float(m.probability(np.array([0.75, 0.0]))[0])
+        True
+        """
+        if self.method == "identity":
+            return sigmoid_one(logit)
+        if self.method == "isotonic":
+            return float(np.interp(logit, self.knots_z, self.knots_p))
+        return sigmoid_one(self.slope * logit + self.intercept)
 
     def to_dict(self) -> dict:
         out = {"method": self.method, "slope": self.slope, "intercept": self.intercept,

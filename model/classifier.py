@@ -128,6 +128,37 @@ PARAMS = {
 }
 
 
+def _grouping_order(doc: np.ndarray, bucket: np.ndarray, shift: int, key_bits: int, key_type,
+                    *, packed: bool = True) -> tuple[np.ndarray, np.ndarray]:
+    """The stable order of the keys ``doc << shift | bucket`` and the keys in that order.
+
+    Token occurrences are grouped into (comment, bucket) pairs, and the
+    earliest occurrence of each pair names its bucket in an explanation, so it
+    must come first in its run: a stable order.  With each occurrence's
+    position in the low bits every key is distinct, and a plain sort of the
+    values (numpy's SIMD quicksort) gives that order several times faster than
+    a stable argsort; keys of more than ``63 - key_bits`` position bits (or
+    ``packed=False``) take the stable argsort.
+
+    Examples
+    --------
+    >>> order, keys = _grouping_order(np.array([0, 0, 1, 0]), np.array([5, 2, 2, 2]), 3, 5, np.int32)
+    >>> order.tolist(), keys.tolist()
+    ([1, 3, 0, 2], [2, 2, 5, 10])
+    """
+    size = bucket.size
+    position_bits = max(1, (size - 1).bit_length())
+    if packed and key_bits + position_bits <= 63:
+        keys = doc.astype(np.int64) << np.int64(shift + position_bits)
+        keys |= bucket.astype(np.int64) << np.int64(position_bits)
+        keys |= np.arange(size, dtype=np.int64)
+        keys.sort()
+        return keys & np.int64((1 << position_bits) - 1), (keys >> np.int64(position_bits)).astype(key_type, copy=False)
+    keys = (doc.astype(key_type, copy=False) << key_type(shift)) | bucket.astype(key_type, copy=False)
+    order = np.argsort(keys, kind="stable")
+    return order, keys[order]
+
+
 @dataclass
 class _Bag:
     """A batch of comments as (comment, bucket) pairs with their pooling weights."""
@@ -243,13 +274,8 @@ class EmbeddingClassifier:
         buckets = features.bucket
         key_type = np.int32 if n * self.buckets < 2**31 else np.int64
         shift = key_type(self.buckets.bit_length() - 1)  # buckets is a power of two
-        keys = (features.doc.astype(key_type, copy=False) << shift) | buckets.astype(key_type, copy=False)
-        # Group token occurrences into (comment, bucket) pairs; the earliest
-        # occurrence of each pair names its bucket in an explanation.  A stable
-        # sort puts it first in its run (and beats quicksort here: the keys come
-        # in two runs already sorted by comment, words then pairs).
-        order = np.argsort(keys, kind="stable")
-        sorted_keys = keys[order]
+        order, sorted_keys = _grouping_order(features.doc, buckets, int(shift), (n * self.buckets).bit_length(),
+                                             key_type)
         edge = np.empty(sorted_keys.size, dtype=bool)
         if sorted_keys.size:
             edge[0] = True
@@ -518,11 +544,12 @@ class EmbeddingClassifier:
         buckets as a list of ints and an indexable naming each position.
         Same arithmetic as the vectorised path; for one comment the dozen numpy
         calls of that path cost more than the whole comment, so a single
-        comment (the latency case) is scored with lists and one numpy gather of
-        its distinct buckets' logit terms (a compact array: cheaper than a list
-        of floats when other work has pushed the table out of the CPU caches),
-        and the probability comes from the same :meth:`_probabilities` as on
-        every other path.
+        comment (the latency case) is counted with lists, its distinct buckets'
+        logit terms come from one numpy gather (a compact array: cheaper than a
+        list of floats when other work has pushed the table out of the CPU
+        caches) and are ranked by one stable numpy argsort (cheaper than a
+        Python sort with a key on a comment's ~50 terms), and the probability
+        comes from the same :meth:`_probabilities` as on every other path.
         """
         tables = self._scoring_tables()
         bucket_logit = tables.bucket_logit
@@ -541,11 +568,11 @@ class EmbeddingClassifier:
             counts = Counter(buckets)  # insertion order = order of first appearance
             unique = list(counts)
             times = np.fromiter(counts.values(), dtype=np.float64, count=len(unique))
-            norm = math.sqrt(times @ times) if l2 else float(n)  # exact: sums of small integers
+            norm = math.sqrt(np.dot(times, times)) if l2 else float(n)  # exact: sums of small integers
             # Each distinct bucket's term, pooling weight (float64) times logit
             # term (float32), as the vectorised path computes it.
-            terms = (times / norm * bucket_logit[unique]).tolist()
-            logits.append(bias + sum(terms))
+            terms = times / norm * bucket_logit[unique]
+            logits.append(bias + sum(terms.tolist()))
             reasons.append([])
             if top_k > 0:
                 explain.append((len(reasons) - 1, buckets, names, unique, terms))
@@ -554,13 +581,13 @@ class EmbeddingClassifier:
         for i, buckets, names, unique, terms in explain:
             # Largest magnitude first; a stable sort keeps ties in the order the
             # tokens appear.  Buckets without a row contribute 0 and are left out.
-            magnitude = list(map(abs, terms))
+            magnitude = np.abs(terms)
             if spamward_from is not None and scores[i] >= (spamward_from if single else spamward_from[i]):
-                lift = max(magnitude) + 1.0  # spam-ward tokens first, then the rest by magnitude
-                magnitude = [m + lift if t > 0 else m for m, t in zip(magnitude, terms)]
-            ranked = sorted(range(len(terms)), key=magnitude.__getitem__, reverse=True)[:top_k]
+                # spam-ward tokens first, then the rest by magnitude
+                magnitude += (terms > 0) * (magnitude.max() + 1.0)
+            ranked = np.argsort(-magnitude, kind="stable")[:top_k].tolist()
             at = buckets.index
-            reasons[i] = [(names[at(unique[j])], terms[j] * scale) for j in ranked if terms[j]]
+            reasons[i] = [(names[at(unique[j])], t * scale) for j, t in zip(ranked, terms[ranked].tolist()) if t]
         return scores, reasons
 
     def _probabilities(self, logits: np.ndarray) -> np.ndarray:

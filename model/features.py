@@ -355,9 +355,11 @@ class FeatureEncoder:
                 left, right = range(n - 1), range(1, n)
             else:
                 seq = _pair_sequence(marks)
-                in_seq = list(map(hashes.__getitem__, seq))
-                buckets += hasher.rotated_pair_buckets(list(map(rotated.__getitem__, seq)), in_seq[1:], mask)
                 left, right = seq[:-1], seq[1:]
+                if len(seq) > 2:  # itemgetter of several indices: a tuple, gathered in C
+                    buckets += hasher.rotated_pair_buckets(itemgetter(*left)(rotated), itemgetter(*right)(hashes), mask)
+                elif len(seq) == 2:
+                    buckets += hasher.rotated_pair_buckets((rotated[seq[0]],), (hashes[seq[1]],), mask)
         extra: list[str] = []
         if tok.char_ngrams[0]:
             extra = char_ngrams(list(words), *tok.char_ngrams)

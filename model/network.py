@@ -41,7 +41,7 @@ def sigmoid(z: np.ndarray) -> np.ndarray:
     """
     z = np.asarray(z, dtype=np.float64)
     if z.ndim == 1 and z.size <= _FEW_VALUES:
-        return np.array([_sigmoid_one(v) for v in z.tolist()])
+        return np.array([sigmoid_one(v) for v in z.tolist()])
     return np.exp(-np.logaddexp(0.0, -z))
 
 
@@ -49,7 +49,7 @@ def sigmoid(z: np.ndarray) -> np.ndarray:
 _FEW_VALUES = 8
 
 
-def _sigmoid_one(v: float) -> float:
+def sigmoid_one(v: float) -> float:
     # logaddexp(0, -v) = max(0, -v) + log1p(exp(-|v|)), as numpy computes it
     return math.exp(-(max(0.0, -v) + math.log1p(math.exp(-abs(v))))) if v == v else math.nan
 

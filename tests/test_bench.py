@@ -25,6 +25,8 @@ def test_bench_model_runs_and_reports_ratios(capsys):
     rate_ratio = rows["seawall_batch1024_per_s"] / rows["reference_batch1024_per_s"]
     assert rows["ratio_batch1024"] == pytest.approx(rate_ratio, abs=0.01)
     assert rows["ratio_batch1"] > 0 and rows["artifact_bytes"] > 0
+    assert rows["ratio_batch1_first"] == pytest.approx(
+        rows["reference_batch1_first_us"] / rows["seawall_batch1_first_us"], rel=0.02)
     assert 0.5 < rows["seawall_test_roc_auc"] <= 1.0
 
 

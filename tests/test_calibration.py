@@ -415,3 +415,20 @@ def test_bench_calibration_compares_the_maps_beside_scikit_learn(capsys):
         r = rows[method]
         assert 0 < r["log_loss"] <= r["log_loss_worst"] and 0 <= r["ordinary_flagged"] <= r["ordinary_flagged_worst"]
         assert r["ordinary_flagged_worst"] <= 0.10  # the floors keep other communities' ordinary comments published
+
+
+@pytest.mark.parametrize("fitted", [
+    ProbabilityMap(),
+    ProbabilityMap(method="platt", slope=1.7, intercept=-0.4),
+    ProbabilityMap(method="temperature", slope=0.6),
+    ProbabilityMap(method="isotonic", knots_z=(-3.0, 0.0, 2.5), knots_p=(0.01, 0.4, 0.97)),
+], ids=lambda m: m.method)
+def test_one_logit_in_plain_floats_equals_the_array_route(fitted):
+    # One comment's probability is computed without numpy arithmetic; it must
+    # be the value the array route gives (a few values and many).
+    z = np.concatenate([np.linspace(-40.0, 40.0, 161), [-800.0, 800.0, 1e-9, -0.0]])
+    for v in z.tolist():
+        one = fitted.probability(np.array([v]))
+        assert one.shape == (1,) and one.dtype == np.float64
+        assert float(one[0]) == fitted.probability_one(v) == float(fitted.probability(np.array([v, 0.0]))[0])
+    assert math.isnan(fitted.probability_one(float("nan")))

@@ -177,8 +177,11 @@ def test_one_comment_path_of_one_token_chunks_equals_the_batch_path():
     "www.prize.example domain:typed.example <url> then words",
     "a b https://prize.example/4 c",
     "free 5x,7 https://prize.example/5",
+    "https://prize.example/6",
+    "https://prize.example/7 now",
+    "free www.prize.example",
 ], ids=["middle", "three-links", "last", "typed-marker-before", "typed-domain-after", "single-letters",
-        "two-token-chunk"])
+        "two-token-chunk", "link-alone", "link-then-one-word", "one-word-then-link"])
 def test_one_comment_path_splices_links_as_the_batch_path_pairs_them(text, monkeypatch):
     # Once the chunks are held, a comment of one-token chunks and links takes
     # the spliced route; each link's domain sits out of the pairs exactly as
@@ -354,3 +357,45 @@ def test_every_featurization_path_gives_the_same_tokens_and_buckets(texts):
         mine = np.flatnonzero(together.doc == i)
         assert alone.bucket.tolist() == together.bucket[mine].tolist(), text
         assert alone.names.take(np.arange(alone.bucket.size)) == together.names.take(mine) == tok.features(text)
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.data())
+def test_grouping_by_a_packed_sort_equals_the_stable_argsort(data):
+    # _bag groups (comment, bucket) keys by sorting values with each
+    # occurrence's position packed in; it must give the stable argsort's order
+    # exactly, so that the first occurrence of a repeated bucket still names it.
+    from model.classifier import _grouping_order
+
+    n_docs = data.draw(st.integers(1, 40))
+    shift = data.draw(st.integers(1, 18))
+    size = data.draw(st.integers(0, 400))
+    doc = np.sort(np.array(data.draw(st.lists(st.integers(0, n_docs - 1), min_size=size, max_size=size)),
+                          dtype=np.int32))
+    # few distinct buckets, so repeats and collisions abound
+    bucket = np.array(data.draw(st.lists(st.integers(0, min(2**shift - 1, 7)), min_size=size, max_size=size)),
+                      dtype=np.int32)
+    key_bits = (n_docs << shift).bit_length()
+    order, keys = _grouping_order(doc, bucket, shift, key_bits, np.int32)
+    want_order, want_keys = _grouping_order(doc, bucket, shift, key_bits, np.int32, packed=False)
+    expected = (doc.astype(np.int64) << shift) | bucket
+    assert order.tolist() == want_order.tolist() == np.argsort(expected, kind="stable").tolist()
+    assert keys.tolist() == want_keys.tolist() == expected[want_order].tolist()
+    assert keys.dtype == want_keys.dtype == np.int32
+
+
+@pytest.mark.parametrize("spamward_from", [None, 0.0, 1.0], ids=["plain", "spamward", "spamward-never"])
+def test_one_comment_ranking_breaks_ties_by_position_as_the_batch_path(trained, monkeypatch, spamward_from):
+    # With every term +-0.25 most contributions tie; both paths must keep the
+    # tied tokens in the order they appear (spam-ward first when asked).
+    tables = trained._scoring_tables()
+    tied = np.where(tables.bucket_logit > 0, 0.25, np.where(tables.bucket_logit < 0, -0.25, 0.0)).astype(np.float32)
+    monkeypatch.setattr(tables, "bucket_logit", tied)
+    texts = SPAM + HAM + ["free free prize prize notes notes meeting free"]
+    assert len(texts) > FEW
+    batch_scores, batch_reasons = trained.score_many(texts, top_k=6, spamward_from=spamward_from)
+    for text, score, want in zip(texts, batch_scores, batch_reasons):
+        (got_score,), (got,) = trained.score_many([text], top_k=6, spamward_from=spamward_from)
+        assert got_score == pytest.approx(score, abs=1e-12)
+        assert [t for t, _ in got] == [t for t, _ in want]
+        np.testing.assert_allclose([c for _, c in got], [c for _, c in want], rtol=0, atol=1e-12)
