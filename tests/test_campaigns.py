@@ -627,3 +627,25 @@ def test_the_cheap_bucket_flags_agree_with_the_bucket_facts(signals):
         facts = p._bucket_facts(total, authors, new_hits, lean_hits, history, peak, history_s)
         assert p._bucket_flags(total, authors, new_hits, lean_hits, history, peak, history_s) == (
             facts["dense"], facts["bursty"] and facts["signal"])
+
+
+def test_pending_hits_behave_as_a_dict_of_key_to_hits_and_last_count():
+    from worker.campaigns import PendingHits
+
+    rng = np.random.default_rng(7)
+    pending, reference = PendingHits(), {}
+    for round_ in range(60):
+        keys = np.unique(rng.integers(0, 40, size=rng.integers(1, 12)).astype(np.uint64) * np.uint64(2**60 // 40))
+        hits, last = pending.get(keys)
+        expected = [reference.get(int(k), (0, -np.inf)) for k in keys.tolist()]
+        assert hits.tolist() == [h for h, _ in expected] and last.tolist() == [t for _, t in expected]
+        new_hits, new_last = rng.integers(0, 9, size=keys.size), rng.random(keys.size) + round_
+        pending.put(keys, new_hits, new_last)
+        reference.update(zip(keys.tolist(), zip(new_hits.tolist(), new_last.tolist())))
+        if round_ % 10 == 9:  # forget some keys, as the purge of unlinked ones does
+            keep = pending.keys % np.uint64(3) != 0
+            pending.keep(keep)
+            reference = {k: v for k, v in reference.items() if k % 3 != 0}
+        assert pending.keys.tolist() == sorted(reference) and len(pending) == len(reference)
+    pending.clear()
+    assert len(pending) == 0 and pending.get(np.array([1], dtype=np.uint64))[0].tolist() == [0]
