@@ -1,6 +1,8 @@
 """Campaigns across workers: shared buckets in Redis, the baseline, the second signal, spelling tricks, events."""
 from __future__ import annotations
 
+import json
+
 import fakeredis
 import numpy as np
 import pytest
@@ -685,3 +687,64 @@ def test_a_single_redis_updates_every_band_in_one_call_and_a_cluster_one_per_ban
     assert sum(a == "hold" for a, _ in one_got[-1]) == 12 and all(c for _, c in one_got[-1][:12])
     assert one_state and one_state == per_state
     assert [[a for a, _ in batch] for batch in one_got] == [[a for a, _ in batch] for batch in per_got]
+
+
+class _RankingScorer:
+    """Scores 0.1; a comment ranked spam-ward (score at or above its ``spamward_from``) is explained by the
+    token ``spamward``, any other by ``hamward``; counts the texts it scores."""
+
+    version = "ranking01"
+    created_at = 1_700_000_000.0
+
+    class thresholds:  # noqa: N801 - the scorer contract's attribute name
+        hold = 0.5
+        reject = 0.9
+
+    def __init__(self):
+        self.scored = 0
+
+    def score_many(self, texts, *, top_k=5, spamward_from=None):
+        texts = list(texts)
+        self.scored += len(texts)
+        cut = spamward_from if isinstance(spamward_from, (list, tuple, np.ndarray)) else [spamward_from] * len(texts)
+        reasons = [[("spamward", 0.5)] if c is not None and 0.1 >= c else [("hamward", -0.5)] for c in cut]
+        return np.full(len(texts), 0.1), reasons
+
+
+def _campaign_verdicts(policy_class):
+    from worker.loader import StaticModelSource
+    from worker.redistransport import redis_consumer
+    from worker.settings import WorkerSettings
+
+    client = fakeredis.FakeRedis(server=fakeredis.FakeServer())
+    scorer, clock = _RankingScorer(), Clock()
+    p = policy_class(hasher=MinHasher(num_perm=32, shingle=3), bands=16, min_size=10, min_authors=3, window_s=600,
+                     min_words=6, hold=True, warmup_s=0, clock=clock)
+    c = redis_consumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, overlap_commit=False),
+                       model_source=StaticModelSource(model=scorer), consumer="w", policies=(p,), clock=clock)
+    c.prepare()
+    rng = np.random.default_rng(5)
+    for batch in range(4):
+        for i in range(10):
+            client.xadd(KEYS.comments, {"id": f"c{batch}-{i}", "text": campaign_text(10 * batch + i),
+                                        "site": "news.example", "author": f"fresh{10 * batch + i}"})
+            client.xadd(KEYS.comments, {"id": f"o{batch}-{i}", "text": ordinary_text(rng), "site": "news.example",
+                                        "author": f"regular{i}"})
+        c.step()
+        clock.t += 20
+    got = [(f[b"id"].decode(), f[b"action"].decode(), f.get(b"campaign", b"").decode() != "", json.loads(f[b"reasons"]))
+           for _sid, f in client.xrange(KEYS.verdicts)]
+    return got, scorer.scored
+
+
+def test_members_known_before_scoring_are_explained_in_the_one_scoring_pass():
+    class AfterRoutingOnly(CampaignPolicy):  # no will_hold: members are explained again after routing
+        will_hold = None
+
+    got, scored = _campaign_verdicts(CampaignPolicy)
+    again, scored_again = _campaign_verdicts(AfterRoutingOnly)
+    held = [v for v in got if v[1] == "hold"]
+    assert len(held) >= 20 and all(member and reasons[0][0] == "spamward" for _i, _a, member, reasons in held)
+    assert all(reasons[0][0] == "hamward" for _i, action, _m, reasons in got if action == "publish")
+    assert got == again  # the same verdicts, actions and reasons either way
+    assert scored == 80 and scored_again == 80 + len(held)  # each comment scored once, members not again

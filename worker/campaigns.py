@@ -371,13 +371,32 @@ class CampaignPolicy:
         self._first_seen_generation = None
         self._site_since: dict[str, int] = {}
         self._since: float | None = None  # when the detector first ran with this scheme
+        self._early: dict | None = None  # members found by will_hold, for the apply of the same batch
+        self._early_batch: list[int] = []
+
+    def will_hold(self, state, comments: Sequence) -> set[int]:
+        """The batch's campaign members, found before scoring when the scores change nothing about them (the
+        second signal is new authors only) and members are held; :meth:`apply` then uses what this found
+        instead of observing the batch again.  (See :func:`worker.policies.held_before_scoring`.)"""
+        self._early = None
+        if not self.hold or self.signals != "authors" or not comments:
+            return set()
+        members = self.observe(state.campaigns, comments, None)
+        # by object: the worker routes the same comment objects (fewer, if some are dead-lettered in between)
+        self._early = {id(comments[i]): (comments[i], campaign) for i, campaign in members.items()}
+        self._early_batch = [id(c) for c in comments]
+        return set(members)
 
     def apply(self, state, comments: Sequence, scores: Sequence[float], decisions: list[Decision]) -> list[Decision]:
         """Members the model would publish are held (rule ``campaign``); every member's decision names its campaign.
 
         ``state`` is the worker's :class:`worker.policies.PolicyState`; its ``campaigns`` is the store.
         """
-        members = self.observe(state.campaigns, comments, scores)
+        early, self._early = self._early, None
+        if early is not None and set(map(id, comments)) <= set(self._early_batch):  # observed by will_hold
+            members = {i: early[id(c)][1] for i, c in enumerate(comments) if id(c) in early and early[id(c)][0] is c}
+        else:
+            members = self.observe(state.campaigns, comments, scores)
         if not members:
             return list(decisions)
         out = list(decisions)
