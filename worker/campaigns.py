@@ -16,9 +16,14 @@ For each batch, :class:`CampaignPolicy`:
    window in its own copy of the recent sightings (:class:`Sightings`),
    groups the batch's hits by bucket (a bucket once per batch, with counts),
    and sends them with the batch's first sightings in one more round trip,
-   one script call per band (:meth:`worker.campaignstore.CampaignStore.observe_bands`);
+   one script call for every band (one per band on a Redis Cluster;
+   :meth:`worker.campaignstore.CampaignStore.observe_bands`);
 4. decides in the worker, from the buckets the store reports, which comments
    are campaign members.
+
+With the default second signal (new authors) none of this needs the scores, so
+the worker asks before scoring (:meth:`CampaignPolicy.will_hold`) and ranks the
+members' reasons spam-ward in its one scoring pass.
 
 The policy keeps its state through a :class:`worker.campaignstore.CampaignStore`
 (the port; :class:`worker.campaignstore.RedisCampaignStore` is the Redis one,

@@ -23,9 +23,10 @@ their own small calls.
 Key layout (every name from :meth:`worker.settings.Keys.campaigns`, so the
 deployment prefix leads and ACL patterns such as ``~seawall:*`` still match;
 ``S`` is the shingling scheme's tag, ``b`` a band's index, ``n`` a half-window
-slot, ``g`` a generation).  Each script call touches the keys of one hash tag
-only, all given in KEYS (none is built inside Lua), so on a Redis Cluster each
-call stays on one slot and a batch makes one pipelined call per slot:
+slot, ``g`` a generation).  Every key a script touches is given in KEYS (none is
+built inside Lua).  On a Redis Cluster each script call touches the keys of one
+hash tag only, so it stays on one slot and a batch makes one pipelined call per
+slot; a single Redis takes every band of a batch in one call:
 
 * ``campaigns:{S:b<b>}:buckets:<n>``: band ``b``'s buckets in slot ``n``, one
   hash field per band key seen twice within the window: a packed field of its
