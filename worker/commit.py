@@ -135,7 +135,7 @@ for i = 1, n do
         version = 0
       elseif seen == 0 then
         version = tonumber(got[1] or 0) + 1
-      elseif redis.call('HEXISTS', done, digest) == 0 then
+      elseif not redis.call('HGET', done, digest) then  -- HGET: the worker's ACL rule lists no HEXISTS
         version = math.max(seen, tonumber(got[1] or 0)) + 1
       end
     else
