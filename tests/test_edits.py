@@ -109,8 +109,10 @@ def test_an_edit_that_is_published_releases_an_earlier_hold(client):
 
 
 def test_a_marker_left_by_an_older_worker_still_means_done(client):
-    # Before text versions, done:{id} was a string: that id has its verdict, whatever the text.
+    # Before text versions, done:{id} was a string: that id has its verdict, whatever the text.  The cache
+    # it wrote beside it (kept longer) has no markers.
     client.set(KEYS.done("old"), "1-0", ex=60)
+    client.hset(KEYS.text("old"), mapping={"text": "some text that was scored before", "site": "a.example"})
     w = worker(client)
     send(client, "old", "some text that was scored before the upgrade")
     send(client, "new", "a comment after the upgrade")
@@ -119,11 +121,45 @@ def test_a_marker_left_by_an_older_worker_still_means_done(client):
     assert int(client.execute_command("XPENDING", KEYS.comments, KEYS.group)[0]) == 0
 
 
-def test_the_marker_keeps_every_version_for_done_ttl(client):
-    w = worker(client, done_ttl_s=120)
+def test_the_cache_marks_every_version_for_as_long_as_it_keeps_the_text(client):
+    w = worker(client, done_ttl_s=120, text_cache_ttl_s=600)
+    send(client, "c1", "one text")
+    send(client, "c1", "another text")
+    drain(w, 2)
+    cache = {k.decode(): v.decode() for k, v in client.hgetall(KEYS.text("c1")).items()}
+    marks = {k: v for k, v in cache.items() if k.startswith("~")}
+    assert marks == {"~": "2", "~" + text_digest("one text"): "1", "~" + text_digest("another text"): "2"}
+    assert 120 < client.ttl(KEYS.text("c1")) <= 600
+    assert not client.exists(KEYS.done("c1"))  # one key per comment, not two
+    send(client, "c1", "one text")  # a retried XADD of the first version
+    drain(w, 2)
+    assert [v["version"] for v in verdicts(client)] == ["1", "2"]
+
+
+def test_markers_that_must_outlive_the_cached_text_are_kept_in_done_too(client):
+    w = worker(client, done_ttl_s=600, text_cache_ttl_s=120)
     send(client, "c1", "one text")
     send(client, "c1", "another text")
     drain(w, 2)
     marker = {k.decode(): v.decode() for k, v in client.hgetall(KEYS.done("c1")).items()}
     assert marker == {text_digest("one text"): "1", text_digest("another text"): "2"}
-    assert 0 < client.ttl(KEYS.done("c1")) <= 120
+    assert 120 < client.ttl(KEYS.done("c1")) <= 600
+    client.delete(KEYS.text("c1"))  # the text's TTL ran out first
+    send(client, "c1", "one text")
+    send(client, "c1", "a third text")
+    drain(w, 2)
+    assert [(v["version"], v["digest"]) for v in verdicts(client)] == [
+        ("1", text_digest("one text")), ("2", text_digest("another text")), ("3", text_digest("a third text"))]
+
+
+def test_a_cache_and_marker_written_by_an_older_worker_still_mean_done(client):
+    # Before the markers moved into the cache, done:{id} mapped each judged digest to its version.
+    client.hset(KEYS.text("c1"), mapping={"text": "second text", "version": "2", "digest": text_digest("second text")})
+    client.hset(KEYS.done("c1"), mapping={text_digest("first text"): "1", text_digest("second text"): "2"})
+    w = worker(client)
+    for text in ("first text", "second text", "third text"):
+        send(client, "c1", text)
+    drain(w, 2)
+    assert [(v["version"], v["edit"]) for v in verdicts(client)] == [("3", "1")]
+    marks = {k.decode(): v.decode() for k, v in client.hgetall(KEYS.text("c1")).items() if k.startswith(b"~")}
+    assert marks == {"~": "3", "~" + text_digest("third text"): "3"}

@@ -73,7 +73,7 @@ def test_a_commit_without_a_partition_is_split_by_comment_id(fake_redis):
     for part in KEYS.parts:
         held = {m.decode() for m in fake_redis.zrange(part.held, 0, -1)}
         assert held == {f"c{i}" for i in range(12) if KEYS.partition_of(f"c{i}") == part.index}
-        assert all(fake_redis.exists(part.done(i)) for i in held)
+        assert all(fake_redis.hget(part.text(i), "~") == b"1" for i in held)
     again = committer.commit(fake_redis, scored, [], model="m", now=1_700_000_001.0, consumer="", partition=None)
     assert again == [0] * 12
 

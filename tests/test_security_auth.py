@@ -103,8 +103,9 @@ def test_acl_user_limited_to_the_prefix_runs_the_whole_worker(redis_factory, tmp
     first = registry.push(model_bytes(0))
     registry.promote(first)
     # Everything serve runs: the registry's model over pub/sub, the feedback thread, waves and campaigns, metrics.
+    # A text cache shorter-lived than the done markers: the commit reads and writes done:{id} too.
     env = {"SEAWALL_RETRAIN_FEEDBACK_IN_SERVE": "1", "SEAWALL_WAVES_ENABLED": "1",
-           "SEAWALL_METRICS_PORT": str(free_port())}
+           "SEAWALL_METRICS_PORT": str(free_port()), "SEAWALL_WORKER_TEXT_CACHE_TTL_S": "3600"}
     worker = Worker(url=url, name="acl-w", log_dir=tmp_path, env=env)
     try:
         worker.start()
@@ -120,6 +121,10 @@ def test_acl_user_limited_to_the_prefix_runs_the_whole_worker(redis_factory, tmp
         assert wait_until(lambda: f"now serving {second}" in worker.output(), timeout=30), worker.output()[-3000:]
         more = send(admin, 10, start=40)
         assert wait_until(lambda: len(verdict_ids(admin)) == 50, timeout=60)
+        send(admin, 3)  # a producer's retries: no verdict
+        admin.xadd(KEYS.comments, {"id": "c5", "text": "an edit of c5, with other words", "site": "a.example"})
+        assert wait_until(lambda: verdict_ids(admin)["c5"] == 2, timeout=60), worker.output()[-3000:]
+        assert sum(verdict_ids(admin).values()) == 51
         assert worker.alive()
     finally:
         codes = stop_all([worker])

@@ -16,9 +16,14 @@ For each batch, :class:`CampaignPolicy`:
    window in its own copy of the recent sightings (:class:`Sightings`),
    groups the batch's hits by bucket (a bucket once per batch, with counts),
    and sends them with the batch's first sightings in one more round trip,
-   one script call per band (:meth:`worker.campaignstore.CampaignStore.observe_bands`);
+   one script call for every band (one per band on a Redis Cluster;
+   :meth:`worker.campaignstore.CampaignStore.observe_bands`);
 4. decides in the worker, from the buckets the store reports, which comments
    are campaign members.
+
+With the default second signal (new authors) none of this needs the scores, so
+the worker asks before scoring (:meth:`CampaignPolicy.will_hold`) and ranks the
+members' reasons spam-ward in its one scoring pass.
 
 The policy keeps its state through a :class:`worker.campaignstore.CampaignStore`
 (the port; :class:`worker.campaignstore.RedisCampaignStore` is the Redis one,
@@ -258,6 +263,57 @@ class Sightings:
             chunks[-1] = _sorted_unique(np.concatenate((chunks[-1], last)), kind="stable")
 
 
+class PendingHits:
+    """Per linked band key, the hits a worker kept to itself and when it last counted one: sorted numpy columns.
+
+    The same contract as a dict ``key -> (hits left uncounted, last counted)``
+    with ``(0, -inf)`` for a key it does not hold, but a whole batch's keys are
+    looked up and stored in a few numpy calls (a flood brings a thousand
+    distinct linked keys per batch; a dict costs a Python step for each).
+    """
+
+    def __init__(self):
+        self.keys = np.zeros(0, dtype=np.uint64)
+        self.hits = np.zeros(0, dtype=np.int64)
+        self.last = np.zeros(0, dtype=float)
+
+    def __len__(self) -> int:
+        return int(self.keys.size)
+
+    def _find(self, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        at = np.searchsorted(self.keys, keys)
+        found = at < self.keys.size
+        found[found] = self.keys[at[found]] == keys[found]
+        return at, found
+
+    def get(self, keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """``(hits, last)`` of each of ``keys`` (sorted, distinct uint64)."""
+        at, found = self._find(keys)
+        hits = np.zeros(keys.size, dtype=np.int64)
+        last = np.full(keys.size, -np.inf)
+        hits[found] = self.hits[at[found]]
+        last[found] = self.last[at[found]]
+        return hits, last
+
+    def put(self, keys: np.ndarray, hits: np.ndarray, last: np.ndarray) -> None:
+        """Set ``(hits, last)`` of each of ``keys`` (sorted, distinct uint64)."""
+        at, found = self._find(keys)
+        self.hits[at[found]] = hits[found]
+        self.last[at[found]] = last[found]
+        new = ~found
+        if new.any():  # sorted new keys, each inserted before the first larger held key
+            self.keys = np.insert(self.keys, at[new], keys[new])
+            self.hits = np.insert(self.hits, at[new], hits[new])
+            self.last = np.insert(self.last, at[new], last[new])
+
+    def keep(self, mask: np.ndarray) -> None:
+        """Keep the keys where ``mask`` (over :attr:`keys`) is true."""
+        self.keys, self.hits, self.last = self.keys[mask], self.hits[mask], self.last[mask]
+
+    def clear(self) -> None:
+        self.keep(np.zeros(self.keys.size, dtype=bool))
+
+
 _NOT_OBSERVED = (False, False)  # (dense, qualifies) of a band key the batch's script call did not report
 
 
@@ -311,7 +367,8 @@ class CampaignPolicy:
         # other buckets are linked from link_size comments on, so the campaign follows its variants.
         self._links: dict[int, tuple[str, float]] = {}
         self._links_sorted: np.ndarray | None = None  # the keys of _links, sorted (None: to be rebuilt)
-        self._pending: dict[int, tuple[int, float]] = {}  # linked band key -> (hits left uncounted, last counted)
+        self._links_added: list[int] = []  # keys learnt since _links_sorted was built, merged in at the next batch
+        self._pending = PendingHits()  # linked band key -> (hits left uncounted, last counted)
         self._sightings = Sightings()
         self._purge_at = -np.inf
         # first sightings never change: (site, author) key -> epoch s, of this author generation; site -> epoch s
@@ -319,13 +376,32 @@ class CampaignPolicy:
         self._first_seen_generation = None
         self._site_since: dict[str, int] = {}
         self._since: float | None = None  # when the detector first ran with this scheme
+        self._early: dict | None = None  # members found by will_hold, for the apply of the same batch
+        self._early_batch: list[int] = []
+
+    def will_hold(self, state, comments: Sequence) -> set[int]:
+        """The batch's campaign members, found before scoring when the scores change nothing about them (the
+        second signal is new authors only) and members are held; :meth:`apply` then uses what this found
+        instead of observing the batch again.  (See :func:`worker.policies.held_before_scoring`.)"""
+        self._early = None
+        if not self.hold or self.signals != "authors" or not comments:
+            return set()
+        members = self.observe(state.campaigns, comments, None)
+        # by object: the worker routes the same comment objects (fewer, if some are dead-lettered in between)
+        self._early = {id(comments[i]): (comments[i], campaign) for i, campaign in members.items()}
+        self._early_batch = [id(c) for c in comments]
+        return set(members)
 
     def apply(self, state, comments: Sequence, scores: Sequence[float], decisions: list[Decision]) -> list[Decision]:
         """Members the model would publish are held (rule ``campaign``); every member's decision names its campaign.
 
         ``state`` is the worker's :class:`worker.policies.PolicyState`; its ``campaigns`` is the store.
         """
-        members = self.observe(state.campaigns, comments, scores)
+        early, self._early = self._early, None
+        if early is not None and set(map(id, comments)) <= set(self._early_batch):  # observed by will_hold
+            members = {i: early[id(c)][1] for i, c in enumerate(comments) if id(c) in early and early[id(c)][0] is c}
+        else:
+            members = self.observe(state.campaigns, comments, scores)
         if not members:
             return list(decisions)
         out = list(decisions)
@@ -647,8 +723,12 @@ class CampaignPolicy:
         if not self._links:
             self._pending.clear()
             return {}, np.zeros(0, dtype=np.int64), {}
-        if self._links_sorted is None:  # rebuilt when a link comes or goes, not when a known one is refreshed
+        if self._links_sorted is None:  # rebuilt when a link goes, not when a known one is refreshed
             self._links_sorted = np.sort(np.fromiter(self._links, dtype=np.uint64, count=len(self._links)))
+            self._links_added.clear()
+        elif self._links_added:  # a flood learns a few dozen links a batch: merged, not rebuilt
+            self._links_sorted = np.union1d(self._links_sorted, np.array(self._links_added, dtype=np.uint64))
+            self._links_added.clear()
         at = np.searchsorted(self._links_sorted, keys)
         np.minimum(at, self._links_sorted.size - 1, out=at)
         learnt = self._links_sorted[at] == keys
@@ -659,10 +739,7 @@ class CampaignPolicy:
         order = np.argsort(keys.ravel()[places], kind="stable")
         places = places[order]  # grouped by key, in arrival order within a key
         uniq, starts, counts = np.unique(keys.ravel()[places], return_index=True, return_counts=True)
-        uniq_keys = uniq.tolist()
-        state = [self._pending.get(k, (0, -np.inf)) for k in uniq_keys]
-        pending = np.fromiter((p for p, _ in state), dtype=np.int64, count=len(state))
-        last = np.fromiter((t for _, t in state), dtype=float, count=len(state))
+        pending, last = self._pending.get(uniq)
         stale = now - last >= self.window_s / _KNOWN_FLUSH
         # a stale key counts its first hit at once, standing for what was pending and for the batch's other
         # hits of it; the others are kept until their key is stale
@@ -670,18 +747,18 @@ class CampaignPolicy:
         kept[starts[stale]] = True
         weight = np.zeros(places.size, dtype=np.int64)
         weight[starts[stale]] = pending[stale] + counts[stale]
-        left = np.where(stale, 0, pending + counts)
-        self._pending.update(zip(uniq_keys, zip(left.tolist(), np.where(stale, now, last).tolist())))
+        self._pending.put(uniq, np.where(stale, 0, pending + counts), np.where(stale, now, last))
         if len(self._pending) > 2 * len(self._links):
-            self._pending = {k: v for k, v in self._pending.items() if k in self._links}
+            self._pending.keep(np.isin(self._pending.keys, self._links_sorted))
         weights = {p: w for p, w in zip((places[kept] + 1).tolist(), weight[kept].tolist()) if w > 1}
         return known, places[~kept], weights
 
     def _learn(self, band_key: int, campaign: str, now: float) -> None:
         if len(self._links) >= _MAX_LEARNT_LINKS:
             self._links.clear()
-        if band_key not in self._links:
             self._links_sorted = None
+        if band_key not in self._links:
+            self._links_added.append(band_key)
         self._links[band_key] = (campaign, now + self.window_s)
 
 

@@ -11,7 +11,8 @@ names, scripts and round trips.  A batch costs two pipelined round trips:
    first sighting never changes, so a worker remembers them), when the
    detector first ran with this shingling scheme, and the active campaigns;
 2. :meth:`CampaignStore.observe_bands`: this batch's first sightings appended
-   (RPUSH), and each band's buckets updated by one script call per band.  The worker
+   (RPUSH), and the bands' buckets updated by one script call (one per band
+   on a Redis Cluster, where each band has its own hash slot).  The worker
    has already grouped the batch's hits by bucket (a flood's hundred hits on
    one bucket arrive as one count), so a script's work grows with the
    distinct buckets a batch hits, not with its comments.
@@ -22,9 +23,10 @@ their own small calls.
 Key layout (every name from :meth:`worker.settings.Keys.campaigns`, so the
 deployment prefix leads and ACL patterns such as ``~seawall:*`` still match;
 ``S`` is the shingling scheme's tag, ``b`` a band's index, ``n`` a half-window
-slot, ``g`` a generation).  Each script call touches the keys of one hash tag
-only, all given in KEYS (none is built inside Lua), so on a Redis Cluster each
-call stays on one slot and a batch makes one pipelined call per slot:
+slot, ``g`` a generation).  Every key a script touches is given in KEYS (none is
+built inside Lua).  On a Redis Cluster each script call touches the keys of one
+hash tag only, so it stays on one slot and a batch makes one pipelined call per
+slot; a single Redis takes every band of a batch in one call:
 
 * ``campaigns:{S:b<b>}:buckets:<n>``: band ``b``'s buckets in slot ``n``, one
   hash field per band key seen twice within the window: a packed field of its
@@ -270,14 +272,17 @@ return {table.concat(first, ' '), table.concat(since, ' ')}
 # own count always, its window as the busiest one unless the bucket was linked to a campaign or hit by one's
 # members.  The key's first sighting (not a hit) counts too: in the previous slot (when there was no bucket
 # there) or in this one (or earlier in the batch).
-# KEYS: buckets (this slot), buckets (previous slot), history (this generation), history (previous generation).
+# One call updates one or more bands: one on a Redis Cluster (each band has its own hash tag), every band of the
+# batch on a single Redis (one script call per batch instead of one per band).
+# KEYS: per band, buckets (this slot), buckets (previous slot), history (this generation), history (previous
+#       generation).
 # ARGV: 1 slot TTL, 2 history TTL, 3 min_size, 4 link_size, 5 min_authors, 6 peak_ratio, 7 burst_ratio,
-#       8 window_s, 9 history_s (the time the history covers), 10 the band keys (8 bytes each), 11 per key 15
-#       bytes (big-endian): hits, new-author hits, spam-ward hits (4 bytes each), flags (1: a known member, 2
-#       first seen in the previous slot, 4 first seen in this one; 1 byte), authors (2 bytes), 12 the keys'
+#       8 window_s, 9 history_s (the time the history covers); then per band: the band keys (8 bytes each), per
+#       key 15 bytes (big-endian): hits, new-author hits, spam-ward hits (4 bytes each), flags (1: a known member,
+#       2 first seen in the previous slot, 4 first seen in this one; 1 byte), authors (2 bytes), and the keys'
 #       authors in turn (8 bytes each).
-# Reply: {{key, campaign, ...} of linked buckets, then per bucket that reaches min_size (link_size if a known
-#         member hit it) and is bursty: {key, window count, authors, new-author hits, spam-ward hits, history
+# Reply: per band {{key, campaign, ...} of linked buckets, then per bucket that reaches min_size (link_size if a
+#         known member hit it) and is bursty: {key, window count, authors, new-author hits, spam-ward hits, history
 #         count, busiest window}}.
 _BAND_SCRIPT = _LUA_HELPERS + """
 local function figures(blob)  -- per bucket: hits, new-author hits, spam-ward hits, flags, authors
@@ -292,11 +297,9 @@ local function figures(blob)  -- per bucket: hits, new-author hits, spam-ward hi
   end
   return out
 end
-local keys, fig, alist = cut(ARGV[10]), figures(ARGV[11]), cut(ARGV[12])
 local min_size, link_size, min_authors = tonumber(ARGV[3]), tonumber(ARGV[4]), tonumber(ARGV[5])
 local peak_ratio, burst_ratio = tonumber(ARGV[6]), tonumber(ARGV[7])
 local window, history_s = tonumber(ARGV[8]), tonumber(ARGV[9])
-local B, P, H, G = KEYS[1], KEYS[2], KEYS[3], KEYS[4]
 local PACKED = '^(%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+) (%d+)$'
 local function read(key, list)  -- each bucket's packed figures and link
   local names = {}
@@ -309,107 +312,116 @@ local function history(v)  -- a history field: "sum peak"
   return tonumber(sum), tonumber(peak)
 end
 
-local state, opened, opened_keys = {}, {}, {}
-local got = read(B, keys)
-for n, k in ipairs(keys) do
-  local s, v = {}, got[2 * n - 1]
-  state[n] = s
-  if v then
-    local f = {string.match(v, PACKED)}
-    s.t, s.p, s.e, s.m, s.a = tonumber(f[1]), tonumber(f[2]), tonumber(f[3]), tonumber(f[4]), tonumber(f[5])
-    s.w, s.x, s.h, s.y = tonumber(f[6]), tonumber(f[7]), tonumber(f[8]), tonumber(f[9])
-    s.c = f[10] == '1'
-    s.L = got[2 * n]
-  else
-    opened[#opened + 1] = n
-    opened_keys[#opened_keys + 1] = k
-  end
-end
-if #opened > 0 then  -- first hits in this slot: carry the previous slot in, read the baseline, fold
-  local pv = read(P, opened_keys)
-  local hv = chunked('HMGET', H, opened_keys)
-  local gv = chunked('HMGET', G, opened_keys)
-  local fold = {}
-  for j, n in ipairs(opened) do
-    local s, v, k = state[n], pv[2 * j - 1], keys[n]
-    local hs, hp = history(hv[j])
-    local gs, gp = history(gv[j])
-    local flags = fig[5 * n - 1]
-    s.a, s.L, s.c, s.new = 0, false, false, true
-    s.e, s.m = hs + gs, math.max(hp, gp)
-    s.t, s.w, s.h = 0, 0, 0
+local function band(B, P, H, G, key_blob, figure_blob, author_blob)
+  local keys, fig, alist = cut(key_blob), figures(figure_blob), cut(author_blob)
+  local state, opened, opened_keys = {}, {}, {}
+  local got = read(B, keys)
+  for n, k in ipairs(keys) do
+    local s, v = {}, got[2 * n - 1]
+    state[n] = s
     if v then
       local f = {string.match(v, PACKED)}
-      local win = tonumber(f[1])
-      s.t = win - tonumber(f[2])
-      s.w, s.h = tonumber(f[6]) - tonumber(f[7]), tonumber(f[8]) - tonumber(f[9])
-      -- the previous slot's own count joins the sum; its window joins the peak unless it was a campaign's
-      fold[#fold + 1] = k
-      local campaign_window = pv[2 * j] or f[10] == '1'
-      fold[#fold + 1] = (hs + s.t) .. ' ' .. (campaign_window and hp or math.max(hp, win))
-    elseif flags % 4 >= 2 then
-      s.t = 1  -- a first sighting last slot
-    end
-    s.p, s.x, s.y = s.t, s.w, s.h
-    if flags >= 4 then s.t = s.t + 1 end  -- a first sighting earlier in this slot
-  end
-  if #fold > 0 then
-    chunked('HSET', H, fold)
-    redis.call('EXPIRE', H, tonumber(ARGV[2]))
-  end
-end
-
--- authors: which (bucket, author) pairs are recorded already, for buckets short of min_authors (a bucket new
--- in this slot has none: its authors are written with its figures)
-local anames, at = {}, 0
-local first_author = {}
-for n = 1, #keys do
-  first_author[n] = at
-  local count = fig[5 * n]
-  if state[n].a < min_authors and not state[n].new then
-    for q = at + 1, at + count do anames[#anames + 1] = keys[n] .. alist[q] end
-  end
-  at = at + count
-end
-local recorded = {}
-if #anames > 0 then
-  local v = chunked('HMGET', B, anames)
-  for q, nm in ipairs(anames) do recorded[nm] = v[q] and true or false end
-end
-
-local out = {{}}
-local writes = {}
-for n, k in ipairs(keys) do
-  local s = state[n]
-  local flags = fig[5 * n - 1]
-  s.t, s.w, s.h = s.t + fig[5 * n - 4], s.w + fig[5 * n - 3], s.h + fig[5 * n - 2]
-  local member = flags % 2 == 1
-  if member then s.c = true end
-  local q = first_author[n]
-  while s.a < min_authors and q < first_author[n] + fig[5 * n] do
-    q = q + 1
-    local nm = k .. alist[q]
-    if not recorded[nm] then
-      recorded[nm] = true
-      s.a = s.a + 1
-      writes[#writes + 1] = nm
-      writes[#writes + 1] = 1
+      s.t, s.p, s.e, s.m, s.a = tonumber(f[1]), tonumber(f[2]), tonumber(f[3]), tonumber(f[4]), tonumber(f[5])
+      s.w, s.x, s.h, s.y = tonumber(f[6]), tonumber(f[7]), tonumber(f[8]), tonumber(f[9])
+      s.c = f[10] == '1'
+      s.L = got[2 * n]
+    else
+      opened[#opened + 1] = n
+      opened_keys[#opened_keys + 1] = k
     end
   end
-  if s.L then
-    table.insert(out[1], k)
-    table.insert(out[1], s.L)
-  elseif s.t >= (member and link_size or min_size) and s.t >= peak_ratio * s.m
-      and s.t * history_s >= burst_ratio * s.e * window then
-    out[#out + 1] = {k, s.t, s.a, s.w, s.h, s.e, s.m}
+  if #opened > 0 then  -- first hits in this slot: carry the previous slot in, read the baseline, fold
+    local pv = read(P, opened_keys)
+    local hv = chunked('HMGET', H, opened_keys)
+    local gv = chunked('HMGET', G, opened_keys)
+    local fold = {}
+    for j, n in ipairs(opened) do
+      local s, v, k = state[n], pv[2 * j - 1], keys[n]
+      local hs, hp = history(hv[j])
+      local gs, gp = history(gv[j])
+      local flags = fig[5 * n - 1]
+      s.a, s.L, s.c, s.new = 0, false, false, true
+      s.e, s.m = hs + gs, math.max(hp, gp)
+      s.t, s.w, s.h = 0, 0, 0
+      if v then
+        local f = {string.match(v, PACKED)}
+        local win = tonumber(f[1])
+        s.t = win - tonumber(f[2])
+        s.w, s.h = tonumber(f[6]) - tonumber(f[7]), tonumber(f[8]) - tonumber(f[9])
+        -- the previous slot's own count joins the sum; its window joins the peak unless it was a campaign's
+        fold[#fold + 1] = k
+        local campaign_window = pv[2 * j] or f[10] == '1'
+        fold[#fold + 1] = (hs + s.t) .. ' ' .. (campaign_window and hp or math.max(hp, win))
+      elseif flags % 4 >= 2 then
+        s.t = 1  -- a first sighting last slot
+      end
+      s.p, s.x, s.y = s.t, s.w, s.h
+      if flags >= 4 then s.t = s.t + 1 end  -- a first sighting earlier in this slot
+    end
+    if #fold > 0 then
+      chunked('HSET', H, fold)
+      redis.call('EXPIRE', H, tonumber(ARGV[2]))
+    end
   end
-  writes[#writes + 1] = k
-  writes[#writes + 1] = string.format('%d %d %d %d %d %d %d %d %d %d', s.t, s.p, s.e, s.m, s.a, s.w, s.x, s.h, s.y,
-                                      s.c and 1 or 0)
+
+  -- authors: which (bucket, author) pairs are recorded already, for buckets short of min_authors (a bucket new
+  -- in this slot has none: its authors are written with its figures)
+  local anames, at = {}, 0
+  local first_author = {}
+  for n = 1, #keys do
+    first_author[n] = at
+    local count = fig[5 * n]
+    if state[n].a < min_authors and not state[n].new then
+      for q = at + 1, at + count do anames[#anames + 1] = keys[n] .. alist[q] end
+    end
+    at = at + count
+  end
+  local recorded = {}
+  if #anames > 0 then
+    local v = chunked('HMGET', B, anames)
+    for q, nm in ipairs(anames) do recorded[nm] = v[q] and true or false end
+  end
+
+  local out = {{}}
+  local writes = {}
+  for n, k in ipairs(keys) do
+    local s = state[n]
+    local flags = fig[5 * n - 1]
+    s.t, s.w, s.h = s.t + fig[5 * n - 4], s.w + fig[5 * n - 3], s.h + fig[5 * n - 2]
+    local member = flags % 2 == 1
+    if member then s.c = true end
+    local q = first_author[n]
+    while s.a < min_authors and q < first_author[n] + fig[5 * n] do
+      q = q + 1
+      local nm = k .. alist[q]
+      if not recorded[nm] then
+        recorded[nm] = true
+        s.a = s.a + 1
+        writes[#writes + 1] = nm
+        writes[#writes + 1] = 1
+      end
+    end
+    if s.L then
+      table.insert(out[1], k)
+      table.insert(out[1], s.L)
+    elseif s.t >= (member and link_size or min_size) and s.t >= peak_ratio * s.m
+        and s.t * history_s >= burst_ratio * s.e * window then
+      out[#out + 1] = {k, s.t, s.a, s.w, s.h, s.e, s.m}
+    end
+    writes[#writes + 1] = k
+    writes[#writes + 1] = string.format('%d %d %d %d %d %d %d %d %d %d', s.t, s.p, s.e, s.m, s.a, s.w, s.x, s.h, s.y,
+                                        s.c and 1 or 0)
+  end
+  chunked('HSET', B, writes)
+  redis.call('EXPIRE', B, tonumber(ARGV[1]))
+  return out
 end
-chunked('HSET', B, writes)
-redis.call('EXPIRE', B, tonumber(ARGV[1]))
-return out
+local replies = {}
+for b = 1, #KEYS / 4 do
+  replies[b] = band(KEYS[4 * b - 3], KEYS[4 * b - 2], KEYS[4 * b - 1], KEYS[4 * b],
+                    ARGV[7 + 3 * b], ARGV[8 + 3 * b], ARGV[9 + 3 * b])
+end
+return replies
 """
 
 
@@ -462,11 +474,15 @@ class RedisCampaignStore:
     ----------
     client : a redis-py client.
     keys : the deployment's key names.
+    cluster : whether ``client`` talks to a Redis Cluster, where each band's buckets are updated by a call of
+        their own (their hash tag's slot); a single Redis updates every band in one call.  Default: whether
+        ``client`` is redis-py's cluster client.
     """
 
-    def __init__(self, client, keys: Keys):
+    def __init__(self, client, keys: Keys, *, cluster: bool | None = None):
         self.client = client
         self.keys = keys
+        self.cluster = isinstance(client, redis.cluster.RedisCluster) if cluster is None else cluster
         self.names = CampaignKeys(keys)
         self._authors = _sha(_AUTHORS_SCRIPT)
         self._band = _sha(_BAND_SCRIPT)
@@ -537,7 +553,7 @@ class RedisCampaignStore:
         cur = self.names.sightings(window)[0]
         common = [slot_ttl, history_ttl, rules.min_size, rules.link_size, rules.min_authors, rules.peak_ratio,
                   rules.burst_ratio, rules.window_s, f"{history_s:.3f}"]
-        calls = []
+        per_band = []  # (band, KEYS, per-band ARGV) of each band the batch hits
         for hits in bands:
             if not hits.keys.size:
                 continue
@@ -545,15 +561,19 @@ class RedisCampaignStore:
             figures["hits"], figures["new"], figures["lean"] = hits.counts, hits.new, hits.lean
             figures["flags"] = hits.flags
             figures["authors"] = [len(a) // 8 for a in hits.authors]
-            calls.append((hits.band, self.names.band(window, hits.band),
-                          [*common, hits.keys.astype(">u8").tobytes(), figures.tobytes(), b"".join(hits.authors)]))
+            per_band.append((hits.band, self.names.band(window, hits.band),
+                             [hits.keys.astype(">u8").tobytes(), figures.tobytes(), b"".join(hits.authors)]))
+        # one call per band's hash tag on a cluster; one call for every band on a single Redis
+        groups = [[b] for b in per_band] if self.cluster else ([per_band] if per_band else [])
+        calls = [([band for band, _k, _a in group], [k for _b, keys, _a in group for k in keys],
+                  common + [a for _b, _k, args in group for a in args]) for group in groups]
 
         def build():
             pipe = self.client.pipeline(transaction=False)
             if firsts:
                 pipe.rpush(cur, firsts)
                 pipe.expire(cur, slot_ttl)
-            for _band, keys, args in calls:
+            for _bands, keys, args in calls:
                 self._call(pipe, self._band, keys, args)
             return pipe
 
@@ -562,12 +582,13 @@ class RedisCampaignStore:
         if firsts:
             out.place = int(replies[0]) - 1
             replies = replies[2:]
-        for band, reply in zip([band for band, _keys, _args in calls], replies):
-            linked = reply[0]
-            for key, campaign in zip(linked[::2], linked[1::2]):
-                out.linked[int.from_bytes(key, "big")] = _text(campaign)
-            for key, t, a, w, h, e, m in reply[1:]:
-                out.buckets[int.from_bytes(key, "big")] = (band, int(t), int(a), int(w), int(h), int(e), int(m))
+        for (call_bands, _keys, _args), call_reply in zip(calls, replies):
+            for band, reply in zip(call_bands, call_reply):
+                linked = reply[0]
+                for key, campaign in zip(linked[::2], linked[1::2]):
+                    out.linked[int.from_bytes(key, "big")] = _text(campaign)
+                for key, t, a, w, h, e, m in reply[1:]:
+                    out.buckets[int.from_bytes(key, "big")] = (band, int(t), int(a), int(w), int(h), int(e), int(m))
         return out
 
     # -- campaigns -------------------------------------------------------------------------

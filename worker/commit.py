@@ -3,7 +3,7 @@
 A batch is committed by one Lua script call (one round trip).  Redis runs a
 script without interleaving other clients, so for each comment the verdict
 XADD, the ``text:{id}`` cache, the ``held`` entry, the ``rates:{minute}``
-counts, the per-id ``done:{id}`` marker and the XACK land together; a worker
+counts, the per-id marker that the text was judged and the XACK land together; a worker
 SIGKILLed mid-batch has written either a whole comment or nothing of it, and
 its unacked entries are read again.
 
@@ -22,20 +22,27 @@ Exactly one verdict per comment id *and text*, checked before anything is writte
    commits it: when a slow worker's entries were taken over (XAUTOCLAIM moves
    ownership) and both finish, the slow one finds them no longer its own, or
    already acked, and writes nothing;
-2. ``done:{id}`` (a hash: text digest -> version) does not hold this text's
-   digest.  This catches what the pending list cannot: the same comment sent
+2. the comment's ``text:{id}`` hash (the cached text and verdict) does not
+   mark this text's digest as judged (a field ``~<digest>`` -> version, and
+   ``~``: how many texts of the id were judged).  This catches what the pending list cannot: the same comment sent
    twice by a producer that retried its XADD, a group recreated at ``0``, a
    replay.  The same id with *another* text is an edit: it gets its own
-   verdict, version ``HLEN + 1``, marked ``edit=1``.  A ``done:{id}`` string
-   written by an older Seawall counts as "this id has its verdict".  Use
-   ``maxmemory-policy noeviction`` (Redis's default, which RQ needs too) so
-   markers are never evicted early.
+   verdict, version ``~ + 1``, marked ``edit=1``.  The markers live as long
+   as the cached text (``text_cache_ttl_s``, 14 days by default).  When
+   ``done_ttl_s`` is the longer of the two, every marker is also written to
+   ``done:{id}`` (a hash: text digest -> version) with that TTL, and it is
+   read whenever the cache does not mark the text.  A cache without ``~`` was
+   written by an older Seawall: its ``done:{id}`` decides (a string there
+   counts as "this id has its verdict").  An older worker does not read the
+   markers in the cache, so workers of both versions must not serve one
+   deployment together.  Use ``maxmemory-policy noeviction`` (Redis's
+   default, which RQ needs too) so markers are never evicted early.
 
 Redis does not roll a script back when a command fails half-way, so the
 writes are ordered for the failures that can happen: the verdict XADD comes
 first (an out-of-memory server refuses a script's first write, and nothing
-else has been touched), the marker right after it (from then on a retry
-cannot write a second verdict), one XACK of the whole batch last (a comment
+else has been touched), the cache with its marker right after it (from then on a
+retry cannot write a second verdict), one XACK of the whole batch last (a comment
 is never acked without its verdict).  Holds, counters and acks are batched
 into one command each (the hold queue follows each id's latest version: an
 edit that is not held leaves it).  Dead letters: XADD, then XACK, one by one.
@@ -81,6 +88,7 @@ local stream, verdicts, held, rates, deadletter = KEYS[1], KEYS[2], KEYS[3], KEY
 local group, vmax, text_ttl, done_ttl, rates_ttl, now, model, dmax =
     ARGV[1], ARGV[2], ARGV[3], ARGV[4], ARGV[5], ARGV[6], ARGV[7], ARGV[8]
 local consumer, first, last, span = ARGV[9], ARGV[10], ARGV[11], ARGV[12]
+local split = tonumber(done_ttl) > tonumber(text_ttl)  -- markers outlive the cache: keep them in done:{id} too
 -- One JSON array of rows: {stream id, id, score, flags, reasons, site, text, author, ts, rule, campaign,
 -- digest, action, counter}; flags (from Python): 1 hold the comment, 2 count it under its counter field.
 local rows = cjson.decode(ARGV[13])
@@ -113,15 +121,25 @@ for i = 1, n do
   local done, cache = KEYS[4 + 2 * i], KEYS[5 + 2 * i]
   out[i] = 0
   if still_pending(sid) then
-    -- done:{id} maps each text digest already judged to its version; a string is an older worker's marker.
+    -- The cache hash keeps, beside the latest version's fields, a marker per text judged ('~' .. digest ->
+    -- version) and how many there are ('~').  A cache without '~' was written by an older Seawall: its
+    -- done:{id} decides, as it does when markers must outlive the cache (split: done_ttl > text_ttl).
     local version = 0
-    local seen = redis.pcall('HLEN', done)
-    if type(seen) ~= 'number' then
-      version = 0
-    elseif seen == 0 then
+    local got = redis.call('HMGET', cache, '~', '~' .. digest, 'text')
+    if got[1] and not (split and not got[2]) then
+      if not got[2] then version = tonumber(got[1]) + 1 end
+    elseif got[3] or split then
+      -- done:{id} maps each text digest already judged to its version; a string is an older worker's marker.
+      local seen = redis.pcall('HLEN', done)
+      if type(seen) ~= 'number' then
+        version = 0
+      elseif seen == 0 then
+        version = tonumber(got[1] or 0) + 1
+      elseif not redis.call('HGET', done, digest) then  -- HGET: the worker's ACL rule lists no HEXISTS
+        version = math.max(seen, tonumber(got[1] or 0)) + 1
+      end
+    else
       version = 1
-    elseif redis.call('HEXISTS', done, digest) == 0 then
-      version = seen + 1
     end
     if version > 0 then
       if version == 1 and campaign == '' then
@@ -136,11 +154,13 @@ for i = 1, n do
         if version > 1 then entry[#entry + 1] = 'edit'; entry[#entry + 1] = '1' end
         redis.call(unpack(entry))
       end
-      redis.call('HSET', done, digest, version)
-      redis.call('EXPIRE', done, done_ttl)
+      if split then
+        redis.call('HSET', done, digest, version)
+        redis.call('EXPIRE', done, done_ttl)
+      end
       redis.call('HSET', cache, 'text', text, 'site', site, 'author', author, 'ts', ts, 'stream_id', sid,
                  'score', score, 'action', action, 'rule', rule, 'model', model, 'version', version, 'digest', digest,
-                 'reasons', reasons, 'campaign', campaign)
+                 'reasons', reasons, 'campaign', campaign, '~', version, '~' .. digest, version)
       redis.call('EXPIRE', cache, text_ttl)
       if flags % 2 == 1 then set_held(id, true) elseif version > 1 then set_held(id, false) end
       count(site .. ':total')

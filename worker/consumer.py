@@ -41,7 +41,7 @@ from worker.commit import WRITTEN
 from worker.deadletters import DeadLetterLog
 from worker.loader import ModelSource
 from worker.observer import NullObserver, WorkerObserver
-from worker.policies import BatchPolicy, PolicyState, apply_policies
+from worker.policies import BatchPolicy, PolicyState, apply_policies, held_before_scoring
 from worker.routing import Router, explain_decisions
 from worker.settings import Keys, WorkerSettings
 from worker.streams import Entry, stream_id_ms
@@ -372,6 +372,9 @@ class StreamConsumer:
         slots: dict[str, int] = {}
         index = [slots.setdefault(c.text, len(slots)) for c in comments]
         cutoffs = self._router.hold_cutoffs([c.site for c in comments])
+        if self.policies:  # comments a policy holds whatever they score: their reasons ranked spam-ward now
+            for i in held_before_scoring(self.policies, self.state, comments):
+                cutoffs[i] = 0.0
         if len(slots) < len(comments):
             # One text on sites with different hold cutoffs is ranked for the highest of them;
             # a comment held below it is explained again in _route.

@@ -92,7 +92,7 @@ class PartKeys:
         return self.key("text", comment_id)
 
     def done(self, comment_id: str) -> str:
-        """Marker that a comment already has its verdict (TTL ``worker.done_ttl_s``)."""
+        """Markers of the texts a comment id had judged, kept when ``worker.done_ttl_s`` outlasts its text cache."""
         return self.key("done", comment_id)
 
     def rates(self, minute: int) -> str:
@@ -285,7 +285,7 @@ class WorkerSettings:
     verdicts_maxlen: int = setting(1_000_000, "approximate length cap of the verdicts stream (XADD MAXLEN ~)")
     deadletter_maxlen: int = setting(100_000, "approximate length cap of the dead-letter stream (XADD MAXLEN ~)")
     text_cache_ttl_s: int = setting(14 * 86_400, "how long text:{id} keeps a comment's text for feedback and re-scoring (personal data)")
-    done_ttl_s: int = setting(86_400, "how long the per-id marker stops a second verdict for the same comment id")
+    done_ttl_s: int = setting(86_400, "how long a done:{id} marker stops a second verdict for a comment id, when longer than text_cache_ttl_s (the text cache's own markers last as long as the text)")
     rates_ttl_s: int = setting(3 * 3_600, "TTL of the per-minute rates:{minute} counters")
     backoff_base_s: float = setting(0.1, "first wait before reconnecting to Redis, in seconds")
     backoff_factor: float = setting(2.0, "each failed reconnect multiplies the wait by this factor")
