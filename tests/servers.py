@@ -41,6 +41,7 @@ def _ephemeral_range() -> tuple[int, int]:
 
 
 _ports = random.Random(os.getpid() ^ time.time_ns())
+_handed_out: set[int] = set()
 
 
 def free_port() -> int:
@@ -55,12 +56,15 @@ def free_port() -> int:
     first = 10_000 if low > 12_000 else 1_024
     for _ in range(50):
         port = _ports.randrange(first, low)
+        if port in _handed_out:  # given to a server of this run that may not have bound it yet
+            continue
         with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
             try:
                 s.bind(("127.0.0.1", port))
             except OSError:
                 continue
-            return port
+        _handed_out.add(port)
+        return port
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind(("127.0.0.1", 0))
         return s.getsockname()[1]
@@ -521,14 +525,18 @@ class RedisCluster:
                     sum(1 for r in rows if "slave" in r["flags"] and "fail" not in r["flags"]))
 
         deadline = time.monotonic() + self.settle_timeout_s
+        seen: dict[str, object] = {}
         while time.monotonic() < deadline:
-            try:
-                if all(counts(node) == want for node in self.nodes):
-                    return
-            except (OSError, ValueError, IndexError, redis.RedisError):
-                pass
+            for node in self.nodes:
+                try:
+                    seen[node.address] = counts(node)
+                except (OSError, ValueError, IndexError, redis.RedisError) as exc:
+                    seen[node.address] = type(exc).__name__
+            if all(v == want for v in seen.values()):
+                return
             time.sleep(0.1)
-        raise TimeoutError(f"Redis Cluster: the nodes do not all see {want[0]} primaries and {want[1]} replicas")
+        raise TimeoutError(f"Redis Cluster: the nodes do not all see {want[0]} primaries and {want[1]} replicas; "
+                           f"(primaries, replicas) each node saw last: {seen}")
 
     def wait_ok(self, timeout: float | None = None) -> None:
         """Bounded wait until the cluster has settled (see :meth:`_settled`)."""
