@@ -691,7 +691,8 @@ class EmbeddingClassifier:
         if scale != 1.0:
             contrib = contrib * scale
         spamward = None if spamward_from is None else scores >= np.asarray(spamward_from, dtype=np.float64)
-        return scores, top_contributions(bag.doc, contrib, bag.first, bag.names, bag.n, top_k, spamward=spamward)
+        return scores, top_contributions(bag.doc, contrib, bag.first, bag.names, bag.n, top_k, spamward=spamward,
+                                         indptr=bag.indptr)
 
     def logits_many(self, texts: Iterable[str]) -> np.ndarray:
         """The network's raw log-odds of spam per text, before calibration, shape (n,)."""

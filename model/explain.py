@@ -6,8 +6,9 @@ head's direction (:func:`model.network.token_direction`).  A bucket's
 contribution is its term of that sum: positive pushes toward spam, negative
 toward ham.  With a linear head the terms add up exactly to ``logit - bias``,
 so removing the most spam-ward tokens lowers the score (a test checks it).
-The contributions come out of the scoring pass itself; explaining costs one
-sort per batch.
+The contributions come out of the scoring pass itself; explaining a batch
+takes the k largest out of a comment-by-pair matrix, with a sort only for
+ties and very long comments.
 """
 from __future__ import annotations
 
@@ -23,6 +24,7 @@ def top_contributions(
     top_k: int,
     *,
     spamward: np.ndarray | None = None,
+    indptr: np.ndarray | None = None,
 ) -> list[list[tuple[str, float]]]:
     """The ``top_k`` largest contributions by magnitude, per comment.
 
@@ -38,10 +40,16 @@ def top_contributions(
         buckets) are left out.
     spamward : optional bool per comment: those comments list their positive
         (spam-ward) contributions first, largest first, then the others.
+    indptr : optional int (n_docs + 1,): the pairs are grouped by comment, in
+        order, comment ``i``'s being ``indptr[i]:indptr[i + 1]`` (as a scoring
+        bag holds them).  The ranking then runs on a comment-by-pair matrix,
+        without a sort; any order of ``doc`` is accepted without it.
 
     Returns
     -------
-    list of lists of ``(token, contribution)``, largest magnitude first.
+    list of lists of ``(token, contribution)``, largest magnitude first;
+    equal magnitudes in the order of ``first`` (the order the tokens appear
+    in), so the ranking is the same whichever path scored.
 
     Examples
     --------
@@ -49,36 +57,19 @@ def top_contributions(
     ...                   np.array([0, 1, 2]), ["a", "b", "c"], 2, 1)
     [[('b', -2.0)], [('c', 0.1)]]
     """
-    if top_k <= 0 or doc.size == 0:
+    if top_k <= 0 or doc.size == 0 or not contribution.any():
         return [[] for _ in range(n_docs)]
-    keep = np.flatnonzero(contribution)
-    if keep.size == 0:
-        return [[] for _ in range(n_docs)]
-    doc, contribution, first = doc[keep], contribution[keep], first[keep]
-    magnitude = np.abs(contribution)
+    key = np.abs(contribution)  # the ranking key, > 0 for every pair that may be named
     if spamward is not None:
-        lift = (np.asarray(spamward, dtype=bool)[doc] & (contribution > 0)) * (magnitude.max() + 1.0)
-        magnitude = magnitude + lift  # the ranking key: spam-ward pairs of those comments above every other
-    # Only pairs at or above their comment's top_k-th magnitude can be chosen;
-    # the exact ranking then runs on those few.
-    candidates = _at_least_kth(doc, magnitude, n_docs, top_k)
-    if candidates is not None:
-        doc, contribution, first, magnitude = doc[candidates], contribution[candidates], first[candidates], magnitude[candidates]
-    # By comment, then magnitude descending, then position: equal
-    # contributions keep the order the tokens appear in, so the ranking is the
-    # same whichever path scored.  In order of position first, then one stable
-    # sort on the comment plus a fraction in [0, 0.5] that falls with magnitude.
-    by_position = np.argsort(first)
-    fraction = 0.5 * (1.0 - magnitude[by_position] / magnitude.max())
-    order = by_position[np.argsort(doc[by_position] + fraction, kind="stable")]
-    sorted_doc = doc[order]
-    starts = np.searchsorted(sorted_doc, np.arange(n_docs + 1))
-    rank = np.arange(sorted_doc.size) - starts[sorted_doc]
-    chosen = order[rank < top_k]
+        lift = (np.asarray(spamward, dtype=bool)[doc] & (contribution > 0)) * (key.max() + 1.0)
+        key = key + lift  # spam-ward pairs of those comments above every other
+    if indptr is not None and top_k <= _FEW_ROUNDS:
+        chosen, per_doc = _top_in_rows(doc, key, first, indptr, top_k)
+    else:
+        chosen, per_doc = _top_by_sort(doc, key, first, n_docs, top_k)
     take = getattr(tokens, "take", None)
     names = take(first[chosen]) if take is not None else [tokens[f] for f in first[chosen].tolist()]
     pairs = list(zip(names, contribution[chosen].tolist()))
-    per_doc = np.bincount(doc[chosen], minlength=n_docs)
     if len(pairs) == n_docs * top_k:  # the usual case: every comment has top_k; cut in C
         return list(map(list, zip(*[iter(pairs)] * top_k)))
     ends = np.cumsum(per_doc).tolist()
@@ -86,49 +77,68 @@ def top_contributions(
     return [pairs[a:b] for a, b in zip(begins, ends)]
 
 
-#: Above this many scored pairs in one comment, its pairs skip the pre-filter
-#: (they all go to the exact ranking) so the scratch matrix stays small.
+#: Comments with more pairs than this are ranked by the sort, so that the
+#: comment-by-pair matrix stays small.
 _WIDE = 256
-#: Up to this top_k, the k-th largest is found by k rounds of row maxima.
+#: Up to this top_k, the ranking takes the row maxima out k times; above it, the sort.
 _FEW_ROUNDS = 16
 
 
-def _at_least_kth(doc: np.ndarray, magnitude: np.ndarray, n_docs: int, top_k: int) -> np.ndarray | None:
-    """Indices of the pairs whose magnitude is at least their comment's ``top_k``-th largest.
+def _top_by_sort(doc: np.ndarray, key: np.ndarray, first: np.ndarray, n_docs: int,
+                 top_k: int) -> tuple[np.ndarray, np.ndarray]:
+    """The chosen pairs by comment, then rank (key descending, then ``first``), and the count per comment."""
+    live = np.flatnonzero(key > 0)
+    order = live[np.lexsort((first[live], -key[live], doc[live]))]
+    sorted_doc = doc[order]
+    starts = np.searchsorted(sorted_doc, np.arange(n_docs + 1))
+    rank = np.arange(sorted_doc.size) - starts[sorted_doc]
+    chosen = order[rank < top_k]
+    return chosen, np.bincount(doc[chosen], minlength=n_docs)
 
-    ``None`` when every pair qualifies.  Comments with more than :data:`_WIDE`
-    pairs keep all of theirs.
+
+def _top_in_rows(doc: np.ndarray, key: np.ndarray, first: np.ndarray, indptr: np.ndarray,
+                 top_k: int) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_top_by_sort` for pairs grouped by comment (``indptr``).
+
+    The keys go into a comment-by-pair matrix in the comment's pair order, and
+    the row maxima are taken out ``top_k`` times.  That order is not the order
+    of ``first``, so a comment where two chosen keys are equal, or the last
+    chosen equals the best one left, is ranked again by the sort, as are the
+    comments wider than :data:`_WIDE`.
     """
-    counts = np.bincount(doc, minlength=n_docs)
-    if counts.max() <= top_k:
-        return None
-    order = None
-    if doc.size > 1 and np.any(doc[1:] < doc[:-1]):
-        order = np.argsort(doc, kind="stable")
-        doc, magnitude = doc[order], magnitude[order]
-    starts = np.cumsum(counts) - counts
-    rank = np.arange(doc.size) - starts[doc]
-    widest = int(counts.max())
-    width = min(widest, _WIDE)
-    scratch = np.full((n_docs, width), -1.0)
-    if widest <= _WIDE:
-        scratch[doc, rank] = magnitude
+    n_docs = indptr.size - 1
+    starts = indptr[:-1]
+    counts = np.diff(indptr)
+    width = int(min(counts.max(), _WIDE))
+    wide = counts > _WIDE
+    scratch = np.full(n_docs * width, -1.0)
+    slot = np.arange(key.size) + np.repeat(np.arange(n_docs) * width - starts, counts)
+    if wide.any():
+        narrow = np.repeat(~wide, counts)
+        scratch[slot[narrow]] = key[narrow]
     else:
-        narrow = counts[doc] <= _WIDE
-        scratch[doc[narrow], rank[narrow]] = magnitude[narrow]
-    if width > top_k:
-        if top_k <= _FEW_ROUNDS:
-            # The k-th largest per row: take the row maxima out k times
-            # (np.partition along rows pays a setup per row).
-            rows = np.arange(n_docs)
-            for _ in range(top_k):
-                at = scratch.argmax(axis=1)
-                kth = scratch[rows, at]
-                scratch[rows, at] = -1.0
-        else:
-            kth = np.partition(scratch, width - top_k, axis=1)[:, width - top_k]
-        kth[counts > _WIDE] = -1.0  # wide comments keep all their pairs
-    else:
-        kth = np.full(n_docs, -1.0)
-    picked = np.flatnonzero(magnitude >= kth[doc])
-    return picked if order is None else np.sort(order[picked])
+        scratch[slot] = key
+    scratch = scratch.reshape(n_docs, width)
+    k = min(top_k, width)
+    rows = np.arange(n_docs)
+    at = np.empty((n_docs, k), dtype=np.int64)
+    value = np.empty((n_docs, k))
+    for j in range(k):
+        col = scratch.argmax(axis=1)
+        at[:, j] = col
+        value[:, j] = scratch[rows, col]
+        scratch[rows, col] = -1.0
+    valid = value > 0  # a prefix of each row: the values fall along it
+    redo = wide
+    if k > 1:
+        redo = redo | np.any(valid[:, 1:] & (value[:, 1:] == value[:, :-1]), axis=1)
+    if width > k:
+        redo = redo | (valid[:, -1] & (scratch.max(axis=1) == value[:, -1]))
+    if not redo.any():
+        return (at + starts[:, None])[valid], valid.sum(axis=1)
+    valid &= ~redo[:, None]
+    again = np.flatnonzero(np.repeat(redo, counts))
+    sorted_chosen, _ = _top_by_sort(doc[again], key[again], first[again], n_docs, top_k)
+    chosen = np.concatenate([(at + starts[:, None])[valid], again[sorted_chosen]])
+    chosen = chosen[np.argsort(doc[chosen], kind="stable")]  # each comment's pairs come from one side, in rank order
+    return chosen, np.bincount(doc[chosen], minlength=n_docs)

@@ -171,9 +171,25 @@ class _ChunkCache(dict):
             _remember(once, chunk, tokens, max(1, self._cap // 4))
         else:
             _remember(self, chunk, tokens, self._cap)
+        self._mark_short(chunk, tokens)
+        return tokens
+
+    def held(self, chunk: str) -> tuple[str, ...]:
+        """The chunk's tokens, kept in the cache at once: for a caller that
+        holds the chunk itself (a bounded chunk store), so that the chunk is
+        no one-off and its second sighting should be a hit."""
+        tokens = self.get(chunk)
+        if tokens is None:
+            tokens = self._once.pop(chunk, None)
+            if tokens is None:
+                tokens = self._rewrite(chunk)
+            _remember(self, chunk, tokens, self._cap)
+            self._mark_short(chunk, tokens)
+        return tokens
+
+    def _mark_short(self, chunk: str, tokens: tuple[str, ...]) -> None:
         if 1 in map(len, tokens) or any(token_rule_marks(tokens)):
             self.short.add(chunk)
-        return tokens
 
     def prune_short(self) -> None:
         """Forget :attr:`short` entries of chunks neither table holds any more."""
@@ -330,7 +346,12 @@ class Tokenizer:
             link, marks = chunk.rsplit(" ", 1)
             raw = whole_link(link)
             return raw, token_marks(raw), int(marks)
-        raw = self._rewrite_chunk(chunk)
+        # Through the chunk cache: a comment the batch path sends to the whole
+        # pipeline (:meth:`words_many`) then finds its chunks already rewritten.
+        cache = self._chunks
+        raw = cache.held(chunk)
+        if len(cache.short) > _CHUNK_CACHE_SIZE:  # bounded even when words_many never runs
+            cache.prune_short()
         marks = token_marks(raw)
         if not _SINGLE_DIGITS.isdisjoint(raw):
             raw = tuple("<num>" if t in _SINGLE_DIGITS else t for t in raw)

@@ -236,31 +236,50 @@ def test_names_take_matches_indexing():
     assert names.take([4]) == ["casino_now"] and names.take([]) == []
 
 
-def _brute_force(doc, contribution, first, tokens, n_docs, top_k):
+def _brute_force(doc, contribution, first, tokens, n_docs, top_k, spamward=None):
     out = []
     for d in range(n_docs):
         rows = [i for i in range(doc.size) if doc[i] == d and contribution[i] != 0]
-        rows.sort(key=lambda i: (-abs(contribution[i]), first[i]))
+        lifted = spamward is not None and spamward[d]
+        rows.sort(key=lambda i: (not (lifted and contribution[i] > 0), -abs(contribution[i]), first[i]))
         out.append([(tokens[first[i]], float(contribution[i])) for i in rows[:top_k]])
     return out
 
 
+@pytest.mark.parametrize("grouped", [False, True], ids=["any-order", "grouped-by-comment"])
 @pytest.mark.parametrize("seed", range(6))
-def test_top_contributions_equal_a_brute_force_ranking(seed):
+def test_top_contributions_equal_a_brute_force_ranking(seed, grouped):
     rng = np.random.default_rng(seed)
     n_docs = int(rng.integers(1, 40))
     sizes = rng.integers(0, 30, n_docs)
-    sizes[rng.integers(n_docs)] = 300  # one comment wider than the pre-filter's scratch matrix
+    sizes[rng.integers(n_docs)] = 300  # one comment wider than the comment-by-pair matrix
     doc = np.repeat(np.arange(n_docs), sizes)
-    if seed % 2:
+    indptr = None
+    if grouped:  # as a scoring bag holds them: the matrix path
+        indptr = np.concatenate([[0], np.cumsum(sizes)])
+    elif seed % 2:
         doc = rng.permutation(doc)  # the function must not rely on the order
     m = doc.size
+    # seeds 0-2: few distinct values, so ties abound (inside the top k and at its edge)
     contribution = rng.choice([-2.0, -0.5, 0.0, 0.5, 1.0, 2.0], m) if seed < 3 else rng.normal(size=m)
     first = rng.permutation(m)
     tokens = [f"t{i}" for i in range(m)]
-    for k in (1, 5, 20, 50):
-        got = top_contributions(doc, contribution, first, tokens, n_docs, k)
+    spamward = rng.random(n_docs) < 0.5
+    for k in (1, 5, 16, 17, 50):
+        got = top_contributions(doc, contribution, first, tokens, n_docs, k, indptr=indptr)
         assert got == _brute_force(doc, contribution, first, tokens, n_docs, k)
+        got = top_contributions(doc, contribution, first, tokens, n_docs, k, spamward=spamward, indptr=indptr)
+        assert got == _brute_force(doc, contribution, first, tokens, n_docs, k, spamward)
+
+
+def test_top_contributions_in_rows_ranks_ties_by_position_not_by_pair_order():
+    # One comment, its pairs in bucket order; the equal magnitudes must come in the order of first.
+    contribution = np.array([1.0, -3.0, 1.0, 3.0, 0.0, 1.0])
+    first = np.array([5, 4, 3, 2, 1, 0])
+    tokens = [f"t{i}" for i in range(6)]
+    got = top_contributions(np.zeros(6, dtype=np.int64), contribution, first, tokens, 1, 3,
+                            indptr=np.array([0, 6]))
+    assert got == [[("t2", 3.0), ("t4", -3.0), ("t0", 1.0)]]
 
 
 @pytest.fixture(scope="module")

@@ -100,3 +100,30 @@ def test_spaced_words_are_joined_beside_a_token_of_256_characters_or_more():
 def test_a_text_that_is_no_str_is_refused_by_name(method):
     with pytest.raises(TypeError, match=rf"^Tokenizer\.{method}: text must be str, got bytes$"):
         getattr(TOK, method)(b"free casino")
+
+
+def test_a_chunk_entry_leaves_the_chunk_rewritten_for_the_whole_pipeline(monkeypatch):
+    text = "fr33 c a s i n o spins!"
+    expected = Tokenizer().words_many([text])
+    tok = Tokenizer()
+    for chunk in tok.chunks_many([text])[0]:
+        tok.chunk_entry(chunk)
+    rewrites = []
+    monkeypatch.setattr(tok._chunks, "_rewrite", lambda chunk: rewrites.append(chunk) or ("unexpected",))
+    # The one-character chunks are held as short: the spaced-out run is still joined.
+    assert tok.words_many([text]) == expected == (["free", "casino", "spins"], [3])
+    assert rewrites == []
+
+
+def test_chunk_entries_keep_the_short_chunk_set_bounded(monkeypatch):
+    import model.tokens as tokens
+
+    monkeypatch.setattr(tokens, "_CHUNK_CACHE_SIZE", 8)
+    tok = Tokenizer()
+    monkeypatch.setattr(tok._chunks, "_cap", 8)
+    words = [a + b for a in "bdfgk" for b in "aeiou"]
+    for word in words:
+        tok.chunk_entry(f"k,{word}")  # "k" is a one-character token: a short chunk
+    assert len(tok._chunks.short) > 0
+    assert len(tok._chunks.short) <= 8 + 1
+    assert len(tok._chunks) <= 8
