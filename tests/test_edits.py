@@ -121,11 +121,17 @@ def test_a_marker_left_by_an_older_worker_still_means_done(client):
     assert int(client.execute_command("XPENDING", KEYS.comments, KEYS.group)[0]) == 0
 
 
-def test_the_cache_marks_every_version_for_as_long_as_it_keeps_the_text(client):
-    w = worker(client, done_ttl_s=120, text_cache_ttl_s=600)
+def two_versions_judged(client, **settings):
+    """A worker with ``settings`` that has judged two texts of comment c1; the worker."""
+    w = worker(client, **settings)
     send(client, "c1", "one text")
     send(client, "c1", "another text")
     drain(w, 2)
+    return w
+
+
+def test_the_cache_marks_every_version_for_as_long_as_it_keeps_the_text(client):
+    w = two_versions_judged(client, done_ttl_s=120, text_cache_ttl_s=600)
     cache = {k.decode(): v.decode() for k, v in client.hgetall(KEYS.text("c1")).items()}
     marks = {k: v for k, v in cache.items() if k.startswith("~")}
     assert marks == {"~": "2", "~" + text_digest("one text"): "1", "~" + text_digest("another text"): "2"}
@@ -137,10 +143,7 @@ def test_the_cache_marks_every_version_for_as_long_as_it_keeps_the_text(client):
 
 
 def test_markers_that_must_outlive_the_cached_text_are_kept_in_done_too(client):
-    w = worker(client, done_ttl_s=600, text_cache_ttl_s=120)
-    send(client, "c1", "one text")
-    send(client, "c1", "another text")
-    drain(w, 2)
+    w = two_versions_judged(client, done_ttl_s=600, text_cache_ttl_s=120)
     marker = {k.decode(): v.decode() for k, v in client.hgetall(KEYS.done("c1")).items()}
     assert marker == {text_digest("one text"): "1", text_digest("another text"): "2"}
     assert 120 < client.ttl(KEYS.done("c1")) <= 600

@@ -377,7 +377,7 @@ class CampaignPolicy:
         self._site_since: dict[str, int] = {}
         self._since: float | None = None  # when the detector first ran with this scheme
         self._early: dict | None = None  # members found by will_hold, for the apply of the same batch
-        self._early_batch: list[int] = []
+        self._early_batch: frozenset[int] = frozenset()
 
     def will_hold(self, state, comments: Sequence) -> set[int]:
         """The batch's campaign members, found before scoring when the scores change nothing about them (the
@@ -389,7 +389,7 @@ class CampaignPolicy:
         members = self.observe(state.campaigns, comments, None)
         # by object: the worker routes the same comment objects (fewer, if some are dead-lettered in between)
         self._early = {id(comments[i]): (comments[i], campaign) for i, campaign in members.items()}
-        self._early_batch = [id(c) for c in comments]
+        self._early_batch = frozenset(map(id, comments))
         return set(members)
 
     def apply(self, state, comments: Sequence, scores: Sequence[float], decisions: list[Decision]) -> list[Decision]:
@@ -398,7 +398,7 @@ class CampaignPolicy:
         ``state`` is the worker's :class:`worker.policies.PolicyState`; its ``campaigns`` is the store.
         """
         early, self._early = self._early, None
-        if early is not None and set(map(id, comments)) <= set(self._early_batch):  # observed by will_hold
+        if early is not None and self._early_batch.issuperset(map(id, comments)):  # observed by will_hold
             members = {i: early[id(c)][1] for i, c in enumerate(comments) if id(c) in early and early[id(c)][0] is c}
         else:
             members = self.observe(state.campaigns, comments, scores)
