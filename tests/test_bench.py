@@ -67,3 +67,23 @@ def test_bench_comments_draw_ham_words_as_numpy_choice_would():
             parts.append(word)
             size += len(word) + 1
         assert maker.comment(False) == " ".join(parts)
+
+
+def test_harness_abort_skips_dead_workers_and_stops_live_ones():
+    """The clean-up after a failed run neither raises on a worker that already died nor leaves one running."""
+    import sys
+    import time
+
+    from ops.bench.stream import Harness
+
+    h = Harness(url="redis://127.0.0.1:1/0", prefix="bench-abort:", model_path="unused", batch=1, block_ms=1)
+    dead = h.ctx.Process(target=sys.exit, args=(3,), daemon=True)
+    live = h.ctx.Process(target=time.sleep, args=(60,), daemon=True)
+    for proc in (dead, live):
+        proc.start()
+        h.procs.append(proc)
+    dead.join(timeout=30)
+    assert dead.exitcode == 3
+    h.abort()
+    assert h.procs == []
+    assert not live.is_alive() and live.exitcode is not None

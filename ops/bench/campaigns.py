@@ -148,8 +148,7 @@ def _throughput(url, prefix, model_path, comments, *, noop, campaigns, batch, bl
                 "commands_us": {k: round(v / len(ids), 2) for k, v in by_command.items()},
                 "peak_rss_mb": stats["peak_rss_mb"]}
     finally:
-        if h.procs:
-            h.stop()
+        h.abort()
         h.cleanup()
 
 

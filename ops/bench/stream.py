@@ -210,6 +210,7 @@ class Harness:
                     raise RuntimeError(f"bench: worker process exited with {proc.exitcode} before it was ready")
 
     def stop(self) -> list[dict]:
+        """Stop the workers and collect each one's figures (CPU, peak RSS)."""
         for proc in self.procs:
             os.kill(proc.pid, signal.SIGTERM)
         out = [self.results.get(timeout=60) for _ in self.procs]
@@ -217,6 +218,21 @@ class Harness:
             proc.join(timeout=30)
         self.procs = []
         return out
+
+    def abort(self) -> None:
+        """Stop whatever workers still run, without waiting for figures: the clean-up after a failed run.
+
+        A worker that already died is skipped, so the error that ended the run is the one reported.
+        """
+        for proc in self.procs:
+            if proc.is_alive():
+                proc.terminate()
+        for proc in self.procs:
+            proc.join(timeout=30)
+            if proc.is_alive():
+                proc.kill()
+                proc.join(timeout=5)
+        self.procs = []
 
     def enqueue(self, comments, start: int = 0) -> None:
         if self.amqp:
@@ -315,8 +331,7 @@ def _throughput(url, prefix, model_path, comments, *, processes, noop, batch, bl
                 "worker_cpu_us": sum(s["cpu_s"] for s in stats) / len(ids) * 1e6,
                 "redis_cpu_us": redis_usec / len(ids)}
     finally:
-        if h.procs:
-            h.stop()
+        h.abort()
         h.cleanup()
 
 
@@ -352,8 +367,7 @@ def _latency(url, prefix, model_path, comments, *, rate, seconds, batch, block_m
         return {"offered_per_s": offered, "p50_ms": float(np.percentile(lat, 50)),
                 "p99_ms": float(np.percentile(lat, 99)), "max_ms": float(lat.max()), "n": int(lat.size)}
     finally:
-        if h.procs:
-            h.stop()
+        h.abort()
         h.cleanup()
 
 
