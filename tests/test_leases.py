@@ -199,3 +199,36 @@ def test_each_worker_reports_the_partitions_it_holds_and_the_deployment_reports_
     consumers[1].source.release()
     consumers[1].report_lag()
     assert registries[1].get_sample_value("seawall_partitions_held") == 0
+
+
+def test_every_worker_reports_the_group_wide_lag_over_all_partitions(fake_redis, clock):
+    """With K > 1 each worker reads only its partitions, yet ``seawall_consumer_lag`` and ``_pending`` are the
+    whole group's, as with K = 1: the alert rules, the dashboard and the autoscaler take ``max`` over workers."""
+    from worker.connection import raw_stream_replies
+    from worker.partitions import send_comment
+    from worker.redistransport import RedisStreamSource
+    from worker.settings import WorkerSettings
+    from worker.transport import Lag
+
+    client = raw_stream_replies(fake_redis)
+    keys = Keys(partitions=4)
+    settings = WorkerSettings(block_ms=5, batch=5)
+    sources = [RedisStreamSource(client=client, keys=keys, settings=settings, consumer=n,
+                                 leases=worker(fake_redis, clock, n)) for n in "ab"]
+    lone = RedisStreamSource(client=client, keys=Keys(partitions=4), settings=settings, consumer="c",
+                             leases=worker(fake_redis, clock, "c"))
+    assert lone.lag() == Lag(0, 0, 0)  # nothing sent yet: no stream, no group, nothing created by asking
+    assert fake_redis.exists(*(p.comments for p in keys.parts)) == 0
+    for s in sources:
+        s.prepare()
+    for _ in range(6):
+        clock.advance(sources[0].leases.interval_s)
+        for s in sources:
+            s.read(block=False)
+    assert [len(s.held) for s in sources] == [2, 2]
+    for i in range(40):
+        send_comment(client, keys, {"id": f"c{i}", "text": "hello"})
+    assert [s.lag() for s in sources] == [Lag(40, 0, 2), Lag(40, 0, 2)]
+    delivered = len(sources[0].read(block=False).entries)  # one batch of one of a's partitions, not acknowledged
+    assert delivered == 5
+    assert [s.lag() for s in sources] == [Lag(35, 5, 2), Lag(35, 5, 2)]

@@ -141,5 +141,20 @@ class GroupReader:
                 return
 
     def lag(self) -> GroupLag:
-        info = parse_xinfo_group(self.client.execute_command("XINFO GROUPS", self.stream), self.group)
-        return GroupLag(info["lag"], info["pending"])
+        return group_lag(self.client, self.stream, self.group)
+
+
+def group_lag(client, stream: str, group: str) -> GroupLag:
+    """Lag and pending count of ``group`` on ``stream``, read without creating either.
+
+    A stream that does not exist yet has nothing waiting (lag 0); a group that
+    does not exist yet, or a Redis before 7, gives an unknown lag (None).
+    """
+    try:
+        reply = client.execute_command("XINFO GROUPS", stream)
+    except redis.ResponseError as exc:
+        if "no such key" in str(exc).lower():
+            return GroupLag(0, 0)
+        raise
+    info = parse_xinfo_group(reply, group)
+    return GroupLag(info["lag"], info["pending"])

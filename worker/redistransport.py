@@ -23,7 +23,7 @@ import redis
 
 from worker.campaignstore import RedisCampaignStore
 from worker.commit import BatchCommitter, Limits as CommitLimits
-from worker.groupreader import GroupReader
+from worker.groupreader import GroupReader, group_lag
 from worker.settings import Keys, WorkerSettings
 from worker.transport import Batch, Lag, TransientError
 
@@ -207,12 +207,18 @@ class RedisStreamSource:
         """Nothing to do: the sink's script acknowledged each entry with its verdict."""
 
     def lag(self) -> Lag:
-        """The group's lag and pending count summed over the partitions this worker reads."""
+        """The group's lag and pending count summed over all K partitions, and how many this worker reads.
+
+        Every worker reports the same group-wide figures whatever it holds, as
+        with K = 1, so that dashboards and autoscalers take the ``max`` over
+        workers for any K.  A partition's lag is read without creating its
+        stream or group.
+        """
         total_lag: int | None = 0
         pending = 0
         with redis_errors():
-            for p in self._held:
-                lag = self.reader_of(p).lag()
+            for part in self.keys.parts:
+                lag = group_lag(self.client, part.comments, self.keys.group)
                 pending += lag.pending
                 total_lag = None if total_lag is None or lag.lag is None else total_lag + lag.lag
         return Lag(total_lag, pending, len(self._held))
