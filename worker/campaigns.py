@@ -75,6 +75,7 @@ from collections.abc import Callable, Sequence
 import numpy as np
 
 from model.actions import Action
+from model.features import BatchWords
 from model.minhash import MinHasher, band_hashes
 from model.params import flag, integer, one_of, real, set_params
 from model.tokens import Tokenizer
@@ -358,6 +359,7 @@ class CampaignPolicy:
         self.clock = clock
         self.events_maxlen = events_maxlen
         self.tokenizer = Tokenizer(**CAMPAIGN_TOKENIZER)
+        self._word_params = self.tokenizer.word_params()
         self.tag = scheme_tag(hasher, bands)
         self.rules = BucketRules(min_size=min_size, link_size=link_size, min_authors=min_authors,
                                  peak_ratio=peak_ratio, burst_ratio=burst_ratio, window_s=window_s)
@@ -379,14 +381,17 @@ class CampaignPolicy:
         self._early: dict | None = None  # members found by will_hold, for the apply of the same batch
         self._early_batch: frozenset[int] = frozenset()
 
-    def will_hold(self, state, comments: Sequence) -> set[int]:
+    def will_hold(self, state, comments: Sequence, words: BatchWords | None = None) -> set[int]:
         """The batch's campaign members, found before scoring when the scores change nothing about them (the
         second signal is new authors only) and members are held; :meth:`apply` then uses what this found
-        instead of observing the batch again.  (See :func:`worker.policies.held_before_scoring`.)"""
+        instead of observing the batch again.  (See :func:`worker.policies.held_before_scoring`.)
+
+        ``words`` are the comments' words from the worker's scoring pass, used when its tokenizer cuts
+        words as :data:`CAMPAIGN_TOKENIZER` does (see :meth:`band_keys`)."""
         self._early = None
         if not self.hold or self.signals != "authors" or not comments:
             return set()
-        members = self.observe(state.campaigns, comments, None)
+        members = self.observe(state.campaigns, comments, None, words=words)
         # by object: the worker routes the same comment objects (fewer, if some are dead-lettered in between)
         self._early = {id(comments[i]): (comments[i], campaign) for i, campaign in members.items()}
         self._early_batch = frozenset(map(id, comments))
@@ -426,11 +431,11 @@ class CampaignPolicy:
     # -- the batch -------------------------------------------------------------------------
 
     def observe(self, store: CampaignStore, comments: Sequence,
-                scores: Sequence[float] | None = None) -> dict[int, str]:
+                scores: Sequence[float] | None = None, *, words: BatchWords | None = None) -> dict[int, str]:
         """Record the batch in the shared state; return ``{index: campaign id}`` of campaign members.
 
         ``scores`` are the model's spam probabilities of ``comments`` (or None):
-        they feed the spam-ward lean signal.
+        they feed the spam-ward lean signal.  ``words``: see :meth:`band_keys`.
         """
         if not comments:
             return {}
@@ -439,7 +444,7 @@ class CampaignPolicy:
         sites = [_get(c, "site") for c in comments]
         if scores is not None and len(scores) != len(comments):
             raise ValueError(f"campaigns: {len(scores)} scores for {len(comments)} comments")
-        eligible, keys = self.band_keys(texts)
+        eligible, keys = self.band_keys(texts, words)
         flat = keys.ravel()
         _, first_places = np.unique(flat, return_index=True)
         repeated = np.ones(flat.size, dtype=bool)  # the key occurs earlier in the batch
@@ -560,15 +565,22 @@ class CampaignPolicy:
         return out
 
 
-    def band_keys(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+    def band_keys(self, texts: Sequence[str], words: BatchWords | None = None) -> tuple[np.ndarray, np.ndarray]:
         """The comments with at least ``min_words`` normalized words, and their LSH band keys.
 
         Returns their indices in ``texts`` and a ``(len(indices), bands)``
         uint64 array: the MinHash bands of word shingles of the tokens of
-        :data:`CAMPAIGN_TOKENIZER`, the same on every worker.
+        :data:`CAMPAIGN_TOKENIZER`, the same on every worker.  ``words``, the
+        texts' words as another pass cut them, stand in for cutting them again
+        when that pass's tokenizer has the word parameters of
+        :data:`CAMPAIGN_TOKENIZER` (it then cuts the same words); otherwise
+        they are ignored.
         """
-        flat, counts = self.tokenizer.words_many(texts)
-        counts = np.asarray(counts, dtype=np.int64)
+        if words is not None and len(words.counts) == len(texts) and words.params == self._word_params:
+            flat, counts = words.flat, np.asarray(words.counts, dtype=np.int64)
+        else:
+            flat, counts = self.tokenizer.words_many(texts)
+            counts = np.asarray(counts, dtype=np.int64)
         eligible = np.flatnonzero(counts >= self.min_words)
         if eligible.size < counts.size:  # keep only the eligible comments' words
             ends = np.cumsum(counts)
