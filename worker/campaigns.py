@@ -8,7 +8,9 @@ For each batch, :class:`CampaignPolicy`:
    tokenizer configuration (:data:`CAMPAIGN_TOKENIZER`: NFKC, look-alike
    letters, zero-width characters, leetspeak, spaced letters, link markers),
    whatever model the worker serves, so that spelling tricks cannot split a
-   family and every worker computes the same shingles;
+   family and every worker computes the same shingles (when the served
+   model's tokenizer cuts the same words, the worker hands over the words of
+   its scoring pass, :class:`model.features.BatchWords`, instead);
 2. computes their MinHash signatures and LSH band keys (:mod:`model.minhash`);
    a band key names a *bucket*, a family of comments that agree on that band;
 3. reads what other workers saw since its last batch and the first sightings

@@ -14,7 +14,10 @@ One loop iteration (:meth:`StreamConsumer.step`):
    a comment read from a partition its id does not belong to (a producer's
    mistake, :mod:`worker.partitions`) becomes ``wrong_partition`` in the
    dead-letter stream of the partition it was read from;
-4. score all valid comments in ONE ``score_many`` call, decide each by the
+4. score all valid comments in ONE ``score_many`` call (with batch policies and
+   a model that can, ``encode`` first and ``score_encoded`` after the policies'
+   look before scoring, which get the comments' words from that one pass),
+   decide each by the
    effective cutoffs of its site (:class:`worker.routing.Router`), let the
    batch policies adjust the decisions, and make sure the reasons of held and
    rejected comments list their spam-ward tokens first;
