@@ -33,7 +33,7 @@ from model.calibration import (DEFAULT_HOLD_FLOOR, DEFAULT_HOLD_FPR, DEFAULT_MET
 from model.errors import ArtifactError, BudgetError, DataError
 from model.evaluation import evaluate
 from model.explain import top_contributions
-from model.features import FeatureEncoder, Features
+from model.features import BatchWords, FeatureEncoder, Features
 from model.hashing import PAIR_SCHEME, TokenHasher
 from model.tokens import Tokenizer
 
@@ -196,6 +196,30 @@ class _Tables:
     head: dict
     bucket_logit: np.ndarray | None
     bias: float
+
+
+@dataclass(frozen=True)
+class EncodedBatch:
+    """Texts a model cut into features (:meth:`EmbeddingClassifier.encode`), scored later by that model.
+
+    ``features`` is None for a batch small enough for the plain-Python path,
+    which cuts each text itself when it scores.
+    """
+
+    texts: list[str]
+    features: Features | None
+    tokenizer: Tokenizer
+
+    def words(self, rows=None) -> BatchWords:
+        """The words of the comments ``rows`` (indices into :attr:`texts`, repeats allowed; all by default),
+        from the scoring pass when it ran on the whole batch, else cut here by the same tokenizer."""
+        if self.features is not None:
+            flat, counts = self.features.words(rows)
+        else:
+            texts = self.texts if rows is None else [self.texts[i] for i in np.asarray(rows).tolist()]
+            flat, counts = self.tokenizer.words_many(texts)
+            counts = np.asarray(counts, dtype=np.int64)
+        return BatchWords(flat, counts, self.tokenizer.word_params())
 
 
 class EmbeddingClassifier:
@@ -664,11 +688,35 @@ class EmbeddingClassifier:
             largest magnitude first; contribution > 0 pushes toward spam, in
             calibrated log-odds (raw log-odds times the calibration's slope).
         """
+        return self.score_encoded(self.encode(texts), top_k=top_k, spamward_from=spamward_from)
+
+    def encode(self, texts: Iterable[str]) -> "EncodedBatch":
+        """Cut texts into features once: :meth:`score_encoded` scores them as :meth:`score_many` would, and
+        :meth:`EncodedBatch.words` gives their words from the same pass.
+
+        Examples
+        --------
+        >>> clf = EmbeddingClassifier(dim=4, min_df=1, validation_share=0.0).fit(
+        ...     ["win a free prize", "see you soon", "free prize now", "thanks a lot", "a b c d e"] * 4,
+        ...     [1, 0, 1, 0, 0] * 4)
+        >>> batch = clf.encode(["Win a FREE prize", "see you", "x", "y", "z"])
+        >>> bool((clf.score_encoded(batch)[0] == clf.score_many(batch.texts)[0]).all())
+        True
+        >>> batch.words([1, 0]).flat
+        ['see', 'you', 'win', 'a', 'free', 'prize']
+        """
         self._require_fitted("score")
         texts = self._texts(texts, "score")
         if len(texts) <= FEW and self._scoring_tables().row_logit is not None:
-            return self._score_few([self._encoder.one(t) for t in texts], top_k, spamward_from)
-        return self._score(self._features(texts), top_k, spamward_from)
+            return EncodedBatch(texts, None, self._tokenizer)  # the plain-Python path cuts each text itself
+        return EncodedBatch(texts, self._features(texts), self._tokenizer)
+
+    def score_encoded(self, batch: "EncodedBatch", *, top_k: int = 5,
+                      spamward_from=None) -> tuple[np.ndarray, list[list[tuple[str, float]]]]:
+        """:meth:`score_many` of the texts of a batch this model encoded (:meth:`encode`)."""
+        if batch.features is None:
+            return self._score_few([self._encoder.one(t) for t in batch.texts], top_k, spamward_from)
+        return self._score(batch.features, top_k, spamward_from)
 
     def score_features(self, feature_lists: list[list[str]], *, top_k: int = 5):
         """:meth:`score_many` for comments already cut into feature tokens.

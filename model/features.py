@@ -28,7 +28,7 @@ from model.normalization import CHUNKS, needs_whole_pipeline
 from model.tokens import (BIGRAM_JOINER, CHUNK_SEPARATOR, MARK_DOMAIN, MARK_URL, Tokenizer, char_ngrams,
                           pair_positions, token_marks)
 
-__all__ = ["Features", "FeatureEncoder", "FeatureNames"]
+__all__ = ["BatchWords", "Features", "FeatureEncoder", "FeatureNames"]
 
 
 class FeatureNames:
@@ -157,6 +157,50 @@ class Features:
     lengths: np.ndarray
     names: FeatureNames | list[str]
     hashes: np.ndarray
+
+
+    def words(self, rows=None) -> tuple[list[str], np.ndarray]:
+        """Each comment's words (unigrams and markers, as :meth:`model.tokens.Tokenizer.words` gives them),
+        read off this batch: all of them in one flat list, and how many each comment has.
+
+        Parameters
+        ----------
+        rows : the comments to give, in this order (a comment may come more than once); all by default.
+
+        Raises
+        ------
+        ValueError : for features built from feature strings (:meth:`FeatureEncoder.tokens`), which carry no words.
+        """
+        if not isinstance(self.names, FeatureNames):
+            raise ValueError("Features.words: only features of texts (FeatureEncoder.texts) carry their words")
+        n_words = len(self.names.words)
+        counts = np.bincount(self.doc[:n_words], minlength=self.n).astype(np.int64)
+        if rows is None:
+            return _pick(self.names.words, np.arange(n_words)), counts
+        rows = np.asarray(rows, dtype=np.int64)
+        starts = np.cumsum(counts) - counts
+        wanted = counts[rows]
+        total = int(wanted.sum())
+        # each wanted comment's positions: its start, then one step per word
+        positions = np.repeat(starts[rows] - (np.cumsum(wanted) - wanted), wanted) + np.arange(total)
+        return _pick(self.names.words, positions), wanted
+
+
+@dataclass(frozen=True)
+class BatchWords:
+    """The words of a batch's comments as one scoring pass cut them, for a caller that needs them too.
+
+    Attributes
+    ----------
+    flat : every comment's words, one comment after the other.
+    counts : int64 (n,), words per comment.
+    params : :meth:`model.tokens.Tokenizer.word_params` of the tokenizer that cut them; a caller
+        whose own tokenizer has other word parameters must cut the texts itself.
+    """
+
+    flat: list[str]
+    counts: np.ndarray
+    params: dict
 
 
 _EMPTY = np.empty(0, dtype=np.int64)

@@ -160,9 +160,11 @@ class MinHasher:
             hashed = np.empty((self.num_perm, x.size), dtype=np.uint64)  # written in place: no temporaries
             np.multiply(self._a[:, None], x[None, :], out=hashed)
             np.add(hashed, self._b[:, None], out=hashed)
-            np.right_shift(hashed, np.uint64(32), out=hashed)
         seg_starts = np.flatnonzero(np.concatenate([[True], owners[1:] != owners[:-1]]))
-        out[owners[seg_starts]] = np.minimum.reduceat(hashed, seg_starts, axis=1).T.astype(np.uint32)
+        # the shift is monotone, so the minimum's high half is the minimum of the high halves: shifting the
+        # per-text minima gives the same signature as shifting every shingle's hash first
+        lowest = np.minimum.reduceat(hashed, seg_starts, axis=1)
+        out[owners[seg_starts]] = (lowest >> np.uint64(32)).T.astype(np.uint32)
         return out
 
 

@@ -272,6 +272,19 @@ class Tokenizer:
         out["char_ngrams"] = list(out["char_ngrams"])
         return out
 
+    def word_params(self) -> dict:
+        """The parameters that decide :meth:`words` (all but the bigram and n-gram switches): two
+        tokenizers with equal word parameters cut every text into the same words.
+
+        Examples
+        --------
+        >>> Tokenizer(bigrams=False).word_params() == Tokenizer(char_ngrams=(3, 4)).word_params()
+        True
+        """
+        out = self.params()
+        del out["bigrams"], out["char_ngrams"]
+        return out
+
     def __eq__(self, other):
         return isinstance(other, Tokenizer) and self.params() == other.params()
 

@@ -748,3 +748,111 @@ def test_members_known_before_scoring_are_explained_in_the_one_scoring_pass():
     assert all(reasons[0][0] == "hamward" for _i, action, _m, reasons in got if action == "publish")
     assert got == again  # the same verdicts, actions and reasons either way
     assert scored == 80 and scored_again == 80 + len(held)  # each comment scored once, members not again
+
+
+# --- the scoring pass's words --------------------------------------------------------------------
+
+def _words_texts() -> list[str]:
+    import random
+
+    from ops.lab.board import obfuscate
+
+    rng = np.random.default_rng(9)
+    plain = [campaign_text(i) for i in range(60)]
+    return (plain + [obfuscate(t, random.Random(i)) for i, t in enumerate(plain)]
+            + [ordinary_text(rng) for _ in range(60)]
+            + ["", "thanks!", "one two three four five six", "f r 3 3 c a s i n o now " * 3,
+               "Ｃａｌｌ +1 (555) 010-9999 or ma\u200bil me@casino.example today please do it now",
+               " ".join(FILLER * 40), "ПРИВЕТ друзья see https://www.Prize.Example/Ok and win win win"])
+
+
+def test_words_from_the_scoring_pass_give_the_band_keys_of_the_policys_own_cut():
+    from model.features import FeatureEncoder
+    from model.hashing import TokenHasher
+    from model.tokens import Tokenizer
+
+    p = policy(Clock())
+    texts = _words_texts()
+    # the model's tokenizer (bigrams on, its own chunk store), a batch with repeats as the worker's is
+    encoder = FeatureEncoder(Tokenizer(), TokenHasher(n_buckets=2**14))
+    distinct = list(dict.fromkeys(texts))
+    index = [distinct.index(t) for t in texts + texts[::7]]
+    batch = [distinct[i] for i in index]
+    words = encoder.texts(distinct).words(index)
+    from model.features import BatchWords
+    given = BatchWords(words[0], words[1], Tokenizer().word_params())
+    eligible, keys = p.band_keys(batch)
+    eligible_given, keys_given = p.band_keys(batch, given)
+    assert eligible.tolist() == eligible_given.tolist() and keys.tolist() == keys_given.tolist()
+    assert 0 < eligible.size < len(batch)
+
+
+def test_words_cut_by_other_rules_or_for_other_comments_are_not_used():
+    from model.features import BatchWords
+    from model.tokens import Tokenizer
+
+    p = policy(Clock())
+    texts = _words_texts()[:20]
+    want = p.band_keys(texts)[1].tolist()
+    bogus = ["bogus"] * (7 * len(texts))
+    counts = np.full(len(texts), 7)
+    other_rules = BatchWords(bogus, counts, Tokenizer(leet=False).word_params())
+    assert p.band_keys(texts, other_rules)[1].tolist() == want
+    other_batch = BatchWords(bogus[:-7], counts[:-1], Tokenizer().word_params())
+    assert p.band_keys(texts, other_batch)[1].tolist() == want
+    # and words that do qualify are the ones used (a bogus batch of them gives other keys)
+    assert p.band_keys(texts, BatchWords(bogus, counts, Tokenizer().word_params()))[1].tolist() != want
+
+
+def test_the_worker_gives_the_policy_its_models_words_and_the_verdicts_stay_the_same():
+    from model.classifier import EmbeddingClassifier
+    from worker.loader import StaticModelSource
+    from worker.redistransport import redis_consumer
+    from worker.settings import WorkerSettings
+
+    rng = np.random.default_rng(3)
+    train = [campaign_text(i) for i in range(40)] + [ordinary_text(rng) for _ in range(40)]
+    # the campaign's template taught as ham: the model publishes its members and the policy holds them
+    model = EmbeddingClassifier(dim=4, min_df=1, validation_share=0.0, seed=1).fit(train, [0] * 40 + [1] * 40)
+
+    class ScoreManyOnly:  # the model contract without encode: the policy cuts the words itself
+        version, created_at, thresholds = model.version, model.created_at, model.thresholds
+
+        def score_many(self, texts, *, top_k=5, spamward_from=None):
+            return model.score_many(texts, top_k=top_k, spamward_from=spamward_from)
+
+    class Recording(CampaignPolicy):
+        def will_hold(self, state, comments, words=None):
+            self.given.append(None if words is None else words.flat)
+            return super().will_hold(state, comments, words)
+
+    def run(scorer):
+        client, clock = fakeredis.FakeRedis(server=fakeredis.FakeServer()), Clock()
+        p = Recording(hasher=MinHasher(num_perm=32, shingle=3), bands=16, min_size=10, min_authors=3,
+                      window_s=600, min_words=6, hold=True, warmup_s=0, clock=clock)
+        p.given = []
+        c = redis_consumer(client=client, keys=KEYS, settings=WorkerSettings(block_ms=5, overlap_commit=False),
+                           model_source=StaticModelSource(model=scorer), consumer="w", policies=(p,), clock=clock)
+        c.prepare()
+        texts = _words_texts()
+        for batch in range(4):
+            for i in range(12):
+                text = campaign_text(12 * batch + i) if i % 2 else texts[(12 * batch + i) % len(texts)]
+                client.xadd(KEYS.comments, {"id": f"c{batch}-{i}", "text": text, "site": "news.example",
+                                            "author": f"fresh{12 * batch + i}"})
+            client.xadd(KEYS.comments, {"id": f"dup{batch}", "text": campaign_text(12 * batch + 1),
+                                        "site": "news.example", "author": "again"})
+            c.step()
+            clock.t += 20
+        # every field but the comment's stream id (the time it was sent)
+        return [{k: v for k, v in f.items() if k != b"stream_id"} for _sid, f in client.xrange(KEYS.verdicts)], p.given
+
+    got, given = run(model)
+    want, given_none = run(ScoreManyOnly())
+    assert got == want and len(got) == 52
+    assert sum(f.get(b"rule") == b"campaign" for f in got) >= 10
+    assert given_none == [None] * 4 and len(given) == 4 and all(w is not None for w in given)
+    from model.tokens import Tokenizer
+    tok = Tokenizer()
+    assert given[0] == [w for i in range(12) for w in tok.words(
+        campaign_text(i) if i % 2 else _words_texts()[i])] + tok.words(campaign_text(1))

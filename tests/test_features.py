@@ -418,3 +418,62 @@ def test_one_comment_ranking_breaks_ties_by_position_as_the_batch_path(trained, 
         assert got_score == pytest.approx(score, abs=1e-12)
         assert [t for t, _ in got] == [t for t, _ in want]
         np.testing.assert_allclose([c for _, c in got], [c for _, c in want], rtol=0, atol=1e-12)
+
+
+def _check_words(enc: FeatureEncoder, tok: Tokenizer, texts: list[str], rows) -> None:
+    # The reference is the whole pipeline, one comment at a time (Tokenizer.words).
+    flat, counts = enc.texts(texts).words(rows)
+    picked = range(len(texts)) if rows is None else rows
+    want = [tok.words(texts[i]) for i in picked]
+    assert counts.tolist() == [len(w) for w in want]
+    assert flat == [w for words in want for w in words]
+
+
+@pytest.mark.parametrize("params", [{}, {"bigrams": False}, {"char_ngrams": (3, 5)}, {"join_spaced": False}],
+                         ids=["default", "no-bigrams", "char-ngrams", "no-join-spaced"])
+def test_words_of_a_batch_equal_the_whole_pipeline(params):
+    tok = Tokenizer(**params)
+    enc = FeatureEncoder(tok, TokenHasher(n_buckets=2**18, seed=3))
+    texts = TEXTS + ["", "one", "   ", " ".join(["very", "long", "Ｗｏｒｄｓ", "x"] * 500)]
+    n = len(texts)
+    for rows in (None, list(range(n)), list(range(n))[::-1], [0, 0, n - 1, 3, 3, n - 3], [], [n - 4]):
+        _check_words(enc, tok, texts, rows)
+    _check_words(enc, tok, [], [])
+    _check_words(enc, tok, ["a b c d", ""], [1, 1])
+
+
+@settings(max_examples=100, deadline=None)
+@given(st.data())
+def test_words_of_a_batch_equal_the_whole_pipeline_on_any_text(data):
+    texts = data.draw(st.lists(_evasive_text | st.text(alphabet="ab c1.:/<>@$_ \u200bé\n", max_size=40),
+                               min_size=1, max_size=6))
+    rows = data.draw(st.lists(st.integers(0, len(texts) - 1), max_size=10))
+    tok = Tokenizer()
+    _check_words(FeatureEncoder(tok, TokenHasher(n_buckets=2**12)), tok, texts, rows)
+
+
+def test_features_of_feature_strings_carry_no_words():
+    enc = FeatureEncoder(Tokenizer(), TokenHasher(n_buckets=2**12))
+    with pytest.raises(ValueError, match="Features.words"):
+        enc.tokens([["free", "casino", "free_casino"]]).words()
+
+
+def test_word_params_leave_out_only_what_adds_features_beside_the_words():
+    assert Tokenizer().word_params() == Tokenizer(bigrams=False, char_ngrams=(2, 4)).word_params()
+    assert Tokenizer().word_params() != Tokenizer(leet=False).word_params()
+    assert set(Tokenizer().params()) - set(Tokenizer().word_params()) == {"bigrams", "char_ngrams"}
+
+
+@pytest.mark.parametrize("size", [1, FEW, FEW + 1, 40], ids=["one", "few", "few+1", "batch"])
+def test_an_encoded_batch_scores_as_score_many_and_gives_its_words(trained, size):
+    texts = (SPAM + HAM + TEXTS)[:size]
+    spamward_from = [0.5] * len(texts)
+    encoded = trained.encode(texts)
+    got_scores, got_reasons = trained.score_encoded(encoded, top_k=5, spamward_from=spamward_from)
+    want_scores, want_reasons = trained.score_many(texts, top_k=5, spamward_from=spamward_from)
+    assert got_scores.tolist() == want_scores.tolist() and got_reasons == want_reasons  # bit for bit
+    rows = list(range(len(texts)))[::-1] + [0]
+    words = encoded.words(rows)
+    assert words.params == trained._tokenizer.word_params()
+    assert words.counts.tolist() == [len(trained._tokenizer.words(texts[i])) for i in rows]
+    assert words.flat == [w for i in rows for w in trained._tokenizer.words(texts[i])]

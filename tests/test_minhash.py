@@ -119,3 +119,45 @@ def test_signatures_of_a_flat_word_list_equal_those_of_word_lists(max_words):
     assert (mh.signatures_of_flat([], []).shape) == (0, 32)
     with pytest.raises(ValueError, match="counts"):
         mh.signatures_of_flat(flat, [1, 2])
+
+
+def _plain_signature(mh: MinHasher, words: list[str]) -> list[int]:
+    """One text's signature computed word by word in plain Python integers, as the module doc states it:
+    each word's CRC-32 (zlib, the standard's reference polynomial), each shingle's CRCs folded in with a
+    multiply-add and MurmurHash3's 64-bit finalizer (its published constants), then per permutation the
+    minimum of ``((a x + b) mod 2**64) >> 32`` (Dietzfelbinger 1996)."""
+    import zlib
+
+    mask = (1 << 64) - 1
+
+    def fmix(x):
+        x ^= x >> 33
+        x = (x * 0xFF51AFD7ED558CCD) & mask
+        x ^= x >> 33
+        x = (x * 0xC4CEB9FE1A85EC53) & mask
+        return x ^ (x >> 33)
+
+    words = words[: mh.max_words]
+    if not words:
+        return [0xFFFFFFFF] * mh.num_perm
+    crc = [zlib.crc32(w.encode("utf-8")) for w in words]
+    starts = range(max(len(words) - mh.shingle, 0) + 1)
+    shingles = []
+    for s in starts:
+        combined = 0
+        for j in range(mh.shingle):
+            part = crc[s + j] + 1 if s + j < len(words) else 0
+            combined = (combined * 0x9E3779B97F4A7C15 + part) & mask
+        shingles.append(fmix(combined) >> 32)
+    return [min((((a * x + b) & mask) >> 32) for x in shingles)
+            for a, b in zip(mh._a.tolist(), mh._b.tolist())]
+
+
+@pytest.mark.parametrize("shingle", [1, 3])
+def test_signatures_equal_a_plain_integer_computation(shingle):
+    rng = np.random.default_rng(4)
+    mh = MinHasher(num_perm=32, shingle=shingle, max_words=20)
+    texts = [list(rng.choice(VOCAB, size=n)) for n in (0, 1, 2, 3, 5, 19, 20, 21, 60)] + [["é", "🎰", "x"] * 3]
+    got = mh.signatures_of_words([list(map(str, t)) for t in texts])
+    for text, row in zip(texts, got.tolist()):
+        assert row == _plain_signature(mh, list(map(str, text)))

@@ -8,7 +8,9 @@ For each batch, :class:`CampaignPolicy`:
    tokenizer configuration (:data:`CAMPAIGN_TOKENIZER`: NFKC, look-alike
    letters, zero-width characters, leetspeak, spaced letters, link markers),
    whatever model the worker serves, so that spelling tricks cannot split a
-   family and every worker computes the same shingles;
+   family and every worker computes the same shingles (when the served
+   model's tokenizer cuts the same words, the worker hands over the words of
+   its scoring pass, :class:`model.features.BatchWords`, instead);
 2. computes their MinHash signatures and LSH band keys (:mod:`model.minhash`);
    a band key names a *bucket*, a family of comments that agree on that band;
 3. reads what other workers saw since its last batch and the first sightings
@@ -68,6 +70,7 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
+import operator
 import time
 from collections import Counter
 from collections.abc import Callable, Sequence
@@ -75,6 +78,7 @@ from collections.abc import Callable, Sequence
 import numpy as np
 
 from model.actions import Action
+from model.features import BatchWords
 from model.minhash import MinHasher, band_hashes
 from model.params import flag, integer, one_of, real, set_params
 from model.tokens import Tokenizer
@@ -144,6 +148,20 @@ def _get(comment, name: str) -> str:
     return value if isinstance(value, str) else str(value or "")
 
 
+def _fields(comments: Sequence, name: str) -> list[str]:
+    """``[_get(c, name) for c in comments]``, in one pass of C calls when every comment holds the field as a
+    str attribute (the worker's comments)."""
+    if any(issubclass(t, dict) for t in set(map(type, comments))):
+        return [_get(c, name) for c in comments]
+    try:
+        values = list(map(operator.attrgetter(name), comments))
+    except AttributeError:
+        return [_get(c, name) for c in comments]
+    if values and set(map(type, values)) != {str}:
+        return [_get(c, name) for c in comments]
+    return values
+
+
 class SiteScores:
     """Each site's recent scores, kept by one worker: the baseline a family's scores lean against.
 
@@ -192,6 +210,32 @@ class SiteScores:
             state[1] = min(self.size, state[1] + values.size)
 
 
+class SortedKeys:
+    """A batch's band keys (comments x bands) with one stable argsort of their flat places, which every
+    membership test of the batch shares: sorted queries walk a sorted table once."""
+
+    def __init__(self, keys: np.ndarray):
+        self.keys = keys
+        self.flat = keys.ravel()
+        self.order = np.argsort(self.flat, kind="stable")
+        self.ordered = self.flat[self.order]
+
+    def places_in(self, table: np.ndarray) -> np.ndarray:
+        """Where each key would go in ``table`` (sorted, not empty): ``np.searchsorted(table, keys)``, clipped to
+        the last place, in the shape of the keys."""
+        at = np.empty(self.flat.size, dtype=np.intp)
+        at[self.order] = np.searchsorted(table, self.ordered)
+        np.minimum(at, table.size - 1, out=at)
+        return at.reshape(self.keys.shape)
+
+    def isin(self, values: np.ndarray) -> np.ndarray:
+        """``np.isin(keys, values)``."""
+        if not values.size:
+            return np.zeros(self.keys.shape, dtype=bool)
+        table = np.sort(values)
+        return table[self.places_in(table)] == self.keys
+
+
 def _sorted_unique(values: np.ndarray, kind: str | None = None) -> np.ndarray:
     values = np.sort(values, kind=kind)
     if values.size < 2:
@@ -224,14 +268,16 @@ class Sightings:
         """This worker's offset into the slot's list (0 for a slot it has not read yet: a start, a new slot)."""
         return self._slots.setdefault(slot, [[], 0, set()])[1]
 
-    def find(self, slot: int, values: np.ndarray) -> tuple[np.ndarray, int]:
-        """Which ``values`` the slot has seen, and this worker's offset into the slot's list."""
+    def find(self, slot: int, values: np.ndarray, order: np.ndarray | None = None) -> tuple[np.ndarray, int]:
+        """Which ``values`` the slot has seen, and this worker's offset into the slot's list; ``order``, when
+        given, is an argsort of ``values``."""
         for old in [s for s in self._slots if s < slot - 1]:
             del self._slots[old]
         chunks, offset, _own = self._slots.setdefault(slot, [[], 0, set()])
         found = np.zeros(values.size, dtype=bool)
         if chunks:
-            order = np.argsort(values)  # sorted queries: searches that walk each chunk once
+            if order is None:
+                order = np.argsort(values)  # sorted queries: searches that walk each chunk once
             ordered = values[order]
             hit = np.zeros(values.size, dtype=bool)
             for chunk in chunks:
@@ -358,6 +404,7 @@ class CampaignPolicy:
         self.clock = clock
         self.events_maxlen = events_maxlen
         self.tokenizer = Tokenizer(**CAMPAIGN_TOKENIZER)
+        self._word_params = self.tokenizer.word_params()
         self.tag = scheme_tag(hasher, bands)
         self.rules = BucketRules(min_size=min_size, link_size=link_size, min_authors=min_authors,
                                  peak_ratio=peak_ratio, burst_ratio=burst_ratio, window_s=window_s)
@@ -376,20 +423,22 @@ class CampaignPolicy:
         self._first_seen_generation = None
         self._site_since: dict[str, int] = {}
         self._since: float | None = None  # when the detector first ran with this scheme
-        self._early: dict | None = None  # members found by will_hold, for the apply of the same batch
-        self._early_batch: frozenset[int] = frozenset()
+        self._early: tuple | None = None  # (comments, members) will_hold found, for the apply of the same batch
 
-    def will_hold(self, state, comments: Sequence) -> set[int]:
+    def will_hold(self, state, comments: Sequence, words: BatchWords | None = None) -> set[int]:
         """The batch's campaign members, found before scoring when the scores change nothing about them (the
         second signal is new authors only) and members are held; :meth:`apply` then uses what this found
-        instead of observing the batch again.  (See :func:`worker.policies.held_before_scoring`.)"""
+        instead of observing the batch again.  (See :func:`worker.policies.held_before_scoring`.)
+
+        ``words`` are the comments' words from the worker's scoring pass, used when its tokenizer cuts
+        words as :data:`CAMPAIGN_TOKENIZER` does (see :meth:`band_keys`)."""
         self._early = None
         if not self.hold or self.signals != "authors" or not comments:
             return set()
-        members = self.observe(state.campaigns, comments, None)
-        # by object: the worker routes the same comment objects (fewer, if some are dead-lettered in between)
-        self._early = {id(comments[i]): (comments[i], campaign) for i, campaign in members.items()}
-        self._early_batch = frozenset(map(id, comments))
+        members = self.observe(state.campaigns, comments, None, words=words)
+        # by object: the worker routes the same comment objects (fewer, if some are dead-lettered in between);
+        # the tuple keeps them alive, so their ids stay theirs until apply
+        self._early = (tuple(comments), members)
         return set(members)
 
     def apply(self, state, comments: Sequence, scores: Sequence[float], decisions: list[Decision]) -> list[Decision]:
@@ -397,21 +446,37 @@ class CampaignPolicy:
 
         ``state`` is the worker's :class:`worker.policies.PolicyState`; its ``campaigns`` is the store.
         """
-        early, self._early = self._early, None
-        if early is not None and self._early_batch.issuperset(map(id, comments)):  # observed by will_hold
-            members = {i: early[id(c)][1] for i, c in enumerate(comments) if id(c) in early and early[id(c)][0] is c}
-        else:
+        members = self._early_members(comments)
+        if members is None:
             members = self.observe(state.campaigns, comments, scores)
         if not members:
             return list(decisions)
         out = list(decisions)
+        shared: dict[tuple, Decision] = {}  # a Decision is immutable: one per (action, rule, campaign)
         for i, campaign in members.items():
             d = out[i]
             if self.hold and d.action == Action.PUBLISH:
-                out[i] = Decision(Action.HOLD, CAMPAIGN_RULE, campaign)
+                key = (Action.HOLD, CAMPAIGN_RULE, campaign)
             else:
-                out[i] = Decision(d.action, d.rule, campaign)
+                key = (d.action, d.rule, campaign)
+            decision = shared.get(key)
+            if decision is None:
+                decision = shared[key] = Decision(*key)
+            out[i] = decision
         return out
+
+    def _early_members(self, comments: Sequence) -> dict[int, str] | None:
+        """The members :meth:`will_hold` found, by place in ``comments``, when it saw every one of them; else None."""
+        early, self._early = self._early, None
+        if early is None:
+            return None
+        seen, members = early
+        if len(comments) == len(seen) and all(map(operator.is_, comments, seen)):  # the same batch, in order
+            return members
+        place = {id(c): i for i, c in enumerate(seen)}
+        if not all(id(c) in place for c in comments):
+            return None
+        return {i: members[place[id(c)]] for i, c in enumerate(comments) if place[id(c)] in members}
 
     def window(self, now: float) -> Window:
         """The state a batch at ``now`` touches: its slot and its history and author generations."""
@@ -426,28 +491,31 @@ class CampaignPolicy:
     # -- the batch -------------------------------------------------------------------------
 
     def observe(self, store: CampaignStore, comments: Sequence,
-                scores: Sequence[float] | None = None) -> dict[int, str]:
+                scores: Sequence[float] | None = None, *, words: BatchWords | None = None) -> dict[int, str]:
         """Record the batch in the shared state; return ``{index: campaign id}`` of campaign members.
 
         ``scores`` are the model's spam probabilities of ``comments`` (or None):
-        they feed the spam-ward lean signal.
+        they feed the spam-ward lean signal.  ``words``: see :meth:`band_keys`.
         """
         if not comments:
             return {}
         now = self.clock()
-        texts = [_get(c, "text") for c in comments]
-        sites = [_get(c, "site") for c in comments]
+        texts = _fields(comments, "text")
+        sites = _fields(comments, "site")
         if scores is not None and len(scores) != len(comments):
             raise ValueError(f"campaigns: {len(scores)} scores for {len(comments)} comments")
-        eligible, keys = self.band_keys(texts)
-        flat = keys.ravel()
-        _, first_places = np.unique(flat, return_index=True)
+        eligible, keys = self.band_keys(texts, words)
+        batch = SortedKeys(keys)  # one sort serves the first places and every membership test of the batch
+        flat, order, ordered = batch.flat, batch.order, batch.ordered
+        starts = np.ones(ordered.size, dtype=bool)
+        np.not_equal(ordered[1:], ordered[:-1], out=starts[1:])
+        first_places = order[starts]  # each distinct key's first place, in key order (as np.unique gives them)
         repeated = np.ones(flat.size, dtype=bool)  # the key occurs earlier in the batch
         repeated[first_places] = False
         window = self.window(now)
         slot = window.slot
-        names = [_get(c, "author") for c in comments]
-        authors = [author_key(site, name, _get(c, "id")) for site, name, c in zip(sites, names, comments)]
+        names = _fields(comments, "author")
+        authors = list(map(author_key, sites, names, _fields(comments, "id")))
         if window.generation != self._first_seen_generation or len(self._first_seen) > _MAX_KNOWN_AUTHORS:
             self._first_seen, self._first_seen_generation = {}, window.generation
         # a comment with no author is its own author, first seen now: nothing to look up or keep
@@ -463,10 +531,10 @@ class CampaignPolicy:
         self._site_since.update(opening.site_since)
         self._sightings.add(slot, opening.sightings[0])
         self._sightings.add(slot - 1, opening.sightings[1])
-        in_cur, _ = self._sightings.find(slot, flat)
-        in_prev, _ = self._sightings.find(slot - 1, flat)
+        in_cur, _ = self._sightings.find(slot, flat, order)
+        in_prev, _ = self._sightings.find(slot - 1, flat, order)
         hit = repeated | in_cur | in_prev
-        known, skip, weights = self._known_members(keys, hit, now)
+        known, skip, weights = self._known_members(batch, hit, now)
         hit[skip] = False  # hits this worker leaves uncounted
         firsts = flat[first_places[~in_cur[first_places]]]  # first sightings in this slot, once each
         history_s = max(now - max(self._since, self._history_start(now)) - self.window_s, float(self.window_s))
@@ -486,7 +554,7 @@ class CampaignPolicy:
                                            firsts=firsts.astype(">u8").tobytes(),
                                            bands=bands)
             self._sightings.add(slot, [], firsts, place=observed.place)
-        members = self._decide(store, window, comments, eligible, keys, known, opening.active, observed,
+        members = self._decide(store, window, comments, eligible, batch, known, opening.active, observed,
                                history_s, now)
         if scores is not None and self.signals != "authors":
             plain = [i for i in range(len(comments)) if i not in members]
@@ -560,15 +628,22 @@ class CampaignPolicy:
         return out
 
 
-    def band_keys(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+    def band_keys(self, texts: Sequence[str], words: BatchWords | None = None) -> tuple[np.ndarray, np.ndarray]:
         """The comments with at least ``min_words`` normalized words, and their LSH band keys.
 
         Returns their indices in ``texts`` and a ``(len(indices), bands)``
         uint64 array: the MinHash bands of word shingles of the tokens of
-        :data:`CAMPAIGN_TOKENIZER`, the same on every worker.
+        :data:`CAMPAIGN_TOKENIZER`, the same on every worker.  ``words``, the
+        texts' words as another pass cut them, stand in for cutting them again
+        when that pass's tokenizer has the word parameters of
+        :data:`CAMPAIGN_TOKENIZER` (it then cuts the same words); otherwise
+        they are ignored.
         """
-        flat, counts = self.tokenizer.words_many(texts)
-        counts = np.asarray(counts, dtype=np.int64)
+        if words is not None and len(words.counts) == len(texts) and words.params == self._word_params:
+            flat, counts = words.flat, np.asarray(words.counts, dtype=np.int64)
+        else:
+            flat, counts = self.tokenizer.words_many(texts)
+            counts = np.asarray(counts, dtype=np.int64)
         eligible = np.flatnonzero(counts >= self.min_words)
         if eligible.size < counts.size:  # keep only the eligible comments' words
             ends = np.cumsum(counts)
@@ -592,10 +667,12 @@ class CampaignPolicy:
         return int((now // generation_s - 1) * generation_s)
 
 
-    def _decide(self, store: CampaignStore, window: Window, comments, eligible, keys, known: dict[int, str],
-                active: set[str] | None, observed: Observed, history_s: float, now: float) -> dict[int, str]:
+    def _decide(self, store: CampaignStore, window: Window, comments, eligible, batch: SortedKeys,
+                known: dict[int, str], active: set[str] | None, observed: Observed, history_s: float,
+                now: float) -> dict[int, str]:
         if not observed.buckets and not known and not observed.linked:  # the usual batch: nothing dense and bursty
             return {}
+        keys = batch.keys
         # read with the batch when this worker knows links (it will need them), else only now
         active = set(active) if active is not None else store.active_campaigns()
         members: dict[int, str] = {}
@@ -611,14 +688,14 @@ class CampaignPolicy:
                 linked[key] = campaign
                 self._learn(key, campaign, now)
         if linked:
-            on_link = np.isin(keys, np.fromiter(linked, dtype=np.uint64, count=len(linked)))
+            on_link = batch.isin(np.fromiter(linked, dtype=np.uint64, count=len(linked)))
             for row in np.flatnonzero(on_link.any(axis=1)).tolist():
                 members.setdefault(int(eligible[row]), linked[int(keys[row][on_link[row]][0])])
         figures = observed.buckets  # band key -> (band, members, authors, new hits, lean hits, history, peak)
         # (dense, qualifies) of each bucket: qualifying buckets are bursty and carry the second signal
         flags = {key: self._bucket_flags(t, a, w, h, e, m, history_s)
                  for key, (_band, t, a, w, h, e, m) in figures.items()}
-        on_bucket = np.isin(keys, np.fromiter(flags, dtype=np.uint64, count=len(flags))) if flags else None
+        on_bucket = batch.isin(np.fromiter(flags, dtype=np.uint64, count=len(flags))) if flags else None
         links: dict[tuple[int, int], str] = {}  # (band, band key) this batch links, with their campaign
         linked_now: dict[int, str] = {}
         seeds: dict[str, set[str]] | None = None  # campaign -> its first member's band keys, read when needed
@@ -699,9 +776,9 @@ class CampaignPolicy:
                 "expected": round(expected, 3),
                 "by": [n for n, on in (("authors", by_authors), ("lean", by_lean)) if on]}
 
-    def _known_members(self, keys: np.ndarray, hit: np.ndarray,
+    def _known_members(self, batch: SortedKeys, hit: np.ndarray,
                        now: float) -> tuple[dict[int, str], np.ndarray, dict[int, int]]:
-        """Rows of ``keys`` (comments x bands) with a band key this worker saw linked, as ``{row: campaign}``;
+        """Rows of ``batch.keys`` (comments x bands) with a band key this worker saw linked, as ``{row: campaign}``;
         then which of those keys' hits (``hit``, over the flat places) the batch leaves uncounted and which
         count for several (``{1-based place: hits it stands for}``).
 
@@ -714,6 +791,7 @@ class CampaignPolicy:
         slot at a fraction of the Redis work; the members are counted in their
         campaign each batch all the same.
         """
+        keys = batch.keys
         if not self._links or not keys.size:
             return {}, np.zeros(0, dtype=np.int64), {}
         if now >= self._purge_at:  # forget expired links now and then, not every batch
@@ -727,18 +805,25 @@ class CampaignPolicy:
             self._links_sorted = np.sort(np.fromiter(self._links, dtype=np.uint64, count=len(self._links)))
             self._links_added.clear()
         elif self._links_added:  # a flood learns a few dozen links a batch: merged, not rebuilt
-            self._links_sorted = np.union1d(self._links_sorted, np.array(self._links_added, dtype=np.uint64))
+            added = np.unique(np.array(self._links_added, dtype=np.uint64))
+            at = np.searchsorted(self._links_sorted, added)
+            held = at < self._links_sorted.size
+            held[held] = self._links_sorted[at[held]] == added[held]
+            # np.union1d without sorting the held keys again: each new key goes before the first larger one
+            self._links_sorted = np.insert(self._links_sorted, at[~held], added[~held])
             self._links_added.clear()
-        at = np.searchsorted(self._links_sorted, keys)
-        np.minimum(at, self._links_sorted.size - 1, out=at)
-        learnt = self._links_sorted[at] == keys
+        learnt = self._links_sorted[batch.places_in(self._links_sorted)] == keys
         rows = np.flatnonzero(learnt.any(axis=1))
         first_learnt = keys[rows, learnt[rows].argmax(axis=1)].tolist()
         known = {r: self._links[k][0] for r, k in zip(rows.tolist(), first_learnt)}
-        places = np.flatnonzero(learnt.ravel() & hit)  # a first sighting is no hit: it neither counts nor waits
-        order = np.argsort(keys.ravel()[places], kind="stable")
-        places = places[order]  # grouped by key, in arrival order within a key
-        uniq, starts, counts = np.unique(keys.ravel()[places], return_index=True, return_counts=True)
+        counted = learnt.ravel() & hit  # a first sighting is no hit: it neither counts nor waits
+        places = batch.order[counted[batch.order]]  # grouped by key, in arrival order within a key
+        grouped = keys.ravel()[places]  # sorted: each key's run starts where the key changes
+        edge = np.ones(grouped.size, dtype=bool)
+        np.not_equal(grouped[1:], grouped[:-1], out=edge[1:])
+        starts = np.flatnonzero(edge)
+        uniq = grouped[starts]
+        counts = np.diff(np.append(starts, grouped.size))
         pending, last = self._pending.get(uniq)
         stale = now - last >= self.window_s / _KNOWN_FLUSH
         # a stale key counts its first hit at once, standing for what was pending and for the batch's other

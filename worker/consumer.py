@@ -14,7 +14,10 @@ One loop iteration (:meth:`StreamConsumer.step`):
    a comment read from a partition its id does not belong to (a producer's
    mistake, :mod:`worker.partitions`) becomes ``wrong_partition`` in the
    dead-letter stream of the partition it was read from;
-4. score all valid comments in ONE ``score_many`` call, decide each by the
+4. score all valid comments in ONE ``score_many`` call (with batch policies and
+   a model that can, ``encode`` first and ``score_encoded`` after the policies'
+   look before scoring, which get the comments' words from that one pass),
+   decide each by the
    effective cutoffs of its site (:class:`worker.routing.Router`), let the
    batch policies adjust the decisions, and make sure the reasons of held and
    rejected comments list their spam-ward tokens first;
@@ -372,8 +375,11 @@ class StreamConsumer:
         slots: dict[str, int] = {}
         index = [slots.setdefault(c.text, len(slots)) for c in comments]
         cutoffs = self._router.hold_cutoffs([c.site for c in comments])
+        texts = list(slots)
+        encoded = None
         if self.policies:  # comments a policy holds whatever they score: their reasons ranked spam-ward now
-            for i in held_before_scoring(self.policies, self.state, comments):
+            encoded, words = self._encode(model, texts, index)
+            for i in held_before_scoring(self.policies, self.state, comments, words):
                 cutoffs[i] = 0.0
         if len(slots) < len(comments):
             # One text on sites with different hold cutoffs is ranked for the highest of them;
@@ -385,7 +391,10 @@ class StreamConsumer:
                 seen[slot] = True
             cutoffs = highest
         try:
-            scores, reasons = model.score_many(list(slots), top_k=TOP_K, spamward_from=cutoffs)
+            if encoded is not None:
+                scores, reasons = model.score_encoded(encoded, top_k=TOP_K, spamward_from=cutoffs)
+            else:
+                scores, reasons = model.score_many(texts, top_k=TOP_K, spamward_from=cutoffs)
             scores = [float(s) for s in scores]
             if len(scores) != len(slots) or len(reasons) != len(slots):
                 raise ValueError(f"score_many returned {len(scores)} scores for {len(slots)} texts")
@@ -397,6 +406,21 @@ class StreamConsumer:
             reasons = [reasons[i] for i in index]
             cutoffs = [cutoffs[i] for i in index]
         return self._route(comments, scores, reasons, cutoffs)
+
+    @staticmethod
+    def _encode(model, texts: list[str], index: list[int]):
+        """The batch cut into features once, for the policies (its words) and for scoring, when the model
+        can (``encode``/``score_encoded``; the model contract needs only ``score_many``): ``(encoded, words
+        of each comment)``, or ``(None, None)``.  A text the model fails on is isolated by scoring."""
+        encode = getattr(model, "encode", None)
+        if encode is None or getattr(model, "score_encoded", None) is None:
+            return None, None
+        try:
+            encoded = encode(texts)
+            return encoded, encoded.words(index)
+        except Exception:  # noqa: BLE001 - score_many meets the same text and isolates it
+            log.debug("encoding the batch for its policies failed; scoring will isolate the text")
+            return None, None
 
     def _score_each(self, comments: list[Comment]) -> tuple[list[Verdict], list[DeadLetter]]:
         good, scores, reasons, cutoffs, dead = [], [], [], [], []

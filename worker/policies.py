@@ -18,11 +18,14 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Sequence
-from typing import Protocol, runtime_checkable
+from typing import TYPE_CHECKING, Protocol, runtime_checkable
 
 from worker.campaignstore import CampaignStore
 from worker.routing import Decision
 from worker.transport import TransientError
+
+if TYPE_CHECKING:
+    from model.features import BatchWords
 
 log = logging.getLogger("seawall.worker.policies")
 
@@ -42,10 +45,13 @@ class BatchPolicy(Protocol):
               decisions: list[Decision]) -> list[Decision]: ...
 
 
-def held_before_scoring(policies: Sequence[BatchPolicy], state: PolicyState, comments) -> set[int]:
+def held_before_scoring(policies: Sequence[BatchPolicy], state: PolicyState, comments,
+                        words: BatchWords | None = None) -> set[int]:
     """The comments some policy will hold whatever they score, when it can tell before they are scored.
 
-    A policy tells by an optional method ``will_hold(state, comments) -> set of indices``.  The worker then
+    A policy tells by an optional method ``will_hold(state, comments, words) -> set of indices``; ``words``
+    (a :class:`model.features.BatchWords` or None) are the comments' words as the worker's model cut them
+    for scoring, for a policy that would cut them the same way.  The worker then
     ranks those comments' reasons spam-ward first in its one scoring pass instead of scoring them a second
     time after routing.  A failure costs only that ranking (logged); a lost connection to the state store
     propagates as :class:`TransientError`, as in :func:`apply_policies`.
@@ -57,7 +63,7 @@ def held_before_scoring(policies: Sequence[BatchPolicy], state: PolicyState, com
             continue
         try:
             with state.guard():
-                out.update(i for i in will_hold(state, comments) if 0 <= i < len(comments))
+                out.update(i for i in will_hold(state, comments, words) if 0 <= i < len(comments))
         except TransientError:
             raise
         except Exception:  # a policy's bug: the reasons are ranked after routing, as without the hint
