@@ -410,6 +410,26 @@ class Tokenizer:
             text = apply(text)
         return text
 
+    def chunk_rules_change(self, text: str) -> bool:
+        """Whether the chunk rules across chunks change this comment, so that
+        :meth:`prepare` cuts it into other chunks than :meth:`chunks_many` does.
+
+        A comment whose chunks' marks hold a chunk rule's run may still be left
+        as it is (``"call 555 then"`` has no spaced-out number); when it is, its
+        words are its chunks' tokens unless a token rule's run stands in them.
+
+        Examples
+        --------
+        >>> tok = Tokenizer()
+        >>> tok.chunk_rules_change("call 555 then"), tok.chunk_rules_change("call 555 123 4567")
+        (False, True)
+        """
+        lowered = text.lower() if text.isascii() else text
+        prepared = lowered
+        for apply in self._text_rules:
+            prepared = apply(prepared)
+        return prepared != lowered
+
     def _unigrams(self, text: str, caller: str) -> list[str]:
         """One comment's words, for the method ``caller``; a TypeError names it when ``text`` is no str."""
         if not isinstance(text, str):

@@ -199,6 +199,28 @@ def test_one_comment_path_splices_links_as_the_batch_path_pairs_them(text, monke
     _check_same(enc, tok, [text, text.upper()])
 
 
+@pytest.mark.parametrize("texts, whole", [
+    (["see https://prize.example/123 456 now", "call 555 then 12 more", "plain words only"], []),
+    (["call 555 010 9999 now", "555 then 7 8", "(555) 010-9999 or 555 010 9999"], [0, 2]),
+    (["a b c 555 7", "x 1 2 3 y", "spaced 5 5 5 and 12 34"], [0, 1, 2]),
+    (["", "555", "555 666", "ünï 555 010 9999 cödé", "999 " * 200, "12 34 56 78 90"], [3, 5]),
+], ids=["hints-only", "phones", "spaced-letters", "edges"])
+def test_a_chunk_rule_hint_that_changes_nothing_keeps_the_chunks_tokens(texts, whole, monkeypatch):
+    # Two neighbouring chunks that may be one spaced-out phone number only hint
+    # at one: the batch path sends a comment to the whole pipeline when the
+    # chunk rule does change it, or when a token rule's run stands in its
+    # tokens; either way the words are the whole pipeline's.
+    tok = Tokenizer()
+    enc = FeatureEncoder(tok, TokenHasher(n_buckets=2**14))
+    sent = []
+    words_many = tok.words_many
+    monkeypatch.setattr(tok, "words_many", lambda ts: sent.extend(ts) or words_many(ts))
+    enc.texts(texts)
+    assert sent == [texts[i] for i in whole]
+    _check_same(enc, tok, texts)
+    _check_same(FeatureEncoder(Tokenizer(), TokenHasher(n_buckets=2**14)), tok, texts[::-1])
+
+
 def test_whole_link_chunks_equal_the_regex_route():
     # Links with a scheme or www. skip the regular expressions; the result must not differ.
     tok = Tokenizer()
