@@ -11,6 +11,7 @@ from hypothesis import given, settings, strategies as st
 from sklearn.utils import murmurhash3_32
 
 import model.normalization
+import model.tokens
 from model import artifact
 from model.classifier import FEW, EmbeddingClassifier
 from model.errors import ArtifactError
@@ -249,6 +250,31 @@ def test_links_to_one_host_share_an_entry_with_the_same_tokens():
     before = len(enc._store)
     _check_same(enc, tok, [" ".join(chunks), "see https://prize.example/9 555 010 9999 now"])
     assert len(enc._store) - before < len(chunks) + 8
+
+
+_LINK_PART = st.text(alphabet="abcz09.-_/:?=&%#@!~()[]<>\"'`A\\ é\x7f", max_size=12)
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.sampled_from(["https://", "http://", "ftp://", "ftps://", "HTTPS://", "www.", "https:/", ""]),
+       _LINK_PART, st.sampled_from(["", "/", "//", ".", "-", "_"]), _LINK_PART)
+def test_the_plain_link_match_gives_the_alias_of_the_checks(scheme, host, cut, path):
+    # The usual link takes one regular expression instead of the checks one by
+    # one; both must give the same key (or None) for any chunk.
+    chunk = scheme + host + cut + path
+    assert Tokenizer.chunk_alias(chunk) == Tokenizer._alias_by_checks(chunk), chunk
+
+
+def test_the_plain_link_match_takes_the_usual_links():
+    links = ["https://prize.example/4863", "http://a-b.example/x?id=7&p=%20", "ftp://h.example/f.txt",
+             "https://prize.example/claim(1).", "https://9.example/", "https://h.example/a_b/[x]~"]
+    for chunk in links:
+        assert model.tokens._PLAIN_LINK.fullmatch(chunk) is not None, chunk
+        assert Tokenizer.chunk_alias(chunk) == Tokenizer._alias_by_checks(chunk) is not None
+    for chunk in ["https://Prize.example/1", "https://a_b.example/1", "https://h.example./1", "https://h.example",
+                  "https://h.example/<b>", "https://h.example/é", "www.h.example/1"]:
+        assert model.tokens._PLAIN_LINK.fullmatch(chunk) is None, chunk
+        assert Tokenizer.chunk_alias(chunk) == Tokenizer._alias_by_checks(chunk)
 
 
 def test_names_take_matches_indexing():
