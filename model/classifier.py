@@ -313,9 +313,8 @@ class EmbeddingClassifier:
             norm = np.sqrt(np.bincount(pair_doc, weights=counts * counts, minlength=n))
         else:
             norm = lengths.astype(np.float64)
-        weight = counts / norm[pair_doc] if keys.size else counts
-        indptr = np.zeros(n + 1, dtype=np.int64)
-        np.cumsum(np.bincount(pair_doc, minlength=n), out=indptr[1:])
+        indptr = np.searchsorted(pair_doc, np.arange(n + 1, dtype=pair_doc.dtype))  # pair_doc is sorted
+        weight = counts / np.repeat(norm, np.diff(indptr)) if keys.size else counts
         bucket = keys & key_type(self.buckets - 1)
         return _Bag(n, pair_doc, bucket, weight, first, features.names, indptr)
 

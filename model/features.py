@@ -263,7 +263,7 @@ class FeatureEncoder:
         n = len(texts)
         ids, chunk_doc = self._chunk_ids(texts)
         pos, doc, marks = self._tokens_of(ids, chunk_doc)
-        redo = self._needs_whole_pipeline(ids, chunk_doc, marks, doc)
+        redo = self._needs_whole_pipeline(texts, ids, chunk_doc, marks, doc)
         if redo is not None:
             pos, doc, marks = self._tokens_of(*self._replace(texts, redo, ids, chunk_doc))
         hashes = self._store.hashes[pos]
@@ -304,11 +304,13 @@ class FeatureEncoder:
         pos, size = self._store.expand(ids)
         return pos, np.repeat(chunk_doc, size), self._store.marks[pos]
 
-    def _needs_whole_pipeline(self, ids, chunk_doc, marks, doc) -> np.ndarray | None:
+    def _needs_whole_pipeline(self, texts, ids, chunk_doc, marks, doc) -> np.ndarray | None:
         """Comments whose words are not just their chunks' tokens (see
-        :meth:`Tokenizer.chunk_entry`): the run of one of the tokenizer's rules
-        across chunks (:func:`model.normalization.needs_whole_pipeline`, for
-        a whole batch) in their chunks' or tokens' marks."""
+        :meth:`Tokenizer.chunk_entry`): the run of a token rule across chunks
+        (:func:`model.normalization.needs_whole_pipeline`, for a whole batch)
+        in their tokens' marks, or the run of a chunk rule in their chunks'
+        marks when that rule does change the comment (as on the one-comment
+        path, which cuts the comment after the chunk rules)."""
         found = []
         chunk_bits = None
         for rule in self.tokenizer.rules:
@@ -316,6 +318,9 @@ class FeatureEncoder:
                 if chunk_bits is None:
                     chunk_bits = self._store.chunk_marks[ids]
                 at = _runs(chunk_bits, chunk_doc, rule.run)
+                if at.size:  # a run of the marks is only a hint ("555 then" is no spaced-out number)
+                    changes = self.tokenizer.chunk_rules_change
+                    at = np.array([d for d in np.unique(at).tolist() if changes(texts[d])], dtype=at.dtype)
             else:
                 at = _runs(marks, doc, rule.run)
             if at.size:

@@ -9,6 +9,7 @@ sees the tokens it was trained on.
 """
 from __future__ import annotations
 
+import re
 from itertools import chain, islice
 from numbers import Integral
 
@@ -42,6 +43,16 @@ CHUNK_SEPARATOR = " \x00 "
 _PREFIX_MARKS = {"<url>": MARK_URL, DOMAIN_PREFIX: MARK_DOMAIN}
 
 _CHUNK_CACHE_SIZE = 1 << 16  # distinct whitespace chunks remembered per tokenizer; bounded
+
+#: The usual link chunk, for which every check of :meth:`Tokenizer.chunk_alias`
+#: passes: a scheme, a host of lowercase ASCII letters, digits, dots and dashes
+#: that ends in a letter or digit (no "_", no trailing punctuation), then a path
+#: of printable ASCII without the characters that end a link.  Group 1 is the
+#: part before the path.  Any other chunk takes the checks one by one.
+_PLAIN_LINK = re.compile(
+    "((?:" + "|".join(map(re.escape, LINK_SCHEMES)) + ")[a-z0-9.-]*[a-z0-9])/["
+    + "".join(re.escape(c) for c in map(chr, range(0x21, 0x7F)) if not NOT_IN_LINK_RE.search(c)) + "]*"
+)
 
 
 def bigrams(words: list[str]) -> list[str]:
@@ -385,6 +396,14 @@ class Tokenizer:
         >>> Tokenizer.chunk_alias("https://prize.example/claim/77"), Tokenizer.chunk_alias("casino")
         ('https://prize.example 1', None)
         """
+        plain = _PLAIN_LINK.fullmatch(chunk)  # one C-level match for most links (one-off ones in a stream)
+        if plain is not None:
+            return f"{plain[1]} {chunk_marks(chunk)}"
+        return Tokenizer._alias_by_checks(chunk)
+
+    @staticmethod
+    def _alias_by_checks(chunk: str) -> str | None:
+        """:meth:`chunk_alias` by its checks one by one, for any chunk."""
         if not chunk.startswith(LINK_SCHEMES):
             return None
         start = chunk.index("://") + 3
@@ -422,6 +441,26 @@ class Tokenizer:
         for apply in self._text_rules:
             text = apply(text)
         return text
+
+    def chunk_rules_change(self, text: str) -> bool:
+        """Whether the chunk rules across chunks change this comment, so that
+        :meth:`prepare` cuts it into other chunks than :meth:`chunks_many` does.
+
+        A comment whose chunks' marks hold a chunk rule's run may still be left
+        as it is (``"call 555 then"`` has no spaced-out number); when it is, its
+        words are its chunks' tokens unless a token rule's run stands in them.
+
+        Examples
+        --------
+        >>> tok = Tokenizer()
+        >>> tok.chunk_rules_change("call 555 then"), tok.chunk_rules_change("call 555 123 4567")
+        (False, True)
+        """
+        lowered = text.lower() if text.isascii() else text
+        prepared = lowered
+        for apply in self._text_rules:
+            prepared = apply(prepared)
+        return prepared != lowered
 
     def _unigrams(self, text: str, caller: str) -> list[str]:
         """One comment's words, for the method ``caller``; a TypeError names it when ``text`` is no str."""

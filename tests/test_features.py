@@ -11,6 +11,7 @@ from hypothesis import given, settings, strategies as st
 from sklearn.utils import murmurhash3_32
 
 import model.normalization
+import model.tokens
 from model import artifact
 from model.classifier import FEW, EmbeddingClassifier
 from model.errors import ArtifactError
@@ -199,6 +200,28 @@ def test_one_comment_path_splices_links_as_the_batch_path_pairs_them(text, monke
     _check_same(enc, tok, [text, text.upper()])
 
 
+@pytest.mark.parametrize("texts, whole", [
+    (["see https://prize.example/123 456 now", "call 555 then 12 more", "plain words only"], []),
+    (["call 555 010 9999 now", "555 then 7 8", "(555) 010-9999 or 555 010 9999"], [0, 2]),
+    (["a b c 555 7", "x 1 2 3 y", "spaced 5 5 5 and 12 34"], [0, 1, 2]),
+    (["", "555", "555 666", "ünï 555 010 9999 cödé", "999 " * 200, "12 34 56 78 90"], [3, 5]),
+], ids=["hints-only", "phones", "spaced-letters", "edges"])
+def test_a_chunk_rule_hint_that_changes_nothing_keeps_the_chunks_tokens(texts, whole, monkeypatch):
+    # Two neighbouring chunks that may be one spaced-out phone number only hint
+    # at one: the batch path sends a comment to the whole pipeline when the
+    # chunk rule does change it, or when a token rule's run stands in its
+    # tokens; either way the words are the whole pipeline's.
+    tok = Tokenizer()
+    enc = FeatureEncoder(tok, TokenHasher(n_buckets=2**14))
+    sent = []
+    words_many = tok.words_many
+    monkeypatch.setattr(tok, "words_many", lambda ts: sent.extend(ts) or words_many(ts))
+    enc.texts(texts)
+    assert sent == [texts[i] for i in whole]
+    _check_same(enc, tok, texts)
+    _check_same(FeatureEncoder(Tokenizer(), TokenHasher(n_buckets=2**14)), tok, texts[::-1])
+
+
 def test_whole_link_chunks_equal_the_regex_route():
     # Links with a scheme or www. skip the regular expressions; the result must not differ.
     tok = Tokenizer()
@@ -227,6 +250,31 @@ def test_links_to_one_host_share_an_entry_with_the_same_tokens():
     before = len(enc._store)
     _check_same(enc, tok, [" ".join(chunks), "see https://prize.example/9 555 010 9999 now"])
     assert len(enc._store) - before < len(chunks) + 8
+
+
+_LINK_PART = st.text(alphabet="abcz09.-_/:?=&%#@!~()[]<>\"'`A\\ é\x7f", max_size=12)
+
+
+@settings(max_examples=400, deadline=None)
+@given(st.sampled_from(["https://", "http://", "ftp://", "ftps://", "HTTPS://", "www.", "https:/", ""]),
+       _LINK_PART, st.sampled_from(["", "/", "//", ".", "-", "_"]), _LINK_PART)
+def test_the_plain_link_match_gives_the_alias_of_the_checks(scheme, host, cut, path):
+    # The usual link takes one regular expression instead of the checks one by
+    # one; both must give the same key (or None) for any chunk.
+    chunk = scheme + host + cut + path
+    assert Tokenizer.chunk_alias(chunk) == Tokenizer._alias_by_checks(chunk), chunk
+
+
+def test_the_plain_link_match_takes_the_usual_links():
+    links = ["https://prize.example/4863", "http://a-b.example/x?id=7&p=%20", "ftp://h.example/f.txt",
+             "https://prize.example/claim(1).", "https://9.example/", "https://h.example/a_b/[x]~"]
+    for chunk in links:
+        assert model.tokens._PLAIN_LINK.fullmatch(chunk) is not None, chunk
+        assert Tokenizer.chunk_alias(chunk) == Tokenizer._alias_by_checks(chunk) is not None
+    for chunk in ["https://Prize.example/1", "https://a_b.example/1", "https://h.example./1", "https://h.example",
+                  "https://h.example/<b>", "https://h.example/é", "www.h.example/1"]:
+        assert model.tokens._PLAIN_LINK.fullmatch(chunk) is None, chunk
+        assert Tokenizer.chunk_alias(chunk) == Tokenizer._alias_by_checks(chunk)
 
 
 def test_names_take_matches_indexing():
