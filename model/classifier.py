@@ -675,7 +675,8 @@ class EmbeddingClassifier:
             calibrated log-odds (raw log-odds times the calibration's slope).
         """
         self._require_fitted("score")
-        texts = self._texts(texts, "score")
+        if not (type(texts) is list and len(texts) == 1 and type(texts[0]) is str):  # one str: nothing more to check
+            texts = self._texts(texts, "score")
         if len(texts) <= FEW and self._scoring_tables().row_logit is not None:
             return self._score_few([self._encoder.one(t) for t in texts], top_k, spamward_from)
         return self._score(self._features(texts), top_k, spamward_from)
