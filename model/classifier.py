@@ -577,7 +577,7 @@ class EmbeddingClassifier:
             reasons.append([])
             if top_k > 0:
                 explain.append((len(reasons) - 1, buckets, names, unique, terms))
-        scores = self._probabilities(np.array(logits))
+        scores = self._probabilities(logits)
         single = isinstance(spamward_from, (int, float))
         for i, buckets, names, unique, terms in explain:
             # Largest magnitude first; a stable sort keeps ties in the order the
@@ -600,9 +600,9 @@ class EmbeddingClassifier:
             reasons[i] = [(names[at(unique[j])], terms[j] * scale) for j in ranked if terms[j]]
         return scores, reasons
 
-    def _probabilities(self, logits: np.ndarray) -> np.ndarray:
-        """Spam probabilities from raw logits through the fitted calibration: the one last step of every
-        scoring path."""
+    def _probabilities(self, logits) -> np.ndarray:
+        """Spam probabilities from raw logits (an array, or a list of floats) through the fitted
+        calibration: the one last step of every scoring path."""
         return self.calibration_.probability(logits)
 
     def _few_from_features(self, features: Features):
