@@ -164,10 +164,10 @@ class ProbabilityMap:
         """What the affine map adds to ``slope·z`` (0 for identity and isotonic)."""
         return self.intercept if self.method == "platt" else 0.0
 
-    def probability(self, logits: np.ndarray) -> np.ndarray:
-        """Calibrated spam probabilities, float64, for raw log-odds ``logits``."""
-        if type(logits) is np.ndarray and logits.shape == (1,):  # one comment: plain floats, the same value
-            return np.array([self.probability_one(float(logits[0]))])
+    def probability(self, logits) -> np.ndarray:
+        """Calibrated spam probabilities, float64, for raw log-odds ``logits`` (an array, or a list of floats)."""
+        if type(logits) is list and len(logits) == 1 or type(logits) is np.ndarray and logits.shape == (1,):
+            return np.array([self.probability_one(float(logits[0]))])  # one comment: plain floats, the same value
         z = np.asarray(logits, dtype=np.float64)
         if self.method == "identity":
             return sigmoid(z)

@@ -22,6 +22,7 @@ import time
 from collections import Counter
 from collections.abc import Iterable
 from dataclasses import dataclass
+from operator import mul
 
 import numpy as np
 
@@ -565,17 +566,15 @@ class EmbeddingClassifier:
 
         ``docs`` holds one ``(buckets, names)`` per comment: its feature
         buckets as a list of ints and an indexable naming each position.
-        Same arithmetic as the vectorised path; for one comment the dozen numpy
-        calls of that path cost more than the whole comment, so a single
-        comment (the latency case) is counted with lists, its distinct buckets'
-        logit terms come from one numpy gather (a compact array: cheaper than a
-        list of floats when other work has pushed the table out of the CPU
-        caches) and are ranked by one stable numpy argsort (cheaper than a
-        Python sort with a key on a comment's ~50 terms), and the probability
-        comes from the same :meth:`_probabilities` as on every other path.
+        Same arithmetic as the vectorised path, in Python floats (IEEE
+        doubles, as numpy's float64): for one comment (the latency case) each
+        numpy call costs about as much as a pass over its ~60 values in C-level
+        ``map``, ``sum`` and ``sorted``, and the lists need no conversions.
+        The probability comes from the same :meth:`_probabilities` as on every
+        other path.
         """
         tables = self._scoring_tables()
-        bucket_logit = tables.bucket_logit
+        logit_of = memoryview(tables.bucket_logit).__getitem__  # float32 items read as exact Python floats
         bias = tables.bias
         l2 = self.pooling == "l2"
         scale = self.calibration_.contribution_scale
@@ -590,32 +589,43 @@ class EmbeddingClassifier:
                 continue
             counts = Counter(buckets)  # insertion order = order of first appearance
             unique = list(counts)
-            times = np.fromiter(counts.values(), dtype=np.float64, count=len(unique))
-            norm = math.sqrt(np.dot(times, times)) if l2 else float(n)  # exact: sums of small integers
-            # Each distinct bucket's term, pooling weight (float64) times logit
-            # term (float32), as the vectorised path computes it.
-            terms = times / norm * bucket_logit[unique]
-            logits.append(bias + sum(terms.tolist()))
+            times = list(counts.values())
+            # exact: a sum of squares of small integers, as the vectorised path's float64 dot
+            norm = math.sqrt(sum(map(mul, times, times))) if l2 else float(n)
+            # Each distinct bucket's term, pooling weight (count / norm, float64)
+            # times logit term (float32), summed in order of first appearance,
+            # as the vectorised path computes it.
+            terms = list(map(mul, map(norm.__rtruediv__, times), map(logit_of, unique)))
+            logits.append(bias + sum(terms))
             reasons.append([])
             if top_k > 0:
                 explain.append((len(reasons) - 1, buckets, names, unique, terms))
-        scores = self._probabilities(np.array(logits))
+        scores = self._probabilities(logits)
         single = isinstance(spamward_from, (int, float))
         for i, buckets, names, unique, terms in explain:
             # Largest magnitude first; a stable sort keeps ties in the order the
-            # tokens appear.  Buckets without a row contribute 0 and are left out.
-            magnitude = np.abs(terms)
-            if spamward_from is not None and scores[i] >= (spamward_from if single else spamward_from[i]):
-                # spam-ward tokens first, then the rest by magnitude
-                magnitude += (terms > 0) * (magnitude.max() + 1.0)
-            ranked = np.argsort(-magnitude, kind="stable")[:top_k].tolist()
+            # tokens appear (``reverse`` keeps it stable).  Buckets without a
+            # row contribute 0 and are left out.
             at = buckets.index
-            reasons[i] = [(names[at(unique[j])], t * scale) for j, t in zip(ranked, terms[ranked].tolist()) if t]
+            spamward = spamward_from is not None and scores[i] >= (spamward_from if single else spamward_from[i])
+            if not spamward:
+                top = sorted(terms, key=abs, reverse=True)[:top_k]
+                if len(set(top)) == len(top):  # no two equal: each names the one distinct bucket with its term
+                    where = terms.index
+                    reasons[i] = [(names[at(unique[where(t)])], t * scale) for t in top if t]
+                    continue
+            magnitude = list(map(abs, terms))
+            if spamward:
+                # spam-ward tokens first, then the rest by magnitude
+                lift = max(magnitude) + 1.0
+                magnitude = [m + lift if t > 0 else m for m, t in zip(magnitude, terms)]
+            ranked = sorted(range(len(terms)), key=magnitude.__getitem__, reverse=True)[:top_k]
+            reasons[i] = [(names[at(unique[j])], terms[j] * scale) for j in ranked if terms[j]]
         return scores, reasons
 
-    def _probabilities(self, logits: np.ndarray) -> np.ndarray:
-        """Spam probabilities from raw logits through the fitted calibration: the one last step of every
-        scoring path."""
+    def _probabilities(self, logits) -> np.ndarray:
+        """Spam probabilities from raw logits (an array, or a list of floats) through the fitted
+        calibration: the one last step of every scoring path."""
         return self.calibration_.probability(logits)
 
     def _few_from_features(self, features: Features):
@@ -705,7 +715,8 @@ class EmbeddingClassifier:
         ['see', 'you', 'win', 'a', 'free', 'prize']
         """
         self._require_fitted("score")
-        texts = self._texts(texts, "score")
+        if not (type(texts) is list and len(texts) == 1 and type(texts[0]) is str):  # one str: nothing more to check
+            texts = self._texts(texts, "score")
         if len(texts) <= FEW and self._scoring_tables().row_logit is not None:
             return EncodedBatch(texts, None, self._tokenizer)  # the plain-Python path cuts each text itself
         return EncodedBatch(texts, self._features(texts), self._tokenizer)

@@ -376,7 +376,9 @@ class FeatureEncoder:
         store = self._store
         out = []
         start = 0
-        for i in [i for i, item in enumerate(singles) if item is None]:
+        find = singles.index
+        for _ in range(singles.count(None)):
+            i = find(None, start)
             tokens, hashes, marks, rotated = store.entries[store.ids[chunks[i]]]
             if marks != _URL_DOMAIN:
                 return None

@@ -431,4 +431,7 @@ def test_one_logit_in_plain_floats_equals_the_array_route(fitted):
         one = fitted.probability(np.array([v]))
         assert one.shape == (1,) and one.dtype == np.float64
         assert float(one[0]) == fitted.probability_one(v) == float(fitted.probability(np.array([v, 0.0]))[0])
+        listed = fitted.probability([v])  # the one-comment scoring path hands over a list of floats
+        assert listed.shape == (1,) and listed.dtype == np.float64 and listed.tobytes() == one.tobytes()
+        assert fitted.probability([v, 0.0]).tobytes() == fitted.probability(np.array([v, 0.0])).tobytes()
     assert math.isnan(fitted.probability_one(float("nan")))

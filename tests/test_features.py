@@ -525,3 +525,59 @@ def test_an_encoded_batch_scores_as_score_many_and_gives_its_words(trained, size
     assert words.params == trained._tokenizer.word_params()
     assert words.counts.tolist() == [len(trained._tokenizer.words(texts[i])) for i in rows]
     assert words.flat == [w for i in rows for w in trained._tokenizer.words(texts[i])]
+
+
+def _edge_comments() -> list[str]:
+    """Invented comments for the one-comment path: empty, one token, links, e-mail, numbers, repeats
+    (one bucket many times), very long, unicode and look-alike letters."""
+    rng = np.random.default_rng(7)
+    words = ["free", "casino", "prize", "notes", "garden", "meeting", "the", "a", "win", "bonus", "library"]
+    pieces = words + ["https://prize.example/claim?id=9", "www.casino.example", "win@prize.example", "555 010 9999",
+                      "1,299.99", "42", "саsinо", "ᴄᴀꜱɪɴᴏ", "Ｆｒｅｅ", "fr33", "ca\u200bsino", "é", "🎰", "c a s h"]
+    made = ["", "free", "casino", "zzqx", "https://prize.example/1", "win@prize.example", "12345",
+            "free free free free", "casino " * 300, " ".join(words * 40), "Ｆｒｅｅ ｃａｓｉｎｏ", "саsinо prize"]
+    made += [" ".join(rng.choice(pieces, size=rng.integers(1, 40))) for _ in range(150)]
+    return made
+
+
+def _one_comment_in_numpy(clf, text: str, top_k: int, spamward_from):
+    """The one-comment path's arithmetic written with numpy arrays, as it was before it moved to
+    Python floats: the pooling weights, the logit and the stable ranking it must give bit for bit."""
+    from collections import Counter
+
+    buckets, names = clf._encoder.one(text)
+    tables = clf._scoring_tables()
+    if not buckets:
+        return float(clf._probabilities(np.array([tables.bias]))[0]), []
+    counts = Counter(buckets)
+    unique = list(counts)
+    times = np.fromiter(counts.values(), dtype=np.float64, count=len(unique))
+    norm = float(np.sqrt(np.dot(times, times)))
+    terms = times / norm * tables.bucket_logit[unique]
+    score = float(clf._probabilities(np.array([tables.bias + sum(terms.tolist())]))[0])
+    magnitude = np.abs(terms)
+    if spamward_from is not None and score >= spamward_from:
+        magnitude += (terms > 0) * (magnitude.max() + 1.0)
+    ranked = np.argsort(-magnitude, kind="stable")[:top_k].tolist()
+    scale = clf.calibration_.contribution_scale
+    return score, [(names[buckets.index(unique[j])], float(terms[j]) * scale) for j in ranked if terms[j]]
+
+
+@pytest.mark.parametrize("spamward_from", [None, 0.5], ids=["plain", "spamward"])
+@pytest.mark.parametrize("top_k", [1, 5, 500])
+def test_one_comment_path_equals_its_numpy_arithmetic_and_the_batch_path(trained, spamward_from, top_k):
+    # The one-comment path counts, weighs, sums and ranks in Python floats:
+    # the same operations in the same order as the numpy arrays, so the same
+    # bits and the same tokens in the same order (ties by position).  Against
+    # the batch path (more than FEW comments at once, summed by np.bincount)
+    # the scores agree to rounding and the tokens exactly.
+    assert trained.pooling == "l2"
+    texts = _edge_comments()
+    assert len(texts) > FEW
+    scores, reasons = trained.score_many(texts, top_k=top_k, spamward_from=spamward_from)
+    for text, score, want in zip(texts, scores.tolist(), reasons):
+        (got_score,), (got,) = trained.score_many([text], top_k=top_k, spamward_from=spamward_from)
+        assert (float(got_score), got) == _one_comment_in_numpy(trained, text, top_k, spamward_from), text
+        assert got_score == pytest.approx(score, abs=1e-12)
+        assert [t for t, _ in got] == [t for t, _ in want], text
+        np.testing.assert_allclose([c for _, c in got], [c for _, c in want], rtol=0, atol=1e-12)
